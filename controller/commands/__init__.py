@@ -1,0 +1,1 @@
+"""One module per ``ratefit`` subcommand; each exposes ``register(subparsers)``."""

@@ -1,0 +1,14 @@
+"""`ratefit plan` — placeholder until its issue lands (replace this module)."""
+
+from __future__ import annotations
+
+import argparse
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("plan", help="(not built yet)")
+    p.set_defaults(handler=_run)
+
+
+def _run(args: argparse.Namespace) -> int:
+    raise SystemExit("ratefit plan: not built yet")
