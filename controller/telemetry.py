@@ -1,0 +1,209 @@
+"""The controller's own telemetry: Prometheus metrics, ``/healthz`` and ``/readyz``.
+
+Everything is registered on a :class:`prometheus_client.CollectorRegistry` owned by
+one :class:`Telemetry` object (never the process-global registry), so tests and two
+controllers in one process do not share counters. :class:`HealthServer` serves the
+three routes on a small stdlib ``ThreadingHTTPServer`` (no framework needed for three
+GET routes; it keeps answering while the reconcile loop is busy or on standby):
+
+- ``/metrics`` — the Prometheus text exposition format (``prometheus_client`` renders it);
+- ``/healthz`` — 200 while the loop thread is alive (liveness: restart me if not);
+- ``/readyz``  — 200 once the controller has completed its first pass as leader, or
+  knows it is a standby replica (readiness: the controller is doing its job).
+
+Metric names follow the Prometheus naming guide (prometheus.io/docs/practices/naming:
+``_total`` for counters, base units such as ``_seconds``, a ``ratefit_controller_`` prefix).
+"""
+
+from __future__ import annotations
+
+import threading
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from typing import Callable
+
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
+from prometheus_client.exposition import CONTENT_TYPE_LATEST
+
+__all__ = ["Telemetry", "HealthServer", "PASS_BUCKETS"]
+
+#: pass-duration buckets (seconds): a pass over a few policies takes milliseconds,
+#: a pass over 10,000 workloads a few seconds (common practice, no source)
+PASS_BUCKETS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0)
+
+
+class Telemetry:
+    """The controller's metrics plus the health/readiness flags the server reports."""
+
+    def __init__(self, registry: CollectorRegistry | None = None) -> None:
+        self.registry = registry if registry is not None else CollectorRegistry(auto_describe=True)
+        r = self.registry
+        self.passes = Counter(
+            "ratefit_controller_passes", "Reconcile passes finished, by outcome.", ["outcome"], registry=r
+        )
+        self.pass_duration = Histogram(
+            "ratefit_controller_pass_duration_seconds",
+            "Wall time of one reconcile pass.",
+            buckets=PASS_BUCKETS,
+            registry=r,
+        )
+        self.decisions = Counter(
+            "ratefit_controller_decisions",
+            "Container decisions, by verdict and reason (why).",
+            ["verdict", "why"],
+            registry=r,
+        )
+        self.patches = Counter(
+            "ratefit_controller_patches",
+            "Changes applied to the cluster, by method (rollout: template patch; in-place: pod resize).",
+            ["method"],
+            registry=r,
+        )
+        self.patch_errors = Counter(
+            "ratefit_controller_patch_errors",
+            "Patches or resizes that failed, by error kind.",
+            ["kind"],
+            registry=r,
+        )
+        self.budget_left = Gauge(
+            "ratefit_controller_budget_remaining",
+            "Changes the global per-minute budget still allows at the end of the last pass.",
+            registry=r,
+        )
+        self.rollout_slots_left = Gauge(
+            "ratefit_controller_rollout_slots_remaining",
+            "Concurrent rollouts still allowed at the end of the last pass.",
+            registry=r,
+        )
+        self.metrics_errors = Counter(
+            "ratefit_controller_metrics_errors",
+            "Failed rate queries to the metrics source, by error kind.",
+            ["kind"],
+            registry=r,
+        )
+        self.api_errors = Counter(
+            "ratefit_controller_sizing_api_errors",
+            "Failed calls to the sizing API, by error kind.",
+            ["kind"],
+            registry=r,
+        )
+        self.kube_errors = Counter(
+            "ratefit_controller_kube_errors",
+            "Failed Kubernetes API reads or status/event writes, by error kind.",
+            ["kind"],
+            registry=r,
+        )
+        self.leader = Gauge(
+            "ratefit_controller_leader",
+            "1 while this replica holds the leader Lease, else 0.",
+            registry=r,
+        )
+        self.policies = Gauge(
+            "ratefit_controller_policies",
+            "SizingPolicies seen in the last pass, by validity.",
+            ["state"],
+            registry=r,
+        )
+        self.last_pass = Gauge(
+            "ratefit_controller_last_pass_timestamp_seconds",
+            "Unix time the last pass finished.",
+            registry=r,
+        )
+        self._lock = threading.Lock()
+        self._ready = False
+        self._alive: Callable[[], bool] = lambda: True
+
+    # -- health flags ---------------------------------------------------------------
+    def set_ready(self, ready: bool) -> None:
+        with self._lock:
+            self._ready = bool(ready)
+
+    @property
+    def ready(self) -> bool:
+        with self._lock:
+            return self._ready
+
+    def set_liveness(self, probe: Callable[[], bool]) -> None:
+        """``probe()`` says whether the loop is alive (e.g. its thread ``is_alive``)."""
+        self._alive = probe
+
+    @property
+    def alive(self) -> bool:
+        try:
+            return bool(self._alive())
+        except Exception:  # a broken probe means "not alive", never a crash of the server
+            return False
+
+    def render(self) -> bytes:
+        """The registry in the Prometheus text exposition format."""
+        return generate_latest(self.registry)
+
+    def value(self, name: str, labels: dict[str, str] | None = None) -> float:
+        """Current value of one sample (0.0 when absent) — for logs, the CLI and tests."""
+        v = self.registry.get_sample_value(name, labels or {})
+        return 0.0 if v is None else float(v)
+
+
+class HealthServer:
+    """Serves ``/metrics``, ``/healthz`` and ``/readyz`` for one :class:`Telemetry`.
+
+    ``port=0`` picks a free port (read it back from :attr:`port`). Binds 127.0.0.1
+    unless told otherwise; in a cluster pass ``host="0.0.0.0"`` so probes reach it.
+    """
+
+    def __init__(self, telemetry: Telemetry, *, host: str = "127.0.0.1", port: int = 0) -> None:
+        self.telemetry = telemetry
+        tel = telemetry
+
+        class Handler(BaseHTTPRequestHandler):
+            def do_GET(self) -> None:  # noqa: N802 - stdlib naming
+                path = self.path.split("?", 1)[0]
+                if path == "/metrics":
+                    self._send(200, tel.render(), CONTENT_TYPE_LATEST)
+                elif path == "/healthz":
+                    ok = tel.alive
+                    self._send(200 if ok else 503, b"ok\n" if ok else b"loop not running\n")
+                elif path == "/readyz":
+                    ok = tel.ready
+                    self._send(200 if ok else 503, b"ok\n" if ok else b"not ready\n")
+                else:
+                    self._send(404, b"not found: try /metrics, /healthz or /readyz\n")
+
+            def _send(self, code: int, body: bytes, ctype: str = "text/plain; charset=utf-8") -> None:
+                self.send_response(code)
+                self.send_header("Content-Type", ctype)
+                self.send_header("Content-Length", str(len(body)))
+                self.end_headers()
+                self.wfile.write(body)
+
+            def log_message(self, format: str, *args: object) -> None:  # noqa: A002
+                pass  # probes every few seconds would flood the controller's log
+
+        self._server = ThreadingHTTPServer((host, port), Handler)
+        self._server.daemon_threads = True
+        self._thread: threading.Thread | None = None
+
+    @property
+    def port(self) -> int:
+        return int(self._server.server_address[1])
+
+    @property
+    def url(self) -> str:
+        host = self._server.server_address[0]
+        return f"http://{host}:{self.port}"
+
+    def start(self) -> HealthServer:
+        self._thread = threading.Thread(target=self._server.serve_forever, name="ratefit-health", daemon=True)
+        self._thread.start()
+        return self
+
+    def stop(self) -> None:
+        self._server.shutdown()
+        self._server.server_close()
+        if self._thread is not None:
+            self._thread.join(timeout=5)
+
+    def __enter__(self) -> HealthServer:
+        return self.start()
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
