@@ -1,0 +1,194 @@
+"""pytest fixtures that run the real Prometheus server (Debian package) on loopback.
+
+History is backfilled with ``promtool tsdb create-blocks-from openmetrics FILE DIR``
+(Prometheus docs, "Backfilling from OpenMetrics format"), then ``/usr/bin/prometheus``
+starts on that TSDB with a config that scrapes nothing, on a free 127.0.0.1 port, and
+the fixture waits for ``/-/ready``. The process is killed afterwards, also when the test
+or the start-up fails. Checked against 2.42: a history ending minutes before "now" is
+queryable with instant queries at ``time=end`` without ``--storage.tsdb.allow-overlapping-blocks``
+(the head stays empty because nothing is scraped, so no block overlaps it).
+
+When ``prometheus``/``promtool`` are missing the tests skip, unless
+``RATEFIT_REQUIRE_PROMETHEUS=1`` (CI), where they fail.
+
+Fixtures:
+
+* ``scenario_prometheus`` (session): the INVENTED Kestrel Post history (6 h, 30 s steps,
+  seed 0, ending 5 min before now), yields :class:`PromHistory`.
+* ``prometheus_from_openmetrics`` (function): a factory ``start(path) -> PromServer``
+  for a test's own OpenMetrics file; servers stop at the end of the test.
+
+Register in ``tests/conftest.py``: ``pytest_plugins = ["prom_fixtures"]``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Iterator
+
+import httpx
+import pytest
+
+PROMETHEUS_BIN = os.environ.get("RATEFIT_PROMETHEUS_BIN", "/usr/bin/prometheus")
+PROMTOOL_BIN = os.environ.get("RATEFIT_PROMTOOL_BIN", "/usr/bin/promtool")
+SCENARIO_HOURS = 6
+SCENARIO_STEP_S = 30
+SCENARIO_SEED = 0
+
+
+@dataclass(frozen=True)
+class PromServer:
+    url: str
+    data_dir: Path
+    pid: int
+
+
+@dataclass(frozen=True)
+class PromHistory:
+    """A running Prometheus loaded with the scenario history."""
+
+    url: str
+    start: float  # first sample time
+    end: float  # last sample time: query here (instant queries with ``at=end``)
+    step_s: float
+    hours: float
+    seed: int
+    openmetrics: Path
+
+
+def binaries() -> tuple[str, str] | None:
+    """(prometheus, promtool) if both are installed, else None."""
+    p = PROMETHEUS_BIN if os.access(PROMETHEUS_BIN, os.X_OK) else shutil.which("prometheus")
+    t = PROMTOOL_BIN if os.access(PROMTOOL_BIN, os.X_OK) else shutil.which("promtool")
+    return (p, t) if p and t else None
+
+
+def require_prometheus() -> tuple[str, str]:
+    """The binaries, or skip (fail when RATEFIT_REQUIRE_PROMETHEUS=1)."""
+    found = binaries()
+    if found is None:
+        msg = "prometheus/promtool not installed (Debian: apt-get install prometheus)"
+        if os.environ.get("RATEFIT_REQUIRE_PROMETHEUS") == "1":
+            pytest.fail(msg + " and RATEFIT_REQUIRE_PROMETHEUS=1")
+        pytest.skip(msg)
+    return found
+
+
+def backfill(openmetrics: Path, data_dir: Path) -> None:
+    """``promtool tsdb create-blocks-from openmetrics`` into ``data_dir``; raises with promtool's output."""
+    _, promtool = require_prometheus()
+    r = subprocess.run(
+        [promtool, "tsdb", "create-blocks-from", "openmetrics", str(openmetrics), str(data_dir)],
+        capture_output=True, text=True, timeout=300,
+    )
+    if r.returncode != 0:
+        raise RuntimeError(f"promtool backfill of {openmetrics} failed ({r.returncode}): {r.stderr[-2000:]}")
+
+
+def _free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _stop(proc: subprocess.Popen) -> None:
+    if proc.poll() is not None:
+        return
+    with contextlib.suppress(ProcessLookupError):
+        os.killpg(proc.pid, signal.SIGTERM)
+    try:
+        proc.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        with contextlib.suppress(ProcessLookupError):
+            os.killpg(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=10)
+
+
+@contextlib.contextmanager
+def run_prometheus(data_dir: Path, *, ready_timeout: float = 60.0) -> Iterator[PromServer]:
+    """Start Prometheus on ``data_dir`` (a TSDB), wait for ``/-/ready``, stop it on exit."""
+    prometheus, _ = require_prometheus()
+    data_dir = Path(data_dir)
+    config = data_dir.parent / f"{data_dir.name}-prometheus.yml"
+    config.write_text("# ratefit tests: no scrape targets; history is backfilled\nglobal:\n  scrape_interval: 1m\nscrape_configs: []\n")
+    log_path = data_dir.parent / f"{data_dir.name}-prometheus.log"
+    last_error = ""
+    for _attempt in range(3):  # a free port may be taken between probe and bind
+        port = _free_port()
+        url = f"http://127.0.0.1:{port}"
+        log = open(log_path, "w")
+        proc = subprocess.Popen(
+            [
+                prometheus,
+                f"--config.file={config}",
+                f"--storage.tsdb.path={data_dir}",
+                f"--web.listen-address=127.0.0.1:{port}",
+                "--storage.tsdb.retention.time=3650d",  # old fixed-date histories must not be deleted
+                "--log.level=warn",
+            ],
+            stdout=log, stderr=subprocess.STDOUT, start_new_session=True,
+        )
+        try:
+            deadline = time.monotonic() + ready_timeout
+            ready = False
+            while time.monotonic() < deadline and proc.poll() is None:
+                try:
+                    if httpx.get(url + "/-/ready", timeout=1.0).status_code == 200:
+                        ready = True
+                        break
+                except httpx.HTTPError:
+                    pass
+                time.sleep(0.1)
+            if not ready:
+                _stop(proc)
+                last_error = log_path.read_text()[-2000:]
+                continue
+            yield PromServer(url=url, data_dir=data_dir, pid=proc.pid)
+            return
+        finally:
+            _stop(proc)
+            log.close()
+    raise RuntimeError(f"Prometheus did not become ready on 127.0.0.1; log tail:\n{last_error}")
+
+
+@pytest.fixture(scope="session")
+def scenario_prometheus(tmp_path_factory: pytest.TempPathFactory) -> Iterator[PromHistory]:
+    """The real Prometheus with the INVENTED scenario history (6 h, ends 5 min before now)."""
+    require_prometheus()
+    from ratefit.models.scenario import write_openmetrics
+
+    base = tmp_path_factory.mktemp("prom-scenario")
+    info = write_openmetrics(
+        base / "history.om", end=time.time() - 300, hours=SCENARIO_HOURS, step_s=SCENARIO_STEP_S, seed=SCENARIO_SEED
+    )
+    backfill(info.path, base / "tsdb")
+    with run_prometheus(base / "tsdb") as srv:
+        yield PromHistory(
+            url=srv.url, start=info.start, end=info.end, step_s=info.step_s,
+            hours=SCENARIO_HOURS, seed=SCENARIO_SEED, openmetrics=info.path,
+        )
+
+
+@pytest.fixture
+def prometheus_from_openmetrics(tmp_path: Path) -> Iterator[Callable[[Path], PromServer]]:
+    """Factory: backfill an OpenMetrics file and start a Prometheus on it (stopped after the test)."""
+    require_prometheus()
+    stack = contextlib.ExitStack()
+    counter = [0]
+
+    def start(openmetrics: Path) -> PromServer:
+        counter[0] += 1
+        data = tmp_path / f"tsdb{counter[0]}"
+        backfill(Path(openmetrics), data)
+        return stack.enter_context(run_prometheus(data))
+
+    with stack:
+        yield start
