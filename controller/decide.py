@@ -1,0 +1,492 @@
+"""The decision (DESIGN.md, "One decision") as pure functions of plain values.
+
+Inputs: the container's current request and limit (millicores, None if unset), the
+per-pod request rate at the policy's percentile, demand and upper band from the
+sizing API (cores, with the ``extrapolated`` flag), the policy, the history kept in
+the policy's status, the clock (``now``, an aware datetime) and a snapshot of the
+global budget. Output: one frozen :class:`Decision` per container, gathered in a
+:class:`WorkloadDecision`. Nothing here reads a clock, a file or the network.
+
+The steps, in order (the first that stops a change names the ``why``):
+
+1. rate: ``ratePercentile`` of the per-pod rates (:func:`rate_percentile`,
+   linear interpolation = Hyndman & Fan type 7 = numpy's default ``'linear'``).
+   No usable rate → held **NoMetrics**. No sizing answer → held **NoModel**.
+   The API extrapolated beyond the trained range → held **Extrapolated**, unless
+   the policy sets ``allowExtrapolation: true`` (then it goes on, flagged
+   ``extrapolated`` in the proposal).
+2. target = upper × (1 + headroom), clamped to [floor, ceiling], rounded up to a
+   multiple of 5m (a ceiling that is not a multiple of 5 still wins). With
+   ``limits: keep`` the target never exceeds the kept limit.
+3. Deadband: held **InsideDeadband** unless |target − current| > deadband × current
+   and ≥ 10m. If the target sits on a bound the why is **AtFloor**, **AtCeiling**
+   or **AtLimit** instead (the model wants more/less than the policy allows).
+4. Increases go at once. Decreases wait until the target has stayed below the
+   current request for ``settle`` (status ``settling[].belowSince``): held
+   **Settling** meanwhile. A decrease then goes to the *highest* target seen while
+   settling (``settling[].peak``), never to one low reading.
+5. Step limit: at most ×up, at least ×down per change. A cut-short change is still
+   a change: verdict changed (proposed in dry-run), why **StepLimited**. A
+   step-limited decrease keeps its settling record, so the next step waits only
+   for the cooldown.
+6. Workload gates (one patch per workload): a CPU-utilisation horizontal
+   autoscaler → held **HorizontalConflict** unless ``allowHorizontalConflict``;
+   ``method: in-place`` where the change would need removing a limit, adding a
+   first request, or would change the QoS class → held **InPlaceUnsupported**;
+   cooldown since ``status.lastChange`` → held **CoolingDown** (increases too: the
+   cooldown bounds rollouts); in apply mode the global budget (changes per minute,
+   concurrent rollouts) → held **BudgetSpent**. Dry-run policies never draw from
+   nor wait for the budget.
+7. Limits: ``keep-ratio`` scales the limit by the request's factor (rounded up to
+   1m, never below the request); ``keep`` leaves it; ``drop`` removes it, together
+   with the next request change (a limit alone never starts a rollout).
+8. Verdict: **changed** (apply mode), **proposed** (dry-run, where apply would say
+   changed), **held**. A change that reaches its full target says **NewTarget**
+   (or the bound it sits on: AtFloor/AtCeiling/AtLimit).
+
+**Rejected** is set by reconcile through :meth:`WorkloadDecision.rejected` when the
+API server refuses the change (server-side dry-run or patch, e.g. 422).
+
+A container without a request but with a limit is treated as requesting its
+limit: the API server defaults requests to limits (Kubernetes docs, "Resource
+Management for Pods and Containers").
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field, replace
+from datetime import datetime
+from enum import StrEnum
+from typing import Any
+
+from ratefit.controller.limits import BudgetView, Cooldown, round_up, step_limit
+from ratefit.controller.policy import (
+    ContainerHistory,
+    ContainerPolicy,
+    LimitsMode,
+    Method,
+    Mode,
+    Policy,
+    WorkloadHistory,
+)
+from ratefit.controller.quantity import format_cpu
+
+__all__ = [
+    "Verdict",
+    "Why",
+    "Sizing",
+    "ContainerInput",
+    "Decision",
+    "WorkloadDecision",
+    "rate_percentile",
+    "target_millicores",
+    "limit_for",
+    "decide_container",
+    "decide_workload",
+    "MIN_CHANGE_M",
+    "ROUND_TO_M",
+]
+
+#: Smallest change worth making, in millicores (DESIGN.md "One decision", step 4).
+MIN_CHANGE_M = 10
+#: Targets are rounded up to a multiple of this many millicores (step 3).
+ROUND_TO_M = 5
+
+
+class Verdict(StrEnum):
+    CHANGED = "changed"  # apply mode: reconcile patches the proposed values
+    PROPOSED = "proposed"  # dry-run: apply mode would have changed it
+    HELD = "held"  # nothing changes; ``why`` says what stopped it
+
+
+class Why(StrEnum):
+    # reasons a change goes (verdict changed / proposed)
+    NEW_TARGET = "NewTarget"  # the full target, inside [floor, ceiling]
+    STEP_LIMITED = "StepLimited"  # moved toward the target, cut by stepLimit
+    # a bound: with a change it went to the bound; held, it sits there already
+    AT_FLOOR = "AtFloor"  # the target was raised to spec floor
+    AT_CEILING = "AtCeiling"  # the target was cut to spec ceiling
+    AT_LIMIT = "AtLimit"  # limits: keep and the target was cut to the CPU limit
+    # reasons nothing changes (verdict held)
+    INSIDE_DEADBAND = "InsideDeadband"  # |target − current| too small to bother
+    SETTLING = "Settling"  # a decrease waits until the target stayed low for settle
+    COOLING_DOWN = "CoolingDown"  # the workload changed less than cooldown ago
+    BUDGET_SPENT = "BudgetSpent"  # global changes-per-minute or rollout slots used up
+    EXTRAPOLATED = "Extrapolated"  # the rate lies beyond the model's trained range
+    NO_METRICS = "NoMetrics"  # no usable per-pod rate (Prometheus down, no series)
+    NO_MODEL = "NoModel"  # the sizing API had no answer for the model key
+    HORIZONTAL_CONFLICT = "HorizontalConflict"  # an HPA scales this workload on CPU utilisation
+    IN_PLACE_UNSUPPORTED = "InPlaceUnsupported"  # a resize cannot make this change
+    REJECTED = "Rejected"  # the API server refused the change (set by reconcile)
+
+
+@dataclass(frozen=True)
+class Sizing:
+    """The sizing API's answer at the rate: demand and upper band in cores."""
+
+    demand: float
+    upper: float
+    extrapolated: bool = False
+
+
+@dataclass(frozen=True)
+class ContainerInput:
+    """What reconcile observed for one container this pass."""
+
+    name: str
+    request_m: int | None  # the pod template's CPU request (None: unset)
+    limit_m: int | None  # the pod template's CPU limit (None: unset)
+    rate: float | None  # per-pod request rate at the policy's percentile (None: no metrics)
+    sizing: Sizing | None  # None: no model / sizing API unavailable
+
+
+@dataclass(frozen=True)
+class Decision:
+    """What to do with one container and why.
+
+    ``proposed_m``/``proposed_limit_m`` are the values the decision puts forward —
+    when held by a gate (Settling, CoolingDown, BudgetSpent, HorizontalConflict,
+    InPlaceUnsupported) the values the gate stopped, otherwise the current ones.
+    Reconcile writes them only when ``verdict`` is changed."""
+
+    container: str
+    verdict: Verdict
+    why: Why
+    current_m: int | None
+    limit_m: int | None
+    proposed_m: int | None
+    proposed_limit_m: int | None
+    target_m: int | None = None
+    demand: float | None = None  # cores
+    upper: float | None = None  # cores
+    rate: float | None = None  # req/s per pod
+    extrapolated: bool = False
+    message: str = ""
+    #: settling record to persist with this verdict
+    settle: ContainerHistory = ContainerHistory()
+    #: settling record to persist if the change is not applied after all (Rejected)
+    settle_if_held: ContainerHistory = field(default=ContainerHistory(), repr=False)
+
+    @property
+    def moves(self) -> bool:
+        """True if the proposed values differ from the current ones."""
+        return self.proposed_m != self.current_m or self.proposed_limit_m != self.limit_m
+
+    def to_status(self) -> dict[str, Any]:
+        """This decision as a ``status.proposals[]`` entry (quantities as strings)."""
+
+        def q(m: int | None) -> str | None:
+            return None if m is None else format_cpu(m)
+
+        def cores(c: float | None) -> str | None:
+            return None if c is None else format_cpu(round_up(c * 1000.0, 1))
+
+        return {
+            "container": self.container,
+            "current": q(self.current_m),
+            "proposed": q(self.proposed_m),
+            "target": q(self.target_m),
+            "currentLimit": q(self.limit_m),
+            "proposedLimit": q(self.proposed_limit_m),
+            "demand": cores(self.demand),
+            "upper": cores(self.upper),
+            "rate": None if self.rate is None else round(self.rate, 6),
+            "extrapolated": self.extrapolated,
+            "verdict": self.verdict.value,
+            "why": self.why.value,
+            "message": self.message,
+        }
+
+
+@dataclass(frozen=True)
+class WorkloadDecision:
+    """The decisions for one policy's workload in one pass, and the history to keep."""
+
+    policy: str  # namespace/name of the SizingPolicy
+    workload: str  # namespace/Kind/name
+    decisions: tuple[Decision, ...]
+    #: history to persist in status (lastChange = now if anything changed)
+    history: WorkloadHistory
+    #: history to persist if reconcile could not apply the change
+    history_if_held: WorkloadHistory = field(default=WorkloadHistory(), repr=False)
+
+    @property
+    def changed(self) -> tuple[Decision, ...]:
+        """The containers reconcile must patch (verdict changed)."""
+        return tuple(d for d in self.decisions if d.verdict is Verdict.CHANGED)
+
+    @property
+    def proposed(self) -> tuple[Decision, ...]:
+        return tuple(d for d in self.decisions if d.verdict is Verdict.PROPOSED)
+
+    def rejected(self, message: str) -> WorkloadDecision:
+        """The same pass after the API server refused the change: every changed
+        container becomes held Rejected with ``message``; nothing counts as changed."""
+        decisions = tuple(
+            replace(d, verdict=Verdict.HELD, why=Why.REJECTED, message=message, settle=d.settle_if_held)
+            if d.verdict is Verdict.CHANGED
+            else d
+            for d in self.decisions
+        )
+        return replace(self, decisions=decisions, history=self.history_if_held)
+
+
+# ---------------------------------------------------------------- the steps
+
+
+def rate_percentile(samples: Iterable[float], percentile: float) -> float | None:
+    """The ``percentile`` (0–100) of per-pod rates by linear interpolation between
+    order statistics (Hyndman & Fan 1996 type 7, numpy.percentile's default
+    method 'linear'). NaN, infinite and negative samples are dropped; None if
+    nothing is left."""
+    xs = sorted(float(x) for x in samples if x is not None and math.isfinite(x) and x >= 0)
+    if not xs:
+        return None
+    if not 0.0 <= percentile <= 100.0:
+        raise ValueError(f"percentile must be in [0, 100], got {percentile}")
+    h = (len(xs) - 1) * percentile / 100.0
+    lo = math.floor(h)
+    hi = min(lo + 1, len(xs) - 1)
+    return xs[lo] + (h - lo) * (xs[hi] - xs[lo])
+
+
+def target_millicores(
+    upper_cores: float, *, headroom: float, floor_m: int, ceiling_m: int | None, limit_m: int | None = None
+) -> tuple[int, Why | None]:
+    """Step 2: upper × (1 + headroom) clamped to [floor, ceiling], rounded up to 5m,
+    and (with ``limit_m``, i.e. limits: keep) not above the limit.
+    Returns (target, the bound it sits on or None)."""
+    raw = upper_cores * 1000.0 * (1.0 + headroom)
+    bound: Why | None = None
+    if raw < floor_m:
+        raw, bound = float(floor_m), Why.AT_FLOOR
+    if ceiling_m is not None and raw > ceiling_m:
+        raw, bound = float(ceiling_m), Why.AT_CEILING
+    target = round_up(raw, ROUND_TO_M)
+    if ceiling_m is not None and target > ceiling_m:
+        target = ceiling_m
+    if limit_m is not None and target > limit_m:
+        target, bound = limit_m, Why.AT_LIMIT
+    return target, bound
+
+
+def limit_for(current_m: int | None, limit_m: int | None, new_m: int, mode: LimitsMode) -> int | None:
+    """Step 7: the CPU limit that goes with request ``new_m``."""
+    if mode is LimitsMode.DROP or limit_m is None:
+        return None
+    if mode is LimitsMode.KEEP:
+        return limit_m
+    if current_m is None or current_m <= 0:
+        return max(limit_m, new_m)
+    # keep-ratio: scale by the request's factor, whole millicores up, never below the request
+    return max(round_up(limit_m * new_m / current_m, 1), new_m)
+
+
+def _inside_deadband(current_m: int, target_m: int, deadband: float) -> bool:
+    diff = abs(target_m - current_m)
+    return not (diff > deadband * current_m and diff >= MIN_CHANGE_M)
+
+
+def decide_container(
+    policy: Policy, container: ContainerPolicy, observed: ContainerInput, *, history: ContainerHistory, now: datetime
+) -> Decision:
+    """Steps 1–5 and 7 for one container; the verdict is ``changed`` or ``held``
+    (the workload gates, dry-run and the budget come in :func:`decide_workload`)."""
+    current = observed.request_m if observed.request_m is not None else observed.limit_m
+    limit = observed.limit_m
+    base = Decision(
+        container=container.name,
+        verdict=Verdict.HELD,
+        why=Why.NO_METRICS,
+        current_m=current,
+        limit_m=limit,
+        proposed_m=current,
+        proposed_limit_m=limit,
+        rate=observed.rate,
+        settle=history,
+        settle_if_held=history,
+    )
+    rate = observed.rate
+    if rate is None or not math.isfinite(rate) or rate < 0:
+        return replace(base, rate=None, message="no usable per-pod request rate this pass; nothing changes")
+    s = observed.sizing
+    if s is None:
+        return replace(base, why=Why.NO_MODEL, message=f"the sizing API has no answer for model {container.model!r}")
+    if not (math.isfinite(s.demand) and math.isfinite(s.upper) and s.demand >= 0 and s.upper >= 0):
+        return replace(base, why=Why.NO_MODEL, message=f"the sizing API answered an unusable demand for {container.model!r}")
+    keep_limit = limit if policy.limits is LimitsMode.KEEP else None
+    target, bound = target_millicores(
+        s.upper, headroom=policy.headroom, floor_m=container.floor_m, ceiling_m=container.ceiling_m, limit_m=keep_limit
+    )
+    base = replace(base, target_m=target, demand=s.demand, upper=s.upper, extrapolated=s.extrapolated)
+    if s.extrapolated and not policy.allow_extrapolation:
+        return replace(
+            base,
+            why=Why.EXTRAPOLATED,
+            message=f"rate {rate:g}/s is beyond the trained range of {container.model!r}; "
+            "retrain the model or set allowExtrapolation",
+        )
+    note = " (extrapolated beyond the trained range)" if s.extrapolated else ""
+
+    def change(new_m: int, limited: bool, settle_after: ContainerHistory, settle_held: ContainerHistory) -> Decision:
+        new_limit = limit_for(current, limit, new_m, policy.limits)
+        why = Why.STEP_LIMITED if limited else (bound if (bound and new_m == target) else Why.NEW_TARGET)
+        verb = "raise" if current is None or new_m > current else "lower"
+        msg = f"{verb} to {format_cpu(new_m)} (target {format_cpu(target)})"
+        if limited:
+            msg += f", cut by stepLimit ×{policy.step_limit.up if verb == 'raise' else policy.step_limit.down}"
+        return replace(
+            base,
+            verdict=Verdict.CHANGED,
+            why=why,
+            proposed_m=new_m,
+            proposed_limit_m=new_limit,
+            message=msg + note,
+            settle=settle_after,
+            settle_if_held=settle_held,
+        )
+
+    if current is None:
+        return change(target, False, ContainerHistory(), ContainerHistory())
+
+    # settling record: since when the target has stayed below the current request
+    if target < current:
+        if history.below_since is not None and history.peak_m is not None:
+            settling = ContainerHistory(below_since=history.below_since, peak_m=max(history.peak_m, target))
+        else:
+            settling = ContainerHistory(below_since=now, peak_m=target)
+    else:
+        settling = ContainerHistory()
+    base = replace(base, settle=settling, settle_if_held=settling)
+
+    if _inside_deadband(current, target, policy.deadband):
+        why = bound or Why.INSIDE_DEADBAND
+        return replace(
+            base, why=why, message=f"target {format_cpu(target)} is within the deadband of {format_cpu(current)}"
+        )
+    up, down = policy.step_limit.up, policy.step_limit.down
+    if target > current:
+        new_m, limited = step_limit(current, target, up=up, down=down)
+        return change(new_m, limited, ContainerHistory(), settling)
+
+    # a decrease: only after settle, and to the highest target seen while settling
+    assert settling.below_since is not None and settling.peak_m is not None
+    goal = settling.peak_m
+    new_m, limited = step_limit(current, goal, up=up, down=down)
+    waited = (now - settling.below_since).total_seconds()
+    if waited < policy.settle_s:
+        return replace(
+            base,
+            why=Why.SETTLING,
+            proposed_m=new_m,
+            proposed_limit_m=limit_for(current, limit, new_m, policy.limits),
+            message=f"target below {format_cpu(current)} for {int(waited)}s of {int(policy.settle_s)}s settle",
+        )
+    if _inside_deadband(current, goal, policy.deadband):
+        return replace(
+            base,
+            why=Why.INSIDE_DEADBAND,
+            message=f"highest target while settling {format_cpu(goal)} is within the deadband of {format_cpu(current)}",
+        )
+    after = settling if limited else ContainerHistory()
+    return change(new_m, limited, after, settling)
+
+
+def _in_place_problem(d: Decision) -> str | None:
+    if d.current_m is None:
+        return "a resize cannot add a first CPU request (the QoS class would change)"
+    if d.limit_m is not None and d.proposed_limit_m is None:
+        return "a resize cannot remove a CPU limit"
+    if (d.current_m == d.limit_m) != (d.proposed_m == d.proposed_limit_m):
+        return "the change would make request and limit (un)equal, so the pod's QoS class could change"
+    return None
+
+
+def decide_workload(
+    policy: Policy,
+    observed: Sequence[ContainerInput],
+    *,
+    history: WorkloadHistory,
+    now: datetime,
+    budget: BudgetView = BudgetView(),
+    hpa_on_cpu: bool = False,
+    dry_run: bool = False,
+) -> WorkloadDecision:
+    """All containers of one policy (in the policy's order), then the workload gates.
+
+    ``hpa_on_cpu``: a HorizontalPodAutoscaler targets the workload with a CPU
+    ``Utilization`` metric. ``dry_run`` forces dry-run (``ratefit run --dry-run``,
+    ``ratefit plan``). A container named by the policy but not observed is held
+    NoMetrics. In apply mode the caller must ``Budget.spend`` once when the result
+    has changed containers, and persist ``history`` after the patch succeeded (or
+    ``rejected(...)`` and its history if it failed)."""
+    by_name: Mapping[str, ContainerInput] = {o.name: o for o in observed}
+    decisions: list[Decision] = []
+    for c in policy.containers:
+        h = history.container(c.name)
+        o = by_name.get(c.name)
+        if o is None:
+            decisions.append(
+                Decision(
+                    container=c.name,
+                    verdict=Verdict.HELD,
+                    why=Why.NO_METRICS,
+                    current_m=None,
+                    limit_m=None,
+                    proposed_m=None,
+                    proposed_limit_m=None,
+                    message=f"container {c.name!r} is not in {policy.workload_key}; fix spec.containers",
+                    settle=h,
+                    settle_if_held=h,
+                )
+            )
+            continue
+        decisions.append(decide_container(policy, c, o, history=h, now=now))
+
+    def hold(d: Decision, why: Why, message: str) -> Decision:
+        return replace(d, verdict=Verdict.HELD, why=why, message=message, settle=d.settle_if_held)
+
+    wants = [d.verdict is Verdict.CHANGED for d in decisions]
+    if any(wants) and hpa_on_cpu and not policy.allow_horizontal_conflict:
+        msg = (
+            "a HorizontalPodAutoscaler scales this workload on CPU utilisation; changing requests "
+            "moves its measurement (set allowHorizontalConflict to change anyway)"
+        )
+        decisions = [hold(d, Why.HORIZONTAL_CONFLICT, msg) if d.verdict is Verdict.CHANGED else d for d in decisions]
+    if policy.method is Method.IN_PLACE:
+        for i, d in enumerate(decisions):
+            if d.verdict is Verdict.CHANGED and (problem := _in_place_problem(d)):
+                decisions[i] = hold(d, Why.IN_PLACE_UNSUPPORTED, problem + "; use method rollout")
+    if any(d.verdict is Verdict.CHANGED for d in decisions):
+        wait = Cooldown(policy.cooldown_s).remaining(history.last_change, now)
+        if wait > 0:
+            msg = f"the workload changed less than {int(policy.cooldown_s)}s ago; {int(math.ceil(wait))}s of cooldown left"
+            decisions = [hold(d, Why.COOLING_DOWN, msg) if d.verdict is Verdict.CHANGED else d for d in decisions]
+    dry = dry_run or policy.mode is Mode.DRY_RUN
+    if any(d.verdict is Verdict.CHANGED for d in decisions):
+        if dry:
+            decisions = [
+                replace(d, verdict=Verdict.PROPOSED, settle=d.settle_if_held) if d.verdict is Verdict.CHANGED else d
+                for d in decisions
+            ]
+        elif (refusal := budget.refusal()) is not None:
+            decisions = [
+                hold(d, Why.BUDGET_SPENT, refusal + "; retried next pass") if d.verdict is Verdict.CHANGED else d
+                for d in decisions
+            ]
+    changed = any(d.verdict is Verdict.CHANGED for d in decisions)
+    held_history = WorkloadHistory(
+        last_change=history.last_change, containers={d.container: d.settle_if_held for d in decisions}
+    )
+    new_history = WorkloadHistory(
+        last_change=now if changed else history.last_change, containers={d.container: d.settle for d in decisions}
+    )
+    return WorkloadDecision(
+        policy=policy.key,
+        workload=policy.workload_key,
+        decisions=tuple(decisions),
+        history=new_history,
+        history_if_held=held_history,
+    )

@@ -1,0 +1,535 @@
+"""SizingPolicy: the custom resource's spec and status as pydantic models, and the
+frozen dataclasses the pure decision code works on.
+
+The boundary (a custom object read from the API server, or a YAML file) is parsed by
+pydantic models whose aliases are the camelCase field names of the CRD
+(``manifests/crd/sizingpolicy.yaml``) and whose defaults are the CRD's defaults;
+``parse_policy`` turns a whole object into a frozen :class:`Policy`, or raises
+:class:`PolicyInvalid` naming the field and the problem. An invalid policy is never
+acted on: reconcile writes :func:`invalid_condition` into its status instead.
+
+Also here: what the status keeps so that a restart or a leader change loses nothing
+(``lastChange`` per workload, ``settling[]`` per container — see
+:class:`WorkloadHistory`), and the Kubernetes condition helpers (conditions keyed by
+``type``; ``lastTransitionTime`` moves only when ``status`` changes — Kubernetes API
+conventions, "Typical status properties").
+
+Durations are written like ``90s``, ``10m``, ``1h30m`` (hours, minutes, seconds, in that
+order; integers); they become float seconds. CPU quantities (``floor``, ``ceiling``)
+become whole millicores through ``ratefit.controller.quantity.parse_cpu``.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from enum import StrEnum
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic.alias_generators import to_camel
+
+from ratefit.controller.quantity import format_cpu, parse_cpu
+from ratefit.models.errors import InputError
+
+__all__ = [
+    "GROUP",
+    "VERSION",
+    "KIND",
+    "PLURAL",
+    "Mode",
+    "Method",
+    "LimitsMode",
+    "StepLimit",
+    "ContainerPolicy",
+    "Policy",
+    "PolicyInvalid",
+    "parse_policy",
+    "parse_duration",
+    "format_duration",
+    "ContainerHistory",
+    "WorkloadHistory",
+    "history_from_status",
+    "history_to_status",
+    "format_time",
+    "parse_time",
+    "CONDITION_READY",
+    "REASON_POLICY_INVALID",
+    "make_condition",
+    "set_condition",
+    "invalid_condition",
+    "SizingPolicySpec",
+    "SizingPolicyStatus",
+]
+
+GROUP = "ratefit.dev"
+VERSION = "v1alpha1"
+KIND = "SizingPolicy"
+PLURAL = "sizingpolicies"
+
+#: Condition type written on every policy: True once a pass decided it, False when
+#: the policy is invalid (reason PolicyInvalid) or could not be decided.
+CONDITION_READY = "Ready"
+REASON_POLICY_INVALID = "PolicyInvalid"
+
+
+class Mode(StrEnum):
+    DRY_RUN = "dry-run"  # decide and report (status, Event, log, metric); never patch
+    APPLY = "apply"  # patch the workload (or resize pods) when the verdict is changed
+
+
+class Method(StrEnum):
+    ROLLOUT = "rollout"  # patch the pod template: a rolling update
+    IN_PLACE = "in-place"  # the pods' resize subresource, one pod at a time
+
+
+class LimitsMode(StrEnum):
+    KEEP_RATIO = "keep-ratio"  # scale the CPU limit by the request's factor
+    KEEP = "keep"  # leave the limit; the request never goes above it (AtLimit)
+    DROP = "drop"  # remove the CPU limit (not possible with method in-place)
+
+
+# ---------------------------------------------------------------- durations
+
+_DURATION = re.compile(r"^(?:(?P<h>\d+)h)?(?:(?P<m>\d+)m)?(?:(?P<s>\d+)s)?$")
+
+
+def parse_duration(text: str, *, field: str = "duration") -> float:
+    """``"1h30m"`` → 5400.0 seconds. Units h, m, s in that order, whole numbers."""
+    if not isinstance(text, str):
+        raise InputError(f"{field}: expected a duration like '10m' or '1h30m', got {text!r}")
+    m = _DURATION.match(text)
+    if not text or m is None:
+        raise InputError(
+            f"{field}: {text!r} is not a duration; write hours, minutes, seconds "
+            "like '90s', '10m' or '1h30m'"
+        )
+    return float(int(m["h"] or 0) * 3600 + int(m["m"] or 0) * 60 + int(m["s"] or 0))
+
+
+def format_duration(seconds: float) -> str:
+    """Inverse of :func:`parse_duration` for whole seconds: 5400 → ``"1h30m"``."""
+    total = int(round(seconds))
+    if total == 0:
+        return "0s"
+    h, rest = divmod(total, 3600)
+    m, s = divmod(rest, 60)
+    return "".join(f"{v}{u}" for v, u in ((h, "h"), (m, "m"), (s, "s")) if v)
+
+
+# ---------------------------------------------------------------- pydantic models (the boundary)
+
+_MODEL_KEY = re.compile(r"^[a-z0-9]([-a-z0-9.]*[a-z0-9])?/[A-Za-z0-9]([-A-Za-z0-9._]*[A-Za-z0-9])?/[a-z0-9]([-a-z0-9]*[a-z0-9])?$")
+
+
+class _Camel(BaseModel):
+    model_config = ConfigDict(
+        alias_generator=to_camel, populate_by_name=True, extra="forbid", frozen=True
+    )
+
+
+class WorkloadRefSpec(_Camel):
+    kind: Literal["Deployment", "StatefulSet"]
+    name: str = Field(min_length=1, max_length=253)
+
+
+class StepLimitSpec(_Camel):
+    up: float = 2.0
+    down: float = 0.5
+
+
+class ContainerSpec(_Camel):
+    name: str = Field(min_length=1, max_length=63)
+    model: str
+    rate_query: str | None = None
+    floor: str | int = "10m"
+    ceiling: str | int | None = None
+
+    @field_validator("floor", "ceiling", mode="before")
+    @classmethod
+    def _quantity_type(cls, v: Any) -> Any:
+        # Same as the CRD (int-or-string): a bare YAML float like 0.5 is refused there too.
+        if v is None or isinstance(v, str) or (isinstance(v, int) and not isinstance(v, bool)):
+            return v
+        raise ValueError(f"{v!r} must be a quantity string like '500m' or '0.5' (quote decimals) or whole cores")
+
+    @field_validator("model")
+    @classmethod
+    def _model_key(cls, v: str) -> str:
+        if not _MODEL_KEY.match(v):
+            raise ValueError(
+                f"{v!r} is not a model key; write namespace/workload/container, "
+                "e.g. 'parcels/tracking-api/api'"
+            )
+        return v
+
+
+class SizingPolicySpec(_Camel):
+    workload: WorkloadRefSpec
+    mode: Mode = Mode.DRY_RUN
+    method: Method = Method.ROLLOUT
+    containers: list[ContainerSpec] = Field(min_length=1)
+    headroom: float = 0.15
+    deadband: float = 0.10
+    cooldown: str = "30m"
+    settle: str = "2h"
+    step_limit: StepLimitSpec = StepLimitSpec()
+    rate_window: str = "1h"
+    rate_percentile: float = 95.0
+    limits: LimitsMode = LimitsMode.KEEP_RATIO
+    allow_horizontal_conflict: bool = False
+    allow_extrapolation: bool = False
+
+
+class ConditionModel(_Camel):
+    type: str
+    status: Literal["True", "False", "Unknown"]
+    observed_generation: int | None = None
+    last_transition_time: str
+    reason: str
+    message: str = ""
+
+
+class ProposalModel(_Camel):
+    """One row of ``status.proposals[]`` (written by ``decide.Decision.to_status``)."""
+
+    container: str
+    current: str | None = None
+    proposed: str | None = None
+    target: str | None = None
+    current_limit: str | None = None
+    proposed_limit: str | None = None
+    demand: str | None = None
+    upper: str | None = None
+    rate: float | None = None
+    extrapolated: bool = False
+    verdict: str
+    why: str
+    message: str = ""
+
+
+class SettlingModel(_Camel):
+    container: str
+    below_since: str
+    peak: str
+
+
+class SizingPolicyStatus(_Camel):
+    observed_generation: int | None = None
+    conditions: list[ConditionModel] = []
+    proposals: list[ProposalModel] = []
+    last_change: str | None = None
+    settling: list[SettlingModel] = []
+
+
+# ---------------------------------------------------------------- frozen values (the inside)
+
+
+@dataclass(frozen=True)
+class StepLimit:
+    """Per change the request moves at most ×``up`` and at least ×``down``."""
+
+    up: float = 2.0
+    down: float = 0.5
+
+
+@dataclass(frozen=True)
+class ContainerPolicy:
+    name: str
+    model: str  # sizing API key namespace/workload/container
+    rate_query: str | None  # PromQL giving per-pod rates; None: the controller's template
+    floor_m: int
+    ceiling_m: int | None  # None: no ceiling
+
+
+@dataclass(frozen=True)
+class Policy:
+    namespace: str
+    name: str
+    generation: int | None
+    workload_kind: str  # Deployment | StatefulSet
+    workload_name: str
+    containers: tuple[ContainerPolicy, ...]
+    mode: Mode = Mode.DRY_RUN
+    method: Method = Method.ROLLOUT
+    headroom: float = 0.15
+    deadband: float = 0.10
+    cooldown_s: float = 1800.0
+    settle_s: float = 7200.0
+    step_limit: StepLimit = StepLimit()
+    rate_window_s: float = 3600.0
+    rate_percentile: float = 95.0
+    limits: LimitsMode = LimitsMode.KEEP_RATIO
+    allow_horizontal_conflict: bool = False
+    allow_extrapolation: bool = False
+
+    @property
+    def key(self) -> str:
+        """``namespace/name`` of the policy."""
+        return f"{self.namespace}/{self.name}"
+
+    @property
+    def workload_key(self) -> str:
+        """``namespace/Kind/name`` of the workload (the cooldown and rollout key)."""
+        return f"{self.namespace}/{self.workload_kind}/{self.workload_name}"
+
+    def container(self, name: str) -> ContainerPolicy:
+        for c in self.containers:
+            if c.name == name:
+                return c
+        raise KeyError(name)
+
+
+class PolicyInvalid(InputError):
+    """A SizingPolicy that cannot be acted on. ``field`` is the dotted path inside the
+    object (e.g. ``spec.stepLimit.down``), ``problem`` says why and how to fix it."""
+
+    def __init__(self, field: str, problem: str, *, policy: str = "") -> None:
+        self.field = field
+        self.problem = problem
+        self.policy = policy
+        where = f"SizingPolicy {policy}: " if policy else ""
+        super().__init__(f"{where}{field}: {problem}")
+
+
+def _loc(loc: Sequence[int | str], prefix: str) -> str:
+    out = prefix
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        else:
+            out += f".{part}"
+    return out
+
+
+def parse_policy(obj: Mapping[str, Any]) -> Policy:
+    """A SizingPolicy object (as read from the API server or a YAML file) → Policy.
+
+    Raises PolicyInvalid naming the first wrong field, e.g.
+    ``spec.containers[0].floor: '300m' is above ceiling '200m'``."""
+    meta = obj.get("metadata") or {}
+    namespace = meta.get("namespace") or "default"
+    name = meta.get("name") or ""
+    key = f"{namespace}/{name}" if name else ""
+    if obj.get("apiVersion", f"{GROUP}/{VERSION}") != f"{GROUP}/{VERSION}":
+        raise PolicyInvalid("apiVersion", f"expected {GROUP}/{VERSION}, got {obj.get('apiVersion')!r}", policy=key)
+    if obj.get("kind", KIND) != KIND:
+        raise PolicyInvalid("kind", f"expected {KIND}, got {obj.get('kind')!r}", policy=key)
+    raw = obj.get("spec")
+    if not isinstance(raw, Mapping):
+        raise PolicyInvalid("spec", "missing; a SizingPolicy needs spec.workload and spec.containers", policy=key)
+    try:
+        spec = SizingPolicySpec.model_validate(dict(raw))
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        where = _loc(err["loc"], "spec")
+        msg = err["msg"].removeprefix("Value error, ")
+        if err["type"] == "extra_forbidden":
+            msg = "unknown field (check the spelling against manifests/crd/sizingpolicy.yaml)"
+        elif err["type"] == "missing":
+            msg = "required field is missing"
+        raise PolicyInvalid(where, msg, policy=key) from exc
+    return _to_policy(spec, namespace=namespace, name=name, generation=meta.get("generation"), key=key)
+
+
+def _to_policy(spec: SizingPolicySpec, *, namespace: str, name: str, generation: int | None, key: str) -> Policy:
+    def bad(field: str, problem: str) -> PolicyInvalid:
+        return PolicyInvalid(field, problem, policy=key)
+
+    if not 0.0 <= spec.headroom <= 10.0:
+        raise bad("spec.headroom", f"{spec.headroom} must be between 0 and 10 (0.15 = 15 % above the upper band)")
+    if not 0.0 <= spec.deadband < 1.0:
+        raise bad("spec.deadband", f"{spec.deadband} must be >= 0 and < 1 (0.10 = ignore changes under 10 %)")
+    up, down = spec.step_limit.up, spec.step_limit.down
+    if not up >= 1.0:
+        raise bad("spec.stepLimit.up", f"{up} must be >= 1 (2.0 = at most double per change)")
+    if not 0.0 < down <= 1.0:
+        raise bad("spec.stepLimit.down", f"{down} must be > 0 and <= 1 (0.5 = at most halve per change)")
+    if not 0.0 < spec.rate_percentile <= 100.0:
+        raise bad("spec.ratePercentile", f"{spec.rate_percentile} must be > 0 and <= 100")
+    durations = {}
+    for fname, text in (("cooldown", spec.cooldown), ("settle", spec.settle), ("rateWindow", spec.rate_window)):
+        try:
+            durations[fname] = parse_duration(text, field=f"spec.{fname}")
+        except InputError as exc:
+            raise bad(f"spec.{fname}", str(exc).split(": ", 1)[1]) from exc
+    if durations["rateWindow"] <= 0:
+        raise bad("spec.rateWindow", "must be longer than 0s (e.g. '1h')")
+    if spec.method is Method.IN_PLACE and spec.limits is LimitsMode.DROP:
+        raise bad("spec.limits", "'drop' cannot be used with method 'in-place': a resize cannot remove a limit")
+    containers: list[ContainerPolicy] = []
+    seen: set[str] = set()
+    for i, c in enumerate(spec.containers):
+        where = f"spec.containers[{i}]"
+        if c.name in seen:
+            raise bad(f"{where}.name", f"container {c.name!r} is listed twice")
+        seen.add(c.name)
+        try:
+            floor_m = parse_cpu(c.floor, field=f"{where}.floor")
+            ceiling_m = None if c.ceiling is None else parse_cpu(c.ceiling, field=f"{where}.ceiling")
+        except InputError as exc:
+            f, _, problem = str(exc).partition(": ")
+            raise bad(f, problem) from exc
+        if floor_m < 1:
+            raise bad(f"{where}.floor", f"{c.floor!r} must be at least 1m")
+        if ceiling_m is not None and floor_m > ceiling_m:
+            raise bad(f"{where}.floor", f"{c.floor!r} is above ceiling {c.ceiling!r}; floor must be <= ceiling")
+        if c.rate_query is not None and not c.rate_query.strip():
+            raise bad(f"{where}.rateQuery", "is empty; leave it out to use the controller's template")
+        containers.append(ContainerPolicy(name=c.name, model=c.model, rate_query=c.rate_query, floor_m=floor_m, ceiling_m=ceiling_m))
+    return Policy(
+        namespace=namespace,
+        name=name,
+        generation=generation,
+        workload_kind=spec.workload.kind,
+        workload_name=spec.workload.name,
+        containers=tuple(containers),
+        mode=spec.mode,
+        method=spec.method,
+        headroom=spec.headroom,
+        deadband=spec.deadband,
+        cooldown_s=durations["cooldown"],
+        settle_s=durations["settle"],
+        step_limit=StepLimit(up=up, down=down),
+        rate_window_s=durations["rateWindow"],
+        rate_percentile=spec.rate_percentile,
+        limits=spec.limits,
+        allow_horizontal_conflict=spec.allow_horizontal_conflict,
+        allow_extrapolation=spec.allow_extrapolation,
+    )
+
+
+# ---------------------------------------------------------------- times
+
+
+def format_time(t: datetime) -> str:
+    """RFC 3339 in UTC at whole seconds, as metav1.Time serialises (``2026-12-01T22:45:00Z``)."""
+    if t.tzinfo is None:
+        raise ValueError("use timezone-aware datetimes (UTC)")
+    return t.astimezone(timezone.utc).replace(microsecond=0).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def parse_time(text: str) -> datetime:
+    """RFC 3339 (``Z`` or an offset) → aware datetime in UTC."""
+    t = datetime.fromisoformat(text.replace("Z", "+00:00"))
+    if t.tzinfo is None:
+        t = t.replace(tzinfo=timezone.utc)
+    return t.astimezone(timezone.utc)
+
+
+# ---------------------------------------------------------------- history kept in status
+
+
+@dataclass(frozen=True)
+class ContainerHistory:
+    """Settling state of one container: since when the target has stayed below the
+    current request, and the highest target seen since then (a decrease goes to
+    that peak, never to a single low reading)."""
+
+    below_since: datetime | None = None
+    peak_m: int | None = None
+
+
+@dataclass(frozen=True)
+class WorkloadHistory:
+    """What the decision needs from earlier passes: the last applied change of the
+    workload (cooldown) and each container's settling state."""
+
+    last_change: datetime | None = None
+    containers: Mapping[str, ContainerHistory] = field(default_factory=dict)
+
+    def container(self, name: str) -> ContainerHistory:
+        return self.containers.get(name, ContainerHistory())
+
+
+def history_from_status(status: Mapping[str, Any] | None) -> WorkloadHistory:
+    """Read ``status.lastChange`` and ``status.settling[]``. Entries that cannot be
+    read are dropped (the worst case is settling starts over: slower, never faster)."""
+    if not status:
+        return WorkloadHistory()
+    last_change = None
+    if isinstance(status.get("lastChange"), str):
+        try:
+            last_change = parse_time(status["lastChange"])
+        except ValueError:
+            last_change = None
+    containers: dict[str, ContainerHistory] = {}
+    for entry in status.get("settling") or ():
+        try:
+            rec = SettlingModel.model_validate(entry)
+            containers[rec.container] = ContainerHistory(
+                below_since=parse_time(rec.below_since), peak_m=parse_cpu(rec.peak, field="peak")
+            )
+        except (ValidationError, ValueError, TypeError):
+            continue
+    return WorkloadHistory(last_change=last_change, containers=containers)
+
+
+def history_to_status(history: WorkloadHistory) -> dict[str, Any]:
+    """The status fields for a history: ``lastChange`` and ``settling[]`` (sorted by container)."""
+    settling = [
+        {"container": name, "belowSince": format_time(h.below_since), "peak": format_cpu(h.peak_m)}
+        for name, h in sorted(history.containers.items())
+        if h.below_since is not None and h.peak_m is not None
+    ]
+    return {
+        "lastChange": None if history.last_change is None else format_time(history.last_change),
+        "settling": settling,
+    }
+
+
+# ---------------------------------------------------------------- conditions
+
+
+def make_condition(
+    *, type: str, status: bool | str, reason: str, message: str, observed_generation: int | None, now: datetime
+) -> dict[str, Any]:
+    """A condition dict in the Kubernetes shape (status 'True'/'False'/'Unknown')."""
+    if isinstance(status, bool):
+        status = "True" if status else "False"
+    if status not in ("True", "False", "Unknown"):
+        raise ValueError(f"condition status must be True, False or Unknown, got {status!r}")
+    if not re.match(r"^[A-Za-z]([A-Za-z0-9_,:]*[A-Za-z0-9_])?$", reason):
+        raise ValueError(f"condition reason must be CamelCase, got {reason!r}")
+    cond: dict[str, Any] = {"type": type, "status": status}
+    if observed_generation is not None:
+        cond["observedGeneration"] = observed_generation
+    cond.update(lastTransitionTime=format_time(now), reason=reason, message=message)
+    return cond
+
+
+def set_condition(conditions: Iterable[Mapping[str, Any]] | None, new: Mapping[str, Any]) -> list[dict[str, Any]]:
+    """Merge ``new`` into a condition list keyed by ``type`` and return a new list.
+
+    If a condition of that type exists with the same ``status``, its
+    ``lastTransitionTime`` is kept (reason, message and observedGeneration are
+    updated); otherwise ``new`` replaces it. Order of the other conditions is kept."""
+    out: list[dict[str, Any]] = []
+    placed = False
+    for cond in conditions or ():
+        if cond.get("type") != new["type"]:
+            out.append(dict(cond))
+            continue
+        merged = dict(new)
+        if cond.get("status") == new["status"] and cond.get("lastTransitionTime"):
+            merged["lastTransitionTime"] = cond["lastTransitionTime"]
+        if not placed:
+            out.append(merged)
+            placed = True
+    if not placed:
+        out.append(dict(new))
+    return out
+
+
+def invalid_condition(err: PolicyInvalid, *, observed_generation: int | None, now: datetime) -> dict[str, Any]:
+    """The Ready=False condition of a policy that is never acted on, saying what is wrong."""
+    return make_condition(
+        type=CONDITION_READY,
+        status=False,
+        reason=REASON_POLICY_INVALID,
+        message=f"{err.field}: {err.problem}; the policy is not acted on until it is fixed",
+        observed_generation=observed_generation,
+        now=now,
+    )

@@ -1,0 +1,248 @@
+"""The SizingPolicy CRD and the example policies.
+
+- The CRD is validated against the published Kubernetes OpenAPI schema of
+  apiextensions.k8s.io/v1 CustomResourceDefinition (kubernetes-validate, strict: no
+  unknown fields), for the oldest and newest versions we support.
+- Structural-schema rules (Kubernetes docs, "Extend the Kubernetes API with
+  CustomResourceDefinitions" → "Specifying a structural schema"): every node has a
+  type, except ``x-kubernetes-int-or-string`` nodes whose anyOf is [integer, string];
+  list-type map keys are required.
+- The CRD's openAPIV3Schema (OpenAPI v3.0 = JSON Schema draft 4 for the keywords we
+  use: boolean ``exclusiveMinimum``) accepts every example and rejects bad policies
+  (jsonschema's Draft4Validator, the reference implementation of that draft).
+- The CRD's defaults and enums are the ones ``ratefit.controller.policy`` and
+  ``ratefit.controller.decide`` use; the examples' names exist in the invented demo
+  scenario (``models/scenario``).
+"""
+
+from __future__ import annotations
+
+import copy
+import shutil
+import subprocess
+from pathlib import Path
+
+import jsonschema
+import kubernetes_validate
+import pytest
+import yaml
+
+from ratefit.controller.decide import Verdict, Why
+from ratefit.controller.policy import PolicyInvalid, SizingPolicySpec, parse_policy
+from ratefit.models.scenario.services import service
+
+ROOT = Path(__file__).resolve().parents[1]
+CRD_PATH = ROOT / "manifests" / "crd" / "sizingpolicy.yaml"
+EXAMPLES = sorted((ROOT / "manifests" / "examples").glob("*.yaml"))
+POLICY_EXAMPLES = [p for p in EXAMPLES if p.name != "kustomization.yaml"]
+
+
+@pytest.fixture(scope="module")
+def crd() -> dict:
+    return yaml.safe_load(CRD_PATH.read_text())
+
+
+@pytest.fixture(scope="module")
+def schema(crd) -> dict:
+    (version,) = crd["spec"]["versions"]
+    return version["schema"]["openAPIV3Schema"]
+
+
+@pytest.fixture(scope="module")
+def validator(schema) -> jsonschema.Draft4Validator:
+    jsonschema.Draft4Validator.check_schema(schema)
+    return jsonschema.Draft4Validator(schema)
+
+
+def _example(name: str) -> dict:
+    return yaml.safe_load((ROOT / "manifests" / "examples" / name).read_text())
+
+
+# ---------------------------------------------------------------- the CRD itself
+
+
+@pytest.mark.parametrize("k8s_version", ["1.30", "1.33", "1.35"])
+def test_crd_validates_against_published_schema(crd, k8s_version):
+    # Source: the Kubernetes OpenAPI schemas shipped by kubernetes-validate (strict mode
+    # refuses fields the API does not define).
+    assert kubernetes_validate.validate(crd, k8s_version, strict=True) == k8s_version
+
+
+def test_published_schema_catches_a_misspelt_crd_field(crd):
+    bad = copy.deepcopy(crd)
+    bad["spec"]["versions"][0]["subresource"] = {"status": {}}  # the real field is `subresources`
+    with pytest.raises(kubernetes_validate.ValidationError):
+        kubernetes_validate.validate(bad, "1.33", strict=True)
+
+
+def test_crd_names_and_shape(crd):
+    spec = crd["spec"]
+    assert crd["metadata"]["name"] == f"{spec['names']['plural']}.{spec['group']}"  # K8s rule: <plural>.<group>
+    assert spec["group"] == "ratefit.dev"
+    assert spec["scope"] == "Namespaced"
+    assert spec["names"]["kind"] == "SizingPolicy"
+    assert spec["names"]["plural"] == "sizingpolicies"
+    (version,) = spec["versions"]
+    assert version["name"] == "v1alpha1" and version["served"] and version["storage"]
+    assert version["subresources"] == {"status": {}}
+
+
+def _walk(node: dict, path: str):
+    yield path, node
+    for key, child in (node.get("properties") or {}).items():
+        yield from _walk(child, f"{path}.{key}")
+    if isinstance(node.get("items"), dict):
+        yield from _walk(node["items"], f"{path}[]")
+
+
+def test_schema_is_structural(schema):
+    # Kubernetes docs, "Specifying a structural schema": a non-empty type everywhere
+    # (int-or-string: anyOf [integer, string] instead); the `metadata` node may only
+    # restrict name/generateName (we leave it open).
+    for path, node in _walk(schema, "openAPIV3Schema"):
+        if node.get("x-kubernetes-int-or-string"):
+            assert "type" not in node, path
+            assert node["anyOf"] == [{"type": "integer"}, {"type": "string"}], path
+        else:
+            assert node.get("type") in {"object", "array", "string", "integer", "number", "boolean"}, path
+        if node.get("x-kubernetes-list-type") == "map":
+            # Kubernetes docs: list-map keys must be required or defaulted
+            assert set(node["x-kubernetes-list-map-keys"]) <= set(node["items"].get("required", [])), path
+        if "default" in node and node.get("type") == "string" and "pattern" in node:
+            assert jsonschema.Draft4Validator({"pattern": node["pattern"]}).is_valid(node["default"]), path
+
+
+def test_printer_columns_point_at_schema_fields(crd, schema):
+    cols = {c["name"]: c for c in crd["spec"]["versions"][0]["additionalPrinterColumns"]}
+    assert {"Workload", "Mode", "Ready", "Last change", "Age"} <= set(cols)
+    assert cols["Age"]["jsonPath"] == ".metadata.creationTimestamp" and cols["Age"]["type"] == "date"
+    assert cols["Last change"]["type"] == "date"
+    assert cols["Ready"]["jsonPath"] == '.status.conditions[?(@.type=="Ready")].status'
+    for name in ("Workload", "Mode", "Last change"):
+        node = schema
+        for part in cols[name]["jsonPath"].strip(".").split("."):
+            node = node["properties"][part]
+        assert node["type"] == "string"
+
+
+def test_enums_match_the_decision_code(schema):
+    item = schema["properties"]["status"]["properties"]["proposals"]["items"]["properties"]
+    assert set(item["why"]["enum"]) == {w.value for w in Why}
+    assert set(item["verdict"]["enum"]) == {v.value for v in Verdict}
+
+
+def test_defaults_match_the_pydantic_model(schema):
+    props = schema["properties"]["spec"]["properties"]
+    fields = SizingPolicySpec.model_fields
+    by_alias = {(f.alias or n): f for n, f in fields.items()}
+    assert set(props) == set(by_alias), "CRD spec fields and SizingPolicySpec fields differ"
+    for name, node in props.items():
+        if "default" not in node or node.get("type") == "object":
+            continue
+        model_default = by_alias[name].default
+        assert node["default"] == (model_default.value if hasattr(model_default, "value") else model_default), name
+    step = props["stepLimit"]["properties"]
+    assert step["up"]["default"] == by_alias["stepLimit"].default.up
+    assert step["down"]["default"] == by_alias["stepLimit"].default.down
+    container = props["containers"]["items"]["properties"]
+    assert container["floor"]["default"] == "10m"
+    from ratefit.controller.policy import ContainerSpec
+
+    assert ContainerSpec.model_fields["floor"].default == "10m"
+
+
+# ---------------------------------------------------------------- examples
+
+
+def test_there_are_examples():
+    assert len(POLICY_EXAMPLES) >= 5
+
+
+@pytest.mark.parametrize("path", POLICY_EXAMPLES, ids=lambda p: p.name)
+def test_example_accepted_by_crd_schema_and_parser(path, validator):
+    obj = yaml.safe_load(path.read_text())
+    assert "INVENTED" in path.read_text()  # demo data is marked as invented (RULES.md)
+    errors = sorted(validator.iter_errors(obj), key=lambda e: list(e.path))
+    assert not errors, [f"{list(e.path)}: {e.message}" for e in errors]
+    policy = parse_policy(obj)
+    # names exist in the invented Kestrel Post scenario
+    svc = service(f"{policy.namespace}/{policy.workload_name}")
+    assert svc.kind == policy.workload_kind
+    names = {c.name for c in svc.containers}
+    for c in policy.containers:
+        assert c.name in names
+        assert c.model == f"{svc.namespace}/{svc.workload}/{c.name}"
+
+
+def test_examples_cover_the_features():
+    policies = [parse_policy(yaml.safe_load(p.read_text())) for p in POLICY_EXAMPLES]
+    assert {p.mode.value for p in policies} == {"dry-run", "apply"}
+    assert {p.method.value for p in policies} == {"rollout", "in-place"}
+    assert {"StatefulSet", "Deployment"} == {p.workload_kind for p in policies}
+    # the scenario's HPA-on-CPU workload has a policy that must be held
+    hpa = [p for p in policies if service(f"{p.namespace}/{p.workload_name}").hpa_on_cpu]
+    assert hpa and not any(p.allow_horizontal_conflict for p in hpa)
+
+
+@pytest.mark.skipif(shutil.which("kubectl") is None, reason="kubectl not installed")
+def test_examples_render_with_kustomize():
+    # kubectl's built-in kustomize renders the examples folder (DESIGN.md "Manifests").
+    out = subprocess.run(
+        ["kubectl", "kustomize", str(ROOT / "manifests" / "examples")],
+        check=True,
+        capture_output=True,
+        text=True,
+        timeout=60,
+    ).stdout
+    docs = [d for d in yaml.safe_load_all(out) if d]
+    assert sorted(d["metadata"]["name"] for d in docs) == sorted(
+        yaml.safe_load(p.read_text())["metadata"]["name"] for p in POLICY_EXAMPLES
+    )
+
+
+BAD = [
+    ("unknown kind", ["spec", "workload", "kind"], "DaemonSet"),
+    ("unknown mode", ["spec", "mode"], "auto"),
+    ("unknown method", ["spec", "method"], "restart"),
+    ("unknown limits", ["spec", "limits"], "scale"),
+    ("deadband 1", ["spec", "deadband"], 1.0),
+    ("negative deadband", ["spec", "deadband"], -0.1),
+    ("step up < 1", ["spec", "stepLimit", "up"], 0.9),
+    ("step down 0", ["spec", "stepLimit", "down"], 0),
+    ("step down > 1", ["spec", "stepLimit", "down"], 1.5),
+    ("bad duration", ["spec", "cooldown"], "30 minutes"),
+    ("duration order", ["spec", "settle"], "30m2h"),
+    ("percentile 0", ["spec", "ratePercentile"], 0),
+    ("percentile 101", ["spec", "ratePercentile"], 101),
+    ("bad floor", ["spec", "containers", 0, "floor"], "1Gi"),
+    ("unquoted decimal floor", ["spec", "containers", 0, "floor"], 0.5),
+    ("negative ceiling", ["spec", "containers", 0, "ceiling"], "-1"),
+    ("bad model key", ["spec", "containers", 0, "model"], "tracking-api"),
+    ("no containers", ["spec", "containers"], []),
+]
+
+
+@pytest.mark.parametrize("case,path,value", BAD, ids=[b[0] for b in BAD])
+def test_bad_policies_rejected_by_schema_and_parser(validator, case, path, value):
+    obj = _example("label-printer.yaml")
+    node = obj
+    for part in path[:-1]:
+        node = node[part]
+    node[path[-1]] = value
+    assert not validator.is_valid(obj), case
+    with pytest.raises(PolicyInvalid) as exc:
+        parse_policy(obj)
+    # the parser names the field that is wrong
+    dotted = "spec" + "".join(f"[{p}]" if isinstance(p, int) else f".{p}" for p in path[1:])
+    assert str(exc.value).split(": ", 1)[1].startswith(dotted) or dotted in str(exc.value), str(exc.value)
+
+
+def test_missing_required_fields_rejected(validator):
+    obj = _example("label-printer.yaml")
+    del obj["spec"]["workload"]
+    assert not validator.is_valid(obj)
+    obj = _example("label-printer.yaml")
+    del obj["spec"]["containers"][0]["model"]
+    assert not validator.is_valid(obj)
+    with pytest.raises(PolicyInvalid, match=r"spec\.containers\[0\]\.model"):
+        parse_policy(obj)
