@@ -1,14 +1,128 @@
-"""`ratefit serve` — placeholder until its issue lands (replace this module)."""
+"""`ratefit serve` — run the sizing API (FastAPI under uvicorn) over a model store.
+
+Thin: checks the arguments, reads the token file, sets up JSON-lines logging and
+hands ``ratefit.models.api.create_app`` to uvicorn. uvicorn handles SIGTERM/SIGINT
+itself with a graceful shutdown (stop accepting, finish requests in flight, run the
+lifespan's exit), after which the command returns 0.
+"""
 
 from __future__ import annotations
 
 import argparse
+import os
+import stat
+from pathlib import Path
+
+from ratefit.models.errors import InputError
+
+DEFAULT_HOST = "127.0.0.1"
+DEFAULT_PORT = 8470
+
+HELP = """\
+Serve the demand curves of a model store over HTTP (the sizing API the reconcile
+loop asks). Loads every artifact of --store at start; refuses corrupt ones and
+serves the rest. POST /v1/reload re-reads the store without a restart.
+
+Routes: GET /v1/models, GET /v1/models/NS/WORKLOAD/CONTAINER[/demand?rate=R],
+POST /v1/demand (batch), POST /v1/reload, /healthz, /readyz, /metrics, /docs.
+Binds 127.0.0.1 unless --host says otherwise. With --token-file every route but
+/healthz needs 'Authorization: Bearer <token>'.
+"""
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("serve", help="(not built yet)")
+    p = sub.add_parser(
+        "serve",
+        help="serve the model store over the HTTP sizing API",
+        description=HELP,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("--store", required=True, metavar="DIR", help="model store directory (what `ratefit train` writes)")
+    p.add_argument("--host", default=DEFAULT_HOST, help=f"address to bind (default {DEFAULT_HOST}; loopback only)")
+    p.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"TCP port (default {DEFAULT_PORT})")
+    p.add_argument(
+        "--token-file",
+        metavar="FILE",
+        help="file holding a bearer token; when given, every route but /healthz requires it",
+    )
+    p.add_argument(
+        "--max-batch",
+        type=int,
+        default=None,
+        metavar="N",
+        help="most items accepted in one POST /v1/demand (default 50000)",
+    )
+    p.add_argument(
+        "--log-level",
+        default="info",
+        choices=["debug", "info", "warning", "error"],
+        help="log level of the JSON-lines log on stderr (info includes the access log)",
+    )
     p.set_defaults(handler=_run)
 
 
+def read_token(path: str) -> str:
+    """The token in ``path`` (surrounding whitespace stripped); InputError if unusable."""
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"--token-file {path!r}: cannot read it ({exc})") from exc
+    token = text.strip()
+    if not token or any(c.isspace() for c in token) or not token.isprintable():
+        raise InputError(
+            f"--token-file {path!r}: must hold one token of printable characters without spaces "
+            "(e.g. the output of `openssl rand -hex 32`)"
+        )
+    return token
+
+
 def _run(args: argparse.Namespace) -> int:
-    raise SystemExit("ratefit serve: not built yet")
+    store = Path(args.store)
+    if not store.is_dir():
+        raise InputError(
+            f"--store {args.store!r} is not a directory: create it with `ratefit train --store {args.store} …` "
+            "or point --store at an existing model store"
+        )
+    if not 0 <= args.port <= 65535:
+        raise InputError(f"--port {args.port}: must be between 0 and 65535")
+    token = read_token(args.token_file) if args.token_file else None
+
+    import logging
+
+    import uvicorn
+
+    from ratefit.models.api import ApiSettings, create_app
+    from ratefit.models.api_logging import configure_json_logging
+
+    configure_json_logging(args.log_level)
+    log = logging.getLogger("ratefit.api")
+    if args.token_file:
+        mode = os.stat(args.token_file).st_mode
+        if mode & (stat.S_IRGRP | stat.S_IROTH):
+            log.warning("token file %s is readable by other users: chmod 600 it", args.token_file)
+    if args.host not in ("127.0.0.1", "localhost", "::1") and token is None:
+        log.warning("binding %s without --token-file: anyone who can reach the port can read the models", args.host)
+    settings_kw: dict[str, object] = {"store": store, "token": token}
+    if args.max_batch is not None:
+        settings_kw["max_batch"] = args.max_batch
+    try:
+        settings = ApiSettings(**settings_kw)  # type: ignore[arg-type]
+    except ValueError as exc:
+        raise InputError(f"invalid option: {exc}") from exc
+    app = create_app(settings)
+    config = uvicorn.Config(
+        app,
+        host=args.host,
+        port=args.port,
+        log_config=None,  # keep our JSON-lines handlers
+        log_level=args.log_level,
+        access_log=False,  # the app writes its own structured access log
+        lifespan="on",
+        timeout_graceful_shutdown=10,
+        server_header=False,
+    )
+    server = uvicorn.Server(config)
+    server.run()
+    if not server.started:
+        raise InputError(f"could not start the server on {args.host}:{args.port} (see the log above: port in use?)")
+    return 0

@@ -1,0 +1,433 @@
+"""The sizing API's routes: models, demand (single and batch), reload, probes, metrics.
+
+Handlers are ``async`` and never block the event loop, except ``/v1/reload``, which
+reads the store in a worker thread. Each handler reads the current snapshot once
+(``state.snapshot``) and answers from that object only, so a reload cannot change
+the answer half-way. The token check is a dependency on the ``protected`` router;
+``/healthz`` is the only route outside it.
+
+Hot paths return ``FastJSON`` (orjson) responses built from plain dicts; the
+``response_model`` of each route documents the shape in OpenAPI.
+"""
+
+from __future__ import annotations
+
+import hmac
+from typing import Annotated, Any
+
+import numpy as np
+from fastapi import APIRouter, Depends, HTTPException, Path, Query, Request
+from fastapi.concurrency import run_in_threadpool
+from fastapi.responses import HTMLResponse, JSONResponse, Response
+from pydantic import ValidationError
+
+from ratefit.models.api_metrics import CONTENT_TYPE_LATEST, ApiMetrics
+from ratefit.models.api_schemas import (
+    BYTES_PER_ITEM,
+    MAX_RATE,
+    NAME_LABEL_PATTERN,
+    NAME_SUBDOMAIN_PATTERN,
+    ApiSettings,
+    DemandBatchOut,
+    DemandOut,
+    ErrorOut,
+    HealthOut,
+    ModelDetail,
+    ModelList,
+    ReadyOut,
+    ReloadOut,
+    batch_model,
+)
+from ratefit.models.api_state import ApiState, ReloadReport, ServingSnapshot
+from ratefit.models.curve import to_millicores
+from ratefit.models.errors import InputError, UnknownModel
+from ratefit.models.keys import parse_key
+
+try:  # orjson is a dependency; the fallback keeps the app importable without it
+    import orjson
+
+    def _dumps(content: Any) -> bytes:
+        return orjson.dumps(content)
+
+except ImportError:  # pragma: no cover
+    import json
+
+    def _dumps(content: Any) -> bytes:
+        return json.dumps(content, separators=(",", ":"), allow_nan=False).encode()
+
+
+__all__ = ["FastJSON", "build_routers", "build_docs_router", "error_body", "describe_errors", "validation_response"]
+
+
+class FastJSON(JSONResponse):
+    """JSON response serialised with orjson (fast; refuses NaN by construction)."""
+
+    def render(self, content: Any) -> bytes:
+        return _dumps(content)
+
+
+# -- dependencies --------------------------------------------------------------------------
+def get_settings(request: Request) -> ApiSettings:
+    return request.app.state.settings  # type: ignore[no-any-return]
+
+
+def get_state(request: Request) -> ApiState:
+    return request.app.state.api_state  # type: ignore[no-any-return]
+
+
+def get_metrics(request: Request) -> ApiMetrics:
+    return request.app.state.metrics  # type: ignore[no-any-return]
+
+
+def require_token(request: Request) -> None:
+    """``Authorization: Bearer <token>`` when the app has a token (constant-time compare)."""
+    expected: bytes | None = request.app.state.token_bytes
+    if expected is None:
+        return
+    header = request.headers.get("authorization", "")
+    scheme, _, value = header.partition(" ")
+    given = value.strip().encode("utf-8", "surrogateescape")
+    if scheme.lower() != "bearer" or not hmac.compare_digest(given, expected):
+        raise HTTPException(
+            status_code=401,
+            detail="missing or wrong bearer token: send 'Authorization: Bearer <token>' with the token "
+            "from the server's --token-file",
+            headers={"WWW-Authenticate": 'Bearer realm="ratefit"'},
+        )
+
+
+def _snapshot(state: ApiState) -> ServingSnapshot:
+    snap = state.snapshot
+    if snap is None:
+        raise HTTPException(
+            status_code=503, detail="the model store is not loaded yet (or could not be read): see /readyz and the log"
+        )
+    return snap
+
+
+# -- errors --------------------------------------------------------------------------------
+_KEY_HELP = (
+    "must be 'namespace/workload/container' in Kubernetes name syntax: lower-case letters, digits "
+    "and '-', each part starting and ending with a letter or digit (the workload may also hold '.')"
+)
+_NAME_HELP = "must be a Kubernetes name: lower-case letters, digits and '-', starting and ending with a letter or digit"
+
+
+def describe_errors(errors: list[dict[str, Any]], *, prefix: str | None = None) -> list[dict[str, str]]:
+    """pydantic/FastAPI errors → ``[{field, message, type}]`` with friendly messages.
+    The offending input is never echoed (it may be huge or not JSON-encodable)."""
+    out = []
+    for err in errors:
+        loc = [str(p) for p in err.get("loc", ())]
+        where = ""
+        if loc and loc[0] in ("query", "path", "header", "body"):
+            where = loc.pop(0)
+        elif prefix:
+            where = prefix
+        name = ".".join(loc) or "body"
+        field = f"{name} ({where})" if where in ("query", "path", "header") else name
+        kind = str(err.get("type", "value_error"))
+        message = str(err.get("msg", "invalid value"))
+        if kind == "string_pattern_mismatch":
+            message = _KEY_HELP if loc and loc[-1] == "model" else _NAME_HELP
+        elif kind == "missing":
+            message = "is required"
+        elif kind == "extra_forbidden":
+            message = "is not a known field (check the spelling)"
+        out.append({"field": field, "message": message, "type": kind})
+    return out
+
+
+def error_body(message: str, errors: list[dict[str, str]] | None = None, **extra: Any) -> dict[str, Any]:
+    return {"error": message, "errors": errors or [], **extra}
+
+
+def validation_response(errors: list[dict[str, str]]) -> FastJSON:
+    head = "; ".join(f"{e['field']}: {e['message']}" for e in errors[:5])
+    more = f" (and {len(errors) - 5} more)" if len(errors) > 5 else ""
+    return FastJSON(error_body(head + more, errors), status_code=422)
+
+
+# -- helpers -------------------------------------------------------------------------------
+def _summary(key: str, art: Any) -> dict[str, Any]:
+    return {
+        "key": key,
+        "chosen": art.chosen,
+        "rate_range": list(art.rate_range),
+        "coverage": art.coverage,
+        "version": art.version,
+        "trained_at": art.trained_at,
+    }
+
+
+def _refused(snap: ServingSnapshot) -> list[dict[str, Any]]:
+    return [{"file": r.file, "error": r.error, "kept_previous": r.kept_previous} for r in snap.refused]
+
+
+def reload_body(report: ReloadReport) -> dict[str, Any]:
+    snap = report.snapshot
+    return {
+        "ok": report.ok,
+        "version": snap.version if snap is not None else None,
+        "previous_version": report.previous.version if report.previous is not None else None,
+        "models": len(snap) if snap is not None else 0,
+        "added": report.added,
+        "removed": report.removed,
+        "changed": report.changed,
+        "unchanged": report.unchanged,
+        "refused": [{"file": r.file, "error": r.error, "kept_previous": r.kept_previous} for r in report.refused],
+        "seconds": round(report.seconds, 6),
+        "error": report.error,
+    }
+
+
+async def _read_body(request: Request, limit: int) -> bytes:
+    declared = request.headers.get("content-length")
+    if declared is not None and declared.isdigit() and int(declared) > limit:
+        raise HTTPException(status_code=413, detail=f"items: request body over {limit} bytes; split the batch")
+    chunks: list[bytes] = []
+    size = 0
+    async for chunk in request.stream():
+        size += len(chunk)
+        if size > limit:
+            raise HTTPException(status_code=413, detail=f"items: request body over {limit} bytes; split the batch")
+        chunks.append(chunk)
+    return b"".join(chunks)
+
+
+Namespace = Annotated[str, Path(pattern=NAME_LABEL_PATTERN, max_length=63, examples=["shop"])]
+Workload = Annotated[str, Path(pattern=NAME_SUBDOMAIN_PATTERN, max_length=253, examples=["checkout"])]
+Container = Annotated[str, Path(pattern=NAME_LABEL_PATTERN, max_length=63, examples=["app"])]
+RateQuery = Annotated[
+    float,
+    Query(ge=0, le=MAX_RATE, allow_inf_nan=False, description="request rate per pod, req/s", examples=[120.0]),
+]
+
+_ERRORS: dict[int | str, dict[str, Any]] = {
+    401: {"model": ErrorOut, "description": "missing or wrong bearer token"},
+    422: {"model": ErrorOut, "description": "invalid input; `errors[].field` names the field"},
+    503: {"model": ErrorOut, "description": "the store is not loaded yet"},
+}
+
+
+def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
+    """(open router with /healthz, protected router with everything else)."""
+    open_router = APIRouter()
+    protected = APIRouter(dependencies=[Depends(require_token)], responses=_ERRORS)
+    batch_in = batch_model(settings.max_batch)
+    body_limit = settings.max_batch * BYTES_PER_ITEM + 4096
+
+    @open_router.get("/healthz", response_model=HealthOut, tags=["probes"], summary="Liveness: the process answers")
+    async def healthz() -> Response:
+        return FastJSON({"status": "ok"})
+
+    @protected.get(
+        "/readyz",
+        response_model=ReadyOut,
+        tags=["probes"],
+        summary="Readiness: a model store is loaded",
+        responses={503: {"model": ReadyOut, "description": "not loaded yet"}},
+    )
+    async def readyz(state: Annotated[ApiState, Depends(get_state)]) -> Response:
+        snap = state.snapshot
+        if snap is None:
+            return FastJSON({"ready": False, "models": 0, "version": None, "refused": 0}, status_code=503)
+        return FastJSON({"ready": True, "models": len(snap), "version": snap.version, "refused": len(snap.refused)})
+
+    @protected.get("/metrics", tags=["probes"], summary="Prometheus exposition", response_class=Response)
+    async def metrics(m: Annotated[ApiMetrics, Depends(get_metrics)]) -> Response:
+        return Response(m.exposition(), media_type=CONTENT_TYPE_LATEST)
+
+    @protected.get("/v1/models", response_model=ModelList, tags=["models"], summary="Every loaded model")
+    async def list_models(state: Annotated[ApiState, Depends(get_state)]) -> Response:
+        snap = _snapshot(state)
+        return FastJSON(
+            {
+                "version": snap.version,
+                "loaded_at": snap.loaded_at,
+                "models": [_summary(k, a) for k, a in snap.artifacts.items()],
+                "refused": _refused(snap),
+            }
+        )
+
+    @protected.get(
+        "/v1/models/{namespace}/{workload}/{container}",
+        response_model=ModelDetail,
+        tags=["models"],
+        summary="One model: metadata and the cross-validation table",
+        responses={404: {"model": ErrorOut, "description": "no model for the key"}},
+    )
+    async def get_model(
+        namespace: Namespace, workload: Workload, container: Container, state: Annotated[ApiState, Depends(get_state)]
+    ) -> Response:
+        snap = _snapshot(state)
+        key = f"{namespace}/{workload}/{container}"
+        art = snap.artifacts.get(key)
+        if art is None:
+            return FastJSON(error_body(str(UnknownModel(key)), model=key), status_code=404)
+        body = _summary(key, art)
+        body.update(
+            samples=art.samples,
+            samples_total=art.samples_total,
+            dropped=dict(art.dropped),
+            folds=art.folds,
+            seed=art.seed,
+            tuned=art.tuned,
+            window=art.window.model_dump(mode="json"),
+            cv=[row.model_dump(mode="json") for row in art.cv],
+            band_m=to_millicores(art.curve.band),
+            content_hash=art.content_hash,
+        )
+        return FastJSON(body)
+
+    @protected.get(
+        "/v1/models/{namespace}/{workload}/{container}/demand",
+        response_model=DemandOut,
+        tags=["demand"],
+        summary="CPU demand of one container at one rate",
+        responses={404: {"model": ErrorOut, "description": "no model for the key"}},
+    )
+    async def demand_one(
+        namespace: Namespace,
+        workload: Workload,
+        container: Container,
+        rate: RateQuery,
+        state: Annotated[ApiState, Depends(get_state)],
+        m: Annotated[ApiMetrics, Depends(get_metrics)],
+    ) -> Response:
+        snap = _snapshot(state)
+        key = f"{namespace}/{workload}/{container}"
+        curve = snap.curves.get(key)
+        if curve is None:
+            m.unknown.inc()
+            return FastJSON(error_body(str(UnknownModel(key)), model=key), status_code=404)
+        demand, upper, extrapolated = curve.lookup_one(rate)
+        m.lookups.inc()
+        if extrapolated:
+            m.extrapolated.inc()
+        return FastJSON(
+            {
+                "model": key,
+                "rate": rate,
+                "cpu_m": to_millicores(demand),
+                "upper_m": to_millicores(upper),
+                "extrapolated": extrapolated,
+                "version": snap.artifacts[key].version,
+            }
+        )
+
+    @protected.post(
+        "/v1/demand",
+        response_model=DemandBatchOut,
+        tags=["demand"],
+        summary="CPU demand for a batch of (model, rate), answered in request order",
+        description=(
+            f"At most {settings.max_batch} items. One vectorised lookup answers the whole batch. "
+            "An item whose key has no model gets an `error` field instead of the demand fields; "
+            "the other items are answered as usual. A malformed item (bad key syntax, a rate that "
+            "is not a finite number >= 0) fails the whole request with 422 naming `items.<i>.<field>`."
+        ),
+        openapi_extra={
+            "requestBody": {
+                "required": True,
+                "content": {"application/json": {"schema": {"$ref": "#/components/schemas/DemandBatchIn"}}},
+            }
+        },
+        responses={413: {"model": ErrorOut, "description": "the body is too large for the batch cap"}},
+    )
+    async def demand_batch(
+        request: Request,
+        state: Annotated[ApiState, Depends(get_state)],
+        m: Annotated[ApiMetrics, Depends(get_metrics)],
+    ) -> Response:
+        snap = _snapshot(state)
+        raw = await _read_body(request, body_limit)
+        try:
+            parsed = batch_in.model_validate_json(raw)
+        except ValidationError as exc:
+            return validation_response(
+                describe_errors(exc.errors(include_url=False, include_input=False, include_context=False))
+            )
+        items: list[dict[str, Any]] = parsed.items  # type: ignore[attr-defined]
+        n = len(items)
+        keys = [it["model"] for it in items]
+        rates = [it["rate"] for it in items]
+        rows = snap.bank.rows(keys)
+        known = np.flatnonzero(rows >= 0)
+        out: list[dict[str, Any] | None] = [None] * n
+        if known.size:
+            look = snap.bank.lookup(rows[known], np.asarray(rates, dtype=float)[known])
+            cpu_m, upper_m = look.millicores()
+            ext = look.extrapolated
+            versions = snap.row_versions
+            for i, row, c, u, e in zip(
+                known.tolist(), rows[known].tolist(), cpu_m.tolist(), upper_m.tolist(), ext.tolist()
+            ):
+                out[i] = {
+                    "model": keys[i],
+                    "rate": rates[i],
+                    "cpu_m": c,
+                    "upper_m": u,
+                    "extrapolated": e,
+                    "version": versions[row],
+                }
+            m.lookups.inc(int(known.size))
+            n_ext = int(np.count_nonzero(ext))
+            if n_ext:
+                m.extrapolated.inc(n_ext)
+        if known.size != n:
+            bad: list[dict[str, str]] = []
+            for i in np.flatnonzero(rows < 0).tolist():
+                key = keys[i]
+                try:
+                    parse_key(key, field=f"items.{i}.model")  # the regex lets over-long parts through
+                except InputError as exc:
+                    bad.append({"field": f"items.{i}.model", "message": str(exc), "type": "key_syntax"})
+                    continue
+                out[i] = {"model": key, "rate": rates[i], "error": str(UnknownModel(key))}
+            if bad:
+                return validation_response(bad)
+            m.unknown.inc(n - int(known.size))
+        return FastJSON({"items": out})
+
+    @protected.post(
+        "/v1/reload",
+        response_model=ReloadOut,
+        tags=["models"],
+        summary="Re-read the store and swap it in atomically",
+        description=(
+            "Requests in flight finish on the old set. A corrupt artifact is refused (listed in "
+            "`refused`, logged); if its key was served before, the last good version keeps serving. "
+            "If the store cannot be read at all, nothing changes and the answer is 503 with `ok: false`."
+        ),
+        responses={503: {"model": ReloadOut, "description": "the store could not be read; the old set keeps serving"}},
+    )
+    async def reload(
+        state: Annotated[ApiState, Depends(get_state)], m: Annotated[ApiMetrics, Depends(get_metrics)]
+    ) -> Response:
+        report = await run_in_threadpool(state.reload)
+        m.reloads.labels(report.result).inc()
+        return FastJSON(reload_body(report), status_code=200 if report.ok else 503)
+
+    return open_router, protected
+
+
+def build_docs_router() -> APIRouter:
+    """``/openapi.json``, ``/docs`` and ``/redoc`` behind the token like every other route."""
+    from fastapi.openapi.docs import get_redoc_html, get_swagger_ui_html
+
+    docs = APIRouter(dependencies=[Depends(require_token)], include_in_schema=False)
+
+    @docs.get("/openapi.json")
+    async def openapi(request: Request) -> Response:
+        return FastJSON(request.app.openapi())
+
+    @docs.get("/docs")
+    async def swagger() -> HTMLResponse:
+        return get_swagger_ui_html(openapi_url="/openapi.json", title="ratefit sizing API")
+
+    @docs.get("/redoc")
+    async def redoc() -> HTMLResponse:
+        return get_redoc_html(openapi_url="/openapi.json", title="ratefit sizing API")
+
+    return docs

@@ -1,0 +1,255 @@
+"""The sizing API's boundary types: settings, request bodies and response bodies.
+
+Every request and response of the sizing API is described here as a pydantic model
+(with examples, so the OpenAPI page at ``/docs`` is usable as documentation). Request
+models are strict: a rate must be a JSON number (not a string, not a boolean), finite,
+``>= 0`` and at most ``MAX_RATE``; a key must be ``namespace/workload/container`` in
+Kubernetes name syntax (``models.keys.KEY_PATTERN``); unknown fields are refused, so a
+typo (``"rates"``) is a 422 naming the field instead of a silent default.
+
+The batch items are ``TypedDict``s rather than models: validating 10,000 of them from
+raw JSON bytes in pydantic-core costs a few milliseconds, while building 10,000 model
+objects would cost several times that. Responses on the hot paths are built as plain
+dicts and serialised with orjson; the models below still document them in OpenAPI
+(``response_model``) and the tests check real answers against them.
+
+The demo keys in the examples (``shop/checkout/app``) are invented for this project.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated, Any
+
+from pydantic import BaseModel, ConfigDict, Field, SecretStr, create_model, with_config
+from typing_extensions import TypedDict
+
+from ratefit.models.keys import KEY_PATTERN
+
+__all__ = [
+    "ApiSettings",
+    "DEFAULT_MAX_BATCH",
+    "MAX_RATE",
+    "NAME_LABEL_PATTERN",
+    "NAME_SUBDOMAIN_PATTERN",
+    "DemandItemIn",
+    "DemandBatchIn",
+    "batch_model",
+    "DemandOut",
+    "DemandItemOut",
+    "DemandBatchOut",
+    "ModelSummary",
+    "ModelDetail",
+    "ModelList",
+    "RefusedFile",
+    "ReloadOut",
+    "HealthOut",
+    "ReadyOut",
+    "ErrorOut",
+    "FieldError",
+]
+
+#: default cap on the number of items in one ``POST /v1/demand``
+DEFAULT_MAX_BATCH = 50_000
+#: largest accepted rate, req/s per pod. A billion requests per second on one pod is
+#: far beyond any real server (common practice, no source); the cap keeps extrapolated
+#: answers inside int64 millicores.
+MAX_RATE = 1e9
+#: JSON bytes allowed per batch item when bounding the request body (a maximal key is
+#: 381 characters; common practice, no source)
+BYTES_PER_ITEM = 512
+
+_LABEL = r"[a-z0-9]([-a-z0-9]*[a-z0-9])?"
+#: RFC 1123 DNS label (namespace, container), Kubernetes docs "Object Names and IDs"
+NAME_LABEL_PATTERN = rf"^{_LABEL}$"
+#: RFC 1123 DNS subdomain (workload name), same source
+NAME_SUBDOMAIN_PATTERN = rf"^{_LABEL}(\.{_LABEL})*$"
+
+EXAMPLE_KEY = "shop/checkout/app"
+# A key is at most 63 + 1 + 253 + 1 + 63 characters (label / subdomain / label).
+KeyStr = Annotated[str, Field(pattern=KEY_PATTERN, min_length=5, max_length=381, examples=[EXAMPLE_KEY])]
+Rate = Annotated[
+    float,
+    Field(
+        ge=0,
+        le=MAX_RATE,
+        allow_inf_nan=False,
+        strict=True,
+        description="request rate per pod, req/s (a finite JSON number >= 0)",
+        examples=[120.0],
+    ),
+]
+
+
+class ApiSettings(BaseModel):
+    """How one sizing API app is configured (``create_app(settings)``).
+
+    ``token``: when set, every route but ``/healthz`` needs ``Authorization: Bearer
+    <token>``. It is a ``SecretStr`` so that a repr or a log of the settings never
+    shows it."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    store: Path
+    token: SecretStr | None = None
+    max_batch: Annotated[int, Field(ge=1, le=10_000_000)] = DEFAULT_MAX_BATCH
+    #: name of the logger the access log goes to (one JSON object per line)
+    access_logger: str = "ratefit.api.access"
+
+
+# -- requests ---------------------------------------------------------------------------
+@with_config(ConfigDict(extra="forbid", strict=True))
+class DemandItemIn(TypedDict):
+    """One lookup in a batch."""
+
+    model: KeyStr
+    rate: Rate
+
+
+class DemandBatchIn(BaseModel):
+    """``POST /v1/demand``: lookups answered in request order."""
+
+    model_config = ConfigDict(
+        extra="forbid",
+        strict=True,
+        json_schema_extra={
+            "examples": [{"items": [{"model": EXAMPLE_KEY, "rate": 120.0}, {"model": "shop/cart/app", "rate": 35.5}]}]
+        },
+    )
+
+    items: Annotated[list[DemandItemIn], Field(max_length=DEFAULT_MAX_BATCH)]
+
+
+def batch_model(max_items: int) -> type[BaseModel]:
+    """``DemandBatchIn`` with the app's own cap on the number of items."""
+    if max_items == DEFAULT_MAX_BATCH:
+        return DemandBatchIn
+    return create_model(
+        "DemandBatchIn",
+        __config__=ConfigDict(extra="forbid", strict=True),
+        items=(Annotated[list[DemandItemIn], Field(max_length=max_items)], ...),
+    )
+
+
+# -- responses --------------------------------------------------------------------------
+class DemandOut(BaseModel):
+    """What a container needs at one rate (millicores, rounded up)."""
+
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {
+                    "model": EXAMPLE_KEY,
+                    "rate": 120.0,
+                    "cpu_m": 412,
+                    "upper_m": 468,
+                    "extrapolated": False,
+                    "version": "3f9a0c41d2be",
+                }
+            ]
+        }
+    )
+
+    model: str = Field(description="the key, namespace/workload/container")
+    rate: float = Field(description="the rate asked about, req/s per pod")
+    cpu_m: int = Field(description="expected CPU demand at that rate, millicores (rounded up)")
+    upper_m: int = Field(description="upper band at that rate (demand + conformal band), millicores")
+    extrapolated: bool = Field(description="the rate lies outside the trained range")
+    version: str = Field(description="content version of the artifact that answered")
+
+
+class DemandItemOut(BaseModel):
+    """One answer of a batch: the fields of ``DemandOut``, or ``error`` for an unknown key."""
+
+    model_config = ConfigDict(
+        json_schema_extra={
+            "examples": [
+                {"model": "shop/gone/app", "rate": 3.0, "error": "no model for 'shop/gone/app'"},
+            ]
+        }
+    )
+
+    model: str
+    rate: float
+    cpu_m: int | None = None
+    upper_m: int | None = None
+    extrapolated: bool | None = None
+    version: str | None = None
+    error: str | None = Field(None, description="set (and the demand fields absent) when the key has no model")
+
+
+class DemandBatchOut(BaseModel):
+    items: list[DemandItemOut] = Field(description="one answer per request item, in request order")
+
+
+class ModelSummary(BaseModel):
+    key: str = Field(examples=[EXAMPLE_KEY])
+    chosen: str = Field(description="the estimator the cross-validation chose", examples=["isotonic"])
+    rate_range: tuple[float, float] = Field(description="trained rate range, req/s per pod")
+    coverage: float = Field(description="coverage of the upper band on unseen data", examples=[0.95])
+    version: str = Field(examples=["3f9a0c41d2be"])
+    trained_at: str
+
+
+class ModelDetail(ModelSummary):
+    samples: int
+    samples_total: int
+    dropped: dict[str, int]
+    folds: int
+    seed: int
+    tuned: bool
+    window: dict[str, Any]
+    cv: list[dict[str, Any]] = Field(description="the cross-validation table: one row per candidate")
+    band_m: int = Field(description="width of the upper band, millicores")
+    content_hash: str
+
+
+class RefusedFile(BaseModel):
+    file: str = Field(description="path inside the store", examples=["shop/checkout/app.json"])
+    error: str
+    kept_previous: bool = Field(
+        False, description="the last good version of this key (from before the reload) is still served"
+    )
+
+
+class ModelList(BaseModel):
+    version: str | None = Field(description="version of the loaded store (changes when any artifact changes)")
+    loaded_at: float | None = Field(description="when the store was loaded, Unix seconds")
+    models: list[ModelSummary]
+    refused: list[RefusedFile]
+
+
+class ReloadOut(BaseModel):
+    ok: bool = Field(description="false when the store could not be read at all (the old set keeps serving)")
+    version: str | None
+    previous_version: str | None
+    models: int
+    added: int
+    removed: int
+    changed: int
+    unchanged: int
+    refused: list[RefusedFile]
+    seconds: float
+    error: str | None = None
+
+
+class HealthOut(BaseModel):
+    status: str = Field(examples=["ok"])
+
+
+class ReadyOut(BaseModel):
+    ready: bool
+    models: int
+    version: str | None
+    refused: int
+
+
+class FieldError(BaseModel):
+    field: str = Field(description="where: items.3.rate, rate (query), namespace (path), body")
+    message: str
+    type: str
+
+
+class ErrorOut(BaseModel):
+    error: str = Field(description="what is wrong and, where it helps, what to do")
+    errors: list[FieldError] = Field(default_factory=list)
