@@ -1,14 +1,127 @@
-"""`ratefit models` — placeholder until its issue lands (replace this module)."""
+"""`ratefit models` — list the stored demand curves, or show one in full.
+
+``ratefit models list --store DIR [--output table|json]`` and
+``ratefit models show KEY --store DIR [--output table|json]``. JSON fields of
+``show`` (cores and req/s throughout): key, chosen, cv (list of {model, rmse, mae,
+p95, fit_seconds, params}), rate_range [lo, hi], coverage, band, samples (used),
+samples_total, dropped (by reason), folds, seed, tuned, window, trained_at,
+version, library, demand_at_range ([cores at lo, cores at hi]).
+"""
 
 from __future__ import annotations
 
 import argparse
+import json
+import sys
+from typing import Any
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("models", help="(not built yet)")
-    p.set_defaults(handler=_run)
+    p = sub.add_parser("models", help="list stored demand curves or show one",
+                       description="Inspect the model store (one JSON artifact per container key).")
+    msub = p.add_subparsers(dest="models_command", metavar="ACTION", required=True)
+    ls = msub.add_parser("list", help="one line per stored key (refused files are reported on stderr)")
+    ls.add_argument("--store", required=True, metavar="DIR", help="model store directory")
+    ls.add_argument("--output", choices=("table", "json"), default="table", help="output format (default table)")
+    ls.set_defaults(handler=_list)
+    sh = msub.add_parser("show", help="everything stored for one key: CV table, range, band, drops")
+    sh.add_argument("key", metavar="NS/WORKLOAD/CONTAINER")
+    sh.add_argument("--store", required=True, metavar="DIR", help="model store directory")
+    sh.add_argument("--output", choices=("table", "json"), default="table", help="output format (default table)")
+    sh.set_defaults(handler=_show)
 
 
-def _run(args: argparse.Namespace) -> int:
-    raise SystemExit("ratefit models: not built yet")
+def show_dict(art: Any) -> dict[str, Any]:
+    """The JSON object `models show --output json` prints for an artifact."""
+    return {
+        "key": art.key,
+        "chosen": art.chosen,
+        "cv": [r.model_dump(mode="json") for r in art.cv],
+        "rate_range": list(art.rate_range),
+        "coverage": art.coverage,
+        "band": art.curve.band,
+        "demand_at_range": [art.curve.cpu[0], art.curve.cpu[-1]],
+        "samples": art.samples,
+        "samples_total": art.samples_total,
+        "dropped": dict(art.dropped),
+        "folds": art.folds,
+        "seed": art.seed,
+        "tuned": art.tuned,
+        "window": art.window.model_dump(mode="json"),
+        "trained_at": art.trained_at,
+        "version": art.version,
+        "library": dict(art.library),
+        "units": {"cpu": "cores", "rate": "req/s per pod"},
+    }
+
+
+def _list(args: argparse.Namespace) -> int:
+    from ratefit.models.store import ModelStore
+
+    loaded = ModelStore(args.store).load_all()
+    for rel, err in loaded.errors.items():
+        print(f"ratefit models list: refused {rel}: {err}", file=sys.stderr)
+    arts = [loaded.artifacts[k] for k in sorted(loaded.artifacts)]
+    if args.output == "json":
+        rows = [
+            {
+                "key": a.key,
+                "chosen": a.chosen,
+                "rate_range": list(a.rate_range),
+                "coverage": a.coverage,
+                "samples": a.samples,
+                "trained_at": a.trained_at,
+                "version": a.version,
+            }
+            for a in arts
+        ]
+        print(json.dumps({"models": rows, "refused": loaded.errors}, indent=2))
+        return 0
+    head = ("KEY", "CHOSEN", "RATE RANGE (req/s)", "SAMPLES", "TRAINED", "VERSION")
+    table = [
+        (a.key, a.chosen, f"{a.rate_range[0]:.4g}-{a.rate_range[1]:.4g}", str(a.samples), a.trained_at, a.version)
+        for a in arts
+    ]
+    _print_table(head, table)
+    return 1 if loaded.errors and not arts else 0
+
+
+def _show(args: argparse.Namespace) -> int:
+    from ratefit.models.keys import parse_key
+    from ratefit.models.store import ModelStore
+
+    key = str(parse_key(args.key))
+    art = ModelStore(args.store).load(key)
+    d = show_dict(art)
+    if args.output == "json":
+        print(json.dumps(d, indent=2))
+        return 0
+    print(f"key          {d['key']}")
+    print(f"chosen       {d['chosen']}")
+    print(f"rate range   {d['rate_range'][0]:.4g} - {d['rate_range'][1]:.4g} req/s per pod")
+    print(f"demand       {d['demand_at_range'][0]:.4g} - {d['demand_at_range'][1]:.4g} cores over that range")
+    print(f"upper band   +{d['band']:.4g} cores (coverage {d['coverage']:g})")
+    dropped = ", ".join(f"{n} {r}" for r, n in d["dropped"].items() if n) or "none"
+    print(f"samples      {d['samples']} used of {d['samples_total']} (dropped: {dropped})")
+    w = d["window"]
+    print(f"data         {w['source']}" + (f" {w['start']} .. {w['end']}" if w.get("start") else "")
+          + (f" step {w['step']}" if w.get("step") else ""))
+    print(f"trained      {d['trained_at']} (folds {d['folds']}, seed {d['seed']}, tuned {d['tuned']}), "
+          f"version {d['version']}")
+    print()
+    _print_table(
+        ("MODEL", "RMSE", "MAE", "P95", "FIT S", ""),
+        [
+            (r["model"], f"{r['rmse']:.4g}", f"{r['mae']:.4g}", f"{r['p95']:.4g}", f"{r['fit_seconds']:.3f}",
+             "chosen" if r["model"] == d["chosen"] else "")
+            for r in sorted(d["cv"], key=lambda r: r["rmse"])
+        ],
+    )
+    print("(errors in cores, out-of-fold)")
+    return 0
+
+
+def _print_table(head: tuple[str, ...], rows: list[tuple[str, ...]]) -> None:
+    widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(head)]
+    for r in (head, *rows):
+        print("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip())

@@ -1,14 +1,176 @@
-"""`ratefit train` — placeholder until its issue lands (replace this module)."""
+"""`ratefit train` — learn a demand curve per container and store it as an artifact.
+
+Three sources: one CSV (``--samples FILE --key KEY``), a directory with one CSV per
+key (``--samples-dir DIR``, files named ``namespace__workload__container.csv``),
+or Prometheus range queries (``--prometheus URL --rate-query Q --cpu-query Q``).
+The work is ``ratefit.models.train``; this module parses flags and prints.
+"""
 
 from __future__ import annotations
 
 import argparse
+import sys
+
+from ratefit.models.errors import InputError
+
+HELP = "learn a demand curve (rate per pod -> CPU cores) from a CSV or Prometheus and store it"
+
+DESCRIPTION = """\
+Learn, for one container key NAMESPACE/WORKLOAD/CONTAINER, how much CPU a pod uses
+at a given request rate. Samples are cleaned (NaN/stale, duplicate, throttled and
+warm-up samples are dropped and counted), every candidate model is scored by
+shuffled k-fold cross-validation (RMSE; ties within 2% go to the simpler model),
+the chosen model is tabulated into a non-decreasing curve with a one-sided
+split-conformal upper band, and the artifact is written to the store atomically.
+
+CSV columns: rate,cpu (req/s per pod, cores); optional timestamp (unix seconds or
+RFC 3339), pod, throttled (share of throttled CFS periods, 0..1).
+
+Examples:
+  ratefit train --samples app.csv --key shop/web/app --store ./models --report ./reports
+  ratefit train --samples-dir ./samples --store ./models
+  ratefit train --prometheus http://127.0.0.1:9090 --key shop/web/app --store ./models \\
+      --rate-query 'sum by (pod) (rate(http_requests_total{pod=~"web-.*"}[2m]))' \\
+      --cpu-query 'sum by (pod) (rate(container_cpu_usage_seconds_total{container="app"}[2m]))' \\
+      --window 7d --step 30s
+"""
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("train", help="(not built yet)")
+    p = sub.add_parser(
+        "train", help=HELP, description=DESCRIPTION, formatter_class=argparse.RawDescriptionHelpFormatter
+    )
+    src = p.add_argument_group("samples source (one of)")
+    src.add_argument("--samples", metavar="FILE.csv", help="one CSV of samples for --key")
+    src.add_argument("--samples-dir", metavar="DIR", help="one CSV per key, named NS__WORKLOAD__CONTAINER.csv")
+    src.add_argument("--prometheus", metavar="URL", help="Prometheus base URL, e.g. http://127.0.0.1:9090")
+    prom = p.add_argument_group("Prometheus options")
+    prom.add_argument("--rate-query", metavar="PROMQL", help="per-pod request rate (req/s), one series per pod")
+    prom.add_argument("--cpu-query", metavar="PROMQL", help="per-pod CPU usage (cores), one series per pod")
+    prom.add_argument("--throttle-query", metavar="PROMQL",
+                      help="per-pod share of throttled CFS periods (0..1); optional")
+    prom.add_argument("--window", default="7d", help="how far back to read (Prometheus duration; default 7d)")
+    prom.add_argument("--step", default="30s", help="query resolution (Prometheus duration; default 30s)")
+    prom.add_argument("--end", metavar="TIME", help="end of the window: unix seconds or RFC 3339 (default now)")
+    prom.add_argument("--timeout", type=float, default=30.0, help="HTTP timeout per query in seconds (default 30)")
+    p.add_argument("--key", metavar="NS/WORKLOAD/CONTAINER", help="the container key (with --samples/--prometheus)")
+    p.add_argument("--store", required=True, metavar="DIR", help="model store directory (created if missing)")
+    p.add_argument("--tune", action="store_true",
+                   help="hyperparameter grid search, nested inside the cross-validation (slower)")
+    p.add_argument("--folds", type=int, default=5, help="cross-validation folds (default 5)")
+    p.add_argument("--coverage", type=float, default=0.95, help="upper band coverage, 0 < C < 1 (default 0.95)")
+    p.add_argument("--seed", type=int, default=0, help="seed for folds and estimators (default 0)")
+    p.add_argument("--throttle-threshold", type=float, default=0.05,
+                   help="drop samples throttled in more than this share of CFS periods (default 0.05)")
+    p.add_argument("--warmup", default="5m",
+                   help="drop this span after each pod's first sample (Prometheus duration or 0; default 5m)")
+    p.add_argument("--report", metavar="DIR", help="also write a Markdown page and PNG plot per key here")
+    p.add_argument("--quiet", action="store_true", help="no progress on stderr")
     p.set_defaults(handler=_run)
 
 
+def _progress(args: argparse.Namespace):
+    if args.quiet:
+        return None
+
+    def say(msg: str) -> None:
+        print(msg, file=sys.stderr, flush=True)
+
+    return say
+
+
+def _warmup_seconds(text: str) -> float:
+    from ratefit.models.durations import parse_duration
+
+    if text.strip() in ("0", "0s"):
+        return 0.0
+    return parse_duration(text, field="--warmup")
+
+
+def _end_time(text: str | None) -> float:
+    import time
+
+    from ratefit.models.samples import parse_timestamp
+
+    if text is None:
+        return time.time()
+    try:
+        return parse_timestamp(text)
+    except ValueError as exc:
+        raise InputError(f"--end: {exc}") from None
+
+
 def _run(args: argparse.Namespace) -> int:
-    raise SystemExit("ratefit train: not built yet")
+    from ratefit.models.samples import load_csv
+    from ratefit.models.store import ModelStore
+    from ratefit.models.train import samples_dir_files, train_key_detailed
+
+    sources = [s for s in (args.samples, args.samples_dir, args.prometheus) if s]
+    if len(sources) != 1:
+        raise InputError("give exactly one of --samples FILE.csv, --samples-dir DIR or --prometheus URL")
+    if (args.samples or args.prometheus) and not args.key:
+        raise InputError("--key NAMESPACE/WORKLOAD/CONTAINER is required with --samples and --prometheus")
+    if args.samples_dir and args.key:
+        raise InputError("--key does not go with --samples-dir: the file names give the keys")
+    options = dict(
+        folds=args.folds,
+        coverage=args.coverage,
+        tune=args.tune,
+        seed=args.seed,
+        throttle_threshold=args.throttle_threshold,
+        warmup=_warmup_seconds(args.warmup),
+        progress=_progress(args),
+    )
+    store = ModelStore(args.store)
+    results = []
+    if args.samples:
+        results.append(train_key_detailed(load_csv(args.samples), key=args.key, **options))
+    elif args.samples_dir:
+        files = samples_dir_files(args.samples_dir)
+        for i, (key, path) in enumerate(files.items(), start=1):
+            if options["progress"]:
+                options["progress"](f"[{i}/{len(files)}] {key} from {path}")
+            results.append(train_key_detailed(load_csv(path), key=key, **options))
+    else:
+        results.append(_from_prometheus(args, options))
+    for res in results:
+        path = store.save(res.artifact)
+        a = res.artifact
+        print(
+            f"{a.key}: {a.chosen} (cv rmse {next(r.rmse for r in a.cv if r.model == a.chosen):.4g} cores), "
+            f"band +{a.curve.band:.4g} cores at {a.coverage:g}, {res.report.summary()} -> {path}"
+        )
+        if args.report:
+            from ratefit.models.report import fit_all_for_report, write_report
+
+            ests = fit_all_for_report(res.samples, seed=args.seed)
+            ests[a.chosen] = res.selection.estimator
+            md, _ = write_report(a, args.report, samples=res.samples, estimators=ests)
+            print(f"{a.key}: report {md}")
+    return 0
+
+
+def _from_prometheus(args: argparse.Namespace, options: dict):
+    from ratefit.models.durations import parse_duration
+    from ratefit.models.prometheus import PrometheusClient
+    from ratefit.models.train import train_from_prometheus
+
+    if not (args.rate_query and args.cpu_query):
+        raise InputError("--rate-query and --cpu-query are required with --prometheus")
+    window = parse_duration(args.window, field="--window")
+    step = parse_duration(args.step, field="--step")
+    end = _end_time(args.end)
+    with PrometheusClient(args.prometheus, timeout=args.timeout) as client:
+        return train_from_prometheus(
+            client,
+            key=args.key,
+            rate_query=args.rate_query,
+            cpu_query=args.cpu_query,
+            throttle_query=args.throttle_query,
+            start=end - window,
+            end=end,
+            step=step,
+            step_text=args.step,
+            source=f"prometheus:{args.prometheus}",
+            **options,
+        )
