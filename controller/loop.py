@@ -130,7 +130,9 @@ class ControllerLoop:
         """Leader, not stopping, and the last renewal is younger than the renew deadline."""
         if self._elector is None:
             return True
-        return self._leader and (self._clock() - self._renewed_at) < self.renew_deadline_s
+        fresh = (self._clock() - self._renewed_at) < self.renew_deadline_s
+        own = getattr(self._elector, "is_leader", None)  # the elector's own view, on its clock
+        return self._leader and fresh and (own is None or bool(own))
 
     def _campaign(self) -> bool:
         if self._elector is None:

@@ -1,14 +1,232 @@
-"""`ratefit run` — placeholder until its issue lands (replace this module)."""
+"""`ratefit run` — the reconcile loop: a pass every --interval, as Lease holder only.
+
+Also holds the connection flags and wiring that `ratefit plan` shares
+(:func:`add_connection_flags`, :func:`connect`). Thin: parse, build the adapters,
+hand them to ``controller/reconcile`` and ``controller/loop``.
+"""
 
 from __future__ import annotations
 
 import argparse
+import logging
+import os
+import sys
+from dataclasses import dataclass
+from typing import Any
+
+from ratefit.models.errors import InputError
+
+HELP = """\
+Run the reconcile loop against a cluster: every --interval (and at once when a
+SizingPolicy changes) read every container's per-pod request rate from Prometheus
+(one grouped query), ask the sizing API what that rate costs (one batch call),
+decide within each policy's bounds, and act: status, Event, log line and metric;
+in apply mode (a policy's `mode: apply`, and no --dry-run) a server-side dry run,
+then one strategic-merge patch per workload (or in-place pod resizes), within the
+cluster-wide budget of --budget-per-minute changes and --max-rollouts rollouts.
+
+Only the holder of the Lease --lease-namespace/--lease-name acts; other replicas
+stand by and keep answering /healthz and /readyz on --metrics-port.
+SIGTERM/SIGINT: finish the workload being patched, abandon the rest of the pass,
+release the Lease, exit 0.
+
+Start with --dry-run (or `ratefit plan`) and review every proposal first.
+The environment variable RATEFIT_DRY_RUN=true|false sets the default of --dry-run.
+"""
+
+
+def _truthy(text: str | None) -> bool:
+    return (text or "").strip().lower() in ("1", "true", "yes", "on")
+
+
+def add_connection_flags(p: argparse.ArgumentParser) -> None:
+    """The flags `run` and `plan` share: where the cluster, the rates and the sizing API are."""
+    g = p.add_argument_group("connections")
+    g.add_argument("--kubeconfig", metavar="FILE",
+                   help="kubeconfig of the cluster (default: $KUBECONFIG, else in-cluster service account, else ~/.kube/config)")
+    g.add_argument("--context", help="kubeconfig context to use")
+    g.add_argument("--prometheus", metavar="URL", help="Prometheus base URL, e.g. http://127.0.0.1:9090")
+    g.add_argument("--replay", metavar="FILE",
+                   help="instead of --prometheus: compute the rates offline from an OpenMetrics history file")
+    g.add_argument("--sizing-api", metavar="URL", required=True, help="sizing API base URL (`ratefit serve`), e.g. http://127.0.0.1:8470")
+    g.add_argument("--sizing-token-file", metavar="FILE", help="file holding the sizing API's bearer token")
+    g.add_argument("--namespace", "-n", action="append", default=[], metavar="NS",
+                   help="only SizingPolicies in this namespace (repeat for several; default: all namespaces)")
+    r = p.add_argument_group("rates")
+    r.add_argument("--rate-metric", default=os.environ.get("RATEFIT_RATE_METRIC", "http_requests_total"),
+                   help="request counter of the default rate template (labels namespace, workload, pod); default %(default)s")
+    r.add_argument("--rate-interval", default="2m", help="rate() interval of the default template (default %(default)s)")
+    r.add_argument("--rate-step", default="30s", help="subquery step for the percentile over rateWindow (default %(default)s)")
+    r.add_argument("--rate-at", type=float, metavar="UNIX_SECONDS",
+                   help="evaluate the rates at this time instead of now (replays, reproducible reviews)")
+    r.add_argument("--timeout", type=float, default=10.0, help="seconds for each Prometheus and sizing API call (default %(default)s)")
+
+
+@dataclass
+class Connections:
+    kube: Any
+    rates: Any
+    sizing: Any
+    rate_source: str  # what the rates come from, for the output
+
+    def close(self) -> None:
+        for obj in (self.sizing, getattr(self.rates, "client", None), self.kube):
+            close = getattr(obj, "close", None)
+            if close is not None:
+                try:
+                    close()
+                except Exception:  # closing is best effort
+                    pass
+
+
+def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connections:
+    """Build the Kubernetes adapter, the rate source and the sizing client from the flags."""
+    from ratefit.controller.kube import KubeAdapter
+    from ratefit.controller.metrics_source import PrometheusRateSource, RateTemplate, ReplayRateSource
+    from ratefit.controller.sizing_client import SizingClient
+    from ratefit.models.prometheus import PrometheusClient
+
+    if bool(args.prometheus) == bool(args.replay):
+        raise InputError("give exactly one of --prometheus URL or --replay FILE")
+    template = RateTemplate(metric=args.rate_metric, interval=args.rate_interval)
+    if args.prometheus:
+        rates = PrometheusRateSource(PrometheusClient(args.prometheus, timeout=args.timeout), at=args.rate_at,
+                                     template=template, step=args.rate_step)
+        source = f"Prometheus at {args.prometheus}"
+    else:
+        if not os.path.exists(args.replay):
+            raise InputError(f"--replay {args.replay}: no such file")
+        rates = ReplayRateSource(args.replay, at=args.rate_at, template=template, step=args.rate_step)
+        source = f"replay of {args.replay}"
+    token = None
+    if args.sizing_token_file:
+        try:
+            with open(args.sizing_token_file, encoding="utf-8") as fh:
+                token = fh.read().strip()
+        except OSError as exc:
+            raise InputError(f"--sizing-token-file {args.sizing_token_file}: {exc}") from exc
+    sizing = SizingClient(args.sizing_api, timeout=args.timeout, token=token)
+    kwargs = {"identity": identity} if identity else {}
+    kube = KubeAdapter.from_environment(args.kubeconfig, context=args.context, **kwargs)
+    return Connections(kube=kube, rates=rates, sizing=sizing, rate_source=source)
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("run", help="(not built yet)")
+    p = sub.add_parser("run", help="run the reconcile loop (dry-run or apply, per policy)", description=HELP,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    add_connection_flags(p)
+    p.add_argument("--dry-run", action=argparse.BooleanOptionalAction, default=_truthy(os.environ.get("RATEFIT_DRY_RUN")),
+                   help="force every policy to dry-run: decide, write status and Events, never patch "
+                        "(default from RATEFIT_DRY_RUN, else off)")
+    p.add_argument("--interval", default="60s", help="time between passes, e.g. 60s, 5m (default %(default)s)")
+    p.add_argument("--budget-per-minute", type=float, default=2.0, metavar="N",
+                   help="cluster-wide changes per minute (0: unlimited; default %(default)s)")
+    p.add_argument("--max-rollouts", type=int, default=1, metavar="N",
+                   help="workloads rolling out at once, cluster-wide (0: unlimited; default %(default)s)")
+    p.add_argument("--metrics-port", type=int, default=8471, help="port of /metrics, /healthz, /readyz (-1: off; default %(default)s)")
+    p.add_argument("--metrics-host", default="127.0.0.1", help="address to bind it to (0.0.0.0 in a cluster; default %(default)s)")
+    p.add_argument("--identity", default=os.environ.get("POD_NAME"), help="this replica's name in the Lease and Events (default $POD_NAME or host name)")
+    p.add_argument("--lease-namespace", default="ratefit-system", help="namespace of the leader Lease (default %(default)s)")
+    p.add_argument("--lease-name", default="ratefit-controller", help="name of the leader Lease (default %(default)s)")
+    p.add_argument("--no-leader-election", action="store_true", help="act without a Lease (only ever run ONE replica like this)")
+    p.add_argument("--once", action="store_true", help="run one pass and exit (as leader, when the Lease can be had)")
+    p.add_argument("--log-level", default="INFO", help="log level (default %(default)s)")
     p.set_defaults(handler=_run)
 
 
 def _run(args: argparse.Namespace) -> int:
-    raise SystemExit("ratefit run: not built yet")
+    import random
+    import signal
+    import threading
+    import time
+
+    from ratefit.controller.limits import Budget, ExponentialBackoff, RolloutSlots, TokenBucket
+    from ratefit.controller.loop import ControllerLoop
+    from ratefit.controller.reconcile import ReconcileConfig, Reconciler, crash_hook_from_env
+    from ratefit.controller.telemetry import HealthServer, Telemetry
+    from ratefit.models.durations import parse_duration
+
+    logging.basicConfig(level=getattr(logging, str(args.log_level).upper(), logging.INFO), stream=sys.stderr,
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    interval = parse_duration(args.interval, field="--interval")
+    if interval <= 0:
+        raise InputError("--interval must be longer than 0s")
+    conns = connect(args, identity=args.identity)
+    telemetry = Telemetry()
+    mono = time.monotonic
+    budget = Budget(
+        bucket=TokenBucket.per_minute(args.budget_per_minute, now=mono()) if args.budget_per_minute > 0 else None,
+        slots=RolloutSlots(args.max_rollouts) if args.max_rollouts > 0 else None,
+    )
+    reconciler = Reconciler(
+        kube=conns.kube, rates=conns.rates, sizing=conns.sizing,
+        config=ReconcileConfig(dry_run=args.dry_run, write=True, namespaces=tuple(args.namespace),
+                               identity=conns.kube.identity),
+        budget=budget, backoff=ExponentialBackoff(base=5.0, cap=300.0, rng=random.Random()),
+        telemetry=telemetry, crash_hook=crash_hook_from_env(os.environ.get("RATEFIT_CRASH_AT")),
+    )
+    elector = None if args.no_leader_election else conns.kube.leader_elector(
+        namespace=args.lease_namespace, name=args.lease_name)
+    loop = ControllerLoop(
+        run_pass=reconciler.run_pass, elector=elector, interval_s=interval,
+        retry_period_s=getattr(elector, "retry_period", 2.0), renew_deadline_s=getattr(elector, "renew_deadline", 10.0),
+        telemetry=telemetry, max_passes=1 if args.once else None,
+    )
+    health = None
+    if args.metrics_port >= 0:
+        health = HealthServer(telemetry, host=args.metrics_host, port=args.metrics_port).start()
+        print(f"ratefit run: /metrics /healthz /readyz on {health.url}", file=sys.stderr, flush=True)
+    stop_watch = threading.Event()
+
+    def on_signal(signum: int, frame: Any) -> None:
+        print(f"ratefit run: {signal.Signals(signum).name}: stopping after the current workload", file=sys.stderr, flush=True)
+        stop_watch.set()
+        loop.stop()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    watcher = threading.Thread(target=_watch, args=(conns.kube, args.namespace, loop, stop_watch),
+                               name="ratefit-watch", daemon=True)
+    if not args.once:
+        watcher.start()
+    mode = "dry-run (forced)" if args.dry_run else "per policy (dry-run or apply)"
+    print(f"ratefit run: identity {conns.kube.identity}; rates from {conns.rate_source}; sizing API {args.sizing_api}; "
+          f"mode {mode}; interval {args.interval}", file=sys.stderr, flush=True)
+    try:
+        return loop.run()
+    finally:
+        stop_watch.set()
+        if health is not None:
+            health.stop()
+        conns.close()
+        print("ratefit run: stopped", file=sys.stderr, flush=True)
+
+
+def _watch(kube: Any, namespaces: list[str], loop: Any, stop: Any) -> None:
+    """Wake the loop when a policy's spec changes (not for our own status writes:
+    those leave ``generation`` as it is)."""
+    log = logging.getLogger("ratefit.controller.watch")
+    seen: dict[tuple[str, str], int] = {}
+    ns = namespaces[0] if len(namespaces) == 1 else None
+    while not stop.is_set():
+        try:
+            for ev in kube.watch_policies(namespace=ns, timeout_seconds=20, stop=stop):
+                if stop.is_set():
+                    return
+                if ev.type == "RELISTED":
+                    fresh = {(p.namespace, p.name): p.generation for p in ev.listed.items}
+                    if seen and fresh != seen:
+                        loop.wake()
+                    seen = fresh
+                    continue
+                p = ev.policy
+                k = (p.namespace, p.name)
+                if ev.type == "DELETED":
+                    seen.pop(k, None)
+                    loop.wake()
+                elif seen.get(k) != p.generation:
+                    seen[k] = p.generation
+                    loop.wake()
+        except Exception as exc:  # the watch is only a wake-up; the interval still runs passes
+            log.warning("policy watch failed (%s); retrying in 5s", exc)
+            stop.wait(5.0)
