@@ -220,16 +220,16 @@ class ExponentialBackoff:
         self._failures: dict[str, int] = {}
 
     def ceiling(self, key: str) -> float:
-        """The un-jittered delay the next failure of ``key`` would get."""
+        """Upper end of the jitter interval for ``key``'s current failure count
+        (0.0 without failures)."""
         n = self._failures.get(key, 0)
-        return min(self.cap, self.base * 2.0 ** max(0, n - 1)) if n else 0.0
+        # 2.0**n overflows past n ≈ 1024; the cap has long taken over by 64
+        return min(self.cap, self.base * 2.0 ** (min(n, 64) - 1)) if n else 0.0
 
     def failed(self, key: str) -> float:
         """Count a failure of ``key`` and return the delay before retrying it."""
         self._failures[key] = self._failures.get(key, 0) + 1
-        # 2**n overflows floats only past n ≈ 1000; the cap has long taken over by then
-        n = min(self._failures[key], 64)
-        return self.rng.uniform(0.0, min(self.cap, self.base * 2.0 ** (n - 1)))
+        return self.rng.uniform(0.0, self.ceiling(key))
 
     def failures(self, key: str) -> int:
         return self._failures.get(key, 0)

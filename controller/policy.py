@@ -14,8 +14,9 @@ Also here: what the status keeps so that a restart or a leader change loses noth
 ``type``; ``lastTransitionTime`` moves only when ``status`` changes — Kubernetes API
 conventions, "Typical status properties").
 
-Durations are written like ``90s``, ``10m``, ``1h30m`` (hours, minutes, seconds, in that
-order; integers); they become float seconds. CPU quantities (``floor``, ``ceiling``)
+Durations are Prometheus durations (``90s``, ``10m``, ``1h30m``, ``7d``; largest unit
+first, each once); they become float seconds. ``cooldown`` and ``settle`` may be ``0s``
+(off); ``rateWindow`` must be positive. CPU quantities (``floor``, ``ceiling``)
 become whole millicores through ``ratefit.controller.quantity.parse_cpu``.
 """
 
@@ -32,6 +33,8 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 from pydantic.alias_generators import to_camel
 
 from ratefit.controller.quantity import format_cpu, parse_cpu
+from ratefit.models.durations import format_duration as _format_duration
+from ratefit.models.durations import parse_duration as _parse_duration
 from ratefit.models.errors import InputError
 
 __all__ = [
@@ -93,30 +96,21 @@ class LimitsMode(StrEnum):
 
 # ---------------------------------------------------------------- durations
 
-_DURATION = re.compile(r"^(?:(?P<h>\d+)h)?(?:(?P<m>\d+)m)?(?:(?P<s>\d+)s)?$")
+_ZERO = re.compile(r"^0+(ms|[ywdhms])$")
 
 
-def parse_duration(text: str, *, field: str = "duration") -> float:
-    """``"1h30m"`` → 5400.0 seconds. Units h, m, s in that order, whole numbers."""
-    if not isinstance(text, str):
-        raise InputError(f"{field}: expected a duration like '10m' or '1h30m', got {text!r}")
-    m = _DURATION.match(text)
-    if not text or m is None:
-        raise InputError(
-            f"{field}: {text!r} is not a duration; write hours, minutes, seconds "
-            "like '90s', '10m' or '1h30m'"
-        )
-    return float(int(m["h"] or 0) * 3600 + int(m["m"] or 0) * 60 + int(m["s"] or 0))
+def parse_duration(text: str, *, field: str = "duration", allow_zero: bool = False) -> float:
+    """A Prometheus duration (``90s``, ``10m``, ``1h30m``, ``7d``; the shared parser
+    ``ratefit.models.durations``) → seconds. ``allow_zero`` also accepts ``0s``
+    (cooldown and settle may be switched off)."""
+    if allow_zero and isinstance(text, str) and _ZERO.match(text):
+        return 0.0
+    return _parse_duration(text, field=field)
 
 
 def format_duration(seconds: float) -> str:
-    """Inverse of :func:`parse_duration` for whole seconds: 5400 → ``"1h30m"``."""
-    total = int(round(seconds))
-    if total == 0:
-        return "0s"
-    h, rest = divmod(total, 3600)
-    m, s = divmod(rest, 60)
-    return "".join(f"{v}{u}" for v, u in ((h, "h"), (m, "m"), (s, "s")) if v)
+    """Inverse of :func:`parse_duration`: 5400 → ``"1h30m"``, 0 → ``"0s"``."""
+    return "0s" if seconds == 0 else _format_duration(seconds)
 
 
 # ---------------------------------------------------------------- pydantic models (the boundary)
@@ -352,11 +346,9 @@ def _to_policy(spec: SizingPolicySpec, *, namespace: str, name: str, generation:
     durations = {}
     for fname, text in (("cooldown", spec.cooldown), ("settle", spec.settle), ("rateWindow", spec.rate_window)):
         try:
-            durations[fname] = parse_duration(text, field=f"spec.{fname}")
+            durations[fname] = parse_duration(text, field=f"spec.{fname}", allow_zero=fname != "rateWindow")
         except InputError as exc:
             raise bad(f"spec.{fname}", str(exc).split(": ", 1)[1]) from exc
-    if durations["rateWindow"] <= 0:
-        raise bad("spec.rateWindow", "must be longer than 0s (e.g. '1h')")
     if spec.method is Method.IN_PLACE and spec.limits is LimitsMode.DROP:
         raise bad("spec.limits", "'drop' cannot be used with method 'in-place': a resize cannot remove a limit")
     containers: list[ContainerPolicy] = []
