@@ -278,8 +278,8 @@ class PrometheusClient:
         if not isinstance(body, dict):
             ctype = resp.headers.get("content-type", "?")
             raise PrometheusError(
-                f"Prometheus at {self.base_url} answered HTTP {status} with non-JSON "
-                f"({ctype}) to {promql!r}: {_short(resp.text)!r}; is the URL a Prometheus server?"
+                f"Prometheus at {self.base_url} answered HTTP {status} with a body that is not a "
+                f"JSON object ({ctype}) to {promql!r}: {_short(resp.text)!r}; is the URL a Prometheus server?"
             )
         if status != 200 or body.get("status") != "success":
             raise PrometheusError(

@@ -17,6 +17,12 @@ Fixtures:
   seed 0, ending 5 min before now), yields :class:`PromHistory`.
 * ``prometheus_from_openmetrics`` (function): a factory ``start(path) -> PromServer``
   for a test's own OpenMetrics file; servers stop at the end of the test.
+* ``canned_server`` (function): a loopback HTTP server answering what the test sets with
+  ``canned_server.set(status=, body=, content_type=, delay_s=)`` — garbage, 5xx, slowness.
+* ``closed_port_url`` (function): a loopback URL nothing listens on (connection refused).
+
+Helpers for other fixtures: ``backfill(openmetrics, data_dir)``, ``run_prometheus(data_dir)``
+(context manager → :class:`PromServer`), ``require_prometheus()``.
 
 Register in ``tests/conftest.py``: ``pytest_plugins = ["prom_fixtures"]``.
 """
@@ -192,3 +198,81 @@ def prometheus_from_openmetrics(tmp_path: Path) -> Iterator[Callable[[Path], Pro
 
     with stack:
         yield start
+
+
+# ----------------------------------------------------------------------------------------
+# A tiny loopback HTTP server with canned answers: what a broken or wrong "Prometheus" says.
+
+
+@dataclass
+class CannedAnswer:
+    status: int = 200
+    body: bytes = b""
+    content_type: str = "application/json"
+    delay_s: float = 0.0
+
+
+class CannedServer:
+    """Answers every request with ``self.answer`` (mutable between calls); counts requests."""
+
+    def __init__(self) -> None:
+        import http.server
+        import threading
+
+        outer = self
+        self.answer = CannedAnswer()
+        self.requests = 0
+
+        class Handler(http.server.BaseHTTPRequestHandler):
+            def _reply(self) -> None:
+                outer.requests += 1
+                length = int(self.headers.get("content-length") or 0)
+                if length:
+                    self.rfile.read(length)
+                a = outer.answer
+                if a.delay_s:
+                    time.sleep(a.delay_s)
+                try:
+                    self.send_response(a.status)
+                    self.send_header("Content-Type", a.content_type)
+                    self.send_header("Content-Length", str(len(a.body)))
+                    self.end_headers()
+                    self.wfile.write(a.body)
+                except (BrokenPipeError, ConnectionResetError):
+                    pass
+
+            do_GET = do_POST = _reply
+
+            def log_message(self, *args: object) -> None:
+                pass
+
+        self._httpd = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+        self._httpd.daemon_threads = True
+        self.url = f"http://127.0.0.1:{self._httpd.server_address[1]}"
+        self._thread = threading.Thread(target=self._httpd.serve_forever, kwargs={"poll_interval": 0.05}, daemon=True)
+        self._thread.start()
+
+    def set(self, *, status: int = 200, body: bytes | str = b"", content_type: str = "application/json",
+            delay_s: float = 0.0) -> None:
+        self.answer = CannedAnswer(status, body.encode() if isinstance(body, str) else body, content_type, delay_s)
+
+    def close(self) -> None:
+        self._httpd.shutdown()
+        self._httpd.server_close()
+        self._thread.join(timeout=5)
+
+
+@pytest.fixture
+def canned_server() -> Iterator[CannedServer]:
+    """A loopback HTTP server answering what the test sets with ``canned_server.set(...)``."""
+    srv = CannedServer()
+    try:
+        yield srv
+    finally:
+        srv.close()
+
+
+@pytest.fixture
+def closed_port_url() -> str:
+    """A loopback URL nothing listens on (connection refused)."""
+    return f"http://127.0.0.1:{_free_port()}"
