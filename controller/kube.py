@@ -390,19 +390,30 @@ class KubeAdapter:
 
     # ---------------------------------------------------------------- changing CPU
     def patch_cpu(
-        self, workload: Workload, changes: Mapping[str, CpuChange], *, record_previous: bool = True
+        self,
+        workload: Workload,
+        changes: Mapping[str, CpuChange],
+        *,
+        record_previous: bool = True,
+        annotations: Mapping[str, str | None] | None = None,
+        after_dry_run: Callable[[], None] | None = None,
     ) -> Workload:
         """Set the CPU request (and limit) of the named containers of the pod template.
 
         A dry run (``dryRun=All``) of the exact patch goes first; if the server refuses
-        it (KubeInvalid — e.g. request > limit) nothing is sent for real. The patch
-        carries ``workload.resource_version``: if the workload changed since it was read
-        → KubeConflict, nothing changed; re-read and recompute. Returns the workload as
+        it (KubeInvalid — e.g. request > limit) nothing is sent for real. Then
+        ``after_dry_run()`` is called (a last leadership check, a crash-test hook): if
+        it raises, the real patch is not sent. The patch carries
+        ``workload.resource_version``: if the workload changed since it was read →
+        KubeConflict, nothing changed; re-read and recompute. ``annotations`` are set on
+        the workload in the same patch (None deletes one). Returns the workload as
         stored after the patch. A template change starts a rollout."""
         if not changes:
             return workload
         body = self._template_patch(workload, changes, record_previous=record_previous)
-        return self._dry_run_then_patch(workload, body)
+        if annotations:
+            body["metadata"].setdefault("annotations", {}).update(annotations)
+        return self._dry_run_then_patch(workload, body, after_dry_run=after_dry_run)
 
     def _template_patch(
         self, workload: Workload, changes: Mapping[str, CpuChange], *, record_previous: bool
@@ -421,12 +432,16 @@ class KubeAdapter:
             meta["annotations"] = {PREVIOUS_REQUESTS_ANNOTATION: encode_previous_requests(previous)}
         return {"metadata": meta, "spec": {"template": {"spec": {"containers": containers}}}}
 
-    def _dry_run_then_patch(self, workload: Workload, body: dict[str, Any]) -> Workload:
+    def _dry_run_then_patch(
+        self, workload: Workload, body: dict[str, Any], *, after_dry_run: Callable[[], None] | None = None
+    ) -> Workload:
         fn = (self._apps.patch_namespaced_deployment if workload.kind is WorkloadKind.DEPLOYMENT
               else self._apps.patch_namespaced_stateful_set)
         common = dict(field_manager=FIELD_MANAGER, _content_type=_STRATEGIC)
         self._call(f"dry-run patch of {workload.key}", fn, workload.name, workload.namespace, body,
                    dry_run="All", **common)
+        if after_dry_run is not None:
+            after_dry_run()
         stored = self._call(f"patch of {workload.key}", fn, workload.name, workload.namespace, body, **common)
         return _workload(stored, workload.kind)
 
