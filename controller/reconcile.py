@@ -222,6 +222,16 @@ def _normalise(value: Any) -> Any:
     return value
 
 
+def _comparable(status: Mapping[str, Any]) -> Any:
+    """Status without what only ages (the proposals' free-text messages such as
+    "1234s of 7200s settle"): a pass that only has newer wording writes nothing."""
+    s = dict(_normalise(status))
+    if isinstance(s.get("proposals"), list):
+        s["proposals"] = [{k: v for k, v in p.items() if k != "message"} if isinstance(p, dict) else p
+                          for p in s["proposals"]]
+    return s
+
+
 def _sizing_of(answer: Any) -> Sizing | None:
     """One item of the sizing API's batch answer → Sizing (cores), or None."""
     if answer is None:
@@ -713,15 +723,16 @@ class Reconciler:
             message=f"{len(wd.decisions)} containers decided: {summary}", observed_generation=gen, now=now,
         )
         status["conditions"] = set_condition(conditions, cond)
-        status["proposals"] = [d.to_status() for d in wd.decisions]
+        # the CRD's schema has no nullable fields: leave unknown values out
+        status["proposals"] = [{k: v for k, v in d.to_status().items() if v is not None} for d in wd.decisions]
         status.update(history_to_status(wd.history))
         return status
 
     def _write_status_and_events(self, e: _Entry, now: datetime, errors: list[str]) -> tuple[int, int]:
         new = self._new_status(e, now)
         old = dict(e.obj.status or {})
-        if _normalise(new) == _normalise({k: old.get(k) for k in new}) and set(_normalise(old)) <= set(_normalise(new)):
-            return 0, 0
+        if _comparable(new) == _comparable({k: old.get(k) for k in new}):
+            return 0, 0  # level-based: nothing to say that the status does not already say
         try:
             self.kube.write_policy_status(e.obj.namespace, e.obj.name, new, resource_version=e.obj.resource_version or None)
         except KubeError as exc:  # 409: someone edited the policy; the next pass re-reads it

@@ -1,14 +1,46 @@
-"""`ratefit demo` — placeholder until its issue lands (replace this module)."""
+"""`ratefit demo` — the whole flow on one machine with the INVENTED Kestrel Post scenario.
+Thin: parse, call ``ratefit.controller.demo.run_demo``, print the review."""
 
 from __future__ import annotations
 
 import argparse
+import sys
+from pathlib import Path
+
+HELP = """\
+Run ratefit end to end on this machine with an INVENTED demo scenario (Kestrel Post,
+a fictional parcel company): write its 24 h request/CPU history, backfill it into
+the real Prometheus (if `prometheus` and `promtool` are installed; else replay the
+history file — the output says which), train a demand model for every container,
+start the sizing API (`ratefit serve`) and the sandbox API server (a local stand-in
+for Kubernetes) loaded with the scenario's workloads, the SizingPolicy CRD and the
+example policies, run one reconcile pass in dry-run, print the review, and stop
+everything it started (also on Ctrl-C or an error).
+
+Writes into --out: review.md, reports/ (one training report + plot per model),
+samples/ (the invented CSVs), kubeconfig, run/ (history, model store, logs).
+"""
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("demo", help="(not built yet)")
+    p = sub.add_parser("demo", help="run the whole flow on an invented scenario and print the review",
+                       description=HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--out", default="ratefit-demo", metavar="DIR", help="output directory (default %(default)s)")
+    p.add_argument("--keep", action="store_true",
+                   help="keep the sandbox, Prometheus and the sizing API running after the review until Ctrl-C")
+    p.add_argument("--replay", action="store_true", help="replay the history file even when Prometheus is installed")
+    p.add_argument("--hours", type=float, default=24.0, help="hours of invented history (default %(default)s)")
+    p.add_argument("--output", "-o", choices=("table", "json", "markdown"), default="table",
+                   help="review format on stdout (default %(default)s)")
     p.set_defaults(handler=_run)
 
 
 def _run(args: argparse.Namespace) -> int:
-    raise SystemExit("ratefit demo: not built yet")
+    from ratefit.controller.demo import run_demo
+    from ratefit.controller.review import render
+
+    res = run_demo(out=Path(args.out), keep=args.keep, hours=args.hours, use_prometheus=False if args.replay else None)
+    sys.stdout.write(render(res.rows, args.output))
+    print(f"ratefit demo: done in {res.seconds:.0f}s (rates from {res.rate_source}); review in {res.review_markdown}, "
+          f"training reports in {res.out / 'reports'}; everything it started is stopped", file=sys.stderr)
+    return 0

@@ -1,0 +1,289 @@
+"""The demo, end to end on one machine, with the INVENTED Kestrel Post scenario.
+
+INVENTED DATA: Kestrel Post is a fictional parcel company (``models/scenario``).
+
+:func:`run_demo` does, showing progress on stderr:
+
+1. writes the scenario's history as OpenMetrics (and per-key CSV samples);
+2. if ``prometheus`` and ``promtool`` are installed: backfills the history into a
+   fresh TSDB (``promtool tsdb create-blocks-from openmetrics``) and starts the real
+   Prometheus on a free loopback port; otherwise the rates are replayed from the file
+   (the output says which);
+3. trains a model for every scenario key (cross-validated candidates, conformal band)
+   into a model store, with a Markdown report + plot per key;
+4. starts the sizing API (a ``ratefit serve`` subprocess on a free loopback port);
+5. starts the sandbox API server loaded with the SizingPolicy CRD, the scenario's
+   workloads and HPA, and the example policies (``manifests/``);
+6. runs ONE reconcile pass in forced dry-run (status and Events are written to the
+   sandbox, nothing is patched) and returns the review (also written as Markdown);
+7. stops everything it started — on success, on error and on Ctrl-C. With
+   ``keep=True`` it first waits (Ctrl-C) so the sandbox can be explored with the
+   kubeconfig it wrote.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import time
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import httpx
+
+from ratefit.models.errors import RatefitError
+
+__all__ = ["DemoResult", "run_demo", "repo_manifests", "start_prometheus", "start_serve", "prometheus_binaries"]
+
+Progress = Callable[[str], None]
+
+
+def _say(msg: str) -> None:
+    print(f"ratefit demo: {msg}", file=sys.stderr, flush=True)
+
+
+@dataclass(frozen=True)
+class DemoResult:
+    rows: tuple[Any, ...]  # review.ReviewRow
+    out: Path
+    review_markdown: Path
+    rate_source: str  # "prometheus" | "replay"
+    kubeconfig: Path
+    seconds: float
+    history_end: float
+
+
+class DemoError(RatefitError):
+    """A part of the demo could not be started; the message says which and why."""
+
+
+def repo_manifests() -> Path:
+    """The repository's ``manifests/`` (the CRD and the example policies)."""
+    here = Path(__file__).resolve().parent.parent / "manifests"
+    if not (here / "crd" / "sizingpolicy.yaml").is_file():
+        raise DemoError(
+            f"cannot find manifests/crd/sizingpolicy.yaml next to the package ({here}); "
+            "run the demo from a source checkout (pip install -e .)"
+        )
+    return here
+
+
+def prometheus_binaries() -> tuple[str, str] | None:
+    p, t = shutil.which("prometheus") or "/usr/bin/prometheus", shutil.which("promtool") or "/usr/bin/promtool"
+    return (p, t) if os.access(p, os.X_OK) and os.access(t, os.X_OK) else None
+
+
+def _free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def _stop(proc: subprocess.Popen[Any]) -> None:
+    """SIGTERM the process group, then SIGKILL after 10 s."""
+    if proc.poll() is not None:
+        return
+    with contextlib.suppress(ProcessLookupError):
+        os.killpg(proc.pid, signal.SIGTERM)
+    try:
+        proc.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        with contextlib.suppress(ProcessLookupError):
+            os.killpg(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=10)
+
+
+def _wait_http(url: str, proc: subprocess.Popen[Any], *, timeout: float, log: Path, what: str) -> None:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            raise DemoError(f"{what} exited with {proc.returncode}; log tail:\n{log.read_text()[-1500:]}")
+        try:
+            if httpx.get(url, timeout=1.0).status_code == 200:
+                return
+        except httpx.HTTPError:
+            pass
+        time.sleep(0.1)
+    raise DemoError(f"{what} was not ready at {url} after {timeout:.0f}s; log tail:\n{log.read_text()[-1500:]}")
+
+
+@contextlib.contextmanager
+def start_prometheus(openmetrics: Path, work: Path, *, timeout: float = 60.0) -> Iterator[str]:
+    """Backfill ``openmetrics`` into ``work/tsdb`` and serve it; yields the base URL."""
+    found = prometheus_binaries()
+    if found is None:
+        raise DemoError("prometheus/promtool not installed (Debian: apt-get install prometheus)")
+    prometheus, promtool = found
+    tsdb = work / "tsdb"
+    r = subprocess.run([promtool, "tsdb", "create-blocks-from", "openmetrics", str(openmetrics), str(tsdb)],
+                       capture_output=True, text=True, timeout=600)
+    if r.returncode != 0:
+        raise DemoError(f"promtool backfill failed ({r.returncode}): {r.stderr[-1500:]}")
+    config = work / "prometheus.yml"
+    config.write_text("# ratefit demo: no scrape targets; the history is backfilled\nglobal:\n  scrape_interval: 1m\nscrape_configs: []\n")
+    log = work / "prometheus.log"
+    port = _free_port()
+    with open(log, "w") as fh:
+        proc = subprocess.Popen(
+            [prometheus, f"--config.file={config}", f"--storage.tsdb.path={tsdb}",
+             f"--web.listen-address=127.0.0.1:{port}", "--storage.tsdb.retention.time=3650d", "--log.level=warn"],
+            stdout=fh, stderr=subprocess.STDOUT, start_new_session=True,
+        )
+    try:
+        url = f"http://127.0.0.1:{port}"
+        _wait_http(url + "/-/ready", proc, timeout=timeout, log=log, what="Prometheus")
+        yield url
+    finally:
+        _stop(proc)
+
+
+@contextlib.contextmanager
+def start_serve(store: Path, work: Path, *, timeout: float = 60.0) -> Iterator[str]:
+    """A ``ratefit serve`` subprocess over ``store`` on a free loopback port; yields its URL."""
+    port = _free_port()
+    log = work / "serve.log"
+    exe = Path(sys.executable).with_name("ratefit")
+    cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "ratefit.controller.cli"]
+    with open(log, "w") as fh:
+        proc = subprocess.Popen(cmd + ["serve", "--store", str(store), "--host", "127.0.0.1", "--port", str(port)],
+                                stdout=fh, stderr=subprocess.STDOUT, start_new_session=True)
+    try:
+        url = f"http://127.0.0.1:{port}"
+        _wait_http(url + "/readyz", proc, timeout=timeout, log=log, what="ratefit serve")
+        yield url
+    finally:
+        _stop(proc)
+
+
+def train_scenario(samples_dir: Path, store_dir: Path, reports_dir: Path, *, progress: Progress,
+                   csv_paths: dict[str, Path]) -> list[str]:
+    """Train every key of the scenario from its CSV; save artifacts and reports."""
+    from ratefit.models.report import write_report
+    from ratefit.models.samples import load_csv
+    from ratefit.models.store import ModelStore
+    from ratefit.models.train import train_key_detailed
+
+    store = ModelStore(store_dir)
+    keys = sorted(csv_paths)
+    for i, key in enumerate(keys, 1):
+        t0 = time.perf_counter()
+        res = train_key_detailed(load_csv(csv_paths[key]), key=key)
+        store.save(res.artifact)
+        try:
+            write_report(res.artifact, reports_dir, samples=res.samples)
+        except Exception as exc:  # a plot problem must not stop the demo
+            progress(f"  report for {key} not written: {exc}")
+        best = min(res.artifact.cv, key=lambda r: r.rmse)
+        progress(f"[{i}/{len(keys)}] trained {key}: chose {res.artifact.chosen} "
+                 f"(CV RMSE {best.rmse * 1000:.1f}m) in {time.perf_counter() - t0:.1f}s")
+    return keys
+
+
+def run_demo(
+    *,
+    out: Path,
+    keep: bool = False,
+    hours: float = 24.0,
+    step_s: float = 60.0,
+    use_prometheus: bool | None = None,
+    progress: Progress = _say,
+    wait: Callable[[], None] | None = None,
+) -> DemoResult:
+    """Run the whole demo (see the module docstring). ``use_prometheus`` None: when
+    installed. ``wait`` is called before stopping when ``keep`` (default: until Ctrl-C)."""
+    from ratefit.controller.kube import KubeAdapter
+    from ratefit.controller.metrics_source import PrometheusRateSource, RateTemplate, ReplayRateSource
+    from ratefit.controller.reconcile import PassOutcome, ReconcileConfig, Reconciler
+    from ratefit.controller.review import to_markdown
+    from ratefit.controller.sandbox import SandboxServer
+    from ratefit.controller.sizing_client import SizingClient
+    from ratefit.models.prometheus import PrometheusClient
+    from ratefit.models.scenario import write_csv, write_manifests, write_openmetrics
+    from ratefit.models.scenario.services import ORGANISATION, REQUEST_METRIC
+
+    t_start = time.monotonic()
+    out = Path(out).resolve()
+    out.mkdir(parents=True, exist_ok=True)
+    work = out / "run"
+    if work.exists():
+        shutil.rmtree(work)
+    work.mkdir()
+    manifests = repo_manifests()
+    progress(f"scenario: {ORGANISATION} — INVENTED data; output in {out}")
+    end = float(int(time.time() // step_s) * step_s - 5 * step_s)
+    info = write_openmetrics(work / "history.om", end=end, hours=hours, step_s=step_s, seed=0)
+    csv_paths = write_csv(out / "samples", seed=0, hours=hours, step_s=step_s, end=end)
+    progress(f"history: {info.series} series, {info.samples} samples over {hours:g}h at {step_s:g}s steps")
+    if use_prometheus is None:
+        use_prometheus = prometheus_binaries() is not None
+    with contextlib.ExitStack() as stack:
+        template = RateTemplate(metric=REQUEST_METRIC)
+        if use_prometheus:
+            progress("backfilling the history into a real Prometheus (promtool) …")
+            prom_url = stack.enter_context(start_prometheus(info.path, work))
+            prom = PrometheusClient(prom_url, timeout=30.0)
+            stack.callback(prom.close)
+            rates: Any = PrometheusRateSource(prom, at=info.end, template=template)
+            source = "prometheus"
+            progress(f"rates: the real Prometheus at {prom_url} (history backfilled with promtool)")
+        else:
+            rates = ReplayRateSource(info.path, at=info.end, template=template)
+            source = "replay"
+            progress(f"rates: replayed from {info.path} (prometheus/promtool not installed)")
+        progress(f"training {len(csv_paths)} models (k-fold CV over every candidate; ~5 s each) …")
+        train_scenario(out / "samples", work / "store", out / "reports", progress=progress, csv_paths=csv_paths)
+        api_url = stack.enter_context(start_serve(work / "store", work))
+        progress(f"sizing API: ratefit serve at {api_url}")
+        scenario_dir = work / "scenario-manifests"
+        write_manifests(scenario_dir)
+        sandbox = SandboxServer(host="127.0.0.1", port=0, load=(
+            manifests / "crd" / "sizingpolicy.yaml",
+            scenario_dir,
+            manifests / "examples",
+        )).start()
+        stack.callback(sandbox.stop)
+        kubeconfig = out / "kubeconfig"
+        sandbox.write_kubeconfig(kubeconfig)
+        progress(f"sandbox API server (a local stand-in, not a cluster) at {sandbox.url}; kubeconfig {kubeconfig}")
+        kube = KubeAdapter.from_kubeconfig(str(kubeconfig), identity="ratefit-demo")
+        stack.callback(kube.close)
+        sizing = SizingClient(api_url, timeout=30.0)
+        stack.callback(sizing.close)
+        rec = Reconciler(kube=kube, rates=rates, sizing=sizing,
+                         config=ReconcileConfig(dry_run=True, write=True, identity="ratefit-demo"))
+        progress("one reconcile pass in dry-run (status and Events written to the sandbox; nothing patched) …")
+        result = rec.run_pass()
+        if result.outcome is PassOutcome.FAILED:
+            raise DemoError(f"the reconcile pass failed: {'; '.join(result.errors)}")
+        for err in result.errors:
+            progress(f"warning: {err}")
+        md = out / "review.md"
+        md.write_text(
+            to_markdown(result.rows, title="ratefit review — Kestrel Post (INVENTED demo scenario)")
+            + f"\nRates from: {'the real Prometheus (backfilled history)' if source == 'prometheus' else 'a replay of the history file'}"
+            f", evaluated at the history's end ({time.strftime('%Y-%m-%d %H:%M:%SZ', time.gmtime(info.end))}).\n"
+            "Training reports: reports/*.md\n",
+            encoding="utf-8",
+        )
+        if keep:
+            progress(f"--keep: everything keeps running; try  kubectl --kubeconfig {kubeconfig} get sizingpolicies -A ; "
+                     "Ctrl-C stops it all")
+            try:
+                (wait or _wait_forever)()
+            except KeyboardInterrupt:
+                pass
+        progress("stopping everything the demo started …")
+    return DemoResult(rows=result.rows, out=out, review_markdown=md, rate_source=source, kubeconfig=kubeconfig,
+                      seconds=time.monotonic() - t_start, history_end=info.end)
+
+
+def _wait_forever() -> None:
+    while True:
+        time.sleep(3600)
