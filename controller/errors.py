@@ -8,6 +8,9 @@
         ├── KubeNotFound          404: the object (or the API group) does not exist
         ├── KubeForbidden         401 / 403: the service account lacks a permission (fix RBAC)
         └── KubeGone              410: a watch or list position expired (re-list)
+    └── SizingApiError            the sizing API did not give a usable answer (controller/sizing_client.py)
+        ├── SizingApiUnavailable  connection failure / timeout / 5xx after the retries (temporary)
+        └── SizingApiRejected     4xx: the request was refused (token, input, size); carries the message
 
 These are raised only by the Kubernetes adapter (``controller/kube*.py``), which
 translates the client's ``ApiException`` and urllib3 errors exactly once and chains
@@ -91,3 +94,28 @@ class KubeForbidden(KubeError):
 class KubeGone(KubeError):
     """410: the resourceVersion we asked for is too old. List again and restart from
     the list's resourceVersion."""
+
+
+class SizingApiError(RatefitError):
+    """The sizing API (``ratefit serve``) did not give a usable answer. Raised only by
+    ``controller/sizing_client.py``, which translates httpx errors once."""
+
+    temporary: bool = False
+
+    def __init__(self, message: str, *, status: int | None = None, url: str = "") -> None:
+        self.status = status
+        self.url = url
+        super().__init__(message)
+
+
+class SizingApiUnavailable(SizingApiError):
+    """The sizing API could not be reached, timed out or answered 5xx, on every try.
+    Temporary: the reconcile loop holds its decisions and tries again next pass."""
+
+    temporary = True
+
+
+class SizingApiRejected(SizingApiError):
+    """The sizing API refused the request with a 4xx (401: wrong or missing token — check
+    the token file both sides use; 422/413: the request itself is wrong). Retrying the
+    same request cannot help."""
