@@ -155,5 +155,8 @@ def fit_all_for_report(samples: Samples, *, seed: int = 0) -> dict[str, Any]:
     """Every candidate fitted on all the clean samples (default parameters), for the plot."""
     from ratefit.models.candidates import get_candidates
 
+    from threadpoolctl import threadpool_limits
+
     X = samples.rate.reshape(-1, 1)
-    return {c.name: c.build(seed).fit(X, samples.cpu) for c in get_candidates()}
+    with threadpool_limits(limits=1):
+        return {c.name: c.build(seed).fit(X, samples.cpu) for c in get_candidates()}
