@@ -1,14 +1,89 @@
-"""`ratefit sandbox` — placeholder until its issue lands (replace this module)."""
+"""`ratefit sandbox` — run the local stand-in Kubernetes API server until stopped."""
 
 from __future__ import annotations
 
 import argparse
+import signal
+import sys
+
+HELP = """\
+Serve a local STAND-IN for a Kubernetes API server on 127.0.0.1 (plain HTTP) and
+write a kubeconfig (context `ratefit-sandbox`) that kubectl and the official
+`kubernetes` Python client accept. It is a stand-in, not a cluster: there is no
+scheduler and no kubelet — pods become Running at once on `sandbox-node`, an in-place
+resize (pods/resize) is applied at once and shown in status.containerStatuses[].resources
+(PodResizePending/InProgress are not simulated), a Deployment/StatefulSet template change
+replaces all its pods at once. No authentication (any token is accepted), no RBAC, no
+admission webhooks, no CEL validation rules. State lives in memory and is lost on exit.
+
+Served: discovery; namespaces, pods (+status, +resize), events (v1 and events.k8s.io/v1),
+deployments, statefulsets, replicasets, horizontalpodautoscalers (autoscaling/v2),
+leases, customresourcedefinitions and the custom objects of each CRD (schema enforced,
+status subresource); get/list/watch/create/update/patch (strategic, merge, JSON
+patch)/delete, resourceVersion conflicts, dryRun=All, label and field selectors.
+
+Fault injection over HTTP (for tests driving a sandbox in another process):
+  curl -X POST $URL/_sandbox/faults -d '{"method":"PATCH","path":"/deployments/","status":503,"count":2}'
+  curl -X POST $URL/_sandbox/faults -d '{"path":"/pods","status":429,"retryAfter":1}'
+  curl -X DELETE $URL/_sandbox/faults
+Fields: method ("*"), path (regex searched in the URL path), status, count (null = until
+cleared), latency (seconds), retryAfter, conflict (409), dropWatch (cut watch streams).
+POST $URL/_sandbox/compact forgets the watch history (next watches from an old
+resourceVersion get 410 Gone).
+"""
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("sandbox", help="(not built yet)")
+    p = sub.add_parser(
+        "sandbox",
+        help="run a local stand-in Kubernetes API server (for tests and demos; not a cluster)",
+        description=HELP,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    p.add_argument("--port", type=int, default=0,
+                   help="TCP port on 127.0.0.1 (default: a free port, printed at start)")
+    p.add_argument("--host", default="127.0.0.1",
+                   help="address to bind (default 127.0.0.1; the sandbox has no authentication)")
+    p.add_argument("--kubeconfig", default="sandbox.kubeconfig", metavar="FILE",
+                   help="where to write the kubeconfig (default ./sandbox.kubeconfig); use it "
+                        "with `KUBECONFIG=FILE kubectl …`")
+    p.add_argument("--load", nargs="+", default=[], metavar="PATH",
+                   help="YAML/JSON manifests (files or directories, multi-document) to create "
+                        "at start; CRDs and namespaces first, missing namespaces are created")
+    p.add_argument("--history", type=int, default=1000,
+                   help="changes kept for watches; a watch from an older resourceVersion gets "
+                        "410 Gone (default 1000)")
+    p.add_argument("--bookmark-interval", type=float, default=5.0, metavar="SECONDS",
+                   help="how often watches with allowWatchBookmarks get a BOOKMARK (default 5)")
     p.set_defaults(handler=_run)
 
 
 def _run(args: argparse.Namespace) -> int:
-    raise SystemExit("ratefit sandbox: not built yet")
+    from ratefit.controller.sandbox.server import SandboxServer
+
+    if args.host not in ("127.0.0.1", "localhost", "::1"):
+        print("ratefit sandbox: warning: binding a non-loopback address; the sandbox accepts "
+              "any client without authentication", file=sys.stderr)
+    sb = SandboxServer(host=args.host, port=args.port, load=args.load, history=args.history,
+                       bookmark_interval=args.bookmark_interval)
+    print(f"ratefit sandbox: loading {len(args.load)} path(s)…", file=sys.stderr) \
+        if args.load else None
+    sb.start()
+    path = sb.write_kubeconfig(args.kubeconfig)
+    print(f"ratefit sandbox: serving {sb.url} (a stand-in, not a cluster)", file=sys.stderr)
+    print(f"ratefit sandbox: kubeconfig written to {path}  (context ratefit-sandbox)",
+          file=sys.stderr)
+    print(f"  KUBECONFIG={path} kubectl get pods -A", file=sys.stderr)
+    print(sb.url, flush=True)
+
+    def _stop(signum: int, frame: object) -> None:
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGTERM, _stop)
+    try:
+        sb.serve_forever()
+    except KeyboardInterrupt:
+        print("ratefit sandbox: stopped", file=sys.stderr)
+    finally:
+        sb.stop()
+    return 0

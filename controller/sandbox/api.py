@@ -1,0 +1,664 @@
+"""The Kubernetes REST semantics of the sandbox, independent of the HTTP layer.
+
+`Api.handle(request)` routes `/api/v1/…` and `/apis/<group>/<version>/…` paths to the
+verbs (get, list, watch, create, update, patch, delete, deletecollection) of the
+resource types in the store, with the subresources `status` (writes ignore the rest of
+the object; main-resource writes ignore status) and pods' `resize`. It implements
+resourceVersion preconditions (409 Conflict), `generation` (moves on spec changes
+only), `dryRun=All` (validate and answer, store nothing), the three patch types,
+validation (422 Invalid with `details.causes`), CRD schemas for custom objects, and
+watches fed from the store's change history.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import threading
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from typing import Any
+
+import yaml
+
+from ratefit.controller.sandbox import errors as E
+from ratefit.controller.sandbox import objects, schema, validation
+from ratefit.controller.sandbox.patches import PatchError, json_patch, merge_patch, strategic_merge
+from ratefit.controller.sandbox.resources import ResourceType, from_crd
+from ratefit.controller.sandbox.selectors import parse_field_selector, parse_label_selector
+from ratefit.controller.sandbox.store import Store
+from ratefit.controller.sandbox.tables import to_table
+from ratefit.controller.sandbox.workloads import Workloads, container_statuses, prepare_pod
+
+JSON_PATCH = "application/json-patch+json"
+MERGE_PATCH = "application/merge-patch+json"
+STRATEGIC_PATCH = "application/strategic-merge-patch+json"
+APPLY_PATCH = "application/apply-patch+yaml"
+
+CRDS = ("apiextensions.k8s.io", "customresourcedefinitions")
+PODS = ("", "pods")
+NAMESPACES = ("", "namespaces")
+_WORKLOADS = {("apps", "deployments"): "Deployment", ("apps", "statefulsets"): "StatefulSet",
+              ("apps", "replicasets"): "ReplicaSet"}
+_GENERATION = {("apps", "deployments"), ("apps", "statefulsets"), ("apps", "replicasets"),
+               ("", "pods"), ("autoscaling", "horizontalpodautoscalers"), CRDS}
+
+
+@dataclass
+class Request:
+    method: str
+    path: str
+    query: dict[str, list[str]] = field(default_factory=dict)
+    headers: dict[str, str] = field(default_factory=dict)
+    body: bytes = b""
+
+    def q(self, name: str, default: str | None = None) -> str | None:
+        values = self.query.get(name)
+        return values[-1] if values else default
+
+    def flag(self, name: str) -> bool:
+        return (self.q(name) or "").lower() in ("true", "1")
+
+
+@dataclass
+class Response:
+    code: int
+    body: Any = None
+    headers: dict[str, str] = field(default_factory=dict)
+    stream: Iterator[dict] | None = None
+
+
+@dataclass(frozen=True)
+class Route:
+    rtype: ResourceType
+    namespace: str | None
+    name: str | None
+    sub: str | None
+
+
+def _not_found_path() -> E.ApiError:
+    return E.ApiError(404, "NotFound", "the server could not find the requested resource",
+                      {})
+
+
+class Api:
+    """REST verbs over a `Store`; controllers (`Workloads`) run after each write."""
+
+    def __init__(self, store: Store, *, bookmark_interval: float = 1.0,
+                 stopping: threading.Event | None = None) -> None:
+        self.store = store
+        self.workloads = Workloads(store)
+        self.bookmark_interval = bookmark_interval
+        self.stopping = stopping or threading.Event()
+
+    # --- routing ------------------------------------------------------------------------
+    def route(self, path: str) -> Route:
+        parts = [p for p in path.split("/") if p]
+        if parts[:2] == ["api", "v1"]:
+            group, version, rest = "", "v1", parts[2:]
+        elif parts[:1] == ["apis"] and len(parts) >= 3:
+            group, version, rest = parts[1], parts[2], parts[3:]
+        else:
+            raise _not_found_path()
+        if not rest:
+            raise _not_found_path()
+        ns: str | None = None
+        if rest[0] == "namespaces" and len(rest) >= 3 and not (
+                len(rest) == 3 and rest[2] in ("status", "finalize")):
+            ns, rest = rest[1], rest[2:]
+        plural = rest[0]
+        name = rest[1] if len(rest) > 1 else None
+        sub = rest[2] if len(rest) > 2 else None
+        if len(rest) > 3:
+            raise _not_found_path()
+        rtype = self.store.find_type(group, version, plural)
+        if rtype is None:
+            raise _not_found_path()
+        if ns is not None and not rtype.namespaced:
+            raise _not_found_path()
+        if rtype.namespaced and ns is None and name is not None:
+            raise _not_found_path()
+        if sub is not None and sub not in rtype.subresources:
+            raise _not_found_path()
+        return Route(rtype, ns, name, sub)
+
+    def handle(self, req: Request) -> Response:
+        try:
+            r = self.route(req.path)
+            m = req.method
+            table = "as=Table" in req.headers.get("accept", "").replace(" ", "")
+            if m == "GET" and r.name is None:
+                if req.flag("watch"):
+                    return self.watch(r, req)
+                out = self.list(r, req)
+                return Response(200, to_table(r.rtype, out["items"], out["metadata"])
+                                if table else out)
+            if m == "GET":
+                obj = self.get(r)
+                return Response(200, to_table(r.rtype, [obj], {"resourceVersion":
+                                obj["metadata"].get("resourceVersion", "")}) if table else obj)
+            if m == "POST" and r.name is None and r.sub is None:
+                return Response(201, self.create(r, req))
+            if m == "PUT" and r.name is not None:
+                return Response(200, self.update(r, req))
+            if m == "PATCH" and r.name is not None:
+                return Response(200, self.patch(r, req))
+            if m == "DELETE" and r.name is not None and r.sub is None:
+                return Response(200, self.delete(r, req))
+            if m == "DELETE" and r.name is None:
+                return Response(200, self.delete_collection(r, req))
+            raise E.method_not_allowed(m, req.path)
+        except E.ApiError as exc:
+            return Response(exc.code, exc.status(), dict(exc.headers))
+
+    # --- helpers ------------------------------------------------------------------------
+    def _shape(self, rt: ResourceType, obj: dict) -> dict:
+        obj["apiVersion"] = rt.group_version
+        obj["kind"] = rt.kind
+        return obj
+
+    def _load_body(self, req: Request) -> Any:
+        ctype = req.headers.get("content-type", "application/json").split(";")[0].strip()
+        try:
+            if "yaml" in ctype:
+                return yaml.safe_load(req.body.decode() or "null")
+            return json.loads(req.body.decode() or "null")
+        except (ValueError, yaml.YAMLError) as exc:
+            raise E.bad_request(f"the request body is not valid JSON: {exc}") from exc
+
+    def _dry_run(self, req: Request) -> bool:
+        values = req.query.get("dryRun") or []
+        for v in values:
+            if v != "All":
+                raise E.bad_request(f'dryRun: Unsupported value: "{v}": supported values: "All"')
+        return bool(values)
+
+    def _lookup(self, r: Route) -> dict:
+        obj = self.store.raw(r.rtype.key, r.namespace or "", r.name or "")
+        if obj is None:
+            raise E.not_found(r.rtype.plural, r.rtype.group, r.name or "")
+        return copy.deepcopy(obj)
+
+    def get(self, r: Route) -> dict:
+        return self._shape(r.rtype, self._lookup(r))
+
+    def list(self, r: Route, req: Request) -> dict:
+        labels = parse_label_selector(req.q("labelSelector"))
+        fields = parse_field_selector(req.q("fieldSelector"))
+        with self.store.lock:
+            items = [self._shape(r.rtype, o) for o in self.store.list(*r.rtype.key, r.namespace)
+                     if labels(o["metadata"].get("labels") or {}) and fields(o)]
+            rv = str(self.store.resource_version)
+        return {"kind": f"{r.rtype.kind}List", "apiVersion": r.rtype.group_version,
+                "metadata": {"resourceVersion": rv}, "items": items}
+
+    # --- create -------------------------------------------------------------------------
+    def create(self, r: Route, req: Request) -> dict:
+        body = self._load_body(req)
+        if not isinstance(body, dict):
+            raise E.bad_request("the request body must be a JSON object")
+        self._check_type(r.rtype, body)
+        md = body.setdefault("metadata", {})
+        if not isinstance(md, dict):
+            raise E.bad_request("metadata must be an object")
+        if r.namespace is not None:
+            if md.get("namespace") not in (None, "", r.namespace):
+                raise E.bad_request("the namespace of the provided object does not match the "
+                                    "namespace sent on the request")
+            md["namespace"] = r.namespace
+        else:
+            md.pop("namespace", None)
+        if not md.get("name") and md.get("generateName"):
+            md["name"] = f"{md['generateName']}{objects.rand_suffix()}"
+        dry = self._dry_run(req)
+        with self.store.lock:
+            if r.namespace is not None and self.store.raw(NAMESPACES, "", r.namespace) is None:
+                raise E.not_found("namespaces", "", r.namespace)
+            name = md.get("name") or ""
+            if name and self.store.raw(r.rtype.key, r.namespace or "", name) is not None:
+                raise E.already_exists(r.rtype.plural, r.rtype.group, name)
+            for k in ("resourceVersion", "deletionTimestamp", "deletionGracePeriodSeconds"):
+                md.pop(k, None)
+            md["uid"] = objects.new_uid()
+            md["creationTimestamp"] = objects.now()
+            if r.rtype.key in _GENERATION or r.rtype.custom:
+                md["generation"] = 1
+            if r.rtype.has_status and r.rtype.key != PODS:
+                body.pop("status", None)
+            obj = self._admit(r.rtype, body, None, req)
+            if dry:
+                obj["metadata"].pop("resourceVersion", None)
+                return self._shape(r.rtype, obj)
+            saved = self.store.save(r.rtype.key, obj, None)
+            self._after_write(r.rtype, saved)
+            return self._shape(r.rtype, saved)
+
+    def _check_type(self, rt: ResourceType, body: dict) -> None:
+        av, kind = body.get("apiVersion"), body.get("kind")
+        if av and av != rt.group_version:
+            if rt.group or av.split("/")[0] != rt.version:
+                raise E.bad_request(f"the API version in the data ({av}) does not match the "
+                                    f"expected API version ({rt.group_version})")
+        if kind and kind != rt.kind:
+            raise E.bad_request(f"the kind in the data ({kind}) does not match the expected "
+                                f"kind ({rt.kind})")
+        body["apiVersion"], body["kind"] = rt.group_version, rt.kind
+
+    # --- admission: defaulting, canonical form, validation ------------------------------
+    def _admit(self, rt: ResourceType, obj: dict, old: dict | None, req: Request) -> dict:
+        md = obj["metadata"]
+        key = rt.key
+        name = md.get("name") or ""
+        errs: list[E.FieldError] = []
+        errs += validation.name_errors(name, label=key == NAMESPACES)
+        if rt.custom:
+            errs += self._admit_custom(rt, obj, req)
+        elif key == PODS:
+            try:
+                validation.canonicalize_pod_spec(obj.get("spec"))
+            except validation.QuantityDecodeError as exc:
+                raise validation.bad_quantity(rt.kind, rt.version, exc) from exc
+            errs += validation.pod_spec_errors(obj.get("spec"), "spec")
+            if old is None and not errs:
+                prepare_pod(obj)
+            elif old is not None:
+                errs += validation.pod_update_errors(obj, old)
+        elif key in _WORKLOADS:
+            kind = _WORKLOADS[key]
+            try:
+                validation.canonicalize_pod_spec(((obj.get("spec") or {}).get("template")
+                                                  or {}).get("spec"))
+            except validation.QuantityDecodeError as exc:
+                raise validation.bad_quantity(rt.kind, rt.version, exc) from exc
+            validation.default_workload(kind, obj)
+            errs += validation.workload_errors(kind, obj, old)
+        elif key == CRDS:
+            errs += self._crd_errors(obj)
+        elif key == ("events.k8s.io", "events") and old is None:
+            for f in ("eventTime", "reportingController", "reportingInstance", "action",
+                      "reason"):
+                if not obj.get(f):
+                    errs.append(E.FieldError(f, E.REQUIRED))
+            if obj.get("type") not in ("Normal", "Warning"):
+                errs.append(E.FieldError("type", E.UNSUPPORTED, obj.get("type", ""),
+                                         'supported values: "Normal", "Warning"'))
+        elif key == ("autoscaling", "horizontalpodautoscalers"):
+            spec = obj.get("spec") or {}
+            if not spec.get("scaleTargetRef"):
+                errs.append(E.FieldError("spec.scaleTargetRef", E.REQUIRED))
+            if not isinstance(spec.get("maxReplicas"), int) or spec["maxReplicas"] < 1:
+                errs.append(E.FieldError("spec.maxReplicas", E.INVALID, spec.get("maxReplicas"),
+                                         "must be greater than or equal to 1"))
+        if errs:
+            raise E.invalid(rt.kind, rt.group, name, errs)
+        if old is not None and (key in _GENERATION or rt.custom):
+            sep_status = rt.has_status
+            if objects.body_of(obj, status=not sep_status) != \
+                    objects.body_of(old, status=not sep_status):
+                md["generation"] = old["metadata"].get("generation", 1) + 1
+            else:
+                md["generation"] = old["metadata"].get("generation", 1)
+        return obj
+
+    def _admit_custom(self, rt: ResourceType, obj: dict, req: Request) -> list[E.FieldError]:
+        sch = rt.schema or {}
+        schema.apply_defaults(sch, obj)
+        dropped = schema.prune(sch, obj, root=True)
+        if dropped and (req.q("fieldValidation") or "").lower() == "strict":
+            raise E.bad_request("strict decoding error: " + ", ".join(
+                f'unknown field "{d}"' for d in dropped))
+        return schema.validate({k: v for k, v in sch.items()}, obj)
+
+    def _crd_errors(self, crd: dict) -> list[E.FieldError]:
+        spec = crd.get("spec") or {}
+        names = spec.get("names") or {}
+        errs = []
+        for f in ("group", "scope"):
+            if not spec.get(f):
+                errs.append(E.FieldError(f"spec.{f}", E.REQUIRED))
+        for f in ("plural", "kind"):
+            if not names.get(f):
+                errs.append(E.FieldError(f"spec.names.{f}", E.REQUIRED))
+        if spec.get("scope") not in (None, "Namespaced", "Cluster"):
+            errs.append(E.FieldError("spec.scope", E.UNSUPPORTED, spec["scope"],
+                                     'supported values: "Cluster", "Namespaced"'))
+        if names.get("plural") and spec.get("group") and \
+                crd["metadata"].get("name") != f"{names['plural']}.{spec['group']}":
+            errs.append(E.FieldError("metadata.name", E.INVALID, crd["metadata"].get("name"),
+                                     'must be spec.names.plural+"."+spec.group'))
+        versions = spec.get("versions") or []
+        if not versions:
+            errs.append(E.FieldError("spec.versions", E.INVALID, [],
+                                     "must have exactly one version marked as storage version"))
+        elif sum(1 for v in versions if v.get("storage")) != 1:
+            errs.append(E.FieldError("spec.versions", E.INVALID, versions,
+                                     "must have exactly one version marked as storage version"))
+        for i, v in enumerate(versions):
+            if not (v.get("schema") or {}).get("openAPIV3Schema"):
+                errs.append(E.FieldError(f"spec.versions[{i}].schema.openAPIV3Schema",
+                                         E.REQUIRED, detail="schemas are required"))
+        return errs
+
+    def _crd_status(self, crd: dict) -> None:
+        t = objects.now()
+        names = (crd.get("spec") or {}).get("names") or {}
+        accepted = dict(names)
+        accepted.setdefault("singular", names.get("kind", "").lower())
+        accepted.setdefault("listKind", f"{names.get('kind', '')}List")
+        crd["spec"]["names"] = accepted
+        crd["status"] = {
+            "acceptedNames": accepted,
+            "conditions": [
+                {"type": "NamesAccepted", "status": "True", "lastTransitionTime": t,
+                 "reason": "NoConflicts", "message": "no conflicts found"},
+                {"type": "Established", "status": "True", "lastTransitionTime": t,
+                 "reason": "InitialNamesAccepted", "message": "the initial names have been "
+                 "accepted"},
+            ],
+            "storedVersions": [v["name"] for v in crd["spec"].get("versions") or []
+                               if v.get("storage")],
+        }
+
+    def _after_write(self, rt: ResourceType, saved: dict) -> None:
+        if rt.key == CRDS:
+            spec = saved["spec"]
+            self.store.unregister_group_plural(spec["group"], spec["names"]["plural"])
+            for t in from_crd(saved):
+                self.store.register(t)
+            if not saved.get("status", {}).get("acceptedNames"):
+                new = copy.deepcopy(saved)
+                self._crd_status(new)
+                self.store.save(CRDS, new, saved)
+        elif rt.key in _WORKLOADS:
+            self.workloads.after_write(rt.key, saved)
+
+    # --- update / patch -----------------------------------------------------------------
+    def update(self, r: Route, req: Request) -> dict:
+        body = self._load_body(req)
+        if not isinstance(body, dict):
+            raise E.bad_request("the request body must be a JSON object")
+        with self.store.lock:
+            old = self._lookup(r)
+            return self._write(r, req, old, body)
+
+    def patch(self, r: Route, req: Request) -> dict:
+        ctype = req.headers.get("content-type", "").split(";")[0].strip().lower()
+        accepted = [JSON_PATCH, MERGE_PATCH, APPLY_PATCH]
+        if not r.rtype.custom:
+            accepted.insert(2, STRATEGIC_PATCH)
+        if ctype not in accepted or ctype == APPLY_PATCH:
+            raise E.unsupported_media(ctype, accepted)
+        patch = self._load_body(req)
+        with self.store.lock:
+            old = self._lookup(r)
+            old = self._shape(r.rtype, old)
+            try:
+                if ctype == JSON_PATCH:
+                    new = json_patch(old, patch)
+                elif ctype == MERGE_PATCH:
+                    if not isinstance(patch, dict):
+                        raise PatchError("a merge patch must be a JSON object", malformed=True)
+                    new = merge_patch(old, patch)
+                else:
+                    new = strategic_merge(old, patch)
+            except PatchError as exc:
+                if exc.malformed:
+                    raise E.bad_request(str(exc)) from exc
+                raise E.ApiError(422, "Invalid", str(exc)) from exc
+            if not isinstance(new, dict):
+                raise E.bad_request("the patch did not result in an object")
+            new.setdefault("metadata", {})
+            return self._write(r, req, old, new)
+
+    def _write(self, r: Route, req: Request, old: dict, body: dict) -> dict:
+        rt = r.rtype
+        md = body.get("metadata")
+        if not isinstance(md, dict):
+            raise E.bad_request("metadata must be an object")
+        if md.get("name") not in (None, r.name):
+            raise E.bad_request(f"the name of the object ({md.get('name')}) does not match the "
+                                f"name on the URL ({r.name})")
+        want_rv = md.get("resourceVersion")
+        if want_rv and want_rv != old["metadata"]["resourceVersion"]:
+            raise E.conflict(rt.plural, rt.group, r.name or "")
+        self._check_type(rt, body)
+        if r.sub == "status":
+            new = copy.deepcopy(old)
+            if "status" in body:
+                new["status"] = body["status"]
+            else:
+                new.pop("status", None)
+        elif r.sub == "resize":
+            new = self._resize(rt, old, body)
+        else:
+            new = body
+            if rt.has_status and rt.key != NAMESPACES:
+                if "status" in old:
+                    new["status"] = old["status"]
+                else:
+                    new.pop("status", None)
+            for k in ("uid", "creationTimestamp", "namespace", "name", "generation",
+                      "deletionTimestamp"):
+                if k in old["metadata"]:
+                    new["metadata"][k] = old["metadata"][k]
+                else:
+                    new["metadata"].pop(k, None)
+        new["metadata"]["resourceVersion"] = old["metadata"]["resourceVersion"]
+        dry = self._dry_run(req)
+        if r.sub == "resize":
+            admitted = new
+        elif r.sub == "status" and not rt.custom:
+            admitted = new
+        else:
+            admitted = self._admit(rt, new, old, req)
+        if admitted == old or dry:
+            return self._shape(rt, admitted)
+        saved = self.store.save(rt.key, admitted, old)
+        if r.sub is None:
+            self._after_write(rt, saved)
+        return self._shape(rt, self.store.get(*rt.key, r.namespace, r.name or "") or saved)
+
+    # --- pods/resize --------------------------------------------------------------------
+    def _resize(self, rt: ResourceType, old: dict, body: dict) -> dict:
+        """Apply only containers' resources (CPU and memory) from `body`, at once."""
+        new = copy.deepcopy(old)
+        errs: list[E.FieldError] = []
+        wanted = {c.get("name"): c for c in (body.get("spec") or {}).get("containers") or []
+                  if isinstance(c, dict)}
+        try:
+            for c in wanted.values():
+                validation.canonicalize_resources(c.get("resources"))
+        except validation.QuantityDecodeError as exc:
+            raise validation.bad_quantity("Pod", "v1", exc) from exc
+        restarts: set[str] = set()
+        for i, c in enumerate(new["spec"].get("containers") or []):
+            if c.get("name") not in wanted:
+                continue
+            want = wanted[c["name"]].get("resources") or {}
+            have = c.get("resources") or {}
+            path = f"spec.containers[{i}].resources"
+            for part in ("requests", "limits"):
+                before, after = have.get(part) or {}, want.get(part) or {}
+                for res in set(before) | set(after):
+                    if res not in ("cpu", "memory") and before.get(res) != after.get(res):
+                        errs.append(E.FieldError(f"{path}.{part}[{res}]", E.FORBIDDEN,
+                                                 detail="only cpu and memory resources are "
+                                                 "mutable"))
+                    elif res in before and res not in after:
+                        errs.append(E.FieldError(f"{path}.{part}[{res}]", E.FORBIDDEN,
+                                                 detail="resource removal is not supported"))
+                    elif before.get(res) != after.get(res):
+                        for pol in c.get("resizePolicy") or []:
+                            if pol.get("resourceName") == res and \
+                                    pol.get("restartPolicy") == "RestartContainer":
+                                restarts.add(c["name"])
+            c["resources"] = {k: v for k, v in want.items() if k in ("requests", "limits", "claims")}
+            errs += validation.resource_errors(c["resources"], path)
+        if not errs and validation.qos_class(new["spec"]) != validation.qos_class(old["spec"]):
+            errs.append(E.FieldError("spec", E.FORBIDDEN,
+                                     detail="Pod QOS Class may not change as a result of resizing"))
+        if errs:
+            raise E.invalid("Pod", "", old["metadata"]["name"], errs)
+        if new["spec"] != old["spec"]:
+            gen = old["metadata"].get("generation", 1) + 1
+            new["metadata"]["generation"] = gen
+            status = new.setdefault("status", {})
+            statuses = container_statuses(new, status.get("containerStatuses"))
+            for s in statuses:
+                if s["name"] in restarts:
+                    s["restartCount"] = s.get("restartCount", 0) + 1
+                    s["lastState"] = {"terminated": {"exitCode": 0, "reason": "Resized",
+                                                     "finishedAt": objects.now()}}
+                    s["state"] = {"running": {"startedAt": objects.now()}}
+            status["containerStatuses"] = statuses
+            status["observedGeneration"] = gen
+        return new
+
+    # --- delete -------------------------------------------------------------------------
+    def delete(self, r: Route, req: Request) -> dict:
+        dry = self._dry_run(req)
+        precond = {}
+        if req.body:
+            opts = self._load_body(req) or {}
+            precond = (opts.get("preconditions") or {}) if isinstance(opts, dict) else {}
+        with self.store.lock:
+            obj = self._lookup(r)
+            if precond.get("resourceVersion") and \
+                    precond["resourceVersion"] != obj["metadata"]["resourceVersion"]:
+                raise E.conflict(r.rtype.plural, r.rtype.group, r.name or "",
+                                 f"the ResourceVersion in the precondition "
+                                 f"({precond['resourceVersion']}) does not match the "
+                                 f"ResourceVersion in record "
+                                 f"({obj['metadata']['resourceVersion']}). The object might "
+                                 f"have been modified")
+            if precond.get("uid") and precond["uid"] != obj["metadata"].get("uid"):
+                raise E.conflict(r.rtype.plural, r.rtype.group, r.name or "",
+                                 "the UID in the precondition does not match the UID in record")
+            if not dry:
+                self._delete_one(r.rtype, r.namespace or "", r.name or "")
+        if r.rtype.key == PODS or r.rtype.custom:
+            return self._shape(r.rtype, obj)
+        return {"kind": "Status", "apiVersion": "v1", "metadata": {}, "status": "Success",
+                "details": {"name": r.name, "group": r.rtype.group, "kind": r.rtype.plural,
+                            "uid": obj["metadata"].get("uid")}}
+
+    def _delete_one(self, rt: ResourceType, ns: str, name: str) -> None:
+        if rt.key == NAMESPACES:
+            for key, items in list(self.store._objects.items()):
+                for (ons, oname) in list(items):
+                    if ons == name:
+                        self.workloads.delete_tree(key, ons, oname)
+        gone = self.workloads.delete_tree(rt.key, ns, name)
+        if gone is None:
+            return
+        if rt.key == CRDS:
+            spec = gone["spec"]
+            group, plural = spec["group"], spec["names"]["plural"]
+            for (ons, oname) in list(self.store._objects.get((group, plural), {})):
+                self.store.remove((group, plural), ons, oname)
+            self.store.unregister_group_plural(group, plural)
+        elif rt.key == PODS:
+            self.workloads.after_pod_delete(gone)
+
+    def delete_collection(self, r: Route, req: Request) -> dict:
+        dry = self._dry_run(req)
+        labels = parse_label_selector(req.q("labelSelector"))
+        fields = parse_field_selector(req.q("fieldSelector"))
+        with self.store.lock:
+            items = [o for o in self.store.list(*r.rtype.key, r.namespace)
+                     if labels(o["metadata"].get("labels") or {}) and fields(o)]
+            if not dry:
+                for o in items:
+                    self._delete_one(r.rtype, o["metadata"].get("namespace", ""),
+                                     o["metadata"]["name"])
+            rv = str(self.store.resource_version)
+        return {"kind": f"{r.rtype.kind}List", "apiVersion": r.rtype.group_version,
+                "metadata": {"resourceVersion": rv},
+                "items": [self._shape(r.rtype, o) for o in items]}
+
+    # --- watch --------------------------------------------------------------------------
+    def watch(self, r: Route, req: Request) -> Response:
+        labels = parse_label_selector(req.q("labelSelector"))
+        fields = parse_field_selector(req.q("fieldSelector"))
+        rt, ns = r.rtype, r.namespace
+        try:
+            timeout = float(req.q("timeoutSeconds") or 1800)
+        except ValueError as exc:
+            raise E.bad_request("timeoutSeconds must be a number") from exc
+        bookmarks = req.flag("allowWatchBookmarks")
+        rv_text = req.q("resourceVersion") or ""
+        try:
+            start = int(rv_text) if rv_text not in ("", "0") else None
+        except ValueError as exc:
+            raise E.bad_request(f"invalid resource version: {rv_text!r}") from exc
+
+        def matches(obj: dict | None) -> bool:
+            if obj is None:
+                return False
+            md = obj.get("metadata", {})
+            if ns is not None and md.get("namespace", "") != ns:
+                return False
+            return labels(md.get("labels") or {}) and fields(obj)
+
+        def event(kind: str, obj: dict) -> dict:
+            return {"type": kind, "object": self._shape(rt, copy.deepcopy(obj))}
+
+        def gen() -> Iterator[dict]:
+            with self.store.lock:
+                if start is None:
+                    last = self.store.resource_version
+                    initial = [event("ADDED", o) for o in self.store.list(*rt.key, ns)
+                               if matches(o)]
+                else:
+                    last = start
+                    initial = []
+                    if start < self.store.compacted:
+                        initial = None
+            if initial is None:
+                yield {"type": "ERROR",
+                       "object": E.expired(start or 0, self.store.compacted + 1).status()}
+                return
+            yield from initial
+            deadline = time.monotonic() + timeout
+            next_bookmark = time.monotonic() + self.bookmark_interval
+            while not self.stopping.is_set():
+                now = time.monotonic()
+                if now >= deadline:
+                    return
+                wait = min(deadline, next_bookmark if bookmarks else deadline) - now
+                with self.store.changed:
+                    if self.store.resource_version <= last and not self.store.closed:
+                        self.store.changed.wait(timeout=max(0.0, min(wait, 0.5)))
+                    changes = self.store.changes_after(last)
+                    head = self.store.resource_version
+                if self.store.closed or self.stopping.is_set():
+                    return
+                if changes is None:
+                    yield {"type": "ERROR",
+                           "object": E.expired(last, self.store.compacted + 1).status()}
+                    return
+                for c in changes:
+                    last = c.rv
+                    if c.key != rt.key:
+                        continue
+                    new_ok, old_ok = matches(c.obj), matches(c.old)
+                    if c.type == "MODIFIED":
+                        if new_ok and old_ok:
+                            yield event("MODIFIED", c.obj)
+                        elif new_ok:
+                            yield event("ADDED", c.obj)
+                        elif old_ok:
+                            yield event("DELETED", c.obj)
+                    elif new_ok:
+                        yield event(c.type, c.obj)
+                if not changes:
+                    last = max(last, head) if head > last else last
+                if bookmarks and time.monotonic() >= next_bookmark:
+                    next_bookmark = time.monotonic() + self.bookmark_interval
+                    yield {"type": "BOOKMARK", "object": {
+                        "kind": rt.kind, "apiVersion": rt.group_version,
+                        "metadata": {"resourceVersion": str(max(last, head))}}}
+                    last = max(last, head)
+
+        return Response(200, None, {}, gen())

@@ -1,0 +1,354 @@
+"""The sandbox's built-in stand-ins for the workload controllers and the kubelet.
+
+- Deployments: a template change makes a new ReplicaSet `<name>-<hash>` (label
+  `pod-template-hash`), scales the old ones to zero and replaces their pods at once
+  (no surge, no waiting); pods are named `<name>-<hash>-<rand5>`.
+- StatefulSets: pods `<name>-<ordinal>` with `controller-revision-hash`; on a template
+  change, pods of the old revision are replaced highest ordinal first (all in one go).
+- Pods: no scheduler, no kubelet — a pod is `Running` and Ready the moment it is stored,
+  on node `sandbox-node`; `status.containerStatuses[].resources` mirrors the spec's
+  resources (in-place resizes are applied at once).
+- Workload status counters (replicas, updatedReplicas, readyReplicas,
+  availableReplicas, observedGeneration, conditions) are written after every sync.
+- Deleting an owner deletes what it owns (ownerReferences, background cascade).
+"""
+
+from __future__ import annotations
+
+import copy
+from typing import Any
+
+from ratefit.controller.sandbox import objects
+from ratefit.controller.sandbox.store import Store
+from ratefit.controller.sandbox.validation import (
+    canonicalize_pod_spec,
+    default_pod_requests,
+    default_pod_spec,
+    qos_class,
+)
+
+PODS = ("", "pods")
+RS = ("apps", "replicasets")
+DEPLOY = ("apps", "deployments")
+STS = ("apps", "statefulsets")
+NODE = "sandbox-node"
+
+
+def _owned_by(obj: dict, uid: str) -> bool:
+    return any(r.get("uid") == uid for r in obj.get("metadata", {}).get("ownerReferences") or [])
+
+
+def container_statuses(pod: dict, previous: list[dict] | None = None) -> list[dict]:
+    """What a kubelet would report: every container running with its spec's resources."""
+    prev = {c.get("name"): c for c in previous or []}
+    out = []
+    for c in (pod.get("spec") or {}).get("containers") or []:
+        res = copy.deepcopy(c.get("resources") or {})
+        old = prev.get(c.get("name"), {})
+        status = {
+            "name": c.get("name"),
+            "image": c.get("image"),
+            "imageID": "",
+            "containerID": old.get("containerID")
+            or f"sandbox://{objects.rand_suffix(12)}",
+            "ready": True,
+            "started": True,
+            "restartCount": old.get("restartCount", 0),
+            "state": old.get("state") or {"running": {"startedAt": objects.now()}},
+            "lastState": old.get("lastState", {}),
+            "resources": {k: v for k, v in res.items() if k in ("requests", "limits")},
+        }
+        if res.get("requests"):
+            status["allocatedResources"] = dict(res["requests"])
+        out.append(status)
+    return out
+
+
+def running_status(pod: dict) -> dict:
+    t = objects.now()
+    conds = [{"type": ty, "status": "True", "lastProbeTime": None, "lastTransitionTime": t}
+             for ty in ("PodReadyToStartContainers", "Initialized", "Ready", "ContainersReady",
+                        "PodScheduled")]
+    ip = "10.244.%d.%d" % (hash(pod["metadata"]["name"]) % 250 + 1,
+                           hash(pod["metadata"].get("namespace", "")) % 250 + 1)
+    return {
+        "phase": "Running",
+        "conditions": conds,
+        "hostIP": "10.0.0.1",
+        "hostIPs": [{"ip": "10.0.0.1"}],
+        "podIP": ip,
+        "podIPs": [{"ip": ip}],
+        "startTime": t,
+        "qosClass": qos_class(pod.get("spec") or {}),
+        "containerStatuses": container_statuses(pod),
+        "observedGeneration": pod["metadata"].get("generation", 1),
+    }
+
+
+def prepare_pod(pod: dict) -> None:
+    """Defaulting a new pod gets and the status the (absent) kubelet would report."""
+    spec = pod.setdefault("spec", {})
+    default_pod_spec(spec)
+    default_pod_requests(spec)
+    spec.setdefault("nodeName", NODE)
+    spec.setdefault("enableServiceLinks", True)
+    spec.setdefault("priority", 0)
+    pod["status"] = running_status(pod)
+
+
+class Workloads:
+    """Runs the built-in rollout after writes to Deployments, StatefulSets and pods."""
+
+    def __init__(self, store: Store) -> None:
+        self.store = store
+
+    # --- helpers ------------------------------------------------------------------------
+    def _create(self, key: tuple[str, str], obj: dict) -> dict:
+        md = obj["metadata"]
+        md.setdefault("uid", objects.new_uid())
+        md.setdefault("creationTimestamp", objects.now())
+        md.setdefault("generation", 1)
+        return self.store.save(key, obj, None)
+
+    def _update(self, key: tuple[str, str], obj: dict, old: dict) -> dict:
+        if obj == old:
+            return obj
+        return self.store.save(key, obj, old)
+
+    def delete_tree(self, key: tuple[str, str], namespace: str, name: str) -> dict | None:
+        """Delete an object and, depth first, everything it owns."""
+        gone = self.store.remove(key, namespace, name)
+        if gone is None:
+            return None
+        uid = gone["metadata"].get("uid")
+        if uid:
+            for okey, items in list(self.store._objects.items()):
+                for (ns, oname), obj in list(items.items()):
+                    if _owned_by(obj, uid):
+                        self.delete_tree(okey, ns, oname)
+        return gone
+
+    def _new_pod(self, template: dict, *, namespace: str, name: str, labels: dict,
+                 owner: dict) -> dict:
+        tmeta = template.get("metadata") or {}
+        pod = {
+            "apiVersion": "v1",
+            "kind": "Pod",
+            "metadata": {
+                "name": name,
+                "namespace": namespace,
+                "labels": labels,
+                "ownerReferences": [objects.owner_ref(owner)],
+            },
+            "spec": copy.deepcopy(template.get("spec") or {}),
+        }
+        if tmeta.get("annotations"):
+            pod["metadata"]["annotations"] = dict(tmeta["annotations"])
+        canonicalize_pod_spec(pod["spec"])
+        pod["metadata"]["uid"] = objects.new_uid()
+        pod["metadata"]["creationTimestamp"] = objects.now()
+        pod["metadata"]["generation"] = 1
+        prepare_pod(pod)
+        return self.store.save(PODS, pod, None)
+
+    # --- entry points -------------------------------------------------------------------
+    def after_write(self, key: tuple[str, str], obj: dict) -> None:
+        if key == DEPLOY:
+            self.sync_deployment(obj)
+        elif key == STS:
+            self.sync_statefulset(obj)
+        elif key == RS:
+            self.sync_replicaset(obj)
+
+    def after_pod_delete(self, pod: dict) -> None:
+        """A controller replaces a deleted pod of its workload."""
+        ns = pod["metadata"].get("namespace", "")
+        for ref in pod["metadata"].get("ownerReferences") or []:
+            key = {"ReplicaSet": RS, "StatefulSet": STS}.get(ref.get("kind"))
+            if key is None:
+                continue
+            owner = self.store.raw(key, ns, ref.get("name"))
+            if owner is not None and owner["metadata"].get("uid") == ref.get("uid"):
+                self.after_write(key, copy.deepcopy(owner))
+                if key == RS:
+                    for dref in owner["metadata"].get("ownerReferences") or []:
+                        dep = self.store.raw(DEPLOY, ns, dref.get("name"))
+                        if dep is not None:
+                            self._deployment_status(copy.deepcopy(dep))
+
+    # --- Deployments --------------------------------------------------------------------
+    def sync_deployment(self, dep: dict) -> None:
+        md, spec = dep["metadata"], dep.get("spec") or {}
+        ns, name, uid = md.get("namespace", ""), md["name"], md["uid"]
+        replicas = spec.get("replicas", 1)
+        template = copy.deepcopy(spec.get("template") or {})
+        h = objects.template_hash(template)
+        rs_name = f"{name}-{h}"
+        owned = [rs for rs in self.store.list(*RS, ns) if _owned_by(rs, uid)]
+        revisions = [int((rs["metadata"].get("annotations") or {}).get(
+            "deployment.kubernetes.io/revision", "0")) for rs in owned]
+        current = next((rs for rs in owned if rs["metadata"]["name"] == rs_name), None)
+        if current is None:
+            labels = dict((template.get("metadata") or {}).get("labels") or {})
+            labels["pod-template-hash"] = h
+            rs_template = copy.deepcopy(template)
+            rs_template.setdefault("metadata", {})["labels"] = labels
+            selector = copy.deepcopy(spec.get("selector") or {})
+            selector.setdefault("matchLabels", {})["pod-template-hash"] = h
+            current = self._create(RS, {
+                "apiVersion": "apps/v1",
+                "kind": "ReplicaSet",
+                "metadata": {
+                    "name": rs_name,
+                    "namespace": ns,
+                    "labels": labels,
+                    "annotations": {
+                        "deployment.kubernetes.io/revision": str(max(revisions, default=0) + 1),
+                        "deployment.kubernetes.io/desired-replicas": str(replicas),
+                    },
+                    "ownerReferences": [objects.owner_ref(dep)],
+                },
+                "spec": {"replicas": replicas, "selector": selector, "template": rs_template},
+            })
+        elif current["spec"].get("replicas") != replicas:
+            new = copy.deepcopy(current)
+            new["spec"]["replicas"] = replicas
+            new["metadata"]["generation"] = new["metadata"].get("generation", 1) + 1
+            current = self._update(RS, new, current)
+        for rs in owned:
+            if rs["metadata"]["name"] != rs_name and rs["spec"].get("replicas", 0) != 0:
+                new = copy.deepcopy(rs)
+                new["spec"]["replicas"] = 0
+                new["metadata"]["generation"] = new["metadata"].get("generation", 1) + 1
+                self.sync_replicaset(self._update(RS, new, rs))
+        self.sync_replicaset(current)
+        limit = spec.get("revisionHistoryLimit", 10)
+        old = sorted((rs for rs in self.store.list(*RS, ns)
+                      if _owned_by(rs, uid) and rs["metadata"]["name"] != rs_name),
+                     key=lambda r: int(r["metadata"]["annotations"].get(
+                         "deployment.kubernetes.io/revision", "0")))
+        for rs in old[:max(0, len(old) - limit)]:
+            self.delete_tree(RS, ns, rs["metadata"]["name"])
+        fresh = self.store.raw(DEPLOY, ns, name)
+        if fresh is not None:
+            self._deployment_status(copy.deepcopy(fresh))
+
+    def _deployment_status(self, dep: dict) -> None:
+        md = dep["metadata"]
+        ns, uid = md.get("namespace", ""), md["uid"]
+        h = objects.template_hash((dep.get("spec") or {}).get("template") or {})
+        total = updated = ready = 0
+        for rs in self.store.list(*RS, ns):
+            if not _owned_by(rs, uid):
+                continue
+            pods = [p for p in self.store.list(*PODS, ns) if _owned_by(p, rs["metadata"]["uid"])]
+            total += len(pods)
+            ready += sum(1 for p in pods if (p.get("status") or {}).get("phase") == "Running")
+            if rs["metadata"]["name"].endswith(f"-{h}"):
+                updated += len(pods)
+                new_rs = rs["metadata"]["name"]
+        want = (dep.get("spec") or {}).get("replicas", 1)
+        old_status = dep.get("status") or {}
+        t = objects.now()
+
+        def cond(ty: str, reason: str, message: str) -> dict:
+            prev = next((c for c in old_status.get("conditions") or [] if c.get("type") == ty),
+                        None)
+            same = prev and prev.get("status") == "True" and prev.get("reason") == reason
+            return {"type": ty, "status": "True", "lastUpdateTime": prev["lastUpdateTime"]
+                    if same else t, "lastTransitionTime": prev["lastTransitionTime"]
+                    if same else t, "reason": reason, "message": message}
+
+        status: dict[str, Any] = {
+            "observedGeneration": md.get("generation", 1),
+            "replicas": total,
+            "updatedReplicas": updated,
+            "readyReplicas": ready,
+            "availableReplicas": ready,
+            "conditions": [
+                cond("Available", "MinimumReplicasAvailable",
+                     "Deployment has minimum availability."),
+                cond("Progressing", "NewReplicaSetAvailable",
+                     f'ReplicaSet "{locals().get("new_rs", md["name"])}" has successfully '
+                     "progressed."),
+            ],
+        }
+        if want - ready > 0:
+            status["unavailableReplicas"] = want - ready
+        for k in ("readyReplicas", "availableReplicas", "updatedReplicas", "replicas"):
+            if status[k] == 0:
+                del status[k]
+        if status != old_status:
+            new = copy.deepcopy(dep)
+            new["status"] = status
+            self.store.save(DEPLOY, new, dep)
+
+    def sync_replicaset(self, rs: dict) -> None:
+        md = rs["metadata"]
+        ns, uid = md.get("namespace", ""), md["uid"]
+        want = (rs.get("spec") or {}).get("replicas", 1)
+        pods = [p for p in self.store.list(*PODS, ns) if _owned_by(p, uid)]
+        for p in sorted(pods, key=lambda p: p["metadata"]["creationTimestamp"],
+                        reverse=True)[:max(0, len(pods) - want)]:
+            self.store.remove(PODS, ns, p["metadata"]["name"])
+        template = (rs.get("spec") or {}).get("template") or {}
+        labels = dict((template.get("metadata") or {}).get("labels") or {})
+        for _ in range(max(0, want - len(pods))):
+            name = f"{md['name']}-{objects.rand_suffix()}"
+            while self.store.raw(PODS, ns, name) is not None:
+                name = f"{md['name']}-{objects.rand_suffix()}"
+            self._new_pod(template, namespace=ns, name=name, labels=dict(labels), owner=rs)
+        count = len([p for p in self.store.list(*PODS, ns) if _owned_by(p, uid)])
+        fresh = self.store.raw(RS, ns, md["name"])
+        if fresh is None:
+            return
+        status = {"replicas": count, "fullyLabeledReplicas": count, "readyReplicas": count,
+                  "availableReplicas": count,
+                  "observedGeneration": fresh["metadata"].get("generation", 1)}
+        status = {k: v for k, v in status.items() if v or k == "replicas"}
+        if fresh.get("status") != status:
+            new = copy.deepcopy(fresh)
+            new["status"] = status
+            self.store.save(RS, new, fresh)
+
+    # --- StatefulSets -------------------------------------------------------------------
+    def sync_statefulset(self, sts: dict) -> None:
+        md, spec = sts["metadata"], sts.get("spec") or {}
+        ns, name = md.get("namespace", ""), md["name"]
+        replicas = spec.get("replicas", 1)
+        template = copy.deepcopy(spec.get("template") or {})
+        rev = f"{name}-{objects.template_hash(template)}"
+        ordinals = {}
+        for p in self.store.list(*PODS, ns):
+            if _owned_by(p, md["uid"]):
+                suffix = p["metadata"]["name"][len(name) + 1:]
+                if suffix.isdigit():
+                    ordinals[int(suffix)] = p
+        for i in sorted(ordinals, reverse=True):
+            pod = ordinals[i]
+            stale = pod["metadata"].get("labels", {}).get("controller-revision-hash") != rev
+            if i >= replicas or stale:
+                self.store.remove(PODS, ns, pod["metadata"]["name"])
+                del ordinals[i]
+        for i in range(replicas):
+            if i in ordinals:
+                continue
+            labels = dict((template.get("metadata") or {}).get("labels") or {})
+            labels.update({"controller-revision-hash": rev,
+                           "statefulset.kubernetes.io/pod-name": f"{name}-{i}",
+                           "apps.kubernetes.io/pod-index": str(i)})
+            self._new_pod(template, namespace=ns, name=f"{name}-{i}", labels=labels, owner=sts)
+        fresh = self.store.raw(STS, ns, name)
+        if fresh is None:
+            return
+        count = len([p for p in self.store.list(*PODS, ns) if _owned_by(p, md["uid"])])
+        status = {"observedGeneration": fresh["metadata"].get("generation", 1),
+                  "replicas": count, "readyReplicas": count, "currentReplicas": count,
+                  "updatedReplicas": count, "availableReplicas": count,
+                  "currentRevision": rev, "updateRevision": rev, "collisionCount": 0}
+        status = {k: v for k, v in status.items() if v != 0 or k in ("replicas",
+                                                                        "collisionCount")}
+        if fresh.get("status") != status:
+            new = copy.deepcopy(fresh)
+            new["status"] = status
+            self.store.save(STS, new, fresh)
