@@ -118,9 +118,20 @@ class RateTemplate:
     interval: str = "2m"
 
     def inner(self, namespaces: Sequence[str]) -> str:
-        alts = "|".join(re.escape(ns) for ns in sorted(set(namespaces)))
+        alts = "|".join(_regex_literal(ns) for ns in sorted(set(namespaces)))
         by = f"{self.namespace_label}, {self.workload_label}, {self.pod_label}"
         return f'sum by ({by}) (rate({self.metric}{{{self.namespace_label}=~"{alts}"}}[{self.interval}]))'
+
+
+_RE2_META = re.compile(r"([.^$*+?()\[\]{}|\\])")
+
+
+def _regex_literal(text: str) -> str:
+    """``text`` as a literal inside a PromQL ``=~"…"`` matcher: RE2 metacharacters escaped,
+    then backslashes and quotes escaped for the PromQL string. (Python's ``re.escape`` also
+    escapes ``-``, and ``"\\-"`` is not a valid PromQL string escape: Prometheus refuses it.)"""
+    rx = _RE2_META.sub(r"\\\1", text)
+    return rx.replace("\\", "\\\\").replace('"', '\\"')
 
 
 class RateSource(Protocol):

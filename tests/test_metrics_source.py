@@ -185,3 +185,16 @@ def test_replay_of_custom_query_or_empty_file_is_no_metrics(tmp_path, scenario_p
     empty.write_text("# EOF\n")
     got = ReplayRateSource(empty, template=TEMPLATE).per_pod_rates(_default_requests()[:1])
     assert next(iter(got.values())).why == NO_METRICS
+
+
+def test_namespaces_with_regex_and_dns_characters_do_not_break_the_grouped_query(scenario_prometheus):
+    """Namespace names are DNS labels (``-`` allowed); the grouped matcher must stay a valid
+    PromQL string and RE2 regex (a ``\\-`` escape is refused by Prometheus' string parser)."""
+    h = scenario_prometheus
+    odd = [RateRequest("kestrel-west", "p", "label-printer", "app"), RateRequest("a.b", "p", "x", "app")]
+    with PrometheusClient(h.url) as c:
+        got = PrometheusRateSource(c, at=h.end, template=TEMPLATE).per_pod_rates(_default_requests()[:2] + odd)
+    assert not got["parcels/size-label-printer/app"].missing, got["parcels/size-label-printer/app"].message
+    for r in odd:
+        assert got[r.key].why == NO_METRICS and "no series" in got[r.key].message
+    assert 'namespace=~"a\\\\.b|kestrel-west|parcels"' in got[odd[0].key].query
