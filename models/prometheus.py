@@ -275,6 +275,16 @@ class PrometheusClient:
                 f"Prometheus refused query {promql!r} (HTTP {status}, "
                 f"{body.get('errorType', 'error')}): {body['error']}"
             )
+        if status in (401, 403):
+            raise PrometheusError(
+                f"Prometheus at {self.base_url} refused access (HTTP {status}) to {promql!r}: "
+                f"{_short(body if body is not None else resp.text)}; pass the credentials it needs (headers, e.g. a bearer token)"
+            )
+        if status == 404:
+            raise PrometheusError(
+                f"Prometheus at {self.base_url} has no {path} (HTTP 404); give the server's root URL "
+                "(e.g. http://127.0.0.1:9090, without /api/v1)"
+            )
         if not isinstance(body, dict):
             ctype = resp.headers.get("content-type", "?")
             raise PrometheusError(

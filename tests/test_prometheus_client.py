@@ -230,3 +230,17 @@ def test_bad_arguments_are_refused():
             c.query_range("up", start=0, end=10, step=0)
         with pytest.raises(PrometheusError, match="before start"):
             c.query_range("up", start=10, end=0, step=1)
+
+
+def test_wrong_base_path_on_the_real_server_says_give_the_root(scenario_prometheus):
+    with PrometheusClient(scenario_prometheus.url + "/api/v1") as c:
+        with pytest.raises(PrometheusError, match="root URL") as e:
+            c.query("up")
+    assert "HTTP 404" in str(e.value)
+
+
+def test_unauthorised_says_pass_credentials(canned_server):
+    canned_server.set(status=401, body="Unauthorized", content_type="text/plain")
+    with PrometheusClient(canned_server.url) as c:
+        with pytest.raises(PrometheusError, match="credentials"):
+            c.query("up")
