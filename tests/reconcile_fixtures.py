@@ -1,0 +1,253 @@
+"""A small real world for reconcile tests: the sandbox API server, a real ``ratefit serve``
+over a store of closed-form curves, and a rate history replayed by the real replay
+source (or served by the real Prometheus).
+
+INVENTED test scenario: namespaces ``shop``/``bank``, workloads ``web``, ``api``… — made up.
+
+- :func:`linear_artifact` curves are ``cpu = base + slope × rate`` cores with a fixed
+  band, so a test knows demand and upper at any rate without training anything.
+- :func:`write_history` writes OpenMetrics counters ``http_requests_total{namespace,
+  workload,pod}`` that grow at a constant per-pod rate, so the per-pod rate (and any
+  percentile of it) is that constant.
+- :func:`deployment`, :func:`statefulset`, :func:`policy`, :func:`hpa` build manifests.
+- :class:`World` starts everything (always stopped on exit) and offers raw reads.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import time
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import httpx
+
+from api_fixtures import make_artifact, serve_process
+from ratefit.models.store import ModelStore
+
+CRD = Path(__file__).resolve().parent.parent / "manifests" / "crd" / "sizingpolicy.yaml"
+
+
+def ceil5(x: float) -> int:
+    """Round up to a multiple of 5m (DESIGN.md "One decision", step 3)."""
+    return int(math.ceil(x / 5.0 - 1e-9)) * 5
+
+
+def write_history(path: Path, rates: Mapping[tuple[str, str], Sequence[float]], *, end: float,
+                  minutes: int = 90, step_s: int = 30, metric: str = "http_requests_total") -> Path:
+    """Constant-rate counters: per (namespace, workload) one series per pod at the given rates.
+    OpenMetrics text format (openmetrics.io spec: counters end in _total, '# EOF' last)."""
+    base = metric.removesuffix("_total")
+    lines = [f"# HELP {base} Requests served (INVENTED test scenario).", f"# TYPE {base} counter"]
+    start = end - minutes * 60
+    ts = [start + i * step_s for i in range(int(minutes * 60 / step_s) + 1)]
+    for (ns, wl), pod_rates in sorted(rates.items()):
+        for i, r in enumerate(pod_rates):
+            labels = f'namespace="{ns}",pod="{wl}-pod-{i}",workload="{wl}"'
+            lines += [f"{metric}{{{labels}}} {r * (t - start):.6f} {t:.3f}" for t in ts]
+    lines.append("# EOF")
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def _resources(req: str | None, lim: str | None) -> dict[str, Any]:
+    res: dict[str, Any] = {}
+    if req is not None:
+        res["requests"] = {"cpu": req, "memory": "64Mi"}
+    if lim is not None:
+        res["limits"] = {"cpu": lim}
+    return res
+
+
+def _workload(kind: str, ns: str, name: str, containers: Sequence[tuple[str, str | None, str | None]],
+              replicas: int) -> dict[str, Any]:
+    spec: dict[str, Any] = {
+        "replicas": replicas,
+        "selector": {"matchLabels": {"app": name}},
+        "template": {
+            "metadata": {"labels": {"app": name}},
+            "spec": {"containers": [
+                {"name": c, "image": "registry.invalid/kestrel/" + c + ":1", "resources": _resources(req, lim),
+                 "env": [{"name": "MODE", "value": "test"}]}
+                for c, req, lim in containers
+            ]},
+        },
+    }
+    if kind == "StatefulSet":
+        spec["serviceName"] = name
+    return {"apiVersion": "apps/v1", "kind": kind, "metadata": {"name": name, "namespace": ns}, "spec": spec}
+
+
+def deployment(ns: str, name: str, containers: Sequence[tuple[str, str | None, str | None]], *,
+               replicas: int = 2) -> dict[str, Any]:
+    return _workload("Deployment", ns, name, containers, replicas)
+
+
+def statefulset(ns: str, name: str, containers: Sequence[tuple[str, str | None, str | None]], *,
+                replicas: int = 2) -> dict[str, Any]:
+    return _workload("StatefulSet", ns, name, containers, replicas)
+
+
+def policy(ns: str, name: str, *, workload: str, kind: str = "Deployment", containers: Sequence[Mapping[str, Any]],
+           mode: str = "apply", **spec: Any) -> dict[str, Any]:
+    body: dict[str, Any] = {
+        "workload": {"kind": kind, "name": workload},
+        "mode": mode,
+        "containers": [dict(c) for c in containers],
+        "headroom": 0.15,
+        "deadband": 0.1,
+        "cooldown": "30m",
+        "settle": "0s",
+        "stepLimit": {"up": 10.0, "down": 0.1},
+        "rateWindow": "1h",
+        "ratePercentile": 95,
+        "limits": "keep-ratio",
+    }
+    body.update(spec)
+    return {"apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
+            "metadata": {"name": name, "namespace": ns}, "spec": body}
+
+
+def hpa(ns: str, name: str, *, target: str, cpu_utilization: bool = True) -> dict[str, Any]:
+    metric = ({"type": "Resource", "resource": {"name": "cpu", "target": {"type": "Utilization", "averageUtilization": 70}}}
+              if cpu_utilization else
+              {"type": "Pods", "pods": {"metric": {"name": "http_requests"}, "target": {"type": "AverageValue", "averageValue": "100"}}})
+    return {"apiVersion": "autoscaling/v2", "kind": "HorizontalPodAutoscaler",
+            "metadata": {"name": name, "namespace": ns},
+            "spec": {"scaleTargetRef": {"apiVersion": "apps/v1", "kind": "Deployment", "name": target},
+                     "minReplicas": 1, "maxReplicas": 10, "metrics": [metric]}}
+
+
+@dataclass
+class World:
+    sandbox: Any
+    kubeconfig: Path
+    history: Path
+    at: float
+    api_url: str
+    tmp: Path
+    _closers: list[Any] = field(default_factory=list)
+
+    # -- clients ----------------------------------------------------------------------
+    def kube(self, **kwargs: Any) -> Any:
+        from ratefit.controller.kube import KubeAdapter
+
+        kwargs.setdefault("identity", "test-controller")
+        kwargs.setdefault("sleep", lambda s: None)  # retries without real waiting
+        k = KubeAdapter.from_kubeconfig(str(self.kubeconfig), **kwargs)
+        self._closers.append(k)
+        return k
+
+    def rates(self) -> Any:
+        from ratefit.controller.metrics_source import ReplayRateSource
+
+        return ReplayRateSource(self.history, at=self.at)
+
+    def sizing(self, url: str | None = None, **kwargs: Any) -> Any:
+        try:
+            from ratefit.controller.sizing_client import SizingClient
+        except ImportError:  # until controller/sizing_client.py lands
+            SizingClient = _InterimSizingClient  # noqa: N806
+        kwargs.setdefault("timeout", 10.0)
+        c = SizingClient(url or self.api_url, **kwargs)
+        self._closers.append(c)
+        return c
+
+    def reconciler(self, *, kube: Any = None, rates: Any = None, sizing: Any = None, **kwargs: Any) -> Any:
+        from ratefit.controller.reconcile import ReconcileConfig, Reconciler
+
+        cfg = {k: kwargs.pop(k) for k in ("dry_run", "write", "namespaces", "identity", "conflict_attempts") if k in kwargs}
+        return Reconciler(kube=kube or self.kube(), rates=rates or self.rates(), sizing=sizing or self.sizing(),
+                          config=ReconcileConfig(**cfg), **kwargs)
+
+    # -- raw reads (what the tests assert on) -------------------------------------------
+    def get(self, path: str) -> dict[str, Any]:
+        r = httpx.get(self.sandbox.url + path, timeout=10.0)
+        r.raise_for_status()
+        return r.json()
+
+    def workload(self, ns: str, name: str, kind: str = "deployments") -> dict[str, Any]:
+        return self.get(f"/apis/apps/v1/namespaces/{ns}/{kind}/{name}")
+
+    def cpu(self, ns: str, name: str, container: str, kind: str = "deployments") -> tuple[str | None, str | None]:
+        obj = self.workload(ns, name, kind)
+        for c in obj["spec"]["template"]["spec"]["containers"]:
+            if c["name"] == container:
+                res = c.get("resources") or {}
+                return (res.get("requests") or {}).get("cpu"), (res.get("limits") or {}).get("cpu")
+        raise KeyError(container)
+
+    def sizing_policy(self, ns: str, name: str) -> dict[str, Any]:
+        return self.get(f"/apis/ratefit.dev/v1alpha1/namespaces/{ns}/sizingpolicies/{name}")
+
+    def events(self, ns: str) -> list[dict[str, Any]]:
+        return self.get(f"/apis/events.k8s.io/v1/namespaces/{ns}/events")["items"]
+
+    def resource_versions(self) -> dict[str, str]:
+        """Every object the controller may touch → its resourceVersion (and the event count)."""
+        out: dict[str, str] = {}
+        for path in ("/apis/apps/v1/deployments", "/apis/apps/v1/statefulsets", "/api/v1/pods",
+                     "/apis/ratefit.dev/v1alpha1/sizingpolicies", "/apis/autoscaling/v2/horizontalpodautoscalers",
+                     "/apis/coordination.k8s.io/v1/leases"):
+            for o in self.get(path)["items"]:
+                m = o["metadata"]
+                out[f"{path}/{m.get('namespace')}/{m['name']}"] = m["resourceVersion"]
+        out["events"] = str(len(self.get("/apis/events.k8s.io/v1/events")["items"]))
+        return out
+
+    def patches(self, ns: str, name: str, kind: str = "deployments") -> list[dict[str, Any]]:
+        """The non-dry-run PATCH requests the sandbox served for one workload."""
+        path = f"/apis/apps/v1/namespaces/{ns}/{kind}/{name}"
+        return [r for r in list(self.sandbox.requests)
+                if r["method"] == "PATCH" and r["path"] == path and r["query"].get("dryRun") != "All"]
+
+
+class _InterimSizingClient:
+    """POST /v1/demand over httpx (used only until controller/sizing_client lands)."""
+
+    def __init__(self, base_url: str, *, timeout: float = 10.0, **_: Any) -> None:
+        self._http = httpx.Client(base_url=base_url, timeout=timeout)
+
+    def demand_batch(self, items: Sequence[tuple[str, float]]) -> list[dict[str, Any]]:
+        from ratefit.models.errors import RatefitError
+
+        try:
+            r = self._http.post("/v1/demand", json={"items": [{"model": m, "rate": x} for m, x in items]})
+            r.raise_for_status()
+        except httpx.HTTPError as exc:
+            raise RatefitError(f"sizing API: {exc}") from exc
+        return r.json()["items"]
+
+    def close(self) -> None:
+        self._http.close()
+
+
+@contextlib.contextmanager
+def world(tmp: Path, *, objects: Sequence[Mapping[str, Any]], models: Mapping[str, Mapping[str, float]],
+          rates: Mapping[tuple[str, str], Sequence[float]], end: float | None = None) -> Iterator[World]:
+    """Start the sandbox (CRD + ``objects``), a real ``ratefit serve`` with one linear curve
+    per model key (``models[key]`` = make_artifact kwargs), and write the rate history."""
+    from ratefit.controller.sandbox import SandboxServer
+
+    store = ModelStore(tmp / "store")
+    for key, kw in models.items():
+        store.save(make_artifact(key, **kw))
+    at = float(int(end if end is not None else time.time() - 120))
+    history = write_history(tmp / "history.om", rates, end=at)
+    with contextlib.ExitStack() as stack:
+        sb = SandboxServer(host="127.0.0.1", port=0, load=[CRD]).start()
+        stack.callback(sb.stop)
+        for obj in objects:
+            sb.create(dict(obj))
+        kc = sb.write_kubeconfig(tmp / "kubeconfig")
+        api = stack.enter_context(serve_process(tmp / "store", workdir=tmp))
+        w = World(sandbox=sb, kubeconfig=kc, history=history, at=at, api_url=api.base_url, tmp=tmp)
+        try:
+            yield w
+        finally:
+            for c in w._closers:
+                with contextlib.suppress(Exception):
+                    c.close()

@@ -1,0 +1,201 @@
+"""One reconcile pass against real parts: the sandbox API server (through the official
+client), a real `ratefit serve`, rates replayed from an OpenMetrics history.
+
+Expected values are computed here from the closed-form curves, independently of
+controller/decide: demand = base + slope × rate cores, upper = demand + band (the
+artifact's curve, tests/api_fixtures.make_artifact), target = ceil5(upper × (1 + headroom))
+clamped to [floor, ceiling] (DESIGN.md "One decision", step 3); keep-ratio scales the
+limit by the same factor (step 8). Quantities are compared after parsing with
+controller/quantity (checked against kubernetes.utils.parse_quantity in test_quantity.py).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+import pytest
+
+from reconcile_fixtures import ceil5, deployment, hpa, policy, world
+from ratefit.controller.limits import Budget, TokenBucket
+from ratefit.controller.quantity import parse_cpu
+from ratefit.controller.reconcile import PassOutcome
+
+BASE, SLOPE, BAND = 0.05, 0.004, 0.02
+
+
+def upper_m(rate: float) -> int:
+    return math.ceil(round((BASE + SLOPE * rate + BAND) * 1000, 6))
+
+
+def target_m(rate: float, headroom: float = 0.15) -> int:
+    return ceil5(upper_m(rate) * (1 + headroom))
+
+
+def _m(q: str | None) -> int | None:
+    return None if q is None else parse_cpu(q)
+
+
+def _models(*keys: str) -> dict[str, dict[str, float]]:
+    return {k: {"base": BASE, "slope": SLOPE, "band": BAND} for k in keys}
+
+
+def test_apply_patches_the_changed_container_and_a_second_pass_does_nothing(tmp_path) -> None:
+    objects = [
+        deployment("shop", "web", [("app", "100m", "200m"), ("sidecar", "50m", None)]),
+        policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}]),
+    ]
+    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [40.0, 50.0]}) as w:
+        rec = w.reconciler()
+        r1 = rec.run_pass()
+        assert r1.outcome is PassOutcome.DONE, r1.errors
+        want = target_m(50.0)  # the busiest pod decides: 50 req/s → upper 270m → 315m
+        assert want == 315
+        assert r1.patched == ("shop/Deployment/web",)
+        req, lim = w.cpu("shop", "web", "app")
+        assert _m(req) == want
+        assert _m(lim) == math.ceil(200 * want / 100)  # keep-ratio: limit/request stays 2
+        assert w.cpu("shop", "web", "sidecar") == ("50m", None)  # the other container is untouched
+        obj = w.workload("shop", "web")
+        prev = json.loads(obj["metadata"]["annotations"]["ratefit.dev/previous-requests"])
+        assert prev == {"app": {"cpu_request": "100m", "cpu_limit": "200m"}}
+        assert len(w.patches("shop", "web")) == 1
+        status = w.sizing_policy("shop", "web")["status"]
+        (p,) = status["proposals"]
+        assert p["verdict"] == "changed" and _m(p["proposed"]) == want and _m(p["current"]) == 100
+        assert status["lastChange"] and status["observedGeneration"] == 1
+        ready = {c["type"]: c for c in status["conditions"]}["Ready"]
+        assert ready["status"] == "True"
+        reasons = [e["reason"] for e in w.events("shop")]
+        assert reasons.count("CpuRequestChanged") == 1
+        (row,) = r1.rows
+        assert (row.verdict, _m(f"{row.proposed_m}m"), row.rate) == ("changed", want, pytest.approx(50.0, rel=1e-6))
+
+        before = w.resource_versions()
+        r2 = rec.run_pass()
+        # the second pass changes nothing in the cluster: no patch, no Event; the status
+        # records once that the container now sits at its target
+        assert r2.patched == () and r2.events == 0 and r2.status_writes <= 1
+        after = w.resource_versions()
+        assert {k: v for k, v in after.items() if "sizingpolicies" not in k} == \
+            {k: v for k, v in before.items() if "sizingpolicies" not in k}
+        assert r2.rows[0].verdict == "held" and r2.rows[0].why == ("InsideDeadband",)
+        assert w.sizing_policy("shop", "web")["status"]["lastChange"] == status["lastChange"]
+        r3 = rec.run_pass()
+        assert (r3.patched, r3.status_writes, r3.events) == ((), 0, 0)
+        assert w.resource_versions() == after  # level-based: an unchanged world is left alone
+
+
+def test_dry_run_proposes_writes_status_once_and_never_patches(tmp_path) -> None:
+    objects = [
+        deployment("shop", "api", [("app", "1000m", "2000m")]),
+        policy("shop", "api", workload="api", mode="dry-run", containers=[{"name": "app", "model": "shop/api/app"}]),
+    ]
+    with world(tmp_path, objects=objects, models=_models("shop/api/app"), rates={("shop", "api"): [25.0]}) as w:
+        rec = w.reconciler()
+        r1 = rec.run_pass()
+        assert r1.patched == () and r1.status_writes == 1 and r1.events == 1
+        assert [_m(q) for q in w.cpu("shop", "api", "app")] == [1000, 2000]
+        (p,) = w.sizing_policy("shop", "api")["status"]["proposals"]
+        assert p["verdict"] == "proposed" and _m(p["proposed"]) == target_m(25.0)
+        assert [e["reason"] for e in w.events("shop")] == ["CpuRequestProposed"]
+        before = w.resource_versions()
+        r2 = rec.run_pass()
+        assert (r2.status_writes, r2.events) == (0, 0) and w.resource_versions() == before
+
+
+def test_forced_dry_run_overrides_apply_mode(tmp_path) -> None:
+    objects = [deployment("shop", "web", [("app", "100m", None)]),
+               policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
+    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+        r = w.reconciler(dry_run=True).run_pass()
+        assert r.patched == () and r.rows[0].verdict == "proposed"
+        assert w.cpu("shop", "web", "app") == ("100m", None)
+
+
+def test_plan_mode_writes_nothing_at_all(tmp_path) -> None:
+    objects = [deployment("shop", "web", [("app", "100m", None)]),
+               policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
+    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+        before = w.resource_versions()
+        r = w.reconciler(dry_run=True, write=False).run_pass()
+        assert r.rows[0].verdict == "proposed" and r.rows[0].proposed_m == target_m(50.0)
+        assert w.resource_versions() == before
+
+
+def test_invalid_policy_gets_a_condition_naming_the_field_and_is_never_acted_on(tmp_path) -> None:
+    bad = policy("shop", "web", workload="web",
+                 containers=[{"name": "app", "model": "shop/web/app", "floor": "300m", "ceiling": "200m"}])
+    objects = [deployment("shop", "web", [("app", "100m", None)]), bad]
+    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+        rec = w.reconciler()
+        r = rec.run_pass()
+        assert r.invalid == 1 and r.patched == ()
+        assert w.cpu("shop", "web", "app") == ("100m", None)
+        cond = {c["type"]: c for c in w.sizing_policy("shop", "web")["status"]["conditions"]}["Ready"]
+        assert cond["status"] == "False" and cond["reason"] == "PolicyInvalid"
+        assert "spec.containers[0].floor" in cond["message"]
+        assert r.rows[0].why == ("PolicyInvalid",)
+        before = w.resource_versions()
+        rec.run_pass()
+        assert w.resource_versions() == before
+
+
+def test_the_budget_is_shared_by_the_whole_pass(tmp_path) -> None:
+    names = ("a", "b", "c")
+    objects = [o for n in names for o in (
+        deployment("shop", n, [("app", "100m", None)]),
+        policy("shop", n, workload=n, containers=[{"name": "app", "model": f"shop/{n}/app"}]))]
+    with world(tmp_path, objects=objects, models=_models(*(f"shop/{n}/app" for n in names)),
+               rates={("shop", n): [50.0] for n in names}) as w:
+        budget = Budget(bucket=TokenBucket.per_minute(1, now=0.0))
+        rec = w.reconciler(budget=budget, monotonic=lambda: 0.0)
+        r = rec.run_pass()
+        assert len(r.patched) == 1
+        whys = sorted(row.why[0] for row in r.rows)
+        assert whys == ["BudgetSpent", "BudgetSpent", "NewTarget"]
+        changed = [n for n in names if w.cpu("shop", n, "app")[0] != "100m"]
+        assert [f"shop/Deployment/{n}" for n in changed] == list(r.patched)
+
+
+def test_cpu_utilisation_hpa_holds_the_workload(tmp_path) -> None:
+    objects = [deployment("shop", "web", [("app", "100m", None)]), hpa("shop", "web", target="web"),
+               policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
+    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+        r = w.reconciler().run_pass()
+        assert r.patched == () and r.rows[0].why == ("HorizontalConflict",)
+        assert w.cpu("shop", "web", "app") == ("100m", None)
+
+
+def test_unknown_model_is_held_nomodel(tmp_path) -> None:
+    objects = [deployment("shop", "web", [("app", "100m", None)]),
+               policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/other"}])]
+    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+        r = w.reconciler().run_pass()
+        assert r.patched == () and r.rows[0].why == ("NoModel",)
+
+
+def test_missing_workload_gets_a_condition(tmp_path) -> None:
+    objects = [policy("shop", "ghost", workload="ghost", containers=[{"name": "app", "model": "shop/web/app"}])]
+    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+        r = w.reconciler().run_pass()
+        cond = {c["type"]: c for c in w.sizing_policy("shop", "ghost")["status"]["conditions"]}["Ready"]
+        assert cond["status"] == "False" and cond["reason"] == "WorkloadNotFound"
+        assert r.rows[0].why == ("WorkloadNotFound",)
+
+
+def test_telemetry_counts_decisions_and_patches(tmp_path) -> None:
+    from ratefit.controller.telemetry import Telemetry
+
+    objects = [deployment("shop", "web", [("app", "100m", None)]),
+               policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
+    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+        tel = Telemetry()
+        rec = w.reconciler(telemetry=tel)
+        rec.run_pass()
+        rec.run_pass()
+        assert tel.value("ratefit_controller_patches_total", {"method": "rollout"}) == 1
+        assert tel.value("ratefit_controller_decisions_total", {"verdict": "changed", "why": "NewTarget"}) == 1
+        assert tel.value("ratefit_controller_decisions_total", {"verdict": "held", "why": "InsideDeadband"}) == 1
+        assert tel.value("ratefit_controller_passes_total", {"outcome": "done"}) == 2
+        assert tel.value("ratefit_controller_pass_duration_seconds_count") == 2
