@@ -73,6 +73,11 @@ from ratefit.controller.policy import (
 )
 from ratefit.controller.quantity import format_cpu
 
+
+def _mc(m: int) -> str:
+    """Millicores for messages: always with the unit (``1000m``, not ``1``)."""
+    return f"{m}m"
+
 __all__ = [
     "Verdict",
     "Why",
@@ -175,7 +180,8 @@ class Decision:
         return self.proposed_m != self.current_m or self.proposed_limit_m != self.limit_m
 
     def to_status(self) -> dict[str, Any]:
-        """This decision as a ``status.proposals[]`` entry (quantities as strings)."""
+        """This decision as a ``status.proposals[]`` entry (quantities as strings;
+        fields without a value are left out — the CRD schema has no nullable fields)."""
 
         def q(m: int | None) -> str | None:
             return None if m is None else format_cpu(m)
@@ -183,7 +189,7 @@ class Decision:
         def cores(c: float | None) -> str | None:
             return None if c is None else format_cpu(round_up(c * 1000.0, 1))
 
-        return {
+        entry = {
             "container": self.container,
             "current": q(self.current_m),
             "proposed": q(self.proposed_m),
@@ -198,6 +204,7 @@ class Decision:
             "why": self.why.value,
             "message": self.message,
         }
+        return {k: v for k, v in entry.items() if v is not None}
 
 
 @dataclass(frozen=True)
@@ -334,7 +341,7 @@ def decide_container(
         new_limit = limit_for(current, limit, new_m, policy.limits)
         why = Why.STEP_LIMITED if limited else (bound if (bound and new_m == target) else Why.NEW_TARGET)
         verb = "raise" if current is None or new_m > current else "lower"
-        msg = f"{verb} to {format_cpu(new_m)} (target {format_cpu(target)})"
+        msg = f"{verb} to {_mc(new_m)} (target {_mc(target)})"
         if limited:
             msg += f", cut by stepLimit ×{policy.step_limit.up if verb == 'raise' else policy.step_limit.down}"
         return replace(
@@ -364,7 +371,7 @@ def decide_container(
     if _inside_deadband(current, target, policy.deadband):
         why = bound or Why.INSIDE_DEADBAND
         return replace(
-            base, why=why, message=f"target {format_cpu(target)} is within the deadband of {format_cpu(current)}"
+            base, why=why, message=f"target {_mc(target)} is within the deadband of {_mc(current)}"
         )
     up, down = policy.step_limit.up, policy.step_limit.down
     if target > current:
@@ -382,13 +389,13 @@ def decide_container(
             why=Why.SETTLING,
             proposed_m=new_m,
             proposed_limit_m=limit_for(current, limit, new_m, policy.limits),
-            message=f"target below {format_cpu(current)} for {int(waited)}s of {int(policy.settle_s)}s settle",
+            message=f"target below {_mc(current)} for {int(waited)}s of {int(policy.settle_s)}s settle",
         )
     if _inside_deadband(current, goal, policy.deadband):
         return replace(
             base,
             why=Why.INSIDE_DEADBAND,
-            message=f"highest target while settling {format_cpu(goal)} is within the deadband of {format_cpu(current)}",
+            message=f"highest target while settling {_mc(goal)} is within the deadband of {_mc(current)}",
         )
     after = settling if limited else ContainerHistory()
     return change(new_m, limited, after, settling)

@@ -246,3 +246,80 @@ def test_missing_required_fields_rejected(validator):
     assert not validator.is_valid(obj)
     with pytest.raises(PolicyInvalid, match=r"spec\.containers\[0\]\.model"):
         parse_policy(obj)
+
+
+# ---------------------------------------------------------------- through the sandbox and the real kubectl
+
+
+def _status_from_a_real_decision() -> dict:
+    from datetime import datetime, timezone
+
+    from ratefit.controller.decide import ContainerInput, Sizing, decide_workload
+    from ratefit.controller.policy import WorkloadHistory, history_to_status, make_condition
+
+    policy = parse_policy(_example("label-printer.yaml"))
+    now = datetime(2026, 12, 1, 12, 0, tzinfo=timezone.utc)
+    wd = decide_workload(
+        policy,
+        [
+            ContainerInput("app", 1000, 2000, 150.0, Sizing(0.65, 0.72)),
+            ContainerInput("log-shipper", 200, None, 150.0, Sizing(0.04, 0.05)),
+        ],
+        history=WorkloadHistory(last_change=now),
+        now=now,
+    )
+    cond = make_condition(
+        type="Ready", status=True, reason="Decided", message="2 containers decided", observed_generation=1, now=now
+    )
+    return {
+        "observedGeneration": 1,
+        "conditions": [cond],
+        "proposals": [d.to_status() for d in wd.decisions],
+        **history_to_status(wd.history),
+    }
+
+
+def test_crd_and_examples_through_kubectl_and_the_sandbox(kubectl):
+    import json
+
+    kubectl("apply", "-f", str(CRD_PATH), check=True)
+    namespaces = [{"apiVersion": "v1", "kind": "Namespace", "metadata": {"name": n}} for n in ("parcels", "dispatch")]
+    kubectl("apply", "-f", "-", input=yaml.safe_dump_all(namespaces), check=True)
+    kubectl("apply", "-k", str(ROOT / "manifests" / "examples"), check=True)
+
+    table = kubectl("get", "rfp", "-A", check=True).stdout
+    header = table.splitlines()[0].split()
+    assert header[:3] == ["NAMESPACE", "NAME", "WORKLOAD"] and "MODE" in header and "AGE" in header
+    assert "READY" in header and "LAST" in header  # "LAST CHANGE"
+    assert len(table.splitlines()) == 1 + len(POLICY_EXAMPLES)
+
+    # the server filled in the CRD's defaults; the parser reads the stored object the same
+    stored = json.loads(kubectl("get", "sizingpolicy", "route-planner", "-n", "parcels", "-o", "json", check=True).stdout)
+    assert stored["spec"]["cooldown"] == "30m" and stored["spec"]["stepLimit"] == {"up": 2.0, "down": 0.5}
+    assert stored["spec"]["containers"][0].get("floor") == "200m"
+    from_server = parse_policy(stored)
+    from_file = parse_policy(_example("route-planner.yaml"))
+    assert from_server == type(from_file)(**{**from_file.__dict__, "generation": from_server.generation})
+
+    # a bad policy is refused and the message names the field
+    bad = _example("label-printer.yaml")
+    bad["metadata"]["name"] = "bad"
+    bad["spec"]["deadband"] = 1.5
+    out = kubectl("apply", "-f", "-", input=yaml.safe_dump(bad))
+    assert out.returncode != 0 and "deadband" in out.stderr
+
+    # the status subresource takes what decide writes; spec and generation stay
+    status = _status_from_a_real_decision()
+    before = json.loads(kubectl("get", "sizingpolicy", "label-printer", "-n", "parcels", "-o", "json", check=True).stdout)
+    kubectl(
+        "patch", "sizingpolicy", "label-printer", "-n", "parcels", "--subresource=status", "--type=merge",
+        "-p", json.dumps({"status": status}), check=True,
+    )
+    after = json.loads(kubectl("get", "sizingpolicy", "label-printer", "-n", "parcels", "-o", "json", check=True).stdout)
+    assert after["status"]["proposals"] == status["proposals"]
+    assert after["status"]["settling"] == status["settling"] and after["status"]["lastChange"] == status["lastChange"]
+    # Kubernetes docs (status subresource): status writes ignore spec; generation moves only on spec changes
+    assert after["spec"] == before["spec"]
+    assert after["metadata"]["generation"] == before["metadata"]["generation"]
+    row = kubectl("get", "rfp", "label-printer", "-n", "parcels", "--no-headers", check=True).stdout.split()
+    assert row[:3] == ["label-printer", "label-printer", "apply"] and row[3] == "True"
