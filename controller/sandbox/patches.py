@@ -237,6 +237,9 @@ def _smp_map(orig: dict, patch: dict) -> dict:
 def _smp_list(field: str, orig: Any, patch: list) -> list:
     current = orig if isinstance(orig, list) else []
     key = MERGE_KEYS.get(field)
+    if field == "ports" and any(isinstance(x, dict) and "port" in x and "containerPort" not in x
+                                for x in patch + current):
+        key = "port"  # Service ports merge by `port`, container ports by `containerPort`
     if key and all(isinstance(x, dict) for x in patch) and \
             all(isinstance(x, dict) for x in current):
         if any(x.get("$patch") == "replace" for x in patch):

@@ -90,11 +90,27 @@ BUILTINS: tuple[ResourceType, ...] = (
     _r("coordination.k8s.io", "v1", "leases", "Lease"),
     _r("apiextensions.k8s.io", "v1", "customresourcedefinitions", "CustomResourceDefinition",
        namespaced=False, short_names=("crd", "crds"), subresources=("status",)),
+    # stored and served, not acted upon (so that whole manifest sets load)
+    _r("", "v1", "configmaps", "ConfigMap", short_names=("cm",)),
+    _r("", "v1", "secrets", "Secret"),
+    _r("", "v1", "services", "Service", short_names=("svc",), subresources=("status",),
+       categories=("all",)),
+    _r("", "v1", "serviceaccounts", "ServiceAccount", short_names=("sa",)),
+    _r("", "v1", "persistentvolumeclaims", "PersistentVolumeClaim", short_names=("pvc",),
+       subresources=("status",)),
+    _r("batch", "v1", "jobs", "Job", subresources=("status",), categories=("all",)),
+    _r("policy", "v1", "poddisruptionbudgets", "PodDisruptionBudget", short_names=("pdb",),
+       subresources=("status",)),
+    _r("rbac.authorization.k8s.io", "v1", "roles", "Role"),
+    _r("rbac.authorization.k8s.io", "v1", "rolebindings", "RoleBinding"),
+    _r("rbac.authorization.k8s.io", "v1", "clusterroles", "ClusterRole", namespaced=False),
+    _r("rbac.authorization.k8s.io", "v1", "clusterrolebindings", "ClusterRoleBinding",
+       namespaced=False),
 )
 
 #: preferred versions of the built-in groups
-GROUP_ORDER = ("", "apps", "autoscaling", "events.k8s.io", "coordination.k8s.io",
-               "apiextensions.k8s.io")
+GROUP_ORDER = ("", "apps", "autoscaling", "batch", "policy", "rbac.authorization.k8s.io",
+               "events.k8s.io", "coordination.k8s.io", "apiextensions.k8s.io")
 
 
 def from_crd(crd: dict[str, Any]) -> list[ResourceType]:

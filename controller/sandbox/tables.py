@@ -8,6 +8,7 @@ STATUS, AGE …) and a CRD's `additionalPrinterColumns` (simple `.a.b` JSON path
 from __future__ import annotations
 
 import datetime as _dt
+import re
 from typing import Any
 
 from ratefit.controller.sandbox.resources import ResourceType
@@ -30,18 +31,46 @@ def _age(ts: str | None) -> str:
     return f"{s // 86400}d"
 
 
-def _path(obj: Any, path: str) -> Any:
-    for part in path.strip().lstrip(".").split("."):
-        if not part:
-            continue
-        if isinstance(obj, dict):
-            obj = obj.get(part)
-        else:
+_TOKEN = re.compile(r'\.([A-Za-z0-9_-]+)|\[(\d+|\*)\]|\[\?\(@\.([A-Za-z0-9_.-]+)\s*==\s*'
+                    r'["\']([^"\']*)["\']\)\]')
+
+
+def json_path(obj: Any, path: str) -> Any:
+    """The JSONPath subset printer columns use: `.a.b`, `[0]`, `[*]`, `[?(@.k=="v")]`."""
+    path = path.strip()
+    if path.startswith("{") and path.endswith("}"):
+        path = path[1:-1]
+    nodes = [obj]
+    pos = 0
+    while pos < len(path):
+        m = _TOKEN.match(path, pos)
+        if not m:
             return None
-    return obj
+        pos = m.end()
+        field, index, fkey, fval = m.groups()
+        out = []
+        for n in nodes:
+            if field is not None and isinstance(n, dict) and field in n:
+                out.append(n[field])
+            elif index is not None and isinstance(n, list):
+                if index == "*":
+                    out += n
+                elif int(index) < len(n):
+                    out.append(n[int(index)])
+            elif fkey is not None and isinstance(n, list):
+                for item in n:
+                    v = item
+                    for k in fkey.split("."):
+                        v = v.get(k) if isinstance(v, dict) else None
+                    if v is not None and str(v) == fval:
+                        out.append(item)
+        nodes = out
+    if not nodes:
+        return None
+    return nodes[0] if len(nodes) == 1 else ",".join(str(n) for n in nodes)
 
 
-def _columns(rt: ResourceType, crd_columns: list[dict] | None) -> list[tuple[str, Any]]:
+def _columns(rt: ResourceType) -> list[tuple[str, Any]]:
     st = lambda o: o.get("status") or {}  # noqa: E731
     sp = lambda o: o.get("spec") or {}  # noqa: E731
     if rt.kind == "Pod":
@@ -69,25 +98,45 @@ def _columns(rt: ResourceType, crd_columns: list[dict] | None) -> list[tuple[str
         return [("Status", lambda o: st(o).get("phase", "Active"))]
     if rt.kind == "Lease":
         return [("Holder", lambda o: sp(o).get("holderIdentity", ""))]
-    cols = []
-    for c in crd_columns or []:
-        cols.append((c.get("name", ""), lambda o, p=c.get("jsonPath", ""): _path(o, p)))
-    return cols
+    return []
+
+
+def _crd_columns(rt: ResourceType) -> list[tuple[dict, Any]]:
+    """A CRD's additionalPrinterColumns (default: Age), dates shown as ages like the
+    apiextensions table convertor does."""
+    specs = list(rt.printer_columns) or [{"name": "Age", "type": "date",
+                                          "jsonPath": ".metadata.creationTimestamp"}]
+    out = []
+    for c in specs:
+        ctype = c.get("type", "string")
+        getter = (lambda o, p=c.get("jsonPath", ""): _age(json_path(o, p))
+                  if json_path(o, p) else "<unknown>") if ctype == "date" else \
+            (lambda o, p=c.get("jsonPath", ""): json_path(o, p))
+        out.append(({"name": c.get("name", ""), "type": "string" if ctype == "date" else ctype,
+                     "format": c.get("format", ""), "description": c.get("description", ""),
+                     "priority": c.get("priority", 0)}, getter))
+    return out
 
 
 def to_table(rt: ResourceType, items: list[dict], list_meta: dict) -> dict:
-    cols = _columns(rt, list(rt.printer_columns))
+    if rt.custom:
+        cols = _crd_columns(rt)
+    else:
+        cols = [({"name": n, "type": "string", "format": "", "description": n, "priority": 0}, f)
+                for n, f in _columns(rt)]
+        cols.append(({"name": "Age", "type": "string", "format": "",
+                      "description": "CreationTimestamp", "priority": 0},
+                     lambda o: _age((o.get("metadata") or {}).get("creationTimestamp"))))
     defs = [{"name": "Name", "type": "string", "format": "name",
              "description": "Name must be unique within a namespace.", "priority": 0}]
-    defs += [{"name": n, "type": "string", "format": "", "description": n, "priority": 0}
-             for n, _ in cols]
-    defs.append({"name": "Age", "type": "string", "format": "",
-                 "description": "CreationTimestamp", "priority": 0})
+    defs += [d for d, _ in cols]
     rows = []
     for o in items:
         md = o.get("metadata") or {}
-        cells = [md.get("name")] + [("" if f(o) is None else f(o)) for _, f in cols]
-        cells.append(_age(md.get("creationTimestamp")))
+        cells = [md.get("name")]
+        for _, f in cols:
+            v = f(o)
+            cells.append("" if v is None else v)
         rows.append({"cells": cells, "object": o})
     return {"kind": "Table", "apiVersion": "meta.k8s.io/v1", "metadata": list_meta,
             "columnDefinitions": defs, "rows": rows}
