@@ -49,9 +49,11 @@ from typing import Any
 
 from kubernetes import client as k8s
 from kubernetes import config as k8s_config
+from kubernetes.client import rest as k8s_rest
 from kubernetes.config.config_exception import ConfigException
 from kubernetes.watch.watch import iter_resp_lines
 from urllib3.exceptions import HTTPError as Urllib3Error
+from urllib3.util.retry import Retry
 
 from ratefit.controller.errors import KubeConflict, KubeError, KubeGone, KubeNotFound
 from ratefit.controller.kube_lease import LeaderElector, micro_time
@@ -112,6 +114,21 @@ def default_identity() -> str:
     return f"{base}_{uuid.uuid4().hex[:8]}"
 
 
+def _own_the_retries(api_client: k8s.ApiClient) -> None:
+    """Turn off urllib3's own status retries on the client (by default it silently
+    retries 429/503 with Retry-After on GET/PUT, sleeping for real, invisible to our
+    backoff, metrics and injected sleep). Connection-level retries stay; reads that fail
+    mid-answer come back to ``call_with_retry``. Done once, only if the caller did not
+    configure ``retries`` on the client's Configuration."""
+    cfg = api_client.configuration
+    if cfg.retries is not None:
+        return
+    cfg.retries = Retry(total=3, connect=3, read=0, redirect=0, status=0, other=0,
+                        respect_retry_after_header=False, raise_on_status=False)
+    api_client.rest_client.close()
+    api_client.rest_client = k8s_rest.RESTClientObject(cfg)
+
+
 class KubeAdapter:
     """All Kubernetes I/O of the controller. ``identity`` names this replica in Events
     (reportingInstance) and in the Lease. ``clock`` (epoch seconds) stamps Events;
@@ -128,6 +145,7 @@ class KubeAdapter:
         rng: Callable[[], float] = random.random,
         request_timeout: float = 30.0,
     ) -> None:
+        _own_the_retries(api_client)
         self.api_client = api_client
         self.identity = identity or default_identity()
         self.retry = retry

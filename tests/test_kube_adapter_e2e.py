@@ -1,0 +1,573 @@
+"""The Kubernetes adapter end to end: the official ``kubernetes`` client over real HTTP
+against the local sandbox API server (controller/sandbox, a stand-in for a cluster).
+
+Each test works in a namespace of its own, so tests do not see each other's objects.
+What is checked comes from the Kubernetes API docs: strategic merge of containers by
+``name``; ``dryRun=All`` stores nothing; a stale ``metadata.resourceVersion`` in a patch
+gives 409; status-subresource writes do not move ``generation``; Events (events.k8s.io/v1)
+fields; the Lease fields and client-go's leader-election rules (from memory).
+"""
+
+from __future__ import annotations
+
+import queue
+import re
+import threading
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+from kubernetes import client as k8s
+
+from ratefit.controller.errors import KubeConflict, KubeInvalid, KubeNotFound, KubeUnavailable
+from ratefit.controller.kube import REPORTING_CONTROLLER, KubeAdapter, retry_on_conflict
+from ratefit.controller.kube_retry import RetryPolicy
+from ratefit.controller.sandbox.server import SandboxServer
+from ratefit.controller.workload import PREVIOUS_REQUESTS_ANNOTATION, CpuChange, EventType, WorkloadKind
+
+ROOT = Path(__file__).resolve().parent.parent
+CRD = ROOT / "manifests" / "crd" / "sizingpolicy.yaml"
+
+# A minimal stand-in CRD of the same group/plural, used only if the project's CRD is missing.
+MINIMAL_CRD = {
+    "apiVersion": "apiextensions.k8s.io/v1",
+    "kind": "CustomResourceDefinition",
+    "metadata": {"name": "sizingpolicies.ratefit.dev"},
+    "spec": {
+        "group": "ratefit.dev",
+        "scope": "Namespaced",
+        "names": {"plural": "sizingpolicies", "singular": "sizingpolicy", "kind": "SizingPolicy",
+                  "listKind": "SizingPolicyList"},
+        "versions": [{
+            "name": "v1alpha1", "served": True, "storage": True,
+            "subresources": {"status": {}},
+            "schema": {"openAPIV3Schema": {"type": "object", "properties": {
+                "spec": {"type": "object", "x-kubernetes-preserve-unknown-fields": True},
+                "status": {"type": "object", "x-kubernetes-preserve-unknown-fields": True}}}},
+        }],
+    },
+}
+
+
+@pytest.fixture(scope="module")
+def sandbox() -> Iterator[SandboxServer]:
+    sb = SandboxServer(load=[CRD] if CRD.exists() else ()).start()
+    try:
+        if not CRD.exists():
+            sb.create(MINIMAL_CRD)
+        yield sb
+    finally:
+        sb.stop()
+
+
+class Sleeps(list):
+    """An injected sleep: records the waits instead of waiting."""
+
+    def __call__(self, seconds: float) -> None:
+        self.append(seconds)
+
+
+@pytest.fixture
+def sleeps() -> Sleeps:
+    return Sleeps()
+
+
+@pytest.fixture
+def adapter(sandbox: SandboxServer, tmp_path: Path, sleeps: Sleeps) -> Iterator[KubeAdapter]:
+    # through a written kubeconfig, as `ratefit run --kubeconfig` does
+    kubeconfig = sandbox.write_kubeconfig(tmp_path / "kubeconfig")
+    kube = KubeAdapter.from_kubeconfig(str(kubeconfig), identity="ratefit-test-0", sleep=sleeps,
+                                       retry=RetryPolicy(max_attempts=4, base_delay=0.5, max_delay=4.0))
+    sandbox.faults.clear()
+    try:
+        yield kube
+    finally:
+        sandbox.faults.clear()
+        kube.close()
+
+
+@pytest.fixture
+def ns(sandbox: SandboxServer) -> str:
+    name = f"t-{uuid.uuid4().hex[:10]}"
+    sandbox.create({"apiVersion": "v1", "kind": "Namespace", "metadata": {"name": name}})
+    return name
+
+
+@pytest.fixture
+def raw(sandbox: SandboxServer) -> Iterator[k8s.ApiClient]:
+    api = sandbox.api_client()
+    try:
+        yield api
+    finally:
+        api.close()
+
+
+PROBE = {"httpGet": {"path": "/healthz", "port": 8080}, "periodSeconds": 10}
+
+
+def deployment(ns: str, name: str = "web", *, replicas: int = 2, cpu: str = "500m", limit: str | None = "1") -> dict:
+    res: dict = {"requests": {"cpu": cpu, "memory": "256Mi"}, "limits": {"memory": "512Mi"}}
+    if limit is not None:
+        res["limits"]["cpu"] = limit
+    return {
+        "apiVersion": "apps/v1", "kind": "Deployment",
+        "metadata": {"name": name, "namespace": ns, "annotations": {"team": "parcels"}},
+        "spec": {
+            "replicas": replicas,
+            "selector": {"matchLabels": {"app": name}},
+            "template": {
+                "metadata": {"labels": {"app": name}},
+                "spec": {"containers": [
+                    {"name": "app", "image": "example.invalid/app:1", "resources": res,
+                     "env": [{"name": "MODE", "value": "prod"}, {"name": "THREADS", "value": "4"}],
+                     "readinessProbe": PROBE, "livenessProbe": PROBE,
+                     "ports": [{"containerPort": 8080}]},
+                    {"name": "sidecar", "image": "example.invalid/proxy:2",
+                     "resources": {"requests": {"cpu": "100m"}, "limits": {"cpu": "200m"}},
+                     "env": [{"name": "UPSTREAM", "value": "127.0.0.1:8080"}]},
+                ]},
+            },
+        },
+    }
+
+
+def policy(ns: str, name: str = "web") -> dict:
+    return {
+        "apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
+        "metadata": {"name": name, "namespace": ns},
+        "spec": {"workload": {"kind": "Deployment", "name": "web"}, "mode": "dry-run",
+                 "containers": [{"name": "app", "model": f"{ns}/web/app"}]},
+    }
+
+
+def container(dep: dict, name: str) -> dict:
+    return next(c for c in dep["spec"]["template"]["spec"]["containers"] if c["name"] == name)
+
+
+def read_raw(raw: k8s.ApiClient, ns: str, name: str = "web") -> dict:
+    return raw.sanitize_for_serialization(k8s.AppsV1Api(raw).read_namespaced_deployment(name, ns))
+
+
+def patch_requests(sandbox: SandboxServer, ns: str) -> list[dict]:
+    return [r for r in sandbox.requests if r["method"] == "PATCH" and f"/namespaces/{ns}/" in r["path"]]
+
+
+# ------------------------------------------------------------------ patching the template
+def test_patch_touches_only_cpu_after_a_dry_run(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                raw: k8s.ApiClient) -> None:
+    sandbox.create(deployment(ns))
+    before = read_raw(raw, ns)
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    assert wl.container("app").cpu_request_m == 500 and wl.container("app").cpu_limit_m == 1000
+
+    stored = adapter.patch_cpu(wl, {"app": CpuChange(300, limit_m=600)})
+
+    after = read_raw(raw, ns)
+    app_b, app_a = container(before, "app"), container(after, "app")
+    assert app_a["resources"]["requests"] == {"cpu": "300m", "memory": "256Mi"}
+    assert app_a["resources"]["limits"] == {"cpu": "600m", "memory": "512Mi"}
+    # strategic merge by `name`: everything else of the container and the other container as they were
+    for key in ("env", "readinessProbe", "livenessProbe", "ports", "image"):
+        assert app_a[key] == app_b[key], key
+    assert container(after, "sidecar") == container(before, "sidecar")
+    assert after["spec"]["replicas"] == before["spec"]["replicas"]
+    assert after["metadata"]["annotations"]["team"] == "parcels"
+    assert after["metadata"]["generation"] == before["metadata"]["generation"] + 1
+    assert stored.container("app").cpu_request_m == 300
+    assert stored.resource_version == after["metadata"]["resourceVersion"]
+    # the server-side dry run went first, then exactly one real patch, both strategic merge
+    patches = patch_requests(sandbox, ns)
+    assert [p["query"].get("dryRun") for p in patches] == ["All", None]
+    assert all(p["contentType"].startswith("application/strategic-merge-patch+json") for p in patches)
+
+
+def test_request_above_limit_is_refused_by_the_dry_run(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                       raw: k8s.ApiClient) -> None:
+    sandbox.create(deployment(ns))
+    wl = adapter.read_workload(ns, WorkloadKind.DEPLOYMENT, "web")
+    with pytest.raises(KubeInvalid) as info:
+        adapter.patch_cpu(wl, {"app": CpuChange(1500)})  # limit stays 1 core
+    # the API server's wording (DESIGN.md, Kubernetes facts): "must be less than or equal to cpu limit"
+    assert "less than or equal to cpu limit" in info.value.server_message
+    assert info.value.status == 422
+    assert read_raw(raw, ns)["metadata"]["resourceVersion"] == wl.resource_version
+    assert [p["query"].get("dryRun") for p in patch_requests(sandbox, ns)] == ["All"]  # never sent for real
+
+
+def test_limit_kept_raised_or_dropped(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                      raw: k8s.ApiClient) -> None:
+    sandbox.create(deployment(ns))
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    wl = adapter.patch_cpu(wl, {"app": CpuChange(400)})  # limits: keep
+    assert container(read_raw(raw, ns), "app")["resources"]["limits"]["cpu"] == "1"
+    wl = adapter.patch_cpu(wl, {"app": CpuChange(1200, limit_m=2000)})  # keep-ratio: both move
+    res = container(read_raw(raw, ns), "app")["resources"]
+    assert (res["requests"]["cpu"], res["limits"]["cpu"]) == ("1200m", "2")  # canonical form
+    wl = adapter.patch_cpu(wl, {"app": CpuChange(900, drop_limit=True)})  # limits: drop
+    res = container(read_raw(raw, ns), "app")["resources"]
+    assert "cpu" not in res.get("limits", {}) and res["limits"]["memory"] == "512Mi"
+    assert wl.container("app").cpu_limit_m is None
+
+
+def test_stale_read_gets_conflict_and_nothing_is_overwritten(sandbox: SandboxServer, adapter: KubeAdapter,
+                                                             ns: str, raw: k8s.ApiClient) -> None:
+    sandbox.create(deployment(ns))
+    stale = adapter.read_workload(ns, "Deployment", "web")
+    # someone else changes the workload after our read
+    k8s.AppsV1Api(raw).patch_namespaced_deployment(
+        "web", ns, {"metadata": {"annotations": {"owner": "someone-else"}}})
+    with pytest.raises(KubeConflict):
+        adapter.patch_cpu(stale, {"app": CpuChange(300)})
+    assert container(read_raw(raw, ns), "app")["resources"]["requests"]["cpu"] == "500m"
+
+    # the documented remedy: re-read, recompute, retry
+    def attempt():
+        return adapter.patch_cpu(adapter.read_workload(ns, "Deployment", "web"), {"app": CpuChange(300)})
+
+    stored = retry_on_conflict(attempt)
+    assert stored.container("app").cpu_request_m == 300
+    assert stored.annotations["owner"] == "someone-else"
+
+
+def test_extra_annotations_and_after_dry_run_hook(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                  raw: k8s.ApiClient) -> None:
+    sandbox.create(deployment(ns))
+    wl = adapter.read_workload(ns, "Deployment", "web")
+
+    class Stop(Exception):
+        pass
+
+    def refuse() -> None:
+        raise Stop
+
+    with pytest.raises(Stop):
+        adapter.patch_cpu(wl, {"app": CpuChange(300)}, after_dry_run=refuse)
+    assert read_raw(raw, ns)["metadata"]["resourceVersion"] == wl.resource_version  # nothing sent
+    stored = adapter.patch_cpu(wl, {"app": CpuChange(300)}, annotations={"ratefit.dev/last-change": "T"})
+    assert stored.annotations["ratefit.dev/last-change"] == "T"
+    assert PREVIOUS_REQUESTS_ANNOTATION in stored.annotations
+
+
+def test_previous_requests_recorded_once_and_reverted(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                      raw: k8s.ApiClient) -> None:
+    sandbox.create(deployment(ns))
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    wl = adapter.patch_cpu(wl, {"app": CpuChange(300, limit_m=600)})
+    wl = adapter.patch_cpu(wl, {"app": CpuChange(200, limit_m=400), "sidecar": CpuChange(150)})
+    prev = wl.previous_requests
+    # the values before ratefit's FIRST change of each container
+    assert (prev["app"].cpu_request_m, prev["app"].cpu_limit_m) == (500, 1000)
+    assert (prev["sidecar"].cpu_request_m, prev["sidecar"].cpu_limit_m) == (100, 200)
+
+    reverted = adapter.revert(ns, "Deployment", "web")
+    assert reverted is not None
+    after = read_raw(raw, ns)
+    assert container(after, "app")["resources"]["requests"] == {"cpu": "500m", "memory": "256Mi"}
+    assert container(after, "app")["resources"]["limits"] == {"cpu": "1", "memory": "512Mi"}
+    assert container(after, "sidecar")["resources"] == {"requests": {"cpu": "100m"}, "limits": {"cpu": "200m"}}
+    assert PREVIOUS_REQUESTS_ANNOTATION not in (after["metadata"].get("annotations") or {})
+    assert after["metadata"]["annotations"]["team"] == "parcels"
+    assert adapter.revert(ns, "Deployment", "web") is None  # nothing left to revert
+
+
+def test_revert_removes_a_request_that_was_not_set(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                   raw: k8s.ApiClient) -> None:
+    dep = deployment(ns, limit=None)
+    del container(dep, "app")["resources"]["requests"]["cpu"]
+    sandbox.create(dep)
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    assert wl.container("app").cpu_request_m is None
+    adapter.patch_cpu(wl, {"app": CpuChange(250)})
+    adapter.revert(ns, "Deployment", "web")
+    res = container(read_raw(raw, ns), "app")["resources"]
+    assert "cpu" not in res.get("requests", {}) and "cpu" not in res.get("limits", {})
+
+
+def test_statefulset_read_and_patch(sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
+    dep = deployment(ns, "db", replicas=1)
+    sts = {**dep, "kind": "StatefulSet", "spec": {**dep["spec"], "serviceName": "db"}}
+    sandbox.create(sts)
+    wl = adapter.read_workload(ns, "statefulset", "db")
+    assert wl.kind is WorkloadKind.STATEFULSET and wl.selector == "app=db"
+    stored = adapter.patch_cpu(wl, {"app": CpuChange(700)})
+    assert stored.container("app").cpu_request_m == 700
+    assert [w.name for w in adapter.list_workloads("StatefulSet", namespace=ns)] == ["db"]
+
+
+def test_missing_workload_is_not_found(adapter: KubeAdapter, ns: str) -> None:
+    with pytest.raises(KubeNotFound):
+        adapter.read_workload(ns, "Deployment", "nope")
+
+
+# ------------------------------------------------------------------ pods, in-place resize, HPAs
+def test_pods_listed_and_resized_in_place_one_at_a_time(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                        raw: k8s.ApiClient) -> None:
+    sandbox.create(deployment(ns, replicas=3))
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    pods = adapter.list_pods(wl)
+    assert len(pods) == 3 and all(p.containers[0].cpu_request_m == 500 for p in pods)
+
+    outcomes = adapter.resize_pods(pods, {"app": CpuChange(400, limit_m=800)})
+    assert [o.ok for o in outcomes] == [True, True, True]
+    core = k8s.CoreV1Api(raw)
+    for p in pods:
+        spec = raw.sanitize_for_serialization(core.read_namespaced_pod(p.name, ns))["spec"]
+        res = next(c for c in spec["containers"] if c["name"] == "app")["resources"]
+        assert (res["requests"]["cpu"], res["limits"]["cpu"]) == ("400m", "800m")
+    # one request per pod, to the resize subresource; the template is left as it was
+    resizes = [r for r in patch_requests(sandbox, ns) if r["path"].endswith("/resize")]
+    assert sorted(r["path"].split("/")[-2] for r in resizes) == sorted(p.name for p in pods)
+    assert adapter.read_workload(ns, "Deployment", "web").container("app").cpu_request_m == 500
+    again = adapter.list_pods(wl)
+    assert all(p.containers[0].cpu_request_m == 400 for p in again)  # status.containerStatuses[].resources
+
+
+def test_resize_stops_at_the_first_refusal(sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
+    sandbox.create(deployment(ns, replicas=3))
+    pods = adapter.list_pods(adapter.read_workload(ns, "Deployment", "web"))
+    outcomes = adapter.resize_pods(pods, {"app": CpuChange(2000)})  # above the 1-core limit
+    assert outcomes[0].ok is False and outcomes[0].error_kind == "KubeInvalid"
+    assert [o.error_kind for o in outcomes[1:]] == ["Skipped", "Skipped"]
+    with pytest.raises(Exception, match="cannot remove a CPU limit"):
+        adapter.resize_pods(pods, {"app": CpuChange(100, drop_limit=True)})
+
+
+def test_hpas_targeting_the_workload(sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
+    sandbox.create(deployment(ns))
+    sandbox.create(deployment(ns, "other"))
+
+    def hpa(name: str, target: str, metrics: list) -> dict:
+        return {"apiVersion": "autoscaling/v2", "kind": "HorizontalPodAutoscaler",
+                "metadata": {"name": name, "namespace": ns},
+                "spec": {"scaleTargetRef": {"apiVersion": "apps/v1", "kind": "Deployment", "name": target},
+                         "minReplicas": 1, "maxReplicas": 5, "metrics": metrics}}
+
+    sandbox.create(hpa("web-cpu", "web", [{"type": "Resource", "resource": {
+        "name": "cpu", "target": {"type": "Utilization", "averageUtilization": 70}}}]))
+    sandbox.create(hpa("other-mem", "other", [{"type": "Resource", "resource": {
+        "name": "memory", "target": {"type": "Utilization", "averageUtilization": 70}}}]))
+    web = adapter.find_hpas(adapter.read_workload(ns, "Deployment", "web"))
+    assert [(h.name, h.scales_on_cpu_utilization) for h in web] == [("web-cpu", True)]
+    other = adapter.find_hpas(adapter.read_workload(ns, "Deployment", "other"))
+    assert [(h.name, h.scales_on_cpu_utilization) for h in other] == [("other-mem", False)]
+
+
+# ------------------------------------------------------------------ events and status
+def test_event_written_with_the_events_v1_fields(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                 raw: k8s.ApiClient) -> None:
+    sandbox.create(deployment(ns))
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    name = adapter.emit_event(regarding=wl.ref, reason="CpuRequestChanged", action="Patch",
+                              note="app: 500m -> 300m at 42 req/s", type=EventType.NORMAL)
+    ev = raw.sanitize_for_serialization(k8s.EventsV1Api(raw).read_namespaced_event(name, ns))
+    assert ev["reason"] == "CpuRequestChanged" and ev["action"] == "Patch" and ev["type"] == "Normal"
+    assert ev["reportingController"] == REPORTING_CONTROLLER and ev["reportingInstance"] == "ratefit-test-0"
+    assert ev["regarding"]["kind"] == "Deployment" and ev["regarding"]["name"] == "web"
+    assert ev["regarding"]["uid"] == wl.uid
+    # eventTime is a MicroTime: RFC 3339 with microseconds (metav1.MicroTime)
+    assert re.fullmatch(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\.\d{6}(Z|\+00:00)", str(ev["eventTime"]))
+    with pytest.raises(Exception, match="UpperCamelCase"):
+        adapter.emit_event(regarding=wl.ref, reason="cpu changed", action="Patch", note="x")
+
+
+def test_status_written_through_subresource_without_moving_generation(
+        sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
+    sandbox.create(policy(ns))
+    before = adapter.read_policy(ns, "web")
+    status = {"observedGeneration": before.generation, "conditions": [{
+        "type": "Ready", "status": "True", "reason": "Sized", "message": "ok",
+        "lastTransitionTime": "2026-01-01T00:00:00Z", "observedGeneration": before.generation}],
+        "proposals": [{"container": "app", "current": "500m", "proposed": "300m", "verdict": "proposed",
+                       "why": "NewTarget"}]}
+    after = adapter.write_policy_status(ns, "web", status, resource_version=before.resource_version)
+    assert after.status["proposals"][0]["proposed"] == "300m"
+    assert after.generation == before.generation  # status writes never bump generation
+    assert after.spec == before.spec
+    assert adapter.read_policy(ns, "web").status["conditions"][0]["reason"] == "Sized"
+    with pytest.raises(KubeConflict):  # the stale resourceVersion precondition holds
+        adapter.write_policy_status(ns, "web", status, resource_version=before.resource_version)
+
+
+def test_list_policies_by_namespace_and_all(sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
+    sandbox.create(policy(ns, "a"))
+    sandbox.create(policy(ns, "b"))
+    mine = adapter.list_policies([ns])
+    assert sorted(p.name for p in mine.items) == ["a", "b"] and mine.resource_version
+    everywhere = adapter.list_policies()
+    assert {("a", ns), ("b", ns)} <= {(p.name, p.namespace) for p in everywhere.items}
+
+
+def test_watch_sees_changes_and_relists_after_gone(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                   raw: k8s.ApiClient) -> None:
+    events: queue.Queue = queue.Queue()
+    stop = threading.Event()
+
+    def run() -> None:
+        for ev in adapter.watch_policies(namespace=ns, timeout_seconds=1, stop=stop):
+            events.put(ev)
+
+    t = threading.Thread(target=run, daemon=True)
+    t.start()
+    try:
+        first = events.get(timeout=10)
+        assert first.type == "RELISTED" and first.listed is not None and first.listed.items == ()
+        sandbox.create(policy(ns))
+        added = events.get(timeout=10)
+        assert added.type == "ADDED" and added.policy.name == "web"
+        k8s.CustomObjectsApi(raw).patch_namespaced_custom_object(
+            "ratefit.dev", "v1alpha1", ns, "sizingpolicies", "web", {"spec": {"mode": "apply"}})
+        modified = events.get(timeout=10)
+        assert modified.type == "MODIFIED" and modified.policy.spec["mode"] == "apply"
+    finally:
+        stop.set()
+        t.join(timeout=15)
+    assert not t.is_alive()
+
+    # a resourceVersion the server no longer keeps: 410 Gone → the adapter lists again
+    sandbox.create(policy(ns, "later"))
+    sandbox.store.compact()  # the sandbox forgets its change history, as etcd compaction does
+    gen = adapter.watch_policies(namespace=ns, resource_version="1", timeout_seconds=2)
+    ev = next(gen)
+    gen.close()
+    assert ev.type == "RELISTED" and sorted(p.name for p in ev.listed.items) == ["later", "web"]
+
+
+def test_watch_recovers_from_a_dropped_stream(sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
+    listed = adapter.list_policies([ns])
+    sandbox.faults.add("GET", f"/namespaces/{ns}/sizingpolicies", drop_watch=True, count=1)
+    sandbox.create(policy(ns, "one"))
+    sandbox.create(policy(ns, "two"))
+    gen = adapter.watch_policies(namespace=ns, resource_version=listed.resource_version, timeout_seconds=2)
+    seen = []
+    for ev in gen:
+        if ev.type == "ADDED":
+            seen.append(ev.policy.name)
+        if len(seen) == 2:
+            break
+    gen.close()
+    assert seen == ["one", "two"]  # each change once, in order, across the reconnect
+
+
+# ------------------------------------------------------------------ retries
+def test_429_retry_after_is_honoured(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                     sleeps: Sleeps) -> None:
+    sandbox.create(deployment(ns))
+    sandbox.faults.add("GET", f"/namespaces/{ns}/deployments/web$", status=429, retry_after=3, count=2)
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    assert wl.name == "web"
+    assert sleeps == [3, 3]  # RFC 9110 §10.2.3 / the API server's Retry-After, not our own backoff
+
+
+def test_500_backs_off_with_capped_jitter_then_succeeds(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                        sleeps: Sleeps, raw: k8s.ApiClient) -> None:
+    sandbox.create(deployment(ns))
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    # the real (non-dry-run) patch fails twice with 500, then goes through exactly once
+    sandbox.faults.add("PATCH", f"/namespaces/{ns}/deployments/web$", status=500, count=1)
+    adapter.patch_cpu(wl, {"app": CpuChange(300)})
+    assert len(sleeps) == 1 and 0 <= sleeps[0] <= 0.5  # full jitter, attempt 0: U(0, base)
+    assert container(read_raw(raw, ns), "app")["resources"]["requests"]["cpu"] == "300m"
+    assert read_raw(raw, ns)["metadata"]["generation"] == 2  # one template change, not two
+
+
+def test_unavailable_after_the_attempts_run_out(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                sleeps: Sleeps) -> None:
+    sandbox.create(deployment(ns))
+    sandbox.faults.add("GET", f"/namespaces/{ns}/deployments/web$", status=503, count=None)
+    with pytest.raises(KubeUnavailable) as info:
+        adapter.read_workload(ns, "Deployment", "web")
+    assert info.value.status == 503 and len(sleeps) == 3  # 4 attempts → 3 waits
+    assert all(0 <= s <= 4.0 for s in sleeps)
+
+
+def test_injected_conflict_is_handed_to_the_caller(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                                   raw: k8s.ApiClient) -> None:
+    sandbox.create(deployment(ns))
+    sandbox.faults.add("PATCH", f"/namespaces/{ns}/deployments/web$", conflict=True, count=1)
+    calls = []
+
+    def attempt():
+        calls.append(1)
+        return adapter.patch_cpu(adapter.read_workload(ns, "Deployment", "web"), {"app": CpuChange(300)})
+
+    stored = retry_on_conflict(attempt, attempts=3)
+    assert len(calls) == 2 and stored.container("app").cpu_request_m == 300
+    assert read_raw(raw, ns)["metadata"]["generation"] == 2
+
+
+# ------------------------------------------------------------------ leader election
+class Clock:
+    def __init__(self, t: float = 1_800_000_000.0) -> None:
+        self.t = t
+
+    def __call__(self) -> float:
+        return self.t
+
+
+def test_lease_taken_over_only_after_expiry(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                            raw: k8s.ApiClient) -> None:
+    clock = Clock()
+    a = adapter.leader_elector(namespace=ns, name="ratefit", clock=clock)
+    other = KubeAdapter(sandbox.api_client(), identity="ratefit-test-1")
+    b = other.leader_elector(namespace=ns, name="ratefit", clock=clock)
+    try:
+        assert a.try_acquire_or_renew() and a.is_leader
+        assert not b.try_acquire_or_renew() and not b.is_leader
+        lease = raw.sanitize_for_serialization(k8s.CoordinationV1Api(raw).read_namespaced_lease("ratefit", ns))
+        assert lease["spec"]["holderIdentity"] == "ratefit-test-0"
+        assert lease["spec"]["leaseDurationSeconds"] == 15 and lease["spec"]["leaseTransitions"] == 0
+
+        clock.t += 8
+        assert a.try_acquire_or_renew()  # t=8: renewals keep it
+        clock.t += 1
+        assert not b.try_acquire_or_renew()  # t=9: B sees the renewed record (its observedTime)
+        # A stops renewing (crashed); its own view lapses at the renew deadline (10 s)
+        clock.t += 11
+        assert not a.is_leader  # t=20: 12 s since A's last renewal
+        assert not b.try_acquire_or_renew()  # t=20: 11 s since B saw a change: still live
+        clock.t += 5
+        assert b.try_acquire_or_renew() and b.is_leader  # t=25: 16 s > 15 s without a change: expired
+        lease = raw.sanitize_for_serialization(k8s.CoordinationV1Api(raw).read_namespaced_lease("ratefit", ns))
+        assert lease["spec"]["holderIdentity"] == "ratefit-test-1" and lease["spec"]["leaseTransitions"] == 1
+        assert not a.try_acquire_or_renew()  # the old holder comes back and finds a live lease
+
+        b.release()  # clean shutdown clears holderIdentity: no waiting for expiry
+        assert not b.is_leader
+        assert a.try_acquire_or_renew() and a.is_leader
+    finally:
+        other.close()
+
+
+def test_lease_race_has_one_winner(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+                                   raw: k8s.ApiClient) -> None:
+    clock = Clock()
+    # a Lease left behind by a replica that died
+    sandbox.create({"apiVersion": "coordination.k8s.io/v1", "kind": "Lease",
+                    "metadata": {"name": "race", "namespace": ns},
+                    "spec": {"holderIdentity": "gone", "leaseDurationSeconds": 15, "leaseTransitions": 3,
+                             "renewTime": "2020-01-01T00:00:00.000000Z"}})
+    a = adapter.leader_elector(namespace=ns, name="race", clock=clock)
+    other = KubeAdapter(sandbox.api_client(), identity="ratefit-test-1")
+    b = other.leader_elector(namespace=ns, name="race", clock=clock)
+    try:
+        assert not a.try_acquire_or_renew() and not b.try_acquire_or_renew()  # both wait one duration
+        clock.t += 16
+        # B reads the expired Lease; before B writes, A takes it; B's write carries the
+        # resourceVersion it read → 409 from the server → B stays a follower
+        real_get = b._get
+
+        def read_then_a_wins():
+            lease = real_get()
+            assert a.try_acquire_or_renew()
+            return lease
+
+        b._get = read_then_a_wins  # type: ignore[method-assign]
+        assert not b.try_acquire_or_renew() and not b.is_leader
+        b._get = real_get  # type: ignore[method-assign]
+        assert a.is_leader
+        spec = raw.sanitize_for_serialization(k8s.CoordinationV1Api(raw).read_namespaced_lease("race", ns))["spec"]
+        assert spec["holderIdentity"] == "ratefit-test-0" and spec["leaseTransitions"] == 4
+        assert not b.try_acquire_or_renew()
+    finally:
+        other.close()
