@@ -147,10 +147,8 @@ class World:
         return ReplayRateSource(self.history, at=self.at)
 
     def sizing(self, url: str | None = None, **kwargs: Any) -> Any:
-        try:
-            from ratefit.controller.sizing_client import SizingClient
-        except ImportError:  # until controller/sizing_client.py lands
-            SizingClient = _InterimSizingClient  # noqa: N806
+        from ratefit.controller.sizing_client import SizingClient
+
         kwargs.setdefault("timeout", 10.0)
         c = SizingClient(url or self.api_url, **kwargs)
         self._closers.append(c)
@@ -203,26 +201,6 @@ class World:
         path = f"/apis/apps/v1/namespaces/{ns}/{kind}/{name}"
         return [r for r in list(self.sandbox.requests)
                 if r["method"] == "PATCH" and r["path"] == path and r["query"].get("dryRun") != "All"]
-
-
-class _InterimSizingClient:
-    """POST /v1/demand over httpx (used only until controller/sizing_client lands)."""
-
-    def __init__(self, base_url: str, *, timeout: float = 10.0, **_: Any) -> None:
-        self._http = httpx.Client(base_url=base_url, timeout=timeout)
-
-    def demand_batch(self, items: Sequence[tuple[str, float]]) -> list[dict[str, Any]]:
-        from ratefit.models.errors import RatefitError
-
-        try:
-            r = self._http.post("/v1/demand", json={"items": [{"model": m, "rate": x} for m, x in items]})
-            r.raise_for_status()
-        except httpx.HTTPError as exc:
-            raise RatefitError(f"sizing API: {exc}") from exc
-        return r.json()["items"]
-
-    def close(self) -> None:
-        self._http.close()
 
 
 @contextlib.contextmanager
