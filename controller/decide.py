@@ -303,7 +303,8 @@ def decide_container(
     (the workload gates, dry-run and the budget come in :func:`decide_workload`)."""
     current = observed.request_m if observed.request_m is not None else observed.limit_m
     limit = observed.limit_m
-    base = Decision(
+    # the fields every outcome shares; each return builds one Decision (cheaper than dataclasses.replace)
+    base: dict[str, Any] = dict(
         container=container.name,
         verdict=Verdict.HELD,
         why=Why.NO_METRICS,
@@ -315,22 +316,25 @@ def decide_container(
         settle=history,
         settle_if_held=history,
     )
+
+    def out(**fields: Any) -> Decision:
+        return Decision(**{**base, **fields})
+
     rate = observed.rate
     if rate is None or not math.isfinite(rate) or rate < 0:
-        return replace(base, rate=None, message="no usable per-pod request rate this pass; nothing changes")
+        return out(rate=None, message="no usable per-pod request rate this pass; nothing changes")
     s = observed.sizing
     if s is None:
-        return replace(base, why=Why.NO_MODEL, message=f"the sizing API has no answer for model {container.model!r}")
+        return out(why=Why.NO_MODEL, message=f"the sizing API has no answer for model {container.model!r}")
     if not (math.isfinite(s.demand) and math.isfinite(s.upper) and s.demand >= 0 and s.upper >= 0):
-        return replace(base, why=Why.NO_MODEL, message=f"the sizing API answered an unusable demand for {container.model!r}")
+        return out(why=Why.NO_MODEL, message=f"the sizing API answered an unusable demand for {container.model!r}")
     keep_limit = limit if policy.limits is LimitsMode.KEEP else None
     target, bound = target_millicores(
         s.upper, headroom=policy.headroom, floor_m=container.floor_m, ceiling_m=container.ceiling_m, limit_m=keep_limit
     )
-    base = replace(base, target_m=target, demand=s.demand, upper=s.upper, extrapolated=s.extrapolated)
+    base.update(target_m=target, demand=s.demand, upper=s.upper, extrapolated=s.extrapolated)
     if s.extrapolated and not policy.allow_extrapolation:
-        return replace(
-            base,
+        return out(
             why=Why.EXTRAPOLATED,
             message=f"rate {rate:g}/s is beyond the trained range of {container.model!r}; "
             "retrain the model or set allowExtrapolation",
@@ -344,8 +348,7 @@ def decide_container(
         msg = f"{verb} to {_mc(new_m)} (target {_mc(target)})"
         if limited:
             msg += f", cut by stepLimit ×{policy.step_limit.up if verb == 'raise' else policy.step_limit.down}"
-        return replace(
-            base,
+        return out(
             verdict=Verdict.CHANGED,
             why=why,
             proposed_m=new_m,
@@ -366,12 +369,12 @@ def decide_container(
             settling = ContainerHistory(below_since=now, peak_m=target)
     else:
         settling = ContainerHistory()
-    base = replace(base, settle=settling, settle_if_held=settling)
+    base.update(settle=settling, settle_if_held=settling)
 
     if _inside_deadband(current, target, policy.deadband):
         why = bound or Why.INSIDE_DEADBAND
-        return replace(
-            base, why=why, message=f"target {_mc(target)} is within the deadband of {_mc(current)}"
+        return out(
+            why=why, message=f"target {_mc(target)} is within the deadband of {_mc(current)}"
         )
     up, down = policy.step_limit.up, policy.step_limit.down
     if target > current:
@@ -384,16 +387,14 @@ def decide_container(
     new_m, limited = step_limit(current, goal, up=up, down=down)
     waited = (now - settling.below_since).total_seconds()
     if waited < policy.settle_s:
-        return replace(
-            base,
+        return out(
             why=Why.SETTLING,
             proposed_m=new_m,
             proposed_limit_m=limit_for(current, limit, new_m, policy.limits),
             message=f"target below {_mc(current)} for {int(waited)}s of {int(policy.settle_s)}s settle",
         )
     if _inside_deadband(current, goal, policy.deadband):
-        return replace(
-            base,
+        return out(
             why=Why.INSIDE_DEADBAND,
             message=f"highest target while settling {_mc(goal)} is within the deadband of {_mc(current)}",
         )
