@@ -169,3 +169,24 @@ def test_train_from_real_prometheus(scenario_prometheus, tmp_path: Path, capsys)
     rates = np.linspace(lo + 0.2 * (hi - lo), hi - 0.2 * (hi - lo), 5)
     got = art.demand_curve().lookup(rates).demand
     assert np.allclose(got, truth(rates), rtol=0.15), (got, truth(rates))
+
+
+def test_report_command_from_store(trained, tmp_path: Path, capsys) -> None:
+    store, tmp = trained
+    rc, out, err = _run(capsys, "report", KEY, "--store", str(store), "--out", str(tmp_path / "r2"),
+                        "--samples", str(tmp / "web.csv"))
+    assert rc == 0, err
+    md = (tmp_path / "r2" / "shop__web__app.md").read_text()
+    art = ModelStore(store).load(KEY)
+    assert f"**{art.chosen}**" in md and f"{art.samples} used of {art.samples_total}" in md
+    assert (tmp_path / "r2" / "shop__web__app.png").stat().st_size > 20_000
+
+
+def test_bad_options(tmp_path: Path, capsys) -> None:
+    csv = str(_csv(tmp_path / "w.csv", 100))
+    rc, _, err = _run(capsys, "train", "--samples", csv, "--key", KEY, "--store", str(tmp_path), "--coverage", "1.5")
+    assert rc == 2 and "coverage" in err
+    rc, _, err = _run(capsys, "train", "--samples", csv, "--key", KEY, "--store", str(tmp_path), "--warmup", "soon")
+    assert rc == 2 and "--warmup" in err
+    rc, _, err = _run(capsys, "train", "--samples", csv, "--samples-dir", str(tmp_path), "--store", str(tmp_path))
+    assert rc == 2 and "exactly one" in err
