@@ -147,3 +147,35 @@ def test_real_sizingpolicy_crd_and_examples_load(kubectl, sandbox) -> None:
     short = kubectl("get", "rfp", "-A", "-o", "name", check=True).stdout
     assert short.count("sizingpolicy.ratefit.dev/") == sum(
         1 for o in loaded if o["kind"] == "SizingPolicy")
+
+
+def test_scale_rollout_status_events_and_delete(kubectl, app_file, sandbox_api) -> None:
+    from kubernetes import client
+
+    kubectl("apply", "-f", str(app_file), check=True)
+    kubectl("scale", "deployment", "label-printer", "--replicas=3", check=True)  # /scale
+    out = kubectl("rollout", "status", "deployment/label-printer", "--timeout=10s", check=True)
+    assert 'deployment "label-printer" successfully rolled out' in out.stdout
+    pods = kubectl("get", "pods", "-o", "name", check=True).stdout.split()
+    assert len(pods) == 3
+    # an event written through events.k8s.io/v1 is visible to `kubectl get events`
+    # (core/v1): both APIs serve the same Event objects (Kubernetes docs, Event v1 API)
+    client.EventsV1Api(sandbox_api).create_namespaced_event("default", {
+        "metadata": {"name": "label-printer.1"}, "eventTime": "2026-01-01T00:00:00.000000Z",
+        "reportingController": "ratefit.dev/controller", "reportingInstance": "test",
+        "action": "Patch", "reason": "CPURequestChanged", "type": "Normal",
+        "note": "printer cpu 300m -> 250m",
+        "regarding": {"kind": "Deployment", "namespace": "default", "name": "label-printer"}})
+    events = kubectl("get", "events", check=True).stdout
+    assert "CPURequestChanged" in events and "deployment/label-printer" in events
+    assert "printer cpu 300m -> 250m" in events
+    kubectl("delete", "deployment", "label-printer", check=True)
+    assert kubectl("get", "pods", "-o", "name", check=True).stdout.strip() == ""
+
+
+def test_get_watch_streams_table_rows(kubectl, app_file) -> None:
+    kubectl("apply", "-f", str(app_file), check=True)
+    out = kubectl("get", "deployments", "-w", "--request-timeout=2s", timeout=20)
+    lines = out.stdout.splitlines()
+    assert lines[0].split()[:2] == ["NAME", "READY"]
+    assert lines[1].startswith("label-printer")

@@ -23,7 +23,7 @@ from typing import Any
 import yaml
 
 from ratefit.controller.sandbox import errors as E
-from ratefit.controller.sandbox import objects, schema, validation
+from ratefit.controller.sandbox import events, objects, schema, validation
 from ratefit.controller.sandbox.patches import PatchError, json_patch, merge_patch, strategic_merge
 from ratefit.controller.sandbox.resources import ResourceType, from_crd
 from ratefit.controller.sandbox.selectors import parse_field_selector, parse_label_selector
@@ -134,6 +134,8 @@ class Api:
                 out = self.list(r, req)
                 return Response(200, to_table(r.rtype, out["items"], out["metadata"])
                                 if table else out)
+            if m == "GET" and r.sub == "scale":
+                return Response(200, self._scale_view(r.rtype, self._lookup(r)))
             if m == "GET":
                 obj = self.get(r)
                 return Response(200, to_table(r.rtype, [obj], {"resourceVersion":
@@ -154,8 +156,16 @@ class Api:
 
     # --- helpers ------------------------------------------------------------------------
     def _shape(self, rt: ResourceType, obj: dict) -> dict:
+        """The stored object as the route's API version shows it."""
+        if rt.group == "events.k8s.io":
+            return events.to_events_v1(obj)
         obj["apiVersion"] = rt.group_version
         obj["kind"] = rt.kind
+        return obj
+
+    def _to_storage(self, rt: ResourceType, obj: dict) -> dict:
+        if rt.group == "events.k8s.io":
+            return events.to_core(obj)
         return obj
 
     def _load_body(self, req: Request) -> Any:
@@ -226,7 +236,7 @@ class Api:
                 md["generation"] = 1
             if r.rtype.has_status and r.rtype.key != PODS:
                 body.pop("status", None)
-            obj = self._admit(r.rtype, body, None, req)
+            obj = self._to_storage(r.rtype, self._admit(r.rtype, body, None, req))
             if dry:
                 obj["metadata"].pop("resourceVersion", None)
                 return self._shape(r.rtype, obj)
@@ -275,7 +285,7 @@ class Api:
             errs += validation.workload_errors(kind, obj, old)
         elif key == CRDS:
             errs += self._crd_errors(obj)
-        elif key == ("events.k8s.io", "events") and old is None:
+        elif rt.group == "events.k8s.io" and old is None:
             for f in ("eventTime", "reportingController", "reportingInstance", "action",
                       "reason"):
                 if not obj.get(f):
@@ -392,16 +402,17 @@ class Api:
         patch = self._load_body(req)
         with self.store.lock:
             old = self._lookup(r)
-            old = self._shape(r.rtype, old)
+            view = self._scale_view(r.rtype, old) if r.sub == "scale" else \
+                self._shape(r.rtype, copy.deepcopy(old))
             try:
                 if ctype == JSON_PATCH:
-                    new = json_patch(old, patch)
+                    new = json_patch(view, patch)
                 elif ctype == MERGE_PATCH:
                     if not isinstance(patch, dict):
                         raise PatchError("a merge patch must be a JSON object", malformed=True)
-                    new = merge_patch(old, patch)
+                    new = merge_patch(view, patch)
                 else:
-                    new = strategic_merge(old, patch)
+                    new = strategic_merge(view, patch)
             except PatchError as exc:
                 if exc.malformed:
                     raise E.bad_request(str(exc)) from exc
@@ -422,7 +433,10 @@ class Api:
         want_rv = md.get("resourceVersion")
         if want_rv and want_rv != old["metadata"]["resourceVersion"]:
             raise E.conflict(rt.plural, rt.group, r.name or "")
+        if r.sub == "scale":
+            return self._write_scale(r, req, old, body)
         self._check_type(rt, body)
+        body = self._to_storage(rt, body)
         if r.sub == "status":
             new = copy.deepcopy(old)
             if "status" in body:
@@ -458,6 +472,29 @@ class Api:
         if r.sub is None:
             self._after_write(rt, saved)
         return self._shape(rt, self.store.get(*rt.key, r.namespace, r.name or "") or saved)
+
+    # --- scale subresource --------------------------------------------------------------
+    def _scale_view(self, rt: ResourceType, obj: dict) -> dict:
+        """autoscaling/v1 Scale of a Deployment or StatefulSet (what `kubectl scale` uses)."""
+        md = obj["metadata"]
+        sel = ((obj.get("spec") or {}).get("selector") or {}).get("matchLabels") or {}
+        return {"kind": "Scale", "apiVersion": "autoscaling/v1",
+                "metadata": {k: md[k] for k in ("name", "namespace", "uid", "resourceVersion",
+                                                "creationTimestamp") if k in md},
+                "spec": {"replicas": (obj.get("spec") or {}).get("replicas", 1)},
+                "status": {"replicas": (obj.get("status") or {}).get("replicas", 0),
+                           "selector": ",".join(f"{k}={v}" for k, v in sorted(sel.items()))}}
+
+    def _write_scale(self, r: Route, req: Request, old: dict, body: dict) -> dict:
+        replicas = (body.get("spec") or {}).get("replicas")
+        if not isinstance(replicas, int) or replicas < 0:
+            raise E.invalid("Scale", "autoscaling", r.name or "", [E.FieldError(
+                "spec.replicas", E.INVALID, replicas, "must be greater than or equal to 0")])
+        new = self._shape(r.rtype, copy.deepcopy(old))
+        new["spec"]["replicas"] = replicas
+        main = Route(r.rtype, r.namespace, r.name, None)
+        self._write(main, req, old, new)
+        return self._scale_view(r.rtype, self._lookup(main))
 
     # --- pods/resize --------------------------------------------------------------------
     def _resize(self, rt: ResourceType, old: dict, body: dict) -> dict:
@@ -518,10 +555,15 @@ class Api:
     # --- delete -------------------------------------------------------------------------
     def delete(self, r: Route, req: Request) -> dict:
         dry = self._dry_run(req)
-        precond = {}
+        precond: dict = {}
+        policy = req.q("propagationPolicy") or ""
         if req.body:
             opts = self._load_body(req) or {}
-            precond = (opts.get("preconditions") or {}) if isinstance(opts, dict) else {}
+            if isinstance(opts, dict):
+                precond = opts.get("preconditions") or {}
+                policy = opts.get("propagationPolicy") or policy
+                if opts.get("dryRun"):
+                    dry = True
         with self.store.lock:
             obj = self._lookup(r)
             if precond.get("resourceVersion") and \
@@ -536,14 +578,27 @@ class Api:
                 raise E.conflict(r.rtype.plural, r.rtype.group, r.name or "",
                                  "the UID in the precondition does not match the UID in record")
             if not dry:
-                self._delete_one(r.rtype, r.namespace or "", r.name or "")
+                self._delete_one(r.rtype, r.namespace or "", r.name or "",
+                                 orphan=policy == "Orphan")
         if r.rtype.key == PODS or r.rtype.custom:
             return self._shape(r.rtype, obj)
         return {"kind": "Status", "apiVersion": "v1", "metadata": {}, "status": "Success",
                 "details": {"name": r.name, "group": r.rtype.group, "kind": r.rtype.plural,
                             "uid": obj["metadata"].get("uid")}}
 
-    def _delete_one(self, rt: ResourceType, ns: str, name: str) -> None:
+    def _delete_one(self, rt: ResourceType, ns: str, name: str, *, orphan: bool = False) -> None:
+        if orphan:
+            gone = self.store.remove(rt.key, ns, name)
+            uid = (gone or {}).get("metadata", {}).get("uid")
+            for key, items in list(self.store._objects.items()):
+                for obj in list(items.values()):
+                    refs = obj["metadata"].get("ownerReferences") or []
+                    if any(ref.get("uid") == uid for ref in refs):
+                        new = copy.deepcopy(obj)
+                        new["metadata"]["ownerReferences"] = [
+                            ref for ref in refs if ref.get("uid") != uid]
+                        self.store.save(key, new, obj)
+            return
         if rt.key == NAMESPACES:
             for key, items in list(self.store._objects.items()):
                 for (ons, oname) in list(items):
@@ -601,8 +656,14 @@ class Api:
                 return False
             return labels(md.get("labels") or {}) and fields(obj)
 
+        table = "as=Table" in req.headers.get("accept", "").replace(" ", "")
+
         def event(kind: str, obj: dict) -> dict:
-            return {"type": kind, "object": self._shape(rt, copy.deepcopy(obj))}
+            shown = self._shape(rt, copy.deepcopy(obj))
+            if table:   # kubectl get -w: each event carries a one-row Table
+                shown = to_table(rt, [shown], {"resourceVersion":
+                                               shown["metadata"].get("resourceVersion", "")})
+            return {"type": kind, "object": shown}
 
         def gen() -> Iterator[dict]:
             with self.store.lock:

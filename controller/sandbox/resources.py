@@ -31,6 +31,8 @@ class ResourceType:
     schema: dict[str, Any] | None = field(default=None, compare=False, hash=False)
     #: a CRD version's additionalPrinterColumns (kubectl get)
     printer_columns: tuple[dict[str, Any], ...] = field(default=(), compare=False, hash=False)
+    #: store objects under another group's key (events.k8s.io/v1 shares core/v1 Events)
+    storage_group: str | None = None
 
     @property
     def group_version(self) -> str:
@@ -39,7 +41,7 @@ class ResourceType:
     @property
     def key(self) -> tuple[str, str]:
         """Storage key: versions of one group share their objects."""
-        return (self.group, self.plural)
+        return (self.group if self.storage_group is None else self.storage_group, self.plural)
 
     @property
     def has_status(self) -> bool:
@@ -79,14 +81,14 @@ BUILTINS: tuple[ResourceType, ...] = (
        categories=("all",)),
     _r("", "v1", "events", "Event", short_names=("ev",)),
     _r("apps", "v1", "deployments", "Deployment", short_names=("deploy",),
-       subresources=("status",), categories=("all",)),
+       subresources=("status", "scale"), categories=("all",)),
     _r("apps", "v1", "statefulsets", "StatefulSet", short_names=("sts",),
-       subresources=("status",), categories=("all",)),
+       subresources=("status", "scale"), categories=("all",)),
     _r("apps", "v1", "replicasets", "ReplicaSet", short_names=("rs",),
        subresources=("status",), categories=("all",)),
     _r("autoscaling", "v2", "horizontalpodautoscalers", "HorizontalPodAutoscaler",
        short_names=("hpa",), subresources=("status",), categories=("all",)),
-    _r("events.k8s.io", "v1", "events", "Event", short_names=("ev",)),
+    _r("events.k8s.io", "v1", "events", "Event", short_names=("ev",), storage_group=""),
     _r("coordination.k8s.io", "v1", "leases", "Lease"),
     _r("apiextensions.k8s.io", "v1", "customresourcedefinitions", "CustomResourceDefinition",
        namespaced=False, short_names=("crd", "crds"), subresources=("status",)),

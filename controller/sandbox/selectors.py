@@ -3,7 +3,8 @@
 Label selector grammar (Kubernetes "Labels and Selectors" docs): comma-separated
 requirements `k=v`, `k==v`, `k!=v`, `k in (a,b)`, `k notin (a,b)`, `k` (exists) and
 `!k` (does not exist). Field selectors: `metadata.name`, `metadata.namespace` and, for
-pods, `status.phase` and `spec.nodeName`, with `=`, `==` and `!=`.
+pods, `status.phase` and `spec.nodeName`, for events `involvedObject.*`/`regarding.*`
+(name, namespace, uid, kind), `reason` and `type`, with `=`, `==` and `!=`.
 """
 
 from __future__ import annotations
@@ -92,6 +93,17 @@ _FIELDS: dict[str, Callable[[dict], Any]] = {
     "metadata.namespace": lambda o: o.get("metadata", {}).get("namespace"),
     "status.phase": lambda o: (o.get("status") or {}).get("phase"),
     "spec.nodeName": lambda o: (o.get("spec") or {}).get("nodeName"),
+    # events (core/v1 field names; what `kubectl describe` asks for)
+    "involvedObject.name": lambda o: (o.get("involvedObject") or {}).get("name"),
+    "involvedObject.namespace": lambda o: (o.get("involvedObject") or {}).get("namespace"),
+    "involvedObject.uid": lambda o: (o.get("involvedObject") or {}).get("uid"),
+    "involvedObject.kind": lambda o: (o.get("involvedObject") or {}).get("kind"),
+    "reason": lambda o: o.get("reason"),
+    "type": lambda o: o.get("type"),
+    "regarding.name": lambda o: (o.get("involvedObject") or {}).get("name"),
+    "regarding.namespace": lambda o: (o.get("involvedObject") or {}).get("namespace"),
+    "regarding.uid": lambda o: (o.get("involvedObject") or {}).get("uid"),
+    "regarding.kind": lambda o: (o.get("involvedObject") or {}).get("kind"),
 }
 
 

@@ -118,7 +118,33 @@ def _crd_columns(rt: ResourceType) -> list[tuple[dict, Any]]:
     return out
 
 
+def _event_columns() -> list[tuple[dict, Any]]:
+    def col(name: str, f: Any, priority: int = 0) -> tuple[dict, Any]:
+        return ({"name": name, "type": "string", "format": "", "description": name,
+                 "priority": priority}, f)
+
+    def obj(o: dict) -> str:
+        ref = o.get("involvedObject") or o.get("regarding") or {}
+        return f"{str(ref.get('kind', '')).lower()}/{ref.get('name', '')}"
+
+    def last(o: dict) -> str:
+        return _age(o.get("lastTimestamp") or o.get("deprecatedLastTimestamp")
+                    or o.get("eventTime") or (o.get("metadata") or {}).get("creationTimestamp"))
+
+    return [col("Last Seen", last), col("Type", lambda o: o.get("type", "")),
+            col("Reason", lambda o: o.get("reason", "")), col("Object", obj),
+            col("Message", lambda o: o.get("message", o.get("note", "")))]
+
+
 def to_table(rt: ResourceType, items: list[dict], list_meta: dict) -> dict:
+    if rt.kind == "Event":
+        cols = _event_columns()
+        defs = [d for d, _ in cols] + [{"name": "Name", "type": "string", "format": "name",
+                                        "description": "Name", "priority": 1}]
+        rows = [{"cells": [f(o) for _, f in cols] + [(o.get("metadata") or {}).get("name")],
+                 "object": o} for o in items]
+        return {"kind": "Table", "apiVersion": "meta.k8s.io/v1", "metadata": list_meta,
+                "columnDefinitions": defs, "rows": rows}
     if rt.custom:
         cols = _crd_columns(rt)
     else:
