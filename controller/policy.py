@@ -96,7 +96,7 @@ class LimitsMode(StrEnum):
 
 # ---------------------------------------------------------------- durations
 
-_ZERO = re.compile(r"^0+(ms|[ywdhms])$")
+_ZERO = re.compile(r"^(?=.)(0+y)?(0+w)?(0+d)?(0+h)?(0+m)?(0+s)?(0+ms)?$")  # units in order, each once
 
 
 def parse_duration(text: str, *, field: str = "duration", allow_zero: bool = False) -> float:

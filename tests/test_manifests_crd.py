@@ -26,6 +26,8 @@ import jsonschema
 import kubernetes_validate
 import pytest
 import yaml
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from ratefit.controller.decide import Verdict, Why
 from ratefit.controller.policy import PolicyInvalid, SizingPolicySpec, parse_policy
@@ -323,3 +325,60 @@ def test_crd_and_examples_through_kubectl_and_the_sandbox(kubectl):
     assert after["metadata"]["generation"] == before["metadata"]["generation"]
     row = kubectl("get", "rfp", "label-printer", "-n", "parcels", "--no-headers", check=True).stdout.split()
     assert row[:3] == ["label-printer", "label-printer", "apply"] and row[3] == "True"
+
+
+def test_status_written_by_decide_fits_the_crd_and_the_status_model(validator, schema):
+    from ratefit.controller.policy import SizingPolicyStatus
+
+    obj = _example("label-printer.yaml")
+    obj["status"] = _status_from_a_real_decision()
+    errors = [f"{list(e.path)}: {e.message}" for e in validator.iter_errors(obj)]
+    assert not errors, errors
+    status = obj["status"]
+    parsed = SizingPolicyStatus.model_validate(status)
+    assert [p.model_dump(by_alias=True, exclude_none=True) for p in parsed.proposals] == status["proposals"]
+    assert [c.model_dump(by_alias=True, exclude_none=True) for c in parsed.conditions] == status["conditions"]
+    assert [x.model_dump(by_alias=True) for x in parsed.settling] == status["settling"]
+    assert (parsed.last_change, parsed.observed_generation) == (status["lastChange"], 1)
+    # the CRD's status fields are the status model's fields
+    crd_status = schema["properties"]["status"]["properties"]
+    fields = {(f.alias or n) for n, f in SizingPolicyStatus.model_fields.items()}
+    assert set(crd_status) == fields
+    from ratefit.controller.policy import ProposalModel
+
+    assert set(crd_status["proposals"]["items"]["properties"]) == {
+        (f.alias or n) for n, f in ProposalModel.model_fields.items()
+    }
+
+
+_durations = st.from_regex(r"\A([0-9]{1,3}(ms|[ywdhms])){1,3}\Z") | st.text(alphabet="0123456789hms dwy.", max_size=8)
+
+
+_SPEC = yaml.safe_load(CRD_PATH.read_text())["spec"]["versions"][0]["schema"]["openAPIV3Schema"]["properties"]["spec"]
+
+
+@settings(deadline=None)
+@given(_durations)
+def test_duration_pattern_and_parser_agree(text):
+    # what the API server lets through (the CRD's pattern) the controller can read
+    from ratefit.controller.policy import parse_duration
+    from ratefit.models.errors import InputError
+
+    cooldown = _SPEC["properties"]["cooldown"]
+    if jsonschema.Draft4Validator(cooldown).is_valid(text):
+        parse_duration(text, allow_zero=True)  # must not raise
+    else:
+        with pytest.raises(InputError):
+            if text.strip() != text:
+                raise InputError("spaces")  # the parser strips spaces; the API server does not
+            parse_duration(text, allow_zero=True)
+
+
+@settings(deadline=None)
+@given(st.from_regex(r"\A([0-9]{1,6}(\.[0-9]{0,4})?|\.[0-9]{1,4})m?\Z"))
+def test_quantity_pattern_accepts_only_what_the_parser_reads(text):
+    from ratefit.controller.quantity import parse_cpu
+
+    floor = _SPEC["properties"]["containers"]["items"]["properties"]["floor"]
+    assert jsonschema.Draft4Validator(floor).is_valid(text)
+    assert parse_cpu(text) >= 0
