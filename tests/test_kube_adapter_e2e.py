@@ -52,6 +52,8 @@ MINIMAL_CRD = {
 
 @pytest.fixture(scope="module")
 def sandbox() -> Iterator[SandboxServer]:
+    """Overrides the function-scoped fixture of tests/sandbox_fixtures.py: one server for
+    the module (each test has its own namespace), loaded with the project's CRD."""
     sb = SandboxServer(load=[CRD] if CRD.exists() else ()).start()
     try:
         if not CRD.exists():
@@ -447,6 +449,9 @@ def test_watch_recovers_from_a_dropped_stream(sandbox: SandboxServer, adapter: K
             break
     gen.close()
     assert seen == ["one", "two"]  # each change once, in order, across the reconnect
+    watches = [r for r in sandbox.requests
+               if r["path"].endswith(f"/namespaces/{ns}/sizingpolicies") and r["query"].get("watch")]
+    assert len(watches) >= 2  # the first stream was cut off and the adapter reopened it
 
 
 # ------------------------------------------------------------------ retries
@@ -571,3 +576,15 @@ def test_lease_race_has_one_winner(sandbox: SandboxServer, adapter: KubeAdapter,
         assert not b.try_acquire_or_renew()
     finally:
         other.close()
+
+
+def test_bad_kubeconfig_is_an_input_error(tmp_path: Path) -> None:
+    from ratefit.models.errors import InputError
+
+    missing = tmp_path / "nope"
+    with pytest.raises(InputError, match="--kubeconfig"):
+        KubeAdapter.from_kubeconfig(str(missing))
+    garbage = tmp_path / "garbage"
+    garbage.write_text("clusters: 3\n")
+    with pytest.raises(InputError):
+        KubeAdapter.from_kubeconfig(str(garbage))
