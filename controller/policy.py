@@ -65,6 +65,12 @@ __all__ = [
     "invalid_condition",
     "SizingPolicySpec",
     "SizingPolicyStatus",
+    "WorkloadRefSpec",
+    "ContainerSpec",
+    "StepLimitSpec",
+    "ConditionModel",
+    "ProposalModel",
+    "SettlingModel",
 ]
 
 GROUP = "ratefit.dev"
