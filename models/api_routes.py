@@ -67,19 +67,19 @@ class FastJSON(JSONResponse):
 
 
 # -- dependencies --------------------------------------------------------------------------
-def get_settings(request: Request) -> ApiSettings:
+async def get_settings(request: Request) -> ApiSettings:
     return request.app.state.settings  # type: ignore[no-any-return]
 
 
-def get_state(request: Request) -> ApiState:
+async def get_state(request: Request) -> ApiState:
     return request.app.state.api_state  # type: ignore[no-any-return]
 
 
-def get_metrics(request: Request) -> ApiMetrics:
+async def get_metrics(request: Request) -> ApiMetrics:
     return request.app.state.metrics  # type: ignore[no-any-return]
 
 
-def require_token(request: Request) -> None:
+async def require_token(request: Request) -> None:
     """``Authorization: Bearer <token>`` when the app has a token (constant-time compare)."""
     expected: bytes | None = request.app.state.token_bytes
     if expected is None:
@@ -352,25 +352,39 @@ def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
         n = len(items)
         keys = [it["model"] for it in items]
         rates = [it["rate"] for it in items]
-        rows = snap.bank.rows(keys)
-        known = np.flatnonzero(rows >= 0)
-        out: list[dict[str, Any] | None] = [None] * n
-        if known.size:
-            look = snap.bank.lookup(rows[known], np.asarray(rates, dtype=float)[known])
+        bank = snap.bank
+        get_row = bank.index.get
+        rows_list = [get_row(k, -1) for k in keys]
+        rows = np.array(rows_list, dtype=np.int64)
+        versions = snap.row_versions
+        if n and min(rows_list) >= 0:  # the usual case: every key known, no index juggling
+            known = np.arange(n)
+            look = bank.lookup(rows, np.array(rates, dtype=float))
             cpu_m, upper_m = look.millicores()
             ext = look.extrapolated
-            versions = snap.row_versions
-            for i, row, c, u, e in zip(
-                known.tolist(), rows[known].tolist(), cpu_m.tolist(), upper_m.tolist(), ext.tolist()
-            ):
-                out[i] = {
-                    "model": keys[i],
-                    "rate": rates[i],
-                    "cpu_m": c,
-                    "upper_m": u,
-                    "extrapolated": e,
-                    "version": versions[row],
-                }
+            out: list[dict[str, Any] | None] = [
+                {"model": k, "rate": r, "cpu_m": c, "upper_m": u, "extrapolated": e, "version": versions[row]}
+                for k, r, row, c, u, e in zip(keys, rates, rows_list, cpu_m.tolist(), upper_m.tolist(), ext.tolist())
+            ]
+        else:
+            known = np.flatnonzero(rows >= 0)
+            out = [None] * n
+            if known.size:
+                look = bank.lookup(rows[known], np.asarray(rates, dtype=float)[known])
+                cpu_m, upper_m = look.millicores()
+                ext = look.extrapolated
+                for i, row, c, u, e in zip(
+                    known.tolist(), rows[known].tolist(), cpu_m.tolist(), upper_m.tolist(), ext.tolist()
+                ):
+                    out[i] = {
+                        "model": keys[i],
+                        "rate": rates[i],
+                        "cpu_m": c,
+                        "upper_m": u,
+                        "extrapolated": e,
+                        "version": versions[row],
+                    }
+        if known.size:
             m.lookups.inc(int(known.size))
             n_ext = int(np.count_nonzero(ext))
             if n_ext:

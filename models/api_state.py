@@ -18,6 +18,7 @@ key whose file was removed is dropped.
 
 from __future__ import annotations
 
+import gc
 import hashlib
 import logging
 import threading
@@ -146,8 +147,9 @@ def build_snapshot(
 class ApiState:
     """Holds the snapshot being served; ``reload()`` swaps in a new one."""
 
-    def __init__(self, store_root: str | Path) -> None:
+    def __init__(self, store_root: str | Path, *, freeze_gc: bool = True) -> None:
         self.store = ModelStore(store_root)
+        self.freeze_gc = freeze_gc
         self._snapshot: ServingSnapshot | None = None
         self._lock = threading.Lock()  # one reload at a time; readers never take it
         self._generation = 0
@@ -177,6 +179,16 @@ class ApiState:
                 )
             self._generation += 1
             self._snapshot = new  # the swap: one reference assignment
+            if self.freeze_gc:
+                # 10,000 artifacts are ~250,000 GC-tracked objects; a full collection walks
+                # them all (hundreds of ms, measured by tests/bench/bench_api.py) while a
+                # batch request allocates enough to trigger collections. Moving the loaded
+                # set to the permanent generation takes it out of every collection. A
+                # snapshot holds no reference cycles (checked in tests/test_api_reload.py),
+                # so an old one is still freed by reference counting once the last request
+                # using it ends.
+                gc.collect(1)
+                gc.freeze()
             seconds = time.perf_counter() - started
         old = previous.artifacts if previous is not None else {}
         added = sum(1 for k in new.artifacts if k not in old)

@@ -185,3 +185,32 @@ def test_corrupt_artifact_is_refused_and_the_rest_keep_serving(tmp_path: Path) -
     refusals = [rec for rec in records if rec.get("event") == "artifact_refused"]
     assert {rec["file"] for rec in refusals} == set(refused)
     assert any(rec.get("event") == "reload_failed" and rec["level"] == "error" for rec in records)
+
+
+def test_a_dropped_snapshot_leaves_no_reference_cycles(tmp_path: Path) -> None:
+    # ApiState freezes the loaded set out of the garbage collector (gc.freeze); that is only
+    # safe if an old snapshot is freed by reference counting alone, i.e. holds no cycles
+    # (Python docs, gc module: objects in the permanent generation are ignored by collections).
+    import gc
+
+    from ratefit.models.api_state import ApiState, build_snapshot
+
+    store = ModelStore(tmp_path / "store")
+    _write_round(store, demo_keys(20), 0)
+    gc.collect()
+    was_enabled = gc.isenabled()
+    gc.disable()
+    try:
+        snap = build_snapshot(store)
+        assert len(snap) == 20
+        del snap
+        assert gc.collect() == 0  # nothing unreachable that only the cycle collector could free
+        state = ApiState(tmp_path / "store", freeze_gc=False)
+        state.reload()
+        _write_round(store, demo_keys(20), 1)
+        gc.collect()  # whatever writing the artifacts left behind
+        state.reload()  # builds the new snapshot and drops the old one
+        assert gc.collect() == 0
+    finally:
+        if was_enabled:
+            gc.enable()
