@@ -23,7 +23,9 @@ the parameters on the outer training part only (on a random subsample of at most
 ``TUNE_MAX_SAMPLES`` of it, to bound the cost on large inputs), the candidate is
 refitted with them on the whole outer training part and scored on the outer
 held-out fold. The outer folds never inform the parameter choice. The final model
-is tuned the same way on all samples and refitted on all of them.
+is tuned the same way on all samples and refitted on all of them; its parameters
+are the chosen row's ``params``; the other rows record, per grid parameter, the
+value the outer folds' searches picked most often.
 
 Threads. Every fit runs with OpenMP and BLAS limited to one thread
 (``threadpoolctl``): on a shared 2-core machine, gradient boosting's OpenMP threads
@@ -167,11 +169,13 @@ def _one_candidate(
     fold_rmse: list[float] = []
     fold_mae: list[float] = []
     seconds: list[float] = []
+    picks: list[dict[str, Any]] = []
     k = cv.get_n_splits()
     for i, (tr, te) in enumerate(cv.split(X), start=1):
         t0 = time.perf_counter()
         if tune and cand.grid:
-            est, _ = _tuned(cand, X[tr], y[tr], seed=seed)
+            est, best = _tuned(cand, X[tr], y[tr], seed=seed)
+            picks.append(best)
         else:
             est = cand.build(seed)
         est.fit(X[tr], y[tr])
@@ -184,6 +188,11 @@ def _one_candidate(
         if progress:
             progress(f"{cand.name}: fold {i}/{k} rmse {fold_rmse[-1]:.4g} cores ({seconds[-1]:.2f} s)")
     abs_err = np.abs(y - oof)
+    params = cand.recorded_params(cand.build(seed))
+    if picks:  # tuned: the value the outer folds' searches picked most often
+        for key in cand.grid:
+            values = [_json_safe(p[key]) for p in picks]
+            params[key] = max(values, key=values.count)
     return CandidateScore(
         name=cand.name,
         rank=cand.rank,
@@ -194,8 +203,12 @@ def _one_candidate(
         fit_seconds=float(np.mean(seconds)),
         fold_rmse=tuple(fold_rmse),
         oof=oof,
-        params=cand.recorded_params(cand.build(seed)),
+        params=params,
     )
+
+
+def _json_safe(v: Any) -> ParamValue:
+    return v if isinstance(v, (bool, int, float, str)) or v is None else str(v)
 
 
 def cross_validate(
@@ -281,5 +294,5 @@ def select(
         progress(f"chose {chosen.name} (rmse {chosen.rmse:.4g} cores); refitting on all {y.size} samples")
     est, best = fit_final(cand, rate, cpu, seed=seed, tune=tune)
     params = cand.recorded_params(est)
-    params.update({k: v if isinstance(v, (bool, int, float, str)) else str(v) for k, v in best.items()})
+    params.update({k: _json_safe(v) for k, v in best.items()})
     return Selection(scores=scores, chosen=chosen, estimator=est, band=band, coverage=coverage, params=params)

@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 from sklearn.base import clone
 from sklearn.model_selection import ParameterGrid
+from threadpoolctl import threadpool_limits
 
 from ratefit.models.candidates import CANDIDATES, FixedAllocation, Subsampled, get_candidates
 from ratefit.models.errors import InputError
@@ -24,6 +25,13 @@ def test_names_ranks_unique_and_the_design_list() -> None:
     assert [c.name for c in CANDIDATES if not c.eligible] == ["fixed"]
     with pytest.raises(InputError, match="unknown candidate"):
         get_candidates(["linear", "xgb"])
+
+
+@pytest.fixture(autouse=True)
+def _one_thread():
+    # as ratefit fits (models/select.py, "Threads"): OpenMP on one thread
+    with threadpool_limits(limits=1):
+        yield
 
 
 @pytest.mark.parametrize("cand", CANDIDATES, ids=lambda c: c.name)

@@ -8,6 +8,7 @@ import math
 import numpy as np
 import pytest
 from sklearn.model_selection import KFold, cross_val_score
+from threadpoolctl import threadpool_limits
 
 from ratefit.models.candidates import get_candidates
 from ratefit.models.errors import InputError
@@ -29,10 +30,11 @@ def test_cv_rmse_equals_sklearn_cross_val_score(name: str) -> None:
     r, y = _convex(800, seed=3)
     (cand,) = get_candidates([name])
     (ours,) = cross_validate(r, y, candidates=[cand], folds=5, seed=7)
-    ref = -cross_val_score(
-        cand.build(7), r.reshape(-1, 1), y, cv=KFold(5, shuffle=True, random_state=7),
-        scoring="neg_root_mean_squared_error",
-    )
+    with threadpool_limits(limits=1):  # as ratefit fits (see models/select.py, "Threads")
+        ref = -cross_val_score(
+            cand.build(7), r.reshape(-1, 1), y, cv=KFold(5, shuffle=True, random_state=7),
+            scoring="neg_root_mean_squared_error",
+        )
     assert ours.fold_rmse == pytest.approx(tuple(ref), rel=1e-9)
     assert ours.rmse == pytest.approx(float(np.mean(ref)), rel=1e-9)
 
@@ -121,8 +123,9 @@ def test_tuned_cv_equals_sklearn_nested_cv(name: str) -> None:
     (ours,) = cross_validate(r, y, candidates=[cand], folds=4, seed=3, tune=True)
     inner = GridSearchCV(cand.build(3), {k: list(v) for k, v in cand.grid.items()},
                          cv=KFold(3, shuffle=True, random_state=3), scoring="neg_root_mean_squared_error")
-    ref = -cross_val_score(inner, r.reshape(-1, 1), y, cv=KFold(4, shuffle=True, random_state=3),
-                           scoring="neg_root_mean_squared_error")
+    with threadpool_limits(limits=1):
+        ref = -cross_val_score(inner, r.reshape(-1, 1), y, cv=KFold(4, shuffle=True, random_state=3),
+                               scoring="neg_root_mean_squared_error")
     assert ours.fold_rmse == pytest.approx(tuple(ref), rel=1e-9)
 
 
