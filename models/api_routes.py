@@ -149,17 +149,6 @@ def validation_response(errors: list[dict[str, str]]) -> FastJSON:
 
 
 # -- helpers -------------------------------------------------------------------------------
-def _summary(key: str, art: Any) -> dict[str, Any]:
-    return {
-        "key": key,
-        "chosen": art.chosen,
-        "rate_range": list(art.rate_range),
-        "coverage": art.coverage,
-        "version": art.version,
-        "trained_at": art.trained_at,
-    }
-
-
 def _refused(snap: ServingSnapshot) -> list[dict[str, Any]]:
     return [{"file": r.file, "error": r.error, "kept_previous": r.kept_previous} for r in snap.refused]
 
@@ -241,14 +230,19 @@ def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
     @protected.get("/v1/models", response_model=ModelList, tags=["models"], summary="Every loaded model")
     async def list_models(state: Annotated[ApiState, Depends(get_state)]) -> Response:
         snap = _snapshot(state)
-        return FastJSON(
-            {
-                "version": snap.version,
-                "loaded_at": snap.loaded_at,
-                "models": [_summary(k, a) for k, a in snap.artifacts.items()],
-                "refused": _refused(snap),
-            }
+        # the summaries are pre-rendered JSON (see api_state.ServedModel): join, don't re-encode
+        head = _dumps({"version": snap.version, "loaded_at": snap.loaded_at})[:-1]
+        body = b"".join(
+            (
+                head,
+                b',"models":[',
+                b",".join(m.summary_json for m in snap.models.values()),
+                b'],"refused":',
+                _dumps(_refused(snap)),
+                b"}",
+            )
         )
+        return Response(body, media_type="application/json")
 
     @protected.get(
         "/v1/models/{namespace}/{workload}/{container}",
@@ -262,23 +256,10 @@ def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
     ) -> Response:
         snap = _snapshot(state)
         key = f"{namespace}/{workload}/{container}"
-        art = snap.artifacts.get(key)
-        if art is None:
+        served = snap.models.get(key)
+        if served is None:
             return FastJSON(error_body(str(UnknownModel(key)), model=key), status_code=404)
-        body = _summary(key, art)
-        body.update(
-            samples=art.samples,
-            samples_total=art.samples_total,
-            dropped=dict(art.dropped),
-            folds=art.folds,
-            seed=art.seed,
-            tuned=art.tuned,
-            window=art.window.model_dump(mode="json"),
-            cv=[row.model_dump(mode="json") for row in art.cv],
-            band_m=to_millicores(art.curve.band),
-            content_hash=art.content_hash,
-        )
-        return FastJSON(body)
+        return Response(served.detail_json, media_type="application/json")
 
     @protected.get(
         "/v1/models/{namespace}/{workload}/{container}/demand",
@@ -297,11 +278,11 @@ def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
     ) -> Response:
         snap = _snapshot(state)
         key = f"{namespace}/{workload}/{container}"
-        curve = snap.curves.get(key)
-        if curve is None:
+        served = snap.models.get(key)
+        if served is None:
             m.unknown.inc()
             return FastJSON(error_body(str(UnknownModel(key)), model=key), status_code=404)
-        demand, upper, extrapolated = curve.lookup_one(rate)
+        demand, upper, extrapolated = served.curve.lookup_one(rate)
         m.lookups.inc()
         if extrapolated:
             m.extrapolated.inc()
@@ -312,7 +293,7 @@ def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
                 "cpu_m": to_millicores(demand),
                 "upper_m": to_millicores(upper),
                 "extrapolated": extrapolated,
-                "version": snap.artifacts[key].version,
+                "version": served.version,
             }
         )
 

@@ -1,13 +1,19 @@
 """What the sizing API serves: an immutable snapshot of the model store, and its holder.
 
 A ``ServingSnapshot`` is built once from a ``ModelStore.load_all()`` and never changed:
-the artifacts, their curves, one ``CurveBank`` for vectorised batch lookups, the
+the served models and their curves, one ``CurveBank`` for vectorised batch lookups, the
 version of every row, the store version and when it was loaded. ``ApiState`` holds
 the current snapshot in one attribute. A request reads that attribute once and works
 on the snapshot it got, so a reload — which builds a whole new snapshot off to the
 side and then rebinds the attribute (a single reference assignment, atomic in
 CPython) — never changes the ground under a request in flight: requests that started
 before the swap finish on the old set, later ones see the new set, none fail.
+
+Compact. The snapshot does not keep the parsed ``Artifact`` objects (about 17 KB each
+with their float lists): each artifact is turned, as it is read, into a
+``ServedModel`` holding its two answers pre-rendered as JSON bytes (the summary for
+``/v1/models`` and the detail for ``/v1/models/{key}``) plus its ``DemandCurve``.
+Files are read one at a time so the whole store is never in memory as artifacts.
 
 Refusals. A file that does not load (corrupt, truncated, edited, wrong key) is never
 served. If the key was served before the reload, its last good artifact is kept (the
@@ -28,11 +34,13 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from types import MappingProxyType
 
-from ratefit.models.curve import CurveBank, DemandCurve
-from ratefit.models.errors import RatefitError
-from ratefit.models.store import Artifact, ModelStore
+import orjson
 
-__all__ = ["ServingSnapshot", "ReloadReport", "Refusal", "ApiState", "StoreUnreadable", "build_snapshot"]
+from ratefit.models.curve import CurveBank, DemandCurve, to_millicores
+from ratefit.models.errors import ArtifactError, RatefitError
+from ratefit.models.store import Artifact, ModelStore, parse_artifact
+
+__all__ = ["ServedModel", "ServingSnapshot", "ReloadReport", "Refusal", "ApiState", "StoreUnreadable", "build_snapshot"]
 
 log = logging.getLogger("ratefit.api")
 
@@ -48,12 +56,47 @@ class Refusal:
     kept_previous: bool = False
 
 
+@dataclass(frozen=True, slots=True)
+class ServedModel:
+    """What the API serves about one key: answers pre-rendered, and the curve."""
+
+    key: str
+    version: str
+    curve: DemandCurve
+    summary_json: bytes
+    detail_json: bytes
+
+    @classmethod
+    def from_artifact(cls, art: Artifact) -> ServedModel:
+        summary = {
+            "key": art.key,
+            "chosen": art.chosen,
+            "rate_range": [float(art.rate_range[0]), float(art.rate_range[1])],
+            "coverage": art.coverage,
+            "version": art.version,
+            "trained_at": art.trained_at,
+        }
+        detail = {
+            **summary,
+            "samples": art.samples,
+            "samples_total": art.samples_total,
+            "dropped": dict(art.dropped),
+            "folds": art.folds,
+            "seed": art.seed,
+            "tuned": art.tuned,
+            "window": art.window.model_dump(mode="json"),
+            "cv": [row.model_dump(mode="json") for row in art.cv],
+            "band_m": to_millicores(art.curve.band),
+            "content_hash": art.content_hash,
+        }
+        return cls(art.key, art.version, art.demand_curve(), orjson.dumps(summary), orjson.dumps(detail))
+
+
 @dataclass(frozen=True)
 class ServingSnapshot:
     """One loaded store; immutable once built."""
 
-    artifacts: Mapping[str, Artifact]
-    curves: Mapping[str, DemandCurve]
+    models: Mapping[str, ServedModel]
     bank: CurveBank
     #: artifact version per bank row (same order as ``bank.keys``)
     row_versions: tuple[str, ...]
@@ -66,7 +109,7 @@ class ServingSnapshot:
     generation: int = 0
 
     def __len__(self) -> int:
-        return len(self.artifacts)
+        return len(self.models)
 
 
 @dataclass(frozen=True)
@@ -90,50 +133,54 @@ class ReloadReport:
         return "partial" if self.refused else "ok"
 
 
-def _key_of(relpath: str) -> str | None:
-    parts = Path(relpath).parts
-    if len(parts) != 3 or not parts[2].endswith(".json"):
-        return None
-    return f"{parts[0]}/{parts[1]}/{parts[2][: -len('.json')]}"
+def _expected_key(path: Path) -> str:
+    return f"{path.parent.parent.name}/{path.parent.name}/{path.stem}"
 
 
 def build_snapshot(
     store: ModelStore, *, previous: ServingSnapshot | None = None, generation: int = 0
 ) -> ServingSnapshot:
-    """Load every artifact of ``store`` into a new snapshot (see the module docstring)."""
+    """Load every artifact of ``store`` into a new snapshot (see the module docstring).
+
+    The checks are those of ``ModelStore.load_all`` (``parse_artifact``, and the key
+    inside the file must match its place), one file at a time."""
     if not store.root.is_dir():
         raise StoreUnreadable(
             f"model store {str(store.root)!r} is not a directory: create it, or point --store at "
             "the directory `ratefit train` writes to"
         )
     started = time.monotonic()
-    loaded = store.load_all()
-    artifacts: dict[str, Artifact] = dict(loaded.artifacts)
+    before = previous.models if previous is not None else {}
+    models: dict[str, ServedModel] = {}
     refused: list[Refusal] = []
-    for rel, message in sorted(loaded.errors.items()):
-        key = _key_of(rel)
-        keep = previous is not None and key is not None and key in previous.artifacts and key not in artifacts
+    failed: list[tuple[str, str, str]] = []
+    for path in store.files():
+        rel = str(path.relative_to(store.root))
+        key = _expected_key(path)
+        try:
+            art = parse_artifact(path.read_bytes(), origin=str(path))
+            if art.key != key:
+                raise ArtifactError(f"{path}: holds key {art.key!r} but lies at the place of {key!r}")
+        except (ArtifactError, OSError) as exc:
+            failed.append((rel, key, str(exc)))
+            continue
+        old = before.get(key)
+        # unchanged: keep the record already built (less work, less garbage)
+        models[key] = old if old is not None and old.version == art.version else ServedModel.from_artifact(art)
+        del art
+    for rel, key, message in failed:
+        keep = key in before and key not in models
         if keep:
-            artifacts[key] = previous.artifacts[key]  # type: ignore[index]
+            models[key] = before[key]
         refused.append(Refusal(file=rel, error=message, kept_previous=keep))
-    keys = sorted(artifacts)
-    curves: dict[str, DemandCurve] = {}
-    for key in keys:
-        before = previous.artifacts.get(key) if previous is not None else None
-        if before is not None and before.version == artifacts[key].version:
-            # unchanged: keep the objects already built (less work, less garbage)
-            artifacts[key] = before
-            curves[key] = previous.curves[key]  # type: ignore[union-attr]
-        else:
-            curves[key] = artifacts[key].demand_curve()
-    bank = CurveBank(curves)
-    versions = tuple(artifacts[k].version for k in keys)
+    keys = sorted(models)
+    bank = CurveBank({k: models[k].curve for k in keys})
+    versions = tuple(models[k].version for k in keys)
     digest = hashlib.sha256()
     for k, v in zip(keys, versions):
         digest.update(f"{k}={v}\n".encode())
     return ServingSnapshot(
-        artifacts=MappingProxyType({k: artifacts[k] for k in keys}),
-        curves=MappingProxyType(curves),
+        models=MappingProxyType({k: models[k] for k in keys}),
         bank=bank,
         row_versions=versions,
         version=digest.hexdigest()[:12],
@@ -190,11 +237,11 @@ class ApiState:
                 gc.collect(1)
                 gc.freeze()
             seconds = time.perf_counter() - started
-        old = previous.artifacts if previous is not None else {}
-        added = sum(1 for k in new.artifacts if k not in old)
-        removed = sum(1 for k in old if k not in new.artifacts)
-        changed = sum(1 for k, a in new.artifacts.items() if k in old and old[k].version != a.version)
-        unchanged = len(new.artifacts) - added - changed
+        old = previous.models if previous is not None else {}
+        added = sum(1 for k in new.models if k not in old)
+        removed = sum(1 for k in old if k not in new.models)
+        changed = sum(1 for k, a in new.models.items() if k in old and old[k].version != a.version)
+        unchanged = len(new.models) - added - changed
         for r in new.refused:
             log.warning(
                 "artifact refused: %s: %s%s",
