@@ -27,7 +27,9 @@ applies, in this order:
 4. ``warmup``   — within the warm-up span (default 300 s) after a pod's first
    sample, or after a gap in its samples longer than the warm-up span (a restart
    under the same name); needs timestamps, skipped without them. Samples without
-   a pod column are treated as one pod.
+   a pod column are treated as one pod. A pod already running when the data window
+   opens cannot be told from one starting then, so it loses its first warm-up span
+   too (minutes out of a window of days).
 
 and returns a :class:`CleanReport` (total, used, dropped by reason).
 """
