@@ -590,14 +590,15 @@ class Api:
         if orphan:
             gone = self.store.remove(rt.key, ns, name)
             uid = (gone or {}).get("metadata", {}).get("uid")
-            for key, items in list(self.store._objects.items()):
-                for obj in list(items.values()):
-                    refs = obj["metadata"].get("ownerReferences") or []
-                    if any(ref.get("uid") == uid for ref in refs):
-                        new = copy.deepcopy(obj)
-                        new["metadata"]["ownerReferences"] = [
-                            ref for ref in refs if ref.get("uid") != uid]
-                        self.store.save(key, new, obj)
+            for key, dns, dname in self.store.dependent_keys(uid or ""):
+                obj = self.store.raw(key, dns, dname)
+                if obj is None:
+                    continue
+                new = copy.deepcopy(obj)
+                new["metadata"]["ownerReferences"] = [
+                    ref for ref in obj["metadata"].get("ownerReferences") or []
+                    if ref.get("uid") != uid]
+                self.store.save(key, new, obj)
             return
         if rt.key == NAMESPACES:
             for key, items in list(self.store._objects.items()):

@@ -20,6 +20,11 @@ from ratefit.controller.sandbox.resources import BUILTINS, ResourceType
 Key = tuple[str, str]  # (group, plural)
 
 
+def _clone(obj: Any) -> Any:
+    """A deep copy of stored JSON data."""
+    return copy.deepcopy(obj)
+
+
 @dataclass(frozen=True)
 class Change:
     """One recorded write: what a watch turns into ADDED / MODIFIED / DELETED."""
@@ -43,6 +48,8 @@ class Store:
         self._history_max = history
         #: the highest revision no longer in the history (a watch from below it gets 410)
         self.compacted = 0
+        #: owner uid -> (key, namespace, name) of the objects naming it in ownerReferences
+        self._dependents: dict[str, set[tuple[Key, str, str]]] = {}
         self.types: dict[tuple[str, str, str], ResourceType] = {}
         for rt in BUILTINS:
             self.register(rt)
@@ -83,13 +90,13 @@ class Store:
         """A copy of one stored object, or None (for tests: read what the server holds)."""
         with self.lock:
             obj = self._objects.get((group, plural), {}).get((namespace or "", name))
-            return copy.deepcopy(obj) if obj is not None else None
+            return _clone(obj) if obj is not None else None
 
     def list(self, group: str, plural: str, namespace: str | None = None) -> list[dict]:
         """Copies of the stored objects of a resource, optionally in one namespace."""
         with self.lock:
             items = self._objects.get((group, plural), {})
-            out = [copy.deepcopy(o) for (ns, _), o in sorted(items.items())
+            out = [_clone(o) for (ns, _), o in sorted(items.items())
                    if namespace is None or ns == namespace]
             return out
 
@@ -100,13 +107,16 @@ class Store:
         """Store `obj` under a fresh revision; records ADDED or MODIFIED. Returns a copy."""
         with self.lock:
             rv = self.next_rv()
-            obj = copy.deepcopy(obj)
+            obj = _clone(obj)
             obj["metadata"]["resourceVersion"] = str(rv)
             md = obj["metadata"]
+            where = (key, md.get("namespace", ""), md["name"])
+            self._index(where, old, add=False)
+            self._index(where, obj, add=True)
             self._objects.setdefault(key, {})[(md.get("namespace", ""), md["name"])] = obj
             self._record(Change(rv, key, "MODIFIED" if old is not None else "ADDED",
                                 obj, old))
-            return copy.deepcopy(obj)
+            return _clone(obj)
 
     def remove(self, key: Key, namespace: str, name: str) -> dict | None:
         """Delete an object under a fresh revision; records DELETED. Returns it."""
@@ -114,11 +124,41 @@ class Store:
             old = self._objects.get(key, {}).pop((namespace, name), None)
             if old is None:
                 return None
+            self._index((key, namespace, name), old, add=False)
             rv = self.next_rv()
-            gone = copy.deepcopy(old)
+            gone = _clone(old)
             gone["metadata"]["resourceVersion"] = str(rv)
             self._record(Change(rv, key, "DELETED", gone, old))
-            return copy.deepcopy(gone)
+            return _clone(gone)
+
+    def _index(self, where: tuple[Key, str, str], obj: dict | None, *, add: bool) -> None:
+        for ref in ((obj or {}).get("metadata", {}).get("ownerReferences") or []):
+            uid = ref.get("uid")
+            if not uid:
+                continue
+            if add:
+                self._dependents.setdefault(uid, set()).add(where)
+            else:
+                deps = self._dependents.get(uid)
+                if deps is not None:
+                    deps.discard(where)
+                    if not deps:
+                        del self._dependents[uid]
+
+    def dependents(self, uid: str, key: Key | None = None) -> list[dict]:
+        """The stored objects (not copies: do not mutate) owned by `uid`, by name."""
+        with self.lock:
+            out = []
+            for k, ns, name in sorted(self._dependents.get(uid, ())):
+                if key is None or k == key:
+                    obj = self._objects.get(k, {}).get((ns, name))
+                    if obj is not None:
+                        out.append(obj)
+            return out
+
+    def dependent_keys(self, uid: str) -> list[tuple[Key, str, str]]:
+        with self.lock:
+            return sorted(self._dependents.get(uid, ()))
 
     def _record(self, change: Change) -> None:
         self._history.append(change)

@@ -34,10 +34,6 @@ STS = ("apps", "statefulsets")
 NODE = "sandbox-node"
 
 
-def _owned_by(obj: dict, uid: str) -> bool:
-    return any(r.get("uid") == uid for r in obj.get("metadata", {}).get("ownerReferences") or [])
-
-
 def container_statuses(pod: dict, previous: list[dict] | None = None) -> list[dict]:
     """What a kubelet would report: every container running with its spec's resources."""
     prev = {c.get("name"): c for c in previous or []}
@@ -122,10 +118,8 @@ class Workloads:
             return None
         uid = gone["metadata"].get("uid")
         if uid:
-            for okey, items in list(self.store._objects.items()):
-                for (ns, oname), obj in list(items.items()):
-                    if _owned_by(obj, uid):
-                        self.delete_tree(okey, ns, oname)
+            for okey, ns, oname in self.store.dependent_keys(uid):
+                self.delete_tree(okey, ns, oname)
         return gone
 
     def _new_pod(self, template: dict, *, namespace: str, name: str, labels: dict,
@@ -184,7 +178,7 @@ class Workloads:
         template = copy.deepcopy(spec.get("template") or {})
         h = objects.template_hash(template)
         rs_name = f"{name}-{h}"
-        owned = [rs for rs in self.store.list(*RS, ns) if _owned_by(rs, uid)]
+        owned = [copy.deepcopy(rs) for rs in self.store.dependents(uid, RS)]
         revisions = [int((rs["metadata"].get("annotations") or {}).get(
             "deployment.kubernetes.io/revision", "0")) for rs in owned]
         current = next((rs for rs in owned if rs["metadata"]["name"] == rs_name), None)
@@ -223,8 +217,8 @@ class Workloads:
                 self.sync_replicaset(self._update(RS, new, rs))
         self.sync_replicaset(current)
         limit = spec.get("revisionHistoryLimit", 10)
-        old = sorted((rs for rs in self.store.list(*RS, ns)
-                      if _owned_by(rs, uid) and rs["metadata"]["name"] != rs_name),
+        old = sorted((rs for rs in self.store.dependents(uid, RS)
+                      if rs["metadata"]["name"] != rs_name),
                      key=lambda r: int(r["metadata"]["annotations"].get(
                          "deployment.kubernetes.io/revision", "0")))
         for rs in old[:max(0, len(old) - limit)]:
@@ -238,10 +232,8 @@ class Workloads:
         ns, uid = md.get("namespace", ""), md["uid"]
         h = objects.template_hash((dep.get("spec") or {}).get("template") or {})
         total = updated = ready = 0
-        for rs in self.store.list(*RS, ns):
-            if not _owned_by(rs, uid):
-                continue
-            pods = [p for p in self.store.list(*PODS, ns) if _owned_by(p, rs["metadata"]["uid"])]
+        for rs in self.store.dependents(uid, RS):
+            pods = self.store.dependents(rs["metadata"]["uid"], PODS)
             total += len(pods)
             ready += sum(1 for p in pods if (p.get("status") or {}).get("phase") == "Running")
             if rs["metadata"]["name"].endswith(f"-{h}"):
@@ -287,7 +279,7 @@ class Workloads:
         md = rs["metadata"]
         ns, uid = md.get("namespace", ""), md["uid"]
         want = (rs.get("spec") or {}).get("replicas", 1)
-        pods = [p for p in self.store.list(*PODS, ns) if _owned_by(p, uid)]
+        pods = list(self.store.dependents(uid, PODS))
         for p in sorted(pods, key=lambda p: p["metadata"]["creationTimestamp"],
                         reverse=True)[:max(0, len(pods) - want)]:
             self.store.remove(PODS, ns, p["metadata"]["name"])
@@ -298,7 +290,7 @@ class Workloads:
             while self.store.raw(PODS, ns, name) is not None:
                 name = f"{md['name']}-{objects.rand_suffix()}"
             self._new_pod(template, namespace=ns, name=name, labels=dict(labels), owner=rs)
-        count = len([p for p in self.store.list(*PODS, ns) if _owned_by(p, uid)])
+        count = len(self.store.dependents(uid, PODS))
         fresh = self.store.raw(RS, ns, md["name"])
         if fresh is None:
             return
@@ -319,11 +311,10 @@ class Workloads:
         template = copy.deepcopy(spec.get("template") or {})
         rev = f"{name}-{objects.template_hash(template)}"
         ordinals = {}
-        for p in self.store.list(*PODS, ns):
-            if _owned_by(p, md["uid"]):
-                suffix = p["metadata"]["name"][len(name) + 1:]
-                if suffix.isdigit():
-                    ordinals[int(suffix)] = p
+        for p in self.store.dependents(md["uid"], PODS):
+            suffix = p["metadata"]["name"][len(name) + 1:]
+            if suffix.isdigit():
+                ordinals[int(suffix)] = p
         for i in sorted(ordinals, reverse=True):
             pod = ordinals[i]
             stale = pod["metadata"].get("labels", {}).get("controller-revision-hash") != rev
@@ -341,7 +332,7 @@ class Workloads:
         fresh = self.store.raw(STS, ns, name)
         if fresh is None:
             return
-        count = len([p for p in self.store.list(*PODS, ns) if _owned_by(p, md["uid"])])
+        count = len(self.store.dependents(md["uid"], PODS))
         status = {"observedGeneration": fresh["metadata"].get("generation", 1),
                   "replicas": count, "readyReplicas": count, "currentReplicas": count,
                   "updatedReplicas": count, "availableReplicas": count,
