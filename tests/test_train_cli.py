@@ -190,3 +190,13 @@ def test_bad_options(tmp_path: Path, capsys) -> None:
     assert rc == 2 and "--warmup" in err
     rc, _, err = _run(capsys, "train", "--samples", csv, "--samples-dir", str(tmp_path), "--store", str(tmp_path))
     assert rc == 2 and "exactly one" in err
+
+
+def test_prometheus_unreachable_is_a_clear_error(closed_port_url: str, tmp_path: Path, capsys) -> None:
+    rc, _, err = _run(capsys, "train", "--prometheus", closed_port_url, "--rate-query", "up", "--cpu-query", "up",
+                      "--key", KEY, "--store", str(tmp_path), "--window", "1h", "--timeout", "2")
+    assert rc == 2 and "ratefit train: error:" in err and "127.0.0.1" in err
+    assert not (tmp_path / "shop").exists()
+    rc, _, err = _run(capsys, "train", "--prometheus", closed_port_url, "--rate-query", "up",
+                      "--key", KEY, "--store", str(tmp_path))
+    assert rc == 2 and "--cpu-query" in err
