@@ -2,6 +2,12 @@
 against the local sandbox API server (controller/sandbox, a stand-in for a cluster).
 
 Each test works in a namespace of its own, so tests do not see each other's objects.
+The same tests run against a real cluster with the ``cluster`` marker:
+``RATEFIT_CLUSTER_KUBECONFIG=~/.kube/config pytest tests/test_kube_adapter_e2e.py -m cluster``
+(the SizingPolicy CRD must be installed; namespaces ``ratefit-t-*`` are created and
+deleted; tests that need the sandbox's fault injection or request log are skipped).
+That path was exercised here only against a ``ratefit sandbox`` process posing as a
+cluster — no real cluster was available.
 What is checked comes from the Kubernetes API docs: strategic merge of containers by
 ``name``; ``dryRun=All`` stores nothing; a stale ``metadata.resourceVersion`` in a patch
 gives 409; status-subresource writes do not move ``generation``; Events (events.k8s.io/v1)
@@ -10,9 +16,11 @@ fields; the Lease fields and client-go's leader-election rules (from memory).
 
 from __future__ import annotations
 
+import os
 import queue
 import re
 import threading
+import time
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
@@ -50,15 +58,102 @@ MINIMAL_CRD = {
 }
 
 
-@pytest.fixture(scope="module")
-def sandbox() -> Iterator[SandboxServer]:
-    """Overrides the function-scoped fixture of tests/sandbox_fixtures.py: one server for
-    the module (each test has its own namespace), loaded with the project's CRD."""
+class Target:
+    """Where the suite runs: the sandbox (always), or a real cluster given by
+    RATEFIT_CLUSTER_KUBECONFIG (marker ``cluster``; the SizingPolicy CRD must be
+    installed there). Tests that need the sandbox's fault injection or request log ask
+    for ``target.sandbox``, which skips them on a real cluster."""
+
+    def __init__(self, *, sandbox: SandboxServer | None = None, kubeconfig: str | None = None) -> None:
+        self._sandbox = sandbox
+        self._kubeconfig = kubeconfig
+        self._api = self.api_client()
+
+    @property
+    def is_sandbox(self) -> bool:
+        return self._sandbox is not None
+
+    @property
+    def sandbox(self) -> SandboxServer:
+        if self._sandbox is None:
+            pytest.skip("needs the sandbox's fault injection / request log")
+        return self._sandbox
+
+    def api_client(self) -> k8s.ApiClient:
+        if self._sandbox is not None:
+            return self._sandbox.api_client()
+        from kubernetes import config
+
+        return config.new_client_from_config(config_file=self._kubeconfig)
+
+    def write_kubeconfig(self, path: Path) -> Path:
+        if self._sandbox is not None:
+            return self._sandbox.write_kubeconfig(path)
+        return Path(str(self._kubeconfig))
+
+    def create(self, obj: dict) -> dict:
+        if self._sandbox is not None:
+            return self._sandbox.create(obj)
+        api, kind, ns = self._api, obj["kind"], obj["metadata"].get("namespace")
+        if kind == "Namespace":
+            out = k8s.CoreV1Api(api).create_namespace(obj)
+        elif kind == "Deployment":
+            out = k8s.AppsV1Api(api).create_namespaced_deployment(ns, obj)
+        elif kind == "StatefulSet":
+            out = k8s.AppsV1Api(api).create_namespaced_stateful_set(ns, obj)
+        elif kind == "HorizontalPodAutoscaler":
+            out = k8s.AutoscalingV2Api(api).create_namespaced_horizontal_pod_autoscaler(ns, obj)
+        elif kind == "Lease":
+            out = k8s.CoordinationV1Api(api).create_namespaced_lease(ns, obj)
+        elif kind == "SizingPolicy":
+            return k8s.CustomObjectsApi(api).create_namespaced_custom_object(
+                "ratefit.dev", "v1alpha1", ns, "sizingpolicies", obj)
+        else:
+            raise AssertionError(f"the test target cannot create {kind}")
+        return api.sanitize_for_serialization(out)
+
+    def delete_namespace(self, name: str) -> None:
+        if self._sandbox is None:
+            k8s.CoreV1Api(self._api).delete_namespace(name)
+
+    def wait_for_pods(self, ns: str, selector: str, count: int, timeout: float = 120) -> None:
+        """The sandbox makes pods at once; a real cluster needs a while to run them."""
+        deadline = time.monotonic() + timeout
+        core = k8s.CoreV1Api(self._api)
+        while True:
+            pods = core.list_namespaced_pod(ns, label_selector=selector).items
+            running = [p for p in pods if p.status and p.status.phase == "Running" and not p.metadata.deletion_timestamp]
+            if len(running) == count and len(pods) == count:
+                return
+            if time.monotonic() > deadline:
+                raise AssertionError(f"{len(running)}/{count} pods running in {ns} after {timeout} s")
+            time.sleep(1)
+
+    def close(self) -> None:
+        self._api.close()
+
+
+@pytest.fixture(scope="module", params=["sandbox", pytest.param("cluster", marks=pytest.mark.cluster)])
+def target(request: pytest.FixtureRequest) -> Iterator[Target]:
+    """One sandbox for the module (each test has its own namespace), loaded with the
+    project's CRD; or the real cluster of RATEFIT_CLUSTER_KUBECONFIG."""
+    if request.param == "cluster":
+        kc = os.environ.get("RATEFIT_CLUSTER_KUBECONFIG")
+        if not kc:
+            pytest.skip("set RATEFIT_CLUSTER_KUBECONFIG to run against a real cluster")
+        t = Target(kubeconfig=kc)
+        try:
+            yield t
+        finally:
+            t.close()
+        return
     sb = SandboxServer(load=[CRD] if CRD.exists() else ()).start()
     try:
         if not CRD.exists():
             sb.create(MINIMAL_CRD)
-        yield sb
+        t = Target(sandbox=sb)
+        yield t
+        t.close()
     finally:
         sb.stop()
 
@@ -76,35 +171,42 @@ def sleeps() -> Sleeps:
 
 
 @pytest.fixture
-def adapter(sandbox: SandboxServer, tmp_path: Path, sleeps: Sleeps) -> Iterator[KubeAdapter]:
+def adapter(target: Target, tmp_path: Path, sleeps: Sleeps) -> Iterator[KubeAdapter]:
     # through a written kubeconfig, as `ratefit run --kubeconfig` does
-    kubeconfig = sandbox.write_kubeconfig(tmp_path / "kubeconfig")
+    kubeconfig = target.write_kubeconfig(tmp_path / "kubeconfig")
     kube = KubeAdapter.from_kubeconfig(str(kubeconfig), identity="ratefit-test-0", sleep=sleeps,
                                        retry=RetryPolicy(max_attempts=4, base_delay=0.5, max_delay=4.0))
-    sandbox.faults.clear()
+    if target.is_sandbox:
+        target.sandbox.faults.clear()
     try:
         yield kube
     finally:
-        sandbox.faults.clear()
+        if target.is_sandbox:
+            target.sandbox.faults.clear()
         kube.close()
 
 
 @pytest.fixture
-def ns(sandbox: SandboxServer) -> str:
-    name = f"t-{uuid.uuid4().hex[:10]}"
-    sandbox.create({"apiVersion": "v1", "kind": "Namespace", "metadata": {"name": name}})
-    return name
+def ns(target: Target) -> Iterator[str]:
+    name = f"ratefit-t-{uuid.uuid4().hex[:10]}"
+    target.create({"apiVersion": "v1", "kind": "Namespace", "metadata": {"name": name}})
+    try:
+        yield name
+    finally:
+        target.delete_namespace(name)
 
 
 @pytest.fixture
-def raw(sandbox: SandboxServer) -> Iterator[k8s.ApiClient]:
-    api = sandbox.api_client()
+def raw(target: Target) -> Iterator[k8s.ApiClient]:
+    api = target.api_client()
     try:
         yield api
     finally:
         api.close()
 
 
+#: an image that runs on a real cluster (the sandbox runs nothing); kept identical in both
+PAUSE = "registry.k8s.io/pause:3.10"
 PROBE = {"httpGet": {"path": "/healthz", "port": 8080}, "periodSeconds": 10}
 
 
@@ -121,11 +223,11 @@ def deployment(ns: str, name: str = "web", *, replicas: int = 2, cpu: str = "500
             "template": {
                 "metadata": {"labels": {"app": name}},
                 "spec": {"containers": [
-                    {"name": "app", "image": "example.invalid/app:1", "resources": res,
+                    {"name": "app", "image": PAUSE, "resources": res,
                      "env": [{"name": "MODE", "value": "prod"}, {"name": "THREADS", "value": "4"}],
                      "readinessProbe": PROBE, "livenessProbe": PROBE,
                      "ports": [{"containerPort": 8080}]},
-                    {"name": "sidecar", "image": "example.invalid/proxy:2",
+                    {"name": "sidecar", "image": PAUSE,
                      "resources": {"requests": {"cpu": "100m"}, "limits": {"cpu": "200m"}},
                      "env": [{"name": "UPSTREAM", "value": "127.0.0.1:8080"}]},
                 ]},
@@ -151,14 +253,17 @@ def read_raw(raw: k8s.ApiClient, ns: str, name: str = "web") -> dict:
     return raw.sanitize_for_serialization(k8s.AppsV1Api(raw).read_namespaced_deployment(name, ns))
 
 
-def patch_requests(sandbox: SandboxServer, ns: str) -> list[dict]:
-    return [r for r in sandbox.requests if r["method"] == "PATCH" and f"/namespaces/{ns}/" in r["path"]]
+def patch_requests(target: Target, ns: str) -> list[dict] | None:
+    """The PATCH requests the sandbox served in a namespace (None on a real cluster)."""
+    if not target.is_sandbox:
+        return None
+    return [r for r in target.sandbox.requests if r["method"] == "PATCH" and f"/namespaces/{ns}/" in r["path"]]
 
 
 # ------------------------------------------------------------------ patching the template
-def test_patch_touches_only_cpu_after_a_dry_run(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_patch_touches_only_cpu_after_a_dry_run(target: Target, adapter: KubeAdapter, ns: str,
                                                 raw: k8s.ApiClient) -> None:
-    sandbox.create(deployment(ns))
+    target.create(deployment(ns))
     before = read_raw(raw, ns)
     wl = adapter.read_workload(ns, "Deployment", "web")
     assert wl.container("app").cpu_request_m == 500 and wl.container("app").cpu_limit_m == 1000
@@ -179,14 +284,15 @@ def test_patch_touches_only_cpu_after_a_dry_run(sandbox: SandboxServer, adapter:
     assert stored.container("app").cpu_request_m == 300
     assert stored.resource_version == after["metadata"]["resourceVersion"]
     # the server-side dry run went first, then exactly one real patch, both strategic merge
-    patches = patch_requests(sandbox, ns)
-    assert [p["query"].get("dryRun") for p in patches] == ["All", None]
-    assert all(p["contentType"].startswith("application/strategic-merge-patch+json") for p in patches)
+    patches = patch_requests(target, ns)
+    if patches is not None:  # the sandbox's request log
+        assert [p["query"].get("dryRun") for p in patches] == ["All", None]
+        assert all(p["contentType"].startswith("application/strategic-merge-patch+json") for p in patches)
 
 
-def test_request_above_limit_is_refused_by_the_dry_run(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_request_above_limit_is_refused_by_the_dry_run(target: Target, adapter: KubeAdapter, ns: str,
                                                        raw: k8s.ApiClient) -> None:
-    sandbox.create(deployment(ns))
+    target.create(deployment(ns))
     wl = adapter.read_workload(ns, WorkloadKind.DEPLOYMENT, "web")
     with pytest.raises(KubeInvalid) as info:
         adapter.patch_cpu(wl, {"app": CpuChange(1500)})  # limit stays 1 core
@@ -194,12 +300,14 @@ def test_request_above_limit_is_refused_by_the_dry_run(sandbox: SandboxServer, a
     assert "less than or equal to cpu limit" in info.value.server_message
     assert info.value.status == 422
     assert read_raw(raw, ns)["metadata"]["resourceVersion"] == wl.resource_version
-    assert [p["query"].get("dryRun") for p in patch_requests(sandbox, ns)] == ["All"]  # never sent for real
+    patches = patch_requests(target, ns)
+    if patches is not None:
+        assert [p["query"].get("dryRun") for p in patches] == ["All"]  # never sent for real
 
 
-def test_limit_kept_raised_or_dropped(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_limit_kept_raised_or_dropped(target: Target, adapter: KubeAdapter, ns: str,
                                       raw: k8s.ApiClient) -> None:
-    sandbox.create(deployment(ns))
+    target.create(deployment(ns))
     wl = adapter.read_workload(ns, "Deployment", "web")
     wl = adapter.patch_cpu(wl, {"app": CpuChange(400)})  # limits: keep
     assert container(read_raw(raw, ns), "app")["resources"]["limits"]["cpu"] == "1"
@@ -212,9 +320,9 @@ def test_limit_kept_raised_or_dropped(sandbox: SandboxServer, adapter: KubeAdapt
     assert wl.container("app").cpu_limit_m is None
 
 
-def test_stale_read_gets_conflict_and_nothing_is_overwritten(sandbox: SandboxServer, adapter: KubeAdapter,
+def test_stale_read_gets_conflict_and_nothing_is_overwritten(target: Target, adapter: KubeAdapter,
                                                              ns: str, raw: k8s.ApiClient) -> None:
-    sandbox.create(deployment(ns))
+    target.create(deployment(ns))
     stale = adapter.read_workload(ns, "Deployment", "web")
     # someone else changes the workload after our read
     k8s.AppsV1Api(raw).patch_namespaced_deployment(
@@ -232,9 +340,9 @@ def test_stale_read_gets_conflict_and_nothing_is_overwritten(sandbox: SandboxSer
     assert stored.annotations["owner"] == "someone-else"
 
 
-def test_extra_annotations_and_after_dry_run_hook(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_extra_annotations_and_after_dry_run_hook(target: Target, adapter: KubeAdapter, ns: str,
                                                   raw: k8s.ApiClient) -> None:
-    sandbox.create(deployment(ns))
+    target.create(deployment(ns))
     wl = adapter.read_workload(ns, "Deployment", "web")
 
     class Stop(Exception):
@@ -251,9 +359,9 @@ def test_extra_annotations_and_after_dry_run_hook(sandbox: SandboxServer, adapte
     assert PREVIOUS_REQUESTS_ANNOTATION in stored.annotations
 
 
-def test_previous_requests_recorded_once_and_reverted(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_previous_requests_recorded_once_and_reverted(target: Target, adapter: KubeAdapter, ns: str,
                                                       raw: k8s.ApiClient) -> None:
-    sandbox.create(deployment(ns))
+    target.create(deployment(ns))
     wl = adapter.read_workload(ns, "Deployment", "web")
     wl = adapter.patch_cpu(wl, {"app": CpuChange(300, limit_m=600)})
     wl = adapter.patch_cpu(wl, {"app": CpuChange(200, limit_m=400), "sidecar": CpuChange(150)})
@@ -273,11 +381,11 @@ def test_previous_requests_recorded_once_and_reverted(sandbox: SandboxServer, ad
     assert adapter.revert(ns, "Deployment", "web") is None  # nothing left to revert
 
 
-def test_revert_removes_a_request_that_was_not_set(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_revert_removes_a_request_that_was_not_set(target: Target, adapter: KubeAdapter, ns: str,
                                                    raw: k8s.ApiClient) -> None:
     dep = deployment(ns, limit=None)
     del container(dep, "app")["resources"]["requests"]["cpu"]
-    sandbox.create(dep)
+    target.create(dep)
     wl = adapter.read_workload(ns, "Deployment", "web")
     assert wl.container("app").cpu_request_m is None
     adapter.patch_cpu(wl, {"app": CpuChange(250)})
@@ -286,10 +394,10 @@ def test_revert_removes_a_request_that_was_not_set(sandbox: SandboxServer, adapt
     assert "cpu" not in res.get("requests", {}) and "cpu" not in res.get("limits", {})
 
 
-def test_statefulset_read_and_patch(sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
+def test_statefulset_read_and_patch(target: Target, adapter: KubeAdapter, ns: str) -> None:
     dep = deployment(ns, "db", replicas=1)
     sts = {**dep, "kind": "StatefulSet", "spec": {**dep["spec"], "serviceName": "db"}}
-    sandbox.create(sts)
+    target.create(sts)
     wl = adapter.read_workload(ns, "statefulset", "db")
     assert wl.kind is WorkloadKind.STATEFULSET and wl.selector == "app=db"
     stored = adapter.patch_cpu(wl, {"app": CpuChange(700)})
@@ -303,9 +411,10 @@ def test_missing_workload_is_not_found(adapter: KubeAdapter, ns: str) -> None:
 
 
 # ------------------------------------------------------------------ pods, in-place resize, HPAs
-def test_pods_listed_and_resized_in_place_one_at_a_time(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_pods_listed_and_resized_in_place_one_at_a_time(target: Target, adapter: KubeAdapter, ns: str,
                                                         raw: k8s.ApiClient) -> None:
-    sandbox.create(deployment(ns, replicas=3))
+    target.create(deployment(ns, replicas=3))
+    target.wait_for_pods(ns, "app=web", 3)
     wl = adapter.read_workload(ns, "Deployment", "web")
     pods = adapter.list_pods(wl)
     assert len(pods) == 3 and all(p.containers[0].cpu_request_m == 500 for p in pods)
@@ -318,15 +427,25 @@ def test_pods_listed_and_resized_in_place_one_at_a_time(sandbox: SandboxServer, 
         res = next(c for c in spec["containers"] if c["name"] == "app")["resources"]
         assert (res["requests"]["cpu"], res["limits"]["cpu"]) == ("400m", "800m")
     # one request per pod, to the resize subresource; the template is left as it was
-    resizes = [r for r in patch_requests(sandbox, ns) if r["path"].endswith("/resize")]
-    assert sorted(r["path"].split("/")[-2] for r in resizes) == sorted(p.name for p in pods)
+    patches = patch_requests(target, ns)
+    if patches is not None:
+        resizes = [r for r in patches if r["path"].endswith("/resize")]
+        assert sorted(r["path"].split("/")[-2] for r in resizes) == sorted(p.name for p in pods)
     assert adapter.read_workload(ns, "Deployment", "web").container("app").cpu_request_m == 500
-    again = adapter.list_pods(wl)
-    assert all(p.containers[0].cpu_request_m == 400 for p in again)  # status.containerStatuses[].resources
+    # the actual values (status.containerStatuses[].resources) follow: at once in the
+    # sandbox, when the kubelet has applied the resize on a real cluster
+    deadline = time.monotonic() + (0 if target.is_sandbox else 120)
+    while True:
+        again = adapter.list_pods(wl)
+        if all(p.containers[0].cpu_request_m == 400 for p in again) or time.monotonic() > deadline:
+            break
+        time.sleep(2)
+    assert all(p.containers[0].cpu_request_m == 400 for p in again)
 
 
-def test_resize_stops_at_the_first_refusal(sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
-    sandbox.create(deployment(ns, replicas=3))
+def test_resize_stops_at_the_first_refusal(target: Target, adapter: KubeAdapter, ns: str) -> None:
+    target.create(deployment(ns, replicas=3))
+    target.wait_for_pods(ns, "app=web", 3)
     pods = adapter.list_pods(adapter.read_workload(ns, "Deployment", "web"))
     outcomes = adapter.resize_pods(pods, {"app": CpuChange(2000)})  # above the 1-core limit
     assert outcomes[0].ok is False and outcomes[0].error_kind == "KubeInvalid"
@@ -335,9 +454,9 @@ def test_resize_stops_at_the_first_refusal(sandbox: SandboxServer, adapter: Kube
         adapter.resize_pods(pods, {"app": CpuChange(100, drop_limit=True)})
 
 
-def test_hpas_targeting_the_workload(sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
-    sandbox.create(deployment(ns))
-    sandbox.create(deployment(ns, "other"))
+def test_hpas_targeting_the_workload(target: Target, adapter: KubeAdapter, ns: str) -> None:
+    target.create(deployment(ns))
+    target.create(deployment(ns, "other"))
 
     def hpa(name: str, target: str, metrics: list) -> dict:
         return {"apiVersion": "autoscaling/v2", "kind": "HorizontalPodAutoscaler",
@@ -345,9 +464,9 @@ def test_hpas_targeting_the_workload(sandbox: SandboxServer, adapter: KubeAdapte
                 "spec": {"scaleTargetRef": {"apiVersion": "apps/v1", "kind": "Deployment", "name": target},
                          "minReplicas": 1, "maxReplicas": 5, "metrics": metrics}}
 
-    sandbox.create(hpa("web-cpu", "web", [{"type": "Resource", "resource": {
+    target.create(hpa("web-cpu", "web", [{"type": "Resource", "resource": {
         "name": "cpu", "target": {"type": "Utilization", "averageUtilization": 70}}}]))
-    sandbox.create(hpa("other-mem", "other", [{"type": "Resource", "resource": {
+    target.create(hpa("other-mem", "other", [{"type": "Resource", "resource": {
         "name": "memory", "target": {"type": "Utilization", "averageUtilization": 70}}}]))
     web = adapter.find_hpas(adapter.read_workload(ns, "Deployment", "web"))
     assert [(h.name, h.scales_on_cpu_utilization) for h in web] == [("web-cpu", True)]
@@ -356,9 +475,9 @@ def test_hpas_targeting_the_workload(sandbox: SandboxServer, adapter: KubeAdapte
 
 
 # ------------------------------------------------------------------ events and status
-def test_event_written_with_the_events_v1_fields(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_event_written_with_the_events_v1_fields(target: Target, adapter: KubeAdapter, ns: str,
                                                  raw: k8s.ApiClient) -> None:
-    sandbox.create(deployment(ns))
+    target.create(deployment(ns))
     wl = adapter.read_workload(ns, "Deployment", "web")
     name = adapter.emit_event(regarding=wl.ref, reason="CpuRequestChanged", action="Patch",
                               note="app: 500m -> 300m at 42 req/s", type=EventType.NORMAL)
@@ -374,8 +493,8 @@ def test_event_written_with_the_events_v1_fields(sandbox: SandboxServer, adapter
 
 
 def test_status_written_through_subresource_without_moving_generation(
-        sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
-    sandbox.create(policy(ns))
+        target: Target, adapter: KubeAdapter, ns: str) -> None:
+    target.create(policy(ns))
     before = adapter.read_policy(ns, "web")
     status = {"observedGeneration": before.generation, "conditions": [{
         "type": "Ready", "status": "True", "reason": "Sized", "message": "ok",
@@ -391,16 +510,16 @@ def test_status_written_through_subresource_without_moving_generation(
         adapter.write_policy_status(ns, "web", status, resource_version=before.resource_version)
 
 
-def test_list_policies_by_namespace_and_all(sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
-    sandbox.create(policy(ns, "a"))
-    sandbox.create(policy(ns, "b"))
+def test_list_policies_by_namespace_and_all(target: Target, adapter: KubeAdapter, ns: str) -> None:
+    target.create(policy(ns, "a"))
+    target.create(policy(ns, "b"))
     mine = adapter.list_policies([ns])
     assert sorted(p.name for p in mine.items) == ["a", "b"] and mine.resource_version
     everywhere = adapter.list_policies()
     assert {("a", ns), ("b", ns)} <= {(p.name, p.namespace) for p in everywhere.items}
 
 
-def test_watch_sees_changes_and_relists_after_gone(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_watch_sees_added_and_modified(target: Target, adapter: KubeAdapter, ns: str,
                                                    raw: k8s.ApiClient) -> None:
     events: queue.Queue = queue.Queue()
     stop = threading.Event()
@@ -414,7 +533,7 @@ def test_watch_sees_changes_and_relists_after_gone(sandbox: SandboxServer, adapt
     try:
         first = events.get(timeout=10)
         assert first.type == "RELISTED" and first.listed is not None and first.listed.items == ()
-        sandbox.create(policy(ns))
+        target.create(policy(ns))
         added = events.get(timeout=10)
         assert added.type == "ADDED" and added.policy.name == "web"
         k8s.CustomObjectsApi(raw).patch_namespaced_custom_object(
@@ -426,20 +545,23 @@ def test_watch_sees_changes_and_relists_after_gone(sandbox: SandboxServer, adapt
         t.join(timeout=15)
     assert not t.is_alive()
 
+
+def test_watch_relists_after_gone(target: Target, adapter: KubeAdapter, ns: str) -> None:
     # a resourceVersion the server no longer keeps: 410 Gone → the adapter lists again
-    sandbox.create(policy(ns, "later"))
-    sandbox.store.compact()  # the sandbox forgets its change history, as etcd compaction does
+    target.create(policy(ns, "web"))
+    target.create(policy(ns, "later"))
+    target.sandbox.store.compact()  # forget the change history, as etcd compaction does
     gen = adapter.watch_policies(namespace=ns, resource_version="1", timeout_seconds=2)
     ev = next(gen)
     gen.close()
     assert ev.type == "RELISTED" and sorted(p.name for p in ev.listed.items) == ["later", "web"]
 
 
-def test_watch_recovers_from_a_dropped_stream(sandbox: SandboxServer, adapter: KubeAdapter, ns: str) -> None:
+def test_watch_recovers_from_a_dropped_stream(target: Target, adapter: KubeAdapter, ns: str) -> None:
     listed = adapter.list_policies([ns])
-    sandbox.faults.add("GET", f"/namespaces/{ns}/sizingpolicies", drop_watch=True, count=1)
-    sandbox.create(policy(ns, "one"))
-    sandbox.create(policy(ns, "two"))
+    target.sandbox.faults.add("GET", f"/namespaces/{ns}/sizingpolicies", drop_watch=True, count=1)
+    target.create(policy(ns, "one"))
+    target.create(policy(ns, "two"))
     gen = adapter.watch_policies(namespace=ns, resource_version=listed.resource_version, timeout_seconds=2)
     seen = []
     for ev in gen:
@@ -449,47 +571,47 @@ def test_watch_recovers_from_a_dropped_stream(sandbox: SandboxServer, adapter: K
             break
     gen.close()
     assert seen == ["one", "two"]  # each change once, in order, across the reconnect
-    watches = [r for r in sandbox.requests
+    watches = [r for r in target.sandbox.requests
                if r["path"].endswith(f"/namespaces/{ns}/sizingpolicies") and r["query"].get("watch")]
     assert len(watches) >= 2  # the first stream was cut off and the adapter reopened it
 
 
 # ------------------------------------------------------------------ retries
-def test_429_retry_after_is_honoured(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_429_retry_after_is_honoured(target: Target, adapter: KubeAdapter, ns: str,
                                      sleeps: Sleeps) -> None:
-    sandbox.create(deployment(ns))
-    sandbox.faults.add("GET", f"/namespaces/{ns}/deployments/web$", status=429, retry_after=3, count=2)
+    target.create(deployment(ns))
+    target.sandbox.faults.add("GET", f"/namespaces/{ns}/deployments/web$", status=429, retry_after=3, count=2)
     wl = adapter.read_workload(ns, "Deployment", "web")
     assert wl.name == "web"
     assert sleeps == [3, 3]  # RFC 9110 §10.2.3 / the API server's Retry-After, not our own backoff
 
 
-def test_500_backs_off_with_capped_jitter_then_succeeds(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_500_backs_off_with_capped_jitter_then_succeeds(target: Target, adapter: KubeAdapter, ns: str,
                                                         sleeps: Sleeps, raw: k8s.ApiClient) -> None:
-    sandbox.create(deployment(ns))
+    target.create(deployment(ns))
     wl = adapter.read_workload(ns, "Deployment", "web")
     # the real (non-dry-run) patch fails twice with 500, then goes through exactly once
-    sandbox.faults.add("PATCH", f"/namespaces/{ns}/deployments/web$", status=500, count=1)
+    target.sandbox.faults.add("PATCH", f"/namespaces/{ns}/deployments/web$", status=500, count=1)
     adapter.patch_cpu(wl, {"app": CpuChange(300)})
     assert len(sleeps) == 1 and 0 <= sleeps[0] <= 0.5  # full jitter, attempt 0: U(0, base)
     assert container(read_raw(raw, ns), "app")["resources"]["requests"]["cpu"] == "300m"
     assert read_raw(raw, ns)["metadata"]["generation"] == 2  # one template change, not two
 
 
-def test_unavailable_after_the_attempts_run_out(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_unavailable_after_the_attempts_run_out(target: Target, adapter: KubeAdapter, ns: str,
                                                 sleeps: Sleeps) -> None:
-    sandbox.create(deployment(ns))
-    sandbox.faults.add("GET", f"/namespaces/{ns}/deployments/web$", status=503, count=None)
+    target.create(deployment(ns))
+    target.sandbox.faults.add("GET", f"/namespaces/{ns}/deployments/web$", status=503, count=None)
     with pytest.raises(KubeUnavailable) as info:
         adapter.read_workload(ns, "Deployment", "web")
     assert info.value.status == 503 and len(sleeps) == 3  # 4 attempts → 3 waits
     assert all(0 <= s <= 4.0 for s in sleeps)
 
 
-def test_injected_conflict_is_handed_to_the_caller(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_injected_conflict_is_handed_to_the_caller(target: Target, adapter: KubeAdapter, ns: str,
                                                    raw: k8s.ApiClient) -> None:
-    sandbox.create(deployment(ns))
-    sandbox.faults.add("PATCH", f"/namespaces/{ns}/deployments/web$", conflict=True, count=1)
+    target.create(deployment(ns))
+    target.sandbox.faults.add("PATCH", f"/namespaces/{ns}/deployments/web$", conflict=True, count=1)
     calls = []
 
     def attempt():
@@ -510,11 +632,11 @@ class Clock:
         return self.t
 
 
-def test_lease_taken_over_only_after_expiry(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_lease_taken_over_only_after_expiry(target: Target, adapter: KubeAdapter, ns: str,
                                             raw: k8s.ApiClient) -> None:
     clock = Clock()
     a = adapter.leader_elector(namespace=ns, name="ratefit", clock=clock)
-    other = KubeAdapter(sandbox.api_client(), identity="ratefit-test-1")
+    other = KubeAdapter(target.api_client(), identity="ratefit-test-1")
     b = other.leader_elector(namespace=ns, name="ratefit", clock=clock)
     try:
         assert a.try_acquire_or_renew() and a.is_leader
@@ -544,16 +666,16 @@ def test_lease_taken_over_only_after_expiry(sandbox: SandboxServer, adapter: Kub
         other.close()
 
 
-def test_lease_race_has_one_winner(sandbox: SandboxServer, adapter: KubeAdapter, ns: str,
+def test_lease_race_has_one_winner(target: Target, adapter: KubeAdapter, ns: str,
                                    raw: k8s.ApiClient) -> None:
     clock = Clock()
     # a Lease left behind by a replica that died
-    sandbox.create({"apiVersion": "coordination.k8s.io/v1", "kind": "Lease",
+    target.create({"apiVersion": "coordination.k8s.io/v1", "kind": "Lease",
                     "metadata": {"name": "race", "namespace": ns},
                     "spec": {"holderIdentity": "gone", "leaseDurationSeconds": 15, "leaseTransitions": 3,
                              "renewTime": "2020-01-01T00:00:00.000000Z"}})
     a = adapter.leader_elector(namespace=ns, name="race", clock=clock)
-    other = KubeAdapter(sandbox.api_client(), identity="ratefit-test-1")
+    other = KubeAdapter(target.api_client(), identity="ratefit-test-1")
     b = other.leader_elector(namespace=ns, name="race", clock=clock)
     try:
         assert not a.try_acquire_or_renew() and not b.try_acquire_or_renew()  # both wait one duration
