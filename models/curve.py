@@ -8,8 +8,8 @@ quantile of out-of-fold residuals, see ``models.select``). A lookup is linear
 interpolation on that grid:
 
 - inside ``[rate_lo, rate_hi]``: interpolate; ``extrapolated`` is False;
-- above ``rate_hi``: continue linearly with the slope of the top tenth of the curve
-  (never negative); ``extrapolated`` is True;
+- above ``rate_hi``: continue linearly with the least-squares slope of the top
+  quarter of the curve (never negative); ``extrapolated`` is True;
 - below ``rate_lo``: hold the curve's value at ``rate_lo`` (never extrapolate
   downwards towards zero CPU); ``extrapolated`` is True.
 
@@ -29,8 +29,9 @@ from ratefit.models.errors import ArtifactError, InputError
 
 #: points on the tabulation grid (uniform in rate); 129 gives 128 segments
 GRID_POINTS = 129
-#: share of the grid used to estimate the slope for extrapolation
-TOP_SHARE = 0.1
+#: share of the grid (its top end) whose least-squares slope continues the curve
+#: beyond the trained range; a quarter smooths the steps an isotonic fit leaves
+TOP_SHARE = 0.25
 
 
 def to_millicores(cores: float) -> int:
@@ -83,7 +84,10 @@ class DemandCurve:
         n = values.size
         k = max(1, int(round((n - 1) * TOP_SHARE)))
         self._step = (self.rate_hi - self.rate_lo) / (n - 1)
-        self.slope = max(0.0, float(values[-1] - values[-1 - k]) / (k * self._step))
+        top = values[-1 - k :]
+        x = np.arange(top.size, dtype=float) * self._step
+        xc = x - x.mean()
+        self.slope = max(0.0, float(np.dot(xc, top - top.mean()) / np.dot(xc, xc)))
         self._cpu_list = values.tolist()
 
     # -- construction -------------------------------------------------------------
@@ -215,8 +219,8 @@ class CurveBank:
 
     def rows(self, keys: Sequence[str]) -> np.ndarray:
         """Row index per key, -1 for unknown keys."""
-        get = self.index.get
-        return np.fromiter((get(k, -1) for k in keys), dtype=np.int64, count=len(keys))
+        n = len(keys)
+        return np.fromiter(map(self.index.get, keys, [-1] * n), dtype=np.int64, count=n)
 
     def lookup(self, rows: np.ndarray, rates: np.ndarray) -> CurveLookup:
         """Lookups for ``rows`` (indices into this bank, all >= 0) at ``rates``."""
