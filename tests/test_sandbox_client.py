@@ -424,3 +424,17 @@ def test_deployment_status_counters_and_statefulset_pods(apps, core, sandbox) ->
                    core.list_namespaced_pod(NS, label_selector="app=db").items)
     assert names == ["db-0", "db-1"]
     assert apps.read_namespaced_stateful_set("db", NS).status.ready_replicas == 2
+
+
+def test_list_pages_with_limit_and_continue(core) -> None:
+    for i in range(5):
+        core.create_namespace({"metadata": {"name": f"team-{i}"}})
+    first = core.list_namespace(limit=3)
+    # API Concepts "Retrieving large results sets in chunks": limit + continue token,
+    # remainingItemCount; the last page has no continue token
+    assert len(first.items) == 3 and first.metadata._continue
+    assert first.metadata.remaining_item_count == 9 - 3   # 4 built-in + 5 created
+    rest = core.list_namespace(limit=10, _continue=first.metadata._continue)
+    assert not rest.metadata._continue
+    names = [n.metadata.name for n in first.items + rest.items]
+    assert len(names) == 9 and len(set(names)) == 9

@@ -12,6 +12,7 @@ watches fed from the store's change history.
 
 from __future__ import annotations
 
+import base64
 import copy
 import json
 import threading
@@ -66,7 +67,8 @@ class Response:
     code: int
     body: Any = None
     headers: dict[str, str] = field(default_factory=dict)
-    stream: Iterator[dict] | None = None
+    #: watch events; None items are idle ticks (nothing to send)
+    stream: Iterator[dict | None] | None = None
 
 
 @dataclass(frozen=True)
@@ -194,14 +196,46 @@ class Api:
         return self._shape(r.rtype, self._lookup(r))
 
     def list(self, r: Route, req: Request) -> dict:
+        """List, with `limit`/`continue` paging: the continue token holds the position
+        after the last item of the page (ordered by namespace/name) and the list's
+        resourceVersion; later pages show objects as they are now (not a snapshot)."""
         labels = parse_label_selector(req.q("labelSelector"))
         fields = parse_field_selector(req.q("fieldSelector"))
+        try:
+            limit = int(req.q("limit") or 0)
+        except ValueError as exc:
+            raise E.bad_request("limit must be an integer") from exc
+        after: tuple[str, str] | None = None
+        token = req.q("continue")
         with self.store.lock:
-            items = [self._shape(r.rtype, o) for o in self.store.list(*r.rtype.key, r.namespace)
-                     if labels(o["metadata"].get("labels") or {}) and fields(o)]
             rv = str(self.store.resource_version)
+            if token:
+                try:
+                    state = json.loads(base64.urlsafe_b64decode(token.encode()))
+                    after, rv = (state["ns"], state["name"]), state["rv"]
+                except (ValueError, KeyError, TypeError) as exc:
+                    raise E.bad_request("continue key is not valid: malformed token") from exc
+                if int(rv) < self.store.compacted:
+                    raise E.ApiError(410, "Expired", "The provided continue parameter is too "
+                                     "old to display a consistent list result. You can start a "
+                                     "new list without the continue parameter.")
+            items = []
+            for o in self.store.list(*r.rtype.key, r.namespace):
+                md = o["metadata"]
+                if after is not None and (md.get("namespace", ""), md["name"]) <= after:
+                    continue
+                if labels(md.get("labels") or {}) and fields(o):
+                    items.append(self._shape(r.rtype, o))
+        meta: dict[str, Any] = {"resourceVersion": rv}
+        if limit > 0 and len(items) > limit:
+            last = items[limit - 1]["metadata"]
+            meta["continue"] = base64.urlsafe_b64encode(json.dumps(
+                {"ns": last.get("namespace", ""), "name": last["name"], "rv": rv}).encode()
+            ).decode()
+            meta["remainingItemCount"] = len(items) - limit
+            items = items[:limit]
         return {"kind": f"{r.rtype.kind}List", "apiVersion": r.rtype.group_version,
-                "metadata": {"resourceVersion": rv}, "items": items}
+                "metadata": meta, "items": items}
 
     # --- create -------------------------------------------------------------------------
     def create(self, r: Route, req: Request) -> dict:
@@ -666,7 +700,7 @@ class Api:
                                                shown["metadata"].get("resourceVersion", "")})
             return {"type": kind, "object": shown}
 
-        def gen() -> Iterator[dict]:
+        def gen() -> Iterator[dict | None]:
             with self.store.lock:
                 if start is None:
                     last = self.store.resource_version
@@ -696,6 +730,7 @@ class Api:
                     head = self.store.resource_version
                 if self.store.closed or self.stopping.is_set():
                     return
+                yield None   # a tick: lets the HTTP layer notice a client that went away
                 if changes is None:
                     yield {"type": "ERROR",
                            "object": E.expired(last, self.store.compacted + 1).status()}

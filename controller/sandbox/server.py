@@ -15,6 +15,7 @@ bearer token is accepted), no RBAC.
 from __future__ import annotations
 
 import json
+import select
 import socket
 import threading
 import time
@@ -188,6 +189,10 @@ class _Handler(BaseHTTPRequestHandler):
         assert resp.stream is not None
         try:
             for event in resp.stream:
+                if event is None:
+                    if self._client_gone():
+                        break
+                    continue
                 line = json.dumps(event).encode() + b"\n"
                 self.wfile.write(f"{len(line):X}\r\n".encode() + line + b"\r\n")
                 self.wfile.flush()
@@ -206,6 +211,16 @@ class _Handler(BaseHTTPRequestHandler):
             close = getattr(resp.stream, "close", None)
             if close:
                 close()
+
+    def _client_gone(self) -> bool:
+        """True when the watching client has closed its end of the connection."""
+        try:
+            readable, _, _ = select.select([self.connection], [], [], 0)
+            if not readable:
+                return False
+            return self.connection.recv(1, socket.MSG_PEEK) == b""
+        except (OSError, ValueError):
+            return True
 
     def _private(self, req: Request) -> None:
         sb = self.server.sandbox
