@@ -264,6 +264,7 @@ class _Entry:
     inputs: list[ContainerInput] = field(default_factory=list)
     decision: WorkloadDecision | None = None
     problem: str | None = None  # why nothing could be decided (workload missing …)
+    pods: tuple[Any, ...] | None = None  # method in-place: the workload's pods, as listed this pass
 
 
 class Reconciler:
@@ -297,6 +298,7 @@ class Reconciler:
         self._retry_at: dict[str, float] = {}
         self._budget_seeded = False
         self._patch_kwargs: set[str] | None = None
+        self._gather_split: dict[str, float] = {}
 
     # -- public -----------------------------------------------------------------
     def run_pass(self, control: Any = None) -> PassResult:
@@ -319,12 +321,14 @@ class Reconciler:
         result = self._act_all(entries, now, errors, should_stop=should_stop, may_act=may_act)
         t3, c3 = self._mono(), time.process_time()
         # wall and CPU seconds per phase (CPU: this process, all threads) — for the benchmark
+        phases.update(self._gather_split)
         phases.update(gather=t1 - t0, decide=t2 - t1, act=t3 - t2,
                       gather_cpu=c1 - c0, decide_cpu=c2 - c1, act_cpu=c3 - c2)
         return self._finish(result, t0, phases)
 
     # -- gather -------------------------------------------------------------------
     def _gather(self, now: datetime, errors: list[str]) -> list[_Entry]:
+        t_g0 = time.perf_counter()
         objs = list(self.kube.list_policies(list(self.config.namespaces) or None).items)
         entries = [_Entry(obj=o) for o in sorted(objs, key=lambda o: (o.namespace, o.name))]
         for e in entries:
@@ -387,17 +391,23 @@ class Reconciler:
                     )
                 )
                 models[(p.namespace, p.name, c.name)] = c.model
+        t_lists = time.perf_counter()
         rates = self._query_rates(requests, errors)
+        t_rates = time.perf_counter()
         sizing = self._query_sizing(requests, models, rates, errors)
+        t_sizing = time.perf_counter()
+        self._gather_split = {"gather_kube": t_lists - t_g0, "gather_rates": t_rates - t_lists,
+                              "gather_sizing": t_sizing - t_rates}
         for e in valid:
             if e.workload is None:
                 continue
             by_name = {c.name: c for c in e.workload.containers}
+            running = self._running_values(e, errors) if e.policy.method is Method.IN_PLACE else {}
             for c in e.policy.containers:
                 wc = by_name.get(c.name)
                 if wc is None:
                     continue  # decide holds it NoMetrics with a message naming the container
-                current_req, current_lim = wc.cpu_request_m, wc.cpu_limit_m
+                current_req, current_lim = running.get(c.name, (wc.cpu_request_m, wc.cpu_limit_m))
                 e.inputs.append(
                     ContainerInput(
                         name=c.name,
@@ -408,6 +418,29 @@ class Reconciler:
                     )
                 )
         return entries
+
+    def _running_values(self, e: _Entry, errors: list[str]) -> dict[str, tuple[int | None, int | None]]:
+        """``method: in-place``: what the pods run (their spec after resizes), per container —
+        the value most pods agree on. The template keeps the old value, so deciding from it
+        would propose the same resize every pass."""
+        try:
+            e.pods = tuple(self.kube.list_pods(e.workload))
+        except KubeError as exc:
+            self.telemetry.kube_errors.labels(kind=type(exc).__name__).inc()
+            errors.append(f"list pods of {e.policy.workload_key}: {exc}")
+            e.pods = ()
+            return {}
+        out: dict[str, tuple[int | None, int | None]] = {}
+        for c in e.policy.containers:
+            seen: dict[tuple[int | None, int | None], int] = {}
+            for pod in e.pods:
+                for pc in pod.containers:
+                    if pc.name == c.name:
+                        v = (pc.spec_cpu_request_m, pc.spec_cpu_limit_m)
+                        seen[v] = seen.get(v, 0) + 1
+            if seen:
+                out[c.name] = max(sorted(seen, key=lambda v: (v[0] or 0, v[1] or 0)), key=lambda v: seen[v])
+        return out
 
     def _query_rates(self, requests: Sequence[RateRequest], errors: list[str]) -> dict[str, float | None]:
         """key ``namespace/policy/container`` → the rate (req/s per pod), None: NoMetrics."""
@@ -534,6 +567,8 @@ class Reconciler:
                 self._apply(e, now, errors, may_act=may_act)
                 if e.decision.changed:
                     patched.append(e.policy.workload_key)
+            elif self._reapplies(e) and may_act():
+                self._reapply_in_place(e, errors)
             rows.extend(self._rows(e))
             self._count(e)
             if self.config.write and may_act():
@@ -665,13 +700,34 @@ class Reconciler:
             )
         return out
 
+    def _reapplies(self, e: _Entry) -> bool:
+        p = e.policy
+        return (p is not None and e.decision is not None and p.method is Method.IN_PLACE and p.mode is Mode.APPLY
+                and not self.config.dry_run and self.config.write)
+
+    def _reapply_in_place(self, e: _Entry, errors: list[str]) -> None:
+        """New pods start at the template value: resize the pods that differ from the value
+        the others run (the last applied decision). Not a new change: no budget, no cooldown."""
+        from ratefit.controller.workload import CpuChange
+
+        want = {d.container: CpuChange(request_m=d.current_m, limit_m=d.limit_m)
+                for d in e.decision.decisions if d.current_m is not None}
+        try:
+            self._resize_pods(e, want, pods=e.pods)
+        except KubeError as exc:
+            self.telemetry.patch_errors.labels(kind=type(exc).__name__).inc()
+            errors.append(f"re-applying {e.policy.workload_key} to new pods: {exc}")
+
     def _resize_in_place(self, e: _Entry, wd: WorkloadDecision, now: datetime) -> None:
         """Resize the running pods one at a time (the template stays as it is); pods
         already at the new values are skipped, so a re-run after a crash resizes only
         the rest."""
-        changes = self._changes(wd)
+        self._resize_pods(e, self._changes(wd), pods=None)
+
+    def _resize_pods(self, e: _Entry, changes: Mapping[str, Any], *, pods: Sequence[Any] | None) -> None:
         todo = []
-        for pod in sorted(self.kube.list_pods(e.workload), key=lambda p: p.name):
+        listed = self.kube.list_pods(e.workload) if pods is None else pods
+        for pod in sorted(listed, key=lambda p: p.name):
             running = {c.name: c for c in pod.containers}
             if any(
                 name in running and (running[name].spec_cpu_request_m != ch.request_m

@@ -199,3 +199,36 @@ def test_telemetry_counts_decisions_and_patches(tmp_path) -> None:
         assert tel.value("ratefit_controller_decisions_total", {"verdict": "held", "why": "InsideDeadband"}) == 1
         assert tel.value("ratefit_controller_passes_total", {"outcome": "done"}) == 2
         assert tel.value("ratefit_controller_pass_duration_seconds_count") == 2
+
+
+def test_in_place_resizes_pods_keeps_the_template_and_reapplies_to_new_pods(tmp_path) -> None:
+    objects = [deployment("shop", "web", [("app", "100m", "200m")], replicas=2),
+               policy("shop", "web", workload="web", method="in-place",
+                      containers=[{"name": "app", "model": "shop/web/app"}])]
+    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+        def pod_cpu() -> dict[str, tuple[int, int]]:
+            out = {}
+            for p in w.get("/api/v1/namespaces/shop/pods?labelSelector=app%3Dweb")["items"]:
+                res = p["spec"]["containers"][0]["resources"]
+                out[p["metadata"]["name"]] = (_m(res["requests"]["cpu"]), _m(res["limits"]["cpu"]))
+            return out
+
+        assert len(pod_cpu()) == 2
+        rec = w.reconciler()
+        r1 = rec.run_pass()
+        assert r1.patched == ("shop/Deployment/web",)
+        assert set(pod_cpu().values()) == {(315, 630)}  # every running pod resized (keep-ratio limit)
+        assert w.cpu("shop", "web", "app") == ("100m", "200m")  # the template is left as it was
+        assert "new pods start at the template value" in r1.rows[0].as_dict()["note"]
+        r2 = rec.run_pass()
+        assert r2.patched == () and r2.rows[0].why == ("InsideDeadband",)  # decided from what the pods run
+        # a new pod starts at the template value (no scheduler in the sandbox: create it by hand)
+        pod = w.get("/api/v1/namespaces/shop/pods?labelSelector=app%3Dweb")["items"][0]
+        new = {"apiVersion": "v1", "kind": "Pod",
+               "metadata": {"name": "web-new-pod", "namespace": "shop", "labels": pod["metadata"]["labels"]},
+               "spec": {"containers": [{"name": "app", "image": "registry.invalid/kestrel/app:1",
+                                        "resources": {"requests": {"cpu": "100m"}, "limits": {"cpu": "200m"}}}]}}
+        w.sandbox.create(new)
+        r3 = rec.run_pass()
+        assert r3.patched == ()  # not a new change …
+        assert pod_cpu()["web-new-pod"] == (315, 630)  # … but the decision is re-applied to the new pod

@@ -1,0 +1,52 @@
+"""`ratefit demo` end to end (a short history to keep it quick): the review has one row
+per scenario container, the files are written, and nothing it started is left running."""
+
+from __future__ import annotations
+
+import json
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import httpx
+import pytest
+import yaml
+
+from ratefit.models.scenario.services import SCENARIO
+
+RATEFIT = Path(sys.executable).with_name("ratefit")
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("source", ["replay", "prometheus"])
+def test_demo_prints_the_review_and_stops_everything(tmp_path, source) -> None:
+    if source == "prometheus":
+        from prom_fixtures import require_prometheus
+
+        require_prometheus()
+    args = [str(RATEFIT), "demo", "--out", str(tmp_path / "out"), "--hours", "4", "--output", "json"]
+    if source == "replay":
+        args.append("--replay")
+    proc = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    out, err = proc.communicate(timeout=300)
+    assert proc.returncode == 0, err[-3000:]
+    rows = json.loads(out)
+    want = {(s.namespace, s.workload, c.name) for s in SCENARIO for c in s.containers}
+    assert {(r["namespace"], r["workload"].split("/", 1)[1], r["container"]) for r in rows} == want
+    assert all(r["verdict"] in ("held", "proposed") for r in rows)  # a dry-run pass: nothing "changed"
+    assert f"rates from {source}" in err
+    assert ("promtool" in err) == (source == "prometheus")
+    outdir = tmp_path / "out"
+    md = (outdir / "review.md").read_text()
+    assert "INVENTED" in md and md.count("\n| ") >= len(want) + 1
+    assert len(list((outdir / "reports").glob("*.md"))) == len(want)
+    # everything it started is stopped: the sandbox and the sizing API no longer answer
+    server = yaml.safe_load((outdir / "kubeconfig").read_text())["clusters"][0]["cluster"]["server"]
+    with pytest.raises(httpx.HTTPError):
+        httpx.get(server + "/version", timeout=2)
+    urls = re.findall(r"(?:ratefit serve at|Prometheus at) (http://127\.0\.0\.1:\d+)", err)
+    assert len(urls) == (2 if source == "prometheus" else 1), err
+    for url in urls:
+        with pytest.raises(httpx.HTTPError):
+            httpx.get(url + "/-/ready", timeout=2)
