@@ -55,7 +55,7 @@ from kubernetes.watch.watch import iter_resp_lines
 from urllib3.exceptions import HTTPError as Urllib3Error
 from urllib3.util.retry import Retry
 
-from ratefit.controller.errors import KubeConflict, KubeError, KubeGone, KubeNotFound
+from ratefit.controller.errors import KubeError, KubeGone, KubeNotFound
 from ratefit.controller.kube_lease import LeaderElector, micro_time
 from ratefit.controller.kube_retry import RetryPolicy, call_with_retry, retry_on_conflict, translate
 from ratefit.controller.quantity import format_cpu, parse_cpu
@@ -84,6 +84,7 @@ __all__ = [
     "LeaderElector",
     "RetryPolicy",
     "retry_on_conflict",
+    "cpu_patch_body",
     "POLICY_GROUP",
     "POLICY_VERSION",
     "POLICY_PLURAL",
@@ -428,27 +429,8 @@ class KubeAdapter:
         stored after the patch. A template change starts a rollout."""
         if not changes:
             return workload
-        body = self._template_patch(workload, changes, record_previous=record_previous)
-        if annotations:
-            body["metadata"].setdefault("annotations", {}).update(annotations)
+        body = cpu_patch_body(workload, changes, record_previous=record_previous, annotations=annotations)
         return self._dry_run_then_patch(workload, body, after_dry_run=after_dry_run)
-
-    def _template_patch(
-        self, workload: Workload, changes: Mapping[str, CpuChange], *, record_previous: bool
-    ) -> dict[str, Any]:
-        containers = []
-        for name, change in changes.items():
-            workload.container(name)  # raises InputError for an unknown container
-            containers.append({"name": name, "resources": _resources_patch(change)})
-        meta: dict[str, Any] = {"resourceVersion": workload.resource_version}
-        if record_previous:
-            previous = dict(workload.previous_requests)
-            for name in changes:
-                if name not in previous:
-                    c = workload.container(name)
-                    previous[name] = PreviousRequest(c.cpu_request_m, c.cpu_limit_m)
-            meta["annotations"] = {PREVIOUS_REQUESTS_ANNOTATION: encode_previous_requests(previous)}
-        return {"metadata": meta, "spec": {"template": {"spec": {"containers": containers}}}}
 
     def _dry_run_then_patch(
         self, workload: Workload, body: dict[str, Any], *, after_dry_run: Callable[[], None] | None = None
@@ -551,7 +533,8 @@ class KubeAdapter:
         if not action or len(action) > _SHORT_MAX:
             raise InputError(f"event action {action!r} must be 1–128 characters")
         now = self._clock()
-        name = f"{regarding.name}.{int(now * 1e9):x}{uuid.uuid4().hex[:4]}"[-253:]
+        # like client-go's events: "<object name>.<unique hex suffix>" (≤ 253 chars, DNS subdomain)
+        name = f"{regarding.name[:220].rstrip('.-')}.{int(now * 1e9):x}{uuid.uuid4().hex[:4]}"
         body: dict[str, Any] = {
             "apiVersion": "events.k8s.io/v1",
             "kind": "Event",
@@ -570,6 +553,35 @@ class KubeAdapter:
         self._call(f"create event for {regarding.kind} {regarding.namespace}/{regarding.name}",
                    self._events.create_namespaced_event, regarding.namespace, body)
         return name
+
+
+# -------------------------------------------------------------------- patch bodies
+def cpu_patch_body(
+    workload: Workload,
+    changes: Mapping[str, CpuChange],
+    *,
+    record_previous: bool = True,
+    annotations: Mapping[str, str | None] | None = None,
+) -> dict[str, Any]:
+    """The strategic-merge patch ``patch_cpu`` sends (pure; shown by reviews and tests):
+    per changed container only ``name`` (the merge key), ``resources.requests.cpu`` and,
+    when it changes, ``resources.limits.cpu`` (null: remove it); ``metadata.resourceVersion``
+    (the precondition) and the annotations. Raises InputError for an unknown container."""
+    containers = []
+    for name, change in changes.items():
+        workload.container(name)  # raises InputError for an unknown container
+        containers.append({"name": name, "resources": _resources_patch(change)})
+    meta: dict[str, Any] = {"resourceVersion": workload.resource_version}
+    if record_previous:
+        previous = dict(workload.previous_requests)
+        for name in changes:
+            if name not in previous:
+                c = workload.container(name)
+                previous[name] = PreviousRequest(c.cpu_request_m, c.cpu_limit_m)
+        meta["annotations"] = {PREVIOUS_REQUESTS_ANNOTATION: encode_previous_requests(previous)}
+    if annotations:
+        meta.setdefault("annotations", {}).update(annotations)
+    return {"metadata": meta, "spec": {"template": {"spec": {"containers": containers}}}}
 
 
 # -------------------------------------------------------------------- JSON → values

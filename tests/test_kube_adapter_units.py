@@ -7,6 +7,8 @@ from __future__ import annotations
 import json
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from kubernetes.client.exceptions import ApiException
 from urllib3.exceptions import NewConnectionError, ProtocolError
 
@@ -19,9 +21,10 @@ from ratefit.controller.errors import (
     KubeNotFound,
     KubeUnavailable,
 )
-from ratefit.controller.kube import _hpa, _pod, _selector, _workload
+from ratefit.controller.kube import _hpa, _pod, _selector, _workload, cpu_patch_body
 from ratefit.controller.kube_retry import RetryPolicy, call_with_retry, retry_on_conflict, translate
 from ratefit.controller.workload import (
+    PREVIOUS_REQUESTS_ANNOTATION,
     CpuChange,
     PreviousRequest,
     WorkloadKind,
@@ -251,3 +254,53 @@ def test_cpu_change_validation() -> None:
         CpuChange(100, limit_m=200, drop_limit=True)
     with pytest.raises(InputError):
         CpuChange(-1)
+
+
+# ---------------------------------------------------------------- the patch body
+_changes = st.builds(
+    lambda req, lim, drop: CpuChange(req, limit_m=None if drop else lim, drop_limit=drop),
+    st.integers(0, 64_000), st.none() | st.integers(0, 64_000), st.booleans(),
+)
+
+
+def _leaves(doc, prefix=""):
+    if isinstance(doc, dict):
+        for k, v in doc.items():
+            yield from _leaves(v, f"{prefix}.{k}" if prefix else k)
+    elif isinstance(doc, list):
+        for item in doc:
+            yield from _leaves(item, prefix + "[]")
+    else:
+        yield prefix
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.dictionaries(st.sampled_from(["app", "sidecar"]), _changes, min_size=1))
+def test_template_patch_touches_only_cpu_and_our_annotation(changes) -> None:
+    # DESIGN.md step 10: an explicit strategic-merge patch of the container (merge key
+    # `name`) touching nothing but CPU; the resourceVersion makes it conditional.
+    wl = _workload(DEPLOYMENT, WorkloadKind.DEPLOYMENT)
+    body = cpu_patch_body(wl, changes, record_previous=True)
+    allowed = {
+        "metadata.resourceVersion",
+        f"metadata.annotations.{PREVIOUS_REQUESTS_ANNOTATION}",
+        "spec.template.spec.containers[].name",
+        "spec.template.spec.containers[].resources.requests.cpu",
+        "spec.template.spec.containers[].resources.limits.cpu",
+    }
+    assert set(_leaves(body)) <= allowed
+    assert body["metadata"]["resourceVersion"] == wl.resource_version
+    sent = {c["name"]: c["resources"] for c in body["spec"]["template"]["spec"]["containers"]}
+    assert set(sent) == set(changes)
+    for name, change in changes.items():
+        limits = sent[name].get("limits")
+        if change.drop_limit:
+            assert limits == {"cpu": None}  # strategic merge: null deletes the key
+        elif change.limit_m is None:
+            assert limits is None  # limits: keep → not mentioned at all
+    # the annotation keeps what was recorded before (app: 250m from DEPLOYMENT) and adds
+    # the current values of containers changed for the first time
+    prev = decode_previous_requests(body["metadata"]["annotations"][PREVIOUS_REQUESTS_ANNOTATION])
+    assert prev["app"] == PreviousRequest(250, None)
+    if "sidecar" in changes:
+        assert prev["sidecar"] == PreviousRequest(None, None)
