@@ -456,13 +456,17 @@ def decide_workload(
     def hold(d: Decision, why: Why, message: str) -> Decision:
         return replace(d, verdict=Verdict.HELD, why=why, message=message, settle=d.settle_if_held)
 
-    wants = [d.verdict is Verdict.CHANGED for d in decisions]
-    if any(wants) and hpa_on_cpu and not policy.allow_horizontal_conflict:
+    # A CPU-utilisation autoscaler blocks every move, also a decrease still settling:
+    # the reviewer should see the hard block now, not after the settle period.
+    def wants(d: Decision) -> bool:
+        return d.verdict is Verdict.CHANGED or d.why is Why.SETTLING
+
+    if any(wants(d) for d in decisions) and hpa_on_cpu and not policy.allow_horizontal_conflict:
         msg = (
             "a HorizontalPodAutoscaler scales this workload on CPU utilisation; changing requests "
             "moves its measurement (set allowHorizontalConflict to change anyway)"
         )
-        decisions = [hold(d, Why.HORIZONTAL_CONFLICT, msg) if d.verdict is Verdict.CHANGED else d for d in decisions]
+        decisions = [hold(d, Why.HORIZONTAL_CONFLICT, msg) if wants(d) else d for d in decisions]
     if policy.method is Method.IN_PLACE:
         for i, d in enumerate(decisions):
             if d.verdict is Verdict.CHANGED and (problem := _in_place_problem(d)):

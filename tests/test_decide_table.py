@@ -101,6 +101,9 @@ CASES = [
     Case("no model", Verdict.HELD, Why.NO_MODEL, 400, None, args=dict(request=400, upper=None)),
     Case("unusable sizing answer", Verdict.HELD, Why.NO_MODEL, 400, None, args=dict(request=400, upper=math.inf)),
     Case("HPA on CPU utilisation", Verdict.HELD, Why.HORIZONTAL_CONFLICT, 460, None, args=dict(request=400, hpa_on_cpu=True)),
+    # a decrease still settling is shown blocked at once, not after the settle period
+    Case("HPA on CPU utilisation, decrease (step-limited to 0.5x)", Verdict.HELD, Why.HORIZONTAL_CONFLICT, 500, None,
+         args=dict(request=1000, hpa_on_cpu=True)),
     Case("HPA conflict allowed", Verdict.CHANGED, Why.NEW_TARGET, 460, None, spec=dict(allowHorizontalConflict=True),
          args=dict(request=400, hpa_on_cpu=True)),
     Case("in-place: Guaranteed moves request and limit together", Verdict.CHANGED, Why.NEW_TARGET, 460, 460,
