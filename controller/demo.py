@@ -236,7 +236,8 @@ def run_demo(
         else:
             rates = ReplayRateSource(info.path, at=info.end, template=template)
             source = "replay"
-            progress(f"rates: replayed from {info.path} (prometheus/promtool not installed)")
+            why = "as asked (--replay)" if prometheus_binaries() else "prometheus/promtool not installed"
+            progress(f"rates: replayed from {info.path} ({why}; same numbers as a Prometheus holding that history)")
         progress(f"training {len(csv_paths)} models (k-fold CV over every candidate; ~5 s each) …")
         train_scenario(out / "samples", work / "store", out / "reports", progress=progress, csv_paths=csv_paths)
         api_url = stack.enter_context(start_serve(work / "store", work))

@@ -36,7 +36,7 @@ def test_demo_prints_the_review_and_stops_everything(tmp_path, source) -> None:
     assert {(r["namespace"], r["workload"].split("/", 1)[1], r["container"]) for r in rows} == want
     assert all(r["verdict"] in ("held", "proposed") for r in rows)  # a dry-run pass: nothing "changed"
     assert f"rates from {source}" in err
-    assert ("promtool" in err) == (source == "prometheus")
+    assert ("backfilled with promtool" in err) == (source == "prometheus")
     outdir = tmp_path / "out"
     md = (outdir / "review.md").read_text()
     assert "INVENTED" in md and md.count("\n| ") >= len(want) + 1
