@@ -474,44 +474,66 @@ class KubeAdapter:
 
         return retry_on_conflict(once, attempts=self.retry.conflict_attempts)
 
-    def resize_pods(self, pods: Iterable[Pod], changes: Mapping[str, CpuChange]) -> tuple[ResizeOutcome, ...]:
+    def resize_pods(
+        self, pods: Iterable[Pod], changes: Mapping[str, CpuChange], *, dry_run_first: bool = True
+    ) -> tuple[ResizeOutcome, ...]:
         """Resize running pods in place (``pods/{name}/resize``), one pod at a time, in
-        the order given. Stops at the first refusal (the rest are reported ``Skipped``)
-        so a bad value is not pushed to every pod; a pod that vanished is skipped and
-        the next one tried. The template is not changed: new pods start at the
-        template's value. Limits cannot be removed by a resize (Kubernetes docs,
-        "Resize CPU and Memory Resources assigned to Containers")."""
+        the order given; one outcome per pod, in that order.
+
+        With ``dry_run_first`` every pod's resize is first sent with ``dryRun=All``; if
+        any is refused, no pod is resized (the refused one carries the server's reason,
+        the others ``error_kind="Skipped"``) — so a value the server will not take never
+        leaves the pods half-resized. Then the real resizes go one by one and stop at
+        the first refusal (the rest ``Skipped``). A pod that vanished (404) is reported
+        ``KubeNotFound`` and the next one tried. The template is not changed: new pods
+        start at the template's value. Limits cannot be removed by a resize (Kubernetes
+        docs, "Resize CPU and Memory Resources assigned to Containers")."""
         if any(c.drop_limit for c in changes.values()):
             raise InputError("an in-place resize cannot remove a CPU limit; use method rollout for limits: drop")
-        outcomes: list[ResizeOutcome] = []
-        failed = False
-        for pod in pods:
-            if failed:
-                outcomes.append(ResizeOutcome(pod.name, False, error="not tried after an earlier failure",
-                                              error_kind="Skipped"))
-                continue
+        pods = list(pods)
+        body = {"spec": {"containers": [
+            {"name": n, "resources": _resources_patch(ch)} for n, ch in changes.items()]}}
+
+        def one(pod: Pod, *, dry: bool) -> ResizeOutcome:
             have = {c.name for c in pod.containers}
-            missing = [n for n in changes if n not in have]
+            missing = sorted(n for n in changes if n not in have)
             if missing:
-                outcomes.append(ResizeOutcome(pod.name, False, error=f"pod has no container {missing}",
-                                              error_kind="InputError"))
-                failed = True
-                continue
-            body = {"spec": {"containers": [
-                {"name": n, "resources": _resources_patch(ch)} for n, ch in changes.items()]}}
+                return ResizeOutcome(pod.name, False, error=f"pod has no container {missing}",
+                                     error_kind="InputError")
+            extra = {"dry_run": "All"} if dry else {}
             try:
-                stored = self._call(f"resize pod {pod.namespace}/{pod.name}", self._core.patch_namespaced_pod_resize,
-                                    pod.name, pod.namespace, body, field_manager=FIELD_MANAGER,
-                                    _content_type=_STRATEGIC)
-            except KubeNotFound as exc:
-                outcomes.append(ResizeOutcome(pod.name, False, error=str(exc), error_kind="KubeNotFound"))
-                continue
+                stored = self._call(f"{'dry-run ' if dry else ''}resize pod {pod.namespace}/{pod.name}",
+                                    self._core.patch_namespaced_pod_resize, pod.name, pod.namespace, body,
+                                    field_manager=FIELD_MANAGER, _content_type=_STRATEGIC, **extra)
             except KubeError as exc:
-                outcomes.append(ResizeOutcome(pod.name, False, error=str(exc), error_kind=type(exc).__name__))
-                failed = True
-                continue
-            outcomes.append(ResizeOutcome(pod.name, True, resource_version=(stored.get("metadata") or {})
-                                          .get("resourceVersion")))
+                return ResizeOutcome(pod.name, False, error=str(exc), error_kind=type(exc).__name__)
+            return ResizeOutcome(pod.name, True, resource_version=(stored.get("metadata") or {}).get("resourceVersion"))
+
+        def skipped(pod: Pod, why: str) -> ResizeOutcome:
+            return ResizeOutcome(pod.name, False, error=why, error_kind="Skipped")
+
+        gone: set[str] = set()
+        if dry_run_first:
+            for i, pod in enumerate(pods):
+                trial = one(pod, dry=True)
+                if trial.error_kind == "KubeNotFound":
+                    gone.add(pod.name)
+                elif not trial.ok:
+                    why = f"not tried: the dry run of pod {pod.name} was refused"
+                    return tuple(trial if j == i else skipped(p, why) for j, p in enumerate(pods))
+        outcomes: list[ResizeOutcome] = []
+        failed: str | None = None
+        for pod in pods:
+            if pod.name in gone:
+                outcomes.append(ResizeOutcome(pod.name, False, error="pod vanished before the resize",
+                                              error_kind="KubeNotFound"))
+            elif failed is not None:
+                outcomes.append(skipped(pod, f"not tried after pod {failed} was refused"))
+            else:
+                out = one(pod, dry=False)
+                outcomes.append(out)
+                if not out.ok and out.error_kind != "KubeNotFound":
+                    failed = pod.name
         return tuple(outcomes)
 
     # ---------------------------------------------------------------- events

@@ -426,11 +426,13 @@ def test_pods_listed_and_resized_in_place_one_at_a_time(target: Target, adapter:
         spec = raw.sanitize_for_serialization(core.read_namespaced_pod(p.name, ns))["spec"]
         res = next(c for c in spec["containers"] if c["name"] == "app")["resources"]
         assert (res["requests"]["cpu"], res["limits"]["cpu"]) == ("400m", "800m")
-    # one request per pod, to the resize subresource; the template is left as it was
+    # per pod a dry run, then one real request, to the resize subresource, in order;
+    # the template is left as it was
     patches = patch_requests(target, ns)
     if patches is not None:
-        resizes = [r for r in patches if r["path"].endswith("/resize")]
-        assert sorted(r["path"].split("/")[-2] for r in resizes) == sorted(p.name for p in pods)
+        resizes = [(r["path"].split("/")[-2], r["query"].get("dryRun")) for r in patches if r["path"].endswith("/resize")]
+        names = [p.name for p in pods]
+        assert resizes == [(n, "All") for n in names] + [(n, None) for n in names]
     assert adapter.read_workload(ns, "Deployment", "web").container("app").cpu_request_m == 500
     # the actual values (status.containerStatuses[].resources) follow: at once in the
     # sandbox, when the kubelet has applied the resize on a real cluster
@@ -447,9 +449,16 @@ def test_resize_stops_at_the_first_refusal(target: Target, adapter: KubeAdapter,
     target.create(deployment(ns, replicas=3))
     target.wait_for_pods(ns, "app=web", 3)
     pods = adapter.list_pods(adapter.read_workload(ns, "Deployment", "web"))
+    before = [p.resource_version for p in pods]
     outcomes = adapter.resize_pods(pods, {"app": CpuChange(2000)})  # above the 1-core limit
     assert outcomes[0].ok is False and outcomes[0].error_kind == "KubeInvalid"
+    assert "less than or equal to cpu limit" in (outcomes[0].error or "")
     assert [o.error_kind for o in outcomes[1:]] == ["Skipped", "Skipped"]
+    assert [p.resource_version for p in adapter.list_pods(adapter.read_workload(ns, "Deployment", "web"))] == before
+
+    # without the dry run the real resizes also stop at the first refusal
+    outcomes = adapter.resize_pods(pods, {"app": CpuChange(2000)}, dry_run_first=False)
+    assert [o.error_kind for o in outcomes] == ["KubeInvalid", "Skipped", "Skipped"]
     with pytest.raises(Exception, match="cannot remove a CPU limit"):
         adapter.resize_pods(pods, {"app": CpuChange(100, drop_limit=True)})
 
