@@ -6,8 +6,9 @@
 - Leader election on a coordination Lease (the elector is passed in; see
   ``controller/kube.py``): only the holder runs passes. A standby replica keeps trying
   every ``retry_period_s`` and keeps answering ``/healthz`` and ``/readyz``. While the
-  leader waits for its next pass it renews the Lease every ``retry_period_s``; if a
-  renewal fails it stops acting at once (``may_act`` turns False inside a pass).
+  leader waits for its next pass it renews the Lease every ``retry_period_s``, and during
+  a long pass ``may_act`` (asked before every write) renews it when due; if a renewal
+  fails it stops acting at once (``may_act`` turns False inside a pass).
 - Graceful stop (:meth:`ControllerLoop.stop`, called from the SIGTERM handler): the
   pass in progress is told to stop (it finishes the workload it is patching and
   abandons the rest — never half a workload), the loop returns, and the Lease is
@@ -130,6 +131,8 @@ class ControllerLoop:
         """Leader, not stopping, and the last renewal is younger than the renew deadline."""
         if self._elector is None:
             return True
+        if self._leader and self._clock() - self._renewed_at >= self.retry_period_s:
+            self._campaign()  # a long pass renews as it goes (before each write it asks here)
         fresh = (self._clock() - self._renewed_at) < self.renew_deadline_s
         own = getattr(self._elector, "is_leader", None)  # the elector's own view, on its clock
         return self._leader and fresh and (own is None or bool(own))

@@ -35,6 +35,33 @@ The environment variable RATEFIT_DRY_RUN=true|false sets the default of --dry-ru
 """
 
 
+class JsonLines(logging.Formatter):
+    """One JSON object per log line: time, level, logger, and the message — a message
+    that is itself a JSON object (the pass summary, each decision) is merged in."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        import json
+        from datetime import datetime, timezone
+
+        out: dict[str, Any] = {
+            "time": datetime.fromtimestamp(record.created, tz=timezone.utc).isoformat(timespec="milliseconds"),
+            "level": record.levelname.lower(),
+            "logger": record.name,
+        }
+        msg = record.getMessage()
+        try:
+            doc = json.loads(msg) if msg.startswith("{") else None
+        except ValueError:
+            doc = None
+        if isinstance(doc, dict):
+            out.update(doc)
+        else:
+            out["msg"] = msg
+        if record.exc_info:
+            out["error"] = self.formatException(record.exc_info)
+        return json.dumps(out, sort_keys=False, default=str)
+
+
 def _truthy(text: str | None) -> bool:
     return (text or "").strip().lower() in ("1", "true", "yes", "on")
 
@@ -146,8 +173,9 @@ def _run(args: argparse.Namespace) -> int:
     from ratefit.controller.telemetry import HealthServer, Telemetry
     from ratefit.models.durations import parse_duration
 
-    logging.basicConfig(level=getattr(logging, str(args.log_level).upper(), logging.INFO), stream=sys.stderr,
-                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(JsonLines())
+    logging.basicConfig(level=getattr(logging, str(args.log_level).upper(), logging.INFO), handlers=[handler])
     interval = parse_duration(args.interval, field="--interval")
     if interval <= 0:
         raise InputError("--interval must be longer than 0s")
