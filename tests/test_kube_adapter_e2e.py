@@ -719,3 +719,33 @@ def test_bad_kubeconfig_is_an_input_error(tmp_path: Path) -> None:
     garbage.write_text("clusters: 3\n")
     with pytest.raises(InputError):
         KubeAdapter.from_kubeconfig(str(garbage))
+
+
+def test_a_lost_answer_never_doubles_a_change(target: Target, adapter: KubeAdapter, ns: str,
+                                              raw: k8s.ApiClient) -> None:
+    """The real patch lands but its answer is lost (connection reset after the server
+    applied it): the retry carries the same resourceVersion precondition, so the server
+    refuses it with 409 instead of applying the change a second time."""
+    from urllib3.exceptions import ProtocolError
+
+    target.create(deployment(ns))
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    real = adapter._apps.patch_namespaced_deployment
+    lost = []
+
+    def answer_lost_once(*args, **kwargs):
+        resp = real(*args, **kwargs)
+        if kwargs.get("dry_run") is None and not lost:
+            lost.append(1)
+            resp.release_conn()
+            raise ProtocolError("Connection aborted.", ConnectionResetError(104, "Connection reset by peer"))
+        return resp
+
+    adapter._apps.patch_namespaced_deployment = answer_lost_once  # type: ignore[method-assign]
+    with pytest.raises(KubeConflict):
+        adapter.patch_cpu(wl, {"app": CpuChange(300)})
+    after = read_raw(raw, ns)
+    assert after["metadata"]["generation"] == 2  # applied exactly once
+    assert container(after, "app")["resources"]["requests"]["cpu"] == "300m"
+    # the caller's re-read sees the change is already there: nothing left to do
+    assert adapter.read_workload(ns, "Deployment", "web").container("app").cpu_request_m == 300
