@@ -24,6 +24,7 @@ from fastapi.openapi.utils import get_openapi
 from prometheus_client import CollectorRegistry
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from ratefit.models.api_fastpath import DemandFastPath
 from ratefit.models.api_metrics import ApiMetrics, TelemetryMiddleware
 from ratefit.models.api_routes import (
     FastJSON,
@@ -53,9 +54,11 @@ def create_app(
     *,
     state: ApiState | None = None,
     registry: CollectorRegistry | None = None,
+    fast_path: bool = True,
 ) -> FastAPI:
     """A new sizing API app. ``state`` may be passed in (tests; an already loaded
-    store); otherwise one is made for ``settings.store`` and loaded at startup."""
+    store); otherwise one is made for ``settings.store`` and loaded at startup.
+    ``fast_path=False`` leaves every request to FastAPI (see ``models.api_fastpath``)."""
     api_state = state if state is not None else ApiState(settings.store)
     metrics = ApiMetrics(api_state, registry=registry)
 
@@ -111,6 +114,9 @@ def create_app(
         return app.openapi_schema
 
     app.openapi = openapi  # type: ignore[method-assign]
+    if fast_path:
+        app.add_middleware(DemandFastPath, state=api_state, metrics=metrics, token=app.state.token_bytes)
+    # added last, so outermost: it times and counts the fast path's answers too
     app.add_middleware(TelemetryMiddleware, metrics=metrics, access_logger=settings.access_logger)
     return app
 

@@ -118,3 +118,32 @@ def test_paths_and_query_strings_never_give_a_5xx(
         assert math.isfinite(body["rate"]) and 0 <= body["rate"] <= 1e9
     r2 = client.get(f"/v1/models/{quote(ns, safe='')}/{quote(wl, safe='')}/{quote(ct, safe='')}")
     assert r2.status_code < 500, r2.text
+
+
+@pytest.fixture(scope="module")
+def slow_client(tmp_path_factory: pytest.TempPathFactory) -> Iterator[TestClient]:
+    store = tmp_path_factory.mktemp("fuzz-slow") / "store"
+    write_store(store, len(KEYS), keys=KEYS)
+    with TestClient(create_app(ApiSettings(store=store, max_batch=200), fast_path=False)) as c:
+        yield c
+
+
+number_text = st.one_of(
+    st.floats(min_value=0, max_value=2e9).map(repr),
+    st.from_regex(r"\A[0-9.eE+\-]{1,12}\Z"),
+    query_value,
+)
+
+
+@FUZZ
+@given(key=st.one_of(st.sampled_from(KEYS), path_part.map(lambda p: f"shop/{p}/app")), rate=number_text)
+def test_fast_path_answers_like_the_fastapi_route(
+    client: TestClient, slow_client: TestClient, key: str, rate: str
+) -> None:
+    # same store content, one app with the fast path (models/api_fastpath.py), one without:
+    # status and body must be identical for every query (versions agree: same artifacts)
+    path = f"/v1/models/{quote(key, safe='/')}/demand"
+    a = client.get(path, params={"rate": rate})
+    b = slow_client.get(path, params={"rate": rate})
+    assert a.status_code == b.status_code
+    assert a.content == b.content

@@ -429,3 +429,45 @@ def test_serve_stops_gracefully_on_sigterm_and_never_logs_the_token(store_dir: P
     assert demand["method"] == "GET" and demand["status"] == 200 and demand["duration_ms"] >= 0
     assert demand["client"].startswith("127.0.0.1:")
     assert any(rec["status"] == 401 for rec in access)
+
+
+# -- the fast path (models/api_fastpath.py) and FastAPI's route agree -------------------------
+@pytest.mark.parametrize("rate", ["0", "7", "12.5", "1.", ".25", "5.e2", "1E2", "25e-1", "999999999", "1000000000"])
+def test_fast_path_and_fastapi_route_give_the_same_answer(api: Api, rate: str) -> None:
+    path = f"/v1/models/{LINEAR_KEY}/demand"
+    fast = api.client.get(f"{path}?rate={rate}")  # the plain form: answered by the fast path
+    # an extra query parameter and a lower-case scheme both fall through to FastAPI's route
+    slow = api.client.get(f"{path}?rate={rate}&ignored=1", headers={"Authorization": f"bearer {TOKEN}"})
+    assert fast.status_code == slow.status_code == 200
+    assert fast.content == slow.content
+    assert fast.headers["content-type"] == slow.headers["content-type"] == "application/json"
+
+
+@pytest.mark.parametrize(
+    "query,want",
+    [
+        ("rate=1e400", None),
+        ("rate=1000000001", None),
+        ("rate=1E+2", None),  # '+' is a space in a query string (HTML form encoding): "1E 2"
+        ("rate=-0", 0.0),
+        ("rate=%2B3", 3.0),
+        ("rate=%31", 1.0),
+    ],
+)
+def test_fast_path_leaves_edge_cases_to_fastapi(api: Api, query: str, want: float | None) -> None:
+    # whatever the fast path does not take is answered as documented by the FastAPI route
+    r = api.client.get(f"/v1/models/{LINEAR_KEY}/demand?{query}")
+    if want is None:
+        assert r.status_code == 422 and r.json()["errors"][0]["field"] == "rate (query)"
+    else:
+        assert r.status_code == 200 and r.json()["rate"] == want
+
+
+def test_fast_path_can_be_turned_off(store_dir: Path) -> None:
+    on = create_app(ApiSettings(store=store_dir))
+    off = create_app(ApiSettings(store=store_dir), fast_path=False)
+    with TestClient(on) as a, TestClient(off) as b:
+        for rate in (0.0, 3.5, 1234.5):
+            ra = a.get(f"/v1/models/{LOW_KEY}/demand", params={"rate": rate})
+            rb = b.get(f"/v1/models/{LOW_KEY}/demand", params={"rate": rate})
+            assert ra.content == rb.content

@@ -162,15 +162,22 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--batch-repeats", type=int, default=30)
     ap.add_argument("--log-level", default="info")
     ap.add_argument("--json", metavar="FILE", help="also write the figures as JSON")
+    ap.add_argument("--keep-store", metavar="DIR", help="write the store here once and reuse it on later runs")
     args = ap.parse_args(argv)
 
-    print(f"machine: nproc={os.cpu_count()} cpu={cpu_model()!r} python={platform.python_version()}")
+    print(
+        f"machine: nproc={os.cpu_count()} cpu={cpu_model()!r} python={platform.python_version()} "
+        f"load average at start={os.getloadavg()[0]:.2f} (the cores are shared: figures move with it)"
+    )
     results: dict[str, object] = {"nproc": os.cpu_count(), "cpu": cpu_model(), "models": args.models}
     token = "bench-token"  # invented
     with tempfile.TemporaryDirectory(prefix="ratefit-bench-") as tmp:
-        root = Path(tmp) / "store"
-        print(f"writing {args.models} artifacts …", file=sys.stderr)
-        keys = build_store(root, args.models)
+        root = Path(args.keep_store) if args.keep_store else Path(tmp) / "store"
+        if args.keep_store and len(ModelStore(root).keys()) == args.models:
+            keys = ModelStore(root).keys()
+        else:
+            print(f"writing {args.models} artifacts …", file=sys.stderr)
+            keys = build_store(root, args.models)
         t0 = time.perf_counter()
         with serve_process(root, token=token, workdir=tmp, log_level=args.log_level, ready_timeout=300) as srv:
             print(f"server ready with {args.models} models in {time.perf_counter() - t0:.1f}s (pid {srv.pid})")
@@ -265,6 +272,8 @@ def main(argv: list[str] | None = None) -> int:
             results["rss_mib_after"] = mem1["VmRSS"]
             results["rss_mib_peak"] = mem1["VmHWM"]
 
+    print(f"load average at the end: {os.getloadavg()[0]:.2f}")
+    results["loadavg_end"] = os.getloadavg()[0]
     ok = {
         "single p50 ≤ 1.3× healthz": ratio <= GOALS["single_ratio"],
         "10k batch < 50 ms e2e": batch_res["10000"]["e2e_p50"] < GOALS["batch10k_ms"],
