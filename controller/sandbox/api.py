@@ -219,21 +219,22 @@ class Api:
                     raise E.ApiError(410, "Expired", "The provided continue parameter is too "
                                      "old to display a consistent list result. You can start a "
                                      "new list without the continue parameter.")
-            items = []
-            for o in self.store.list(*r.rtype.key, r.namespace):
+            matched = []
+            for o in self.store.iter_raw(r.rtype.key, r.namespace):
                 md = o["metadata"]
                 if after is not None and (md.get("namespace", ""), md["name"]) <= after:
                     continue
                 if labels(md.get("labels") or {}) and fields(o):
-                    items.append(self._shape(r.rtype, o))
-        meta: dict[str, Any] = {"resourceVersion": rv}
-        if limit > 0 and len(items) > limit:
-            last = items[limit - 1]["metadata"]
-            meta["continue"] = base64.urlsafe_b64encode(json.dumps(
-                {"ns": last.get("namespace", ""), "name": last["name"], "rv": rv}).encode()
-            ).decode()
-            meta["remainingItemCount"] = len(items) - limit
-            items = items[:limit]
+                    matched.append(o)
+            meta: dict[str, Any] = {"resourceVersion": rv}
+            if limit > 0 and len(matched) > limit:
+                last = matched[limit - 1]["metadata"]
+                meta["continue"] = base64.urlsafe_b64encode(json.dumps(
+                    {"ns": last.get("namespace", ""), "name": last["name"], "rv": rv}).encode()
+                ).decode()
+                meta["remainingItemCount"] = len(matched) - limit
+                matched = matched[:limit]
+            items = [self._shape(r.rtype, copy.deepcopy(o)) for o in matched]
         return {"kind": f"{r.rtype.kind}List", "apiVersion": r.rtype.group_version,
                 "metadata": meta, "items": items}
 

@@ -100,6 +100,13 @@ class Store:
                    if namespace is None or ns == namespace]
             return out
 
+    def iter_raw(self, key: Key, namespace: str | None = None) -> list[dict]:
+        """The stored objects themselves (do not mutate), ordered by namespace/name."""
+        with self.lock:
+            items = self._objects.get(key, {})
+            return [o for (ns, _), o in sorted(items.items())
+                    if namespace is None or ns == namespace]
+
     def raw(self, key: Key, namespace: str, name: str) -> dict | None:
         return self._objects.get(key, {}).get((namespace, name))
 
