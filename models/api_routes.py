@@ -67,10 +67,6 @@ class FastJSON(JSONResponse):
 
 
 # -- dependencies --------------------------------------------------------------------------
-async def get_settings(request: Request) -> ApiSettings:
-    return request.app.state.settings  # type: ignore[no-any-return]
-
-
 async def get_state(request: Request) -> ApiState:
     return request.app.state.api_state  # type: ignore[no-any-return]
 
@@ -86,7 +82,9 @@ async def require_token(request: Request) -> None:
         return
     header = request.headers.get("authorization", "")
     scheme, _, value = header.partition(" ")
-    given = value.strip().encode("utf-8", "surrogateescape")
+    # Starlette decodes header bytes as latin-1: encoding back gives the bytes sent; the
+    # surrounding OWS (spaces, tabs) is not part of the value (RFC 9110 §5.6.3)
+    given = value.strip(" \t").encode("latin-1")
     if scheme.lower() != "bearer" or not hmac.compare_digest(given, expected):
         raise HTTPException(
             status_code=401,

@@ -147,3 +147,27 @@ def test_fast_path_answers_like_the_fastapi_route(
     b = slow_client.get(path, params={"rate": rate})
     assert a.status_code == b.status_code
     assert a.content == b.content
+
+
+@pytest.fixture(scope="module")
+def token_client(tmp_path_factory: pytest.TempPathFactory) -> Iterator[TestClient]:
+    store = tmp_path_factory.mktemp("fuzz-token") / "store"
+    write_store(store, 1, keys=KEYS[:1])
+    with TestClient(create_app(ApiSettings(store=store, token="s3cr3t-fuzz"))) as c:
+        yield c
+
+
+@FUZZ
+@given(
+    value=st.one_of(
+        st.binary(max_size=40).filter(lambda b: b"\r" not in b and b"\n" not in b and b"\x00" not in b),
+        st.sampled_from([b"Bearer s3cr3t-fuzz", b"bearer s3cr3t-fuzz", b"Bearer  s3cr3t-fuzz ", b"Bearer s3cr3t-fuz"]),
+    ),
+    path=st.sampled_from(["/readyz", f"/v1/models/{KEYS[0]}/demand?rate=1", "/v1/models", "/metrics"]),
+)
+def test_authorization_headers_give_200_or_401_only(token_client: TestClient, value: bytes, path: str) -> None:
+    r = token_client.get(path, headers={"Authorization": value})
+    scheme, _, rest = value.partition(b" ")
+    valid = scheme.lower() == b"bearer" and rest.strip(b" \t") == b"s3cr3t-fuzz"
+    # RFC 6750 §3.1: an invalid or missing token is answered 401
+    assert r.status_code == (200 if valid else 401), (value, r.status_code)

@@ -38,7 +38,11 @@ def register(sub: argparse._SubParsersAction) -> None:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     p.add_argument("--store", required=True, metavar="DIR", help="model store directory (what `ratefit train` writes)")
-    p.add_argument("--host", default=DEFAULT_HOST, help=f"address to bind (default {DEFAULT_HOST}; loopback only)")
+    p.add_argument(
+        "--host",
+        default=DEFAULT_HOST,
+        help=f"address to bind (default {DEFAULT_HOST}, loopback only; use 0.0.0.0 in a Pod, with --token-file)",
+    )
     p.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"TCP port (default {DEFAULT_PORT})")
     p.add_argument(
         "--token-file",
