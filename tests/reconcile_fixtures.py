@@ -24,6 +24,7 @@ from pathlib import Path
 from typing import Any
 
 import httpx
+import pytest
 
 from api_fixtures import make_artifact, serve_process
 from ratefit.models.store import ModelStore
@@ -203,26 +204,47 @@ class World:
                 if r["method"] == "PATCH" and r["path"] == path and r["query"].get("dryRun") != "All"]
 
 
+#: the curve every reconcile test uses: cpu = 0.05 + 0.004 × rate cores, band 0.02 cores
+LINEAR = {"base": 0.05, "slope": 0.004, "band": 0.02}
+#: the keys the shared sizing API serves (``shop/web/other`` stays unknown on purpose)
+SHARED_KEYS = ("shop/web/app", "shop/web/side", "shop/api/app", "shop/a/app", "shop/b/app", "shop/c/app")
+
+
+@pytest.fixture(scope="session")
+def shared_sizing_api(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
+    """One real ``ratefit serve`` for the whole session over :data:`SHARED_KEYS` with the
+    :data:`LINEAR` curve (saves starting a server per test); stopped at the end."""
+    tmp = tmp_path_factory.mktemp("shared-sizing-api")
+    store = ModelStore(tmp / "store")
+    for key in SHARED_KEYS:
+        store.save(make_artifact(key, **LINEAR))
+    with serve_process(tmp / "store", workdir=tmp) as api:
+        yield api.base_url
+
+
 @contextlib.contextmanager
-def world(tmp: Path, *, objects: Sequence[Mapping[str, Any]], models: Mapping[str, Mapping[str, float]],
-          rates: Mapping[tuple[str, str], Sequence[float]], end: float | None = None) -> Iterator[World]:
-    """Start the sandbox (CRD + ``objects``), a real ``ratefit serve`` with one linear curve
-    per model key (``models[key]`` = make_artifact kwargs), and write the rate history."""
+def world(tmp: Path, *, objects: Sequence[Mapping[str, Any]], rates: Mapping[tuple[str, str], Sequence[float]],
+          models: Mapping[str, Mapping[str, float]] | None = None, api_url: str | None = None,
+          end: float | None = None) -> Iterator[World]:
+    """Start the sandbox (CRD + ``objects``) and write the rate history. The sizing API is
+    ``api_url`` (e.g. the session's :func:`shared_sizing_api`) or, given ``models``, a real
+    ``ratefit serve`` of its own with one linear curve per key (make_artifact kwargs)."""
     from ratefit.controller.sandbox import SandboxServer
 
-    store = ModelStore(tmp / "store")
-    for key, kw in models.items():
-        store.save(make_artifact(key, **kw))
     at = float(int(end if end is not None else time.time() - 120))
     history = write_history(tmp / "history.om", rates, end=at)
     with contextlib.ExitStack() as stack:
+        if api_url is None:
+            store = ModelStore(tmp / "store")
+            for key, kw in (models or {}).items():
+                store.save(make_artifact(key, **kw))
+            api_url = stack.enter_context(serve_process(tmp / "store", workdir=tmp)).base_url
         sb = SandboxServer(host="127.0.0.1", port=0, load=[CRD]).start()
         stack.callback(sb.stop)
         for obj in objects:
             sb.create(dict(obj))
         kc = sb.write_kubeconfig(tmp / "kubeconfig")
-        api = stack.enter_context(serve_process(tmp / "store", workdir=tmp))
-        w = World(sandbox=sb, kubeconfig=kc, history=history, at=at, api_url=api.base_url, tmp=tmp)
+        w = World(sandbox=sb, kubeconfig=kc, history=history, at=at, api_url=api_url, tmp=tmp)
         try:
             yield w
         finally:

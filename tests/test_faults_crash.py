@@ -14,11 +14,11 @@ import subprocess
 import sys
 from pathlib import Path
 
-from reconcile_fixtures import deployment, policy, world
+# shared_sizing_api is a pytest fixture (one real `ratefit serve` per session)
+from reconcile_fixtures import shared_sizing_api, deployment, policy, world
 from ratefit.controller.quantity import parse_cpu
 
 RATEFIT = Path(sys.executable).with_name("ratefit")
-MODELS = {f"shop/{n}/app": {"base": 0.05, "slope": 0.004, "band": 0.02} for n in ("a", "b")}
 RATES = {("shop", "a"): [50.0], ("shop", "b"): [50.0]}
 
 
@@ -43,8 +43,8 @@ def _req(w, name: str) -> int:
     return parse_cpu(w.cpu("shop", name, "app")[0])
 
 
-def test_crash_between_dry_run_and_patch_changes_nothing_then_converges(tmp_path) -> None:
-    with world(tmp_path, objects=_objects(), models=MODELS, rates=RATES) as w:
+def test_crash_between_dry_run_and_patch_changes_nothing_then_converges(tmp_path, shared_sizing_api) -> None:
+    with world(tmp_path, objects=_objects(), api_url=shared_sizing_api, rates=RATES) as w:
         p = run_controller(w, crash_at="after-dry-run:1")
         assert p.returncode == -signal.SIGKILL, p.stderr
         assert (_req(w, "a"), _req(w, "b")) == (100, 100)  # the dry run stored nothing
@@ -55,8 +55,8 @@ def test_crash_between_dry_run_and_patch_changes_nothing_then_converges(tmp_path
         assert len(w.patches("shop", "a")) == 1 and len(w.patches("shop", "b")) == 1
 
 
-def test_crash_between_two_workloads_then_converges_without_a_duplicate(tmp_path) -> None:
-    with world(tmp_path, objects=_objects(), models=MODELS, rates=RATES) as w:
+def test_crash_between_two_workloads_then_converges_without_a_duplicate(tmp_path, shared_sizing_api) -> None:
+    with world(tmp_path, objects=_objects(), api_url=shared_sizing_api, rates=RATES) as w:
         p = run_controller(w, crash_at="after-patch:1")
         assert p.returncode == -signal.SIGKILL, p.stderr
         # one workload fully changed, the other not at all: never half a workload
@@ -72,12 +72,12 @@ def test_crash_between_two_workloads_then_converges_without_a_duplicate(tmp_path
         assert prev == {"app": {"cpu_request": "100m", "cpu_limit": "200m"}}
 
 
-def test_crash_after_a_step_limited_patch_keeps_the_cooldown(tmp_path) -> None:
+def test_crash_after_a_step_limited_patch_keeps_the_cooldown(tmp_path, shared_sizing_api) -> None:
     """The status write is lost with the process, but the change time travelled in the
     same patch (annotation ratefit.dev/last-change): the next run does not take a
     second step inside the cooldown."""
     objects = _objects(stepLimit={"up": 2.0, "down": 0.5}, cooldown="30m")
-    with world(tmp_path, objects=objects, models=MODELS, rates=RATES) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates=RATES) as w:
         p = run_controller(w, crash_at="after-patch:1")
         assert p.returncode == -signal.SIGKILL, p.stderr
         assert _req(w, "a") == 200  # ×2 step toward 315
@@ -91,8 +91,8 @@ def test_crash_after_a_step_limited_patch_keeps_the_cooldown(tmp_path) -> None:
         assert len(w.patches("shop", "a")) == 1
 
 
-def test_crash_after_a_status_write_then_converges(tmp_path) -> None:
-    with world(tmp_path, objects=_objects(), models=MODELS, rates=RATES) as w:
+def test_crash_after_a_status_write_then_converges(tmp_path, shared_sizing_api) -> None:
+    with world(tmp_path, objects=_objects(), api_url=shared_sizing_api, rates=RATES) as w:
         p = run_controller(w, crash_at="after-status:1")
         assert p.returncode == -signal.SIGKILL, p.stderr
         p2 = run_controller(w)

@@ -8,13 +8,13 @@ from __future__ import annotations
 
 import pytest
 
-from reconcile_fixtures import deployment, policy, world
+# shared_sizing_api is a pytest fixture (one real `ratefit serve` per session)
+from reconcile_fixtures import shared_sizing_api, deployment, policy, world
 from ratefit.controller.metrics_source import PrometheusRateSource
 from ratefit.controller.reconcile import PassOutcome
 from ratefit.controller.telemetry import Telemetry
 from ratefit.models.prometheus import PrometheusClient
 
-MODELS = {k: {"base": 0.05, "slope": 0.004, "band": 0.02} for k in ("shop/web/app", "shop/web/side")}
 OBJECTS = [
     deployment("shop", "web", [("app", "100m", "200m"), ("side", "100m", None)]),
     policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"},
@@ -30,7 +30,7 @@ def _assert_untouched(w) -> None:
 
 
 @pytest.mark.parametrize("fault", ["down", "slow", "garbage-html", "garbage-json", "error-503"])
-def test_prometheus_trouble_holds_everything_with_nometrics(tmp_path, fault, canned_server, closed_port_url) -> None:
+def test_prometheus_trouble_holds_everything_with_nometrics(tmp_path, shared_sizing_api, fault, canned_server, closed_port_url) -> None:
     if fault == "down":
         url = closed_port_url
     else:
@@ -43,7 +43,7 @@ def test_prometheus_trouble_holds_everything_with_nometrics(tmp_path, fault, can
             canned_server.set(body='{"status":"success","data":{"resultType":"vector","result":[{"metric":{},"value":"x"}]}}')
         else:
             canned_server.set(status=503, body='{"status":"error","errorType":"timeout","error":"query timed out"}')
-    with world(tmp_path, objects=OBJECTS, models=MODELS, rates=RATES) as w:
+    with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
         tel = Telemetry()
         client = PrometheusClient(url, timeout=0.5)
         try:
@@ -62,7 +62,7 @@ def test_prometheus_trouble_holds_everything_with_nometrics(tmp_path, fault, can
 
 
 @pytest.mark.parametrize("fault", ["down", "error-500", "garbage"])
-def test_sizing_api_trouble_holds_everything_with_nomodel(tmp_path, fault, canned_server, closed_port_url) -> None:
+def test_sizing_api_trouble_holds_everything_with_nomodel(tmp_path, shared_sizing_api, fault, canned_server, closed_port_url) -> None:
     if fault == "down":
         url = closed_port_url
     elif fault == "error-500":
@@ -71,7 +71,7 @@ def test_sizing_api_trouble_holds_everything_with_nomodel(tmp_path, fault, canne
     else:
         url = canned_server.url
         canned_server.set(body='{"items": "not a list"}')
-    with world(tmp_path, objects=OBJECTS, models=MODELS, rates=RATES) as w:
+    with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
         tel = Telemetry()
         rec = w.reconciler(sizing=w.sizing(url, retries=1), telemetry=tel)
         r = rec.run_pass()
@@ -82,8 +82,8 @@ def test_sizing_api_trouble_holds_everything_with_nomodel(tmp_path, fault, canne
                    for k in ("SizingApiUnavailable", "SizingApiRejected", "SizingApiError")) == 1
 
 
-def test_after_the_fault_the_next_pass_converges(tmp_path, closed_port_url) -> None:
-    with world(tmp_path, objects=OBJECTS, models=MODELS, rates=RATES) as w:
+def test_after_the_fault_the_next_pass_converges(tmp_path, shared_sizing_api, closed_port_url) -> None:
+    with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
         rec_down = w.reconciler(sizing=w.sizing(closed_port_url, retries=0))
         assert rec_down.run_pass().patched == ()
         r = w.reconciler().run_pass()  # the API is back

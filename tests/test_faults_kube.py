@@ -15,11 +15,11 @@ import random
 
 import httpx
 
-from reconcile_fixtures import deployment, policy, world
+# shared_sizing_api is a pytest fixture (one real `ratefit serve` per session)
+from reconcile_fixtures import shared_sizing_api, deployment, policy, world
 from ratefit.controller.limits import ExponentialBackoff
 from ratefit.controller.quantity import parse_cpu
 
-MODELS = {"shop/web/app": {"base": 0.05, "slope": 0.004, "band": 0.02}}
 OBJECTS = [
     deployment("shop", "web", [("app", "100m", None)]),
     policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}]),
@@ -28,8 +28,8 @@ RATES = {("shop", "web"): [50.0]}
 PATH = r"/apis/apps/v1/namespaces/shop/deployments/web$"
 
 
-def test_conflict_rereads_recomputes_and_patches_once(tmp_path) -> None:
-    with world(tmp_path, objects=OBJECTS, models=MODELS, rates=RATES) as w:
+def test_conflict_rereads_recomputes_and_patches_once(tmp_path, shared_sizing_api) -> None:
+    with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
         interfered = []
 
         def someone_else_edits(point: str) -> None:
@@ -54,8 +54,8 @@ def test_conflict_rereads_recomputes_and_patches_once(tmp_path) -> None:
         assert prev == {"app": {"cpu_request": "100m", "cpu_limit": None}}
 
 
-def test_429_with_retry_after_is_waited_out_and_patched_once(tmp_path) -> None:
-    with world(tmp_path, objects=OBJECTS, models=MODELS, rates=RATES) as w:
+def test_429_with_retry_after_is_waited_out_and_patched_once(tmp_path, shared_sizing_api) -> None:
+    with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
         waits: list[float] = []
         kube = w.kube(sleep=waits.append)
         w.sandbox.faults.add("PATCH", PATH, status=429, retry_after=1, count=1)
@@ -66,8 +66,8 @@ def test_429_with_retry_after_is_waited_out_and_patched_once(tmp_path) -> None:
         assert len(w.patches("shop", "web")) == 1
 
 
-def test_persistent_5xx_patches_nothing_then_backs_off_then_converges(tmp_path) -> None:
-    with world(tmp_path, objects=OBJECTS, models=MODELS, rates=RATES) as w:
+def test_persistent_5xx_patches_nothing_then_backs_off_then_converges(tmp_path, shared_sizing_api) -> None:
+    with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
         rule = w.sandbox.faults.add("PATCH", PATH, status=503, count=None)
         clock = [1000.0]
         rec = w.reconciler(backoff=ExponentialBackoff(base=30.0, cap=300.0, rng=random.Random(1)),

@@ -17,11 +17,11 @@ import httpx
 from prometheus_client.parser import text_string_to_metric_families
 
 from api_fixtures import free_port
-from reconcile_fixtures import deployment, policy, world
+# shared_sizing_api is a pytest fixture (one real `ratefit serve` per session)
+from reconcile_fixtures import shared_sizing_api, deployment, policy, world
 from ratefit.controller.quantity import parse_cpu
 
 RATEFIT = Path(sys.executable).with_name("ratefit")
-MODELS = {f"shop/{n}/app": {"base": 0.05, "slope": 0.004, "band": 0.02} for n in ("a", "b")}
 RATES = {("shop", "a"): [50.0], ("shop", "b"): [50.0]}
 LEASE = "/apis/coordination.k8s.io/v1/namespaces/default/leases/ratefit-controller"
 
@@ -71,8 +71,8 @@ def _wait(cond, timeout: float, what: str) -> None:
     raise AssertionError(f"timed out waiting for {what}")
 
 
-def test_two_controllers_one_holder_one_set_of_changes(tmp_path) -> None:
-    with world(tmp_path, objects=_objects(), models=MODELS, rates=RATES) as w:
+def test_two_controllers_one_holder_one_set_of_changes(tmp_path, shared_sizing_api) -> None:
+    with world(tmp_path, objects=_objects(), api_url=shared_sizing_api, rates=RATES) as w:
         ports = (free_port(), free_port())
         procs = [start_controller(w, "ctl-one", ports[0]), start_controller(w, "ctl-two", ports[1])]
         try:
@@ -96,8 +96,8 @@ def test_two_controllers_one_holder_one_set_of_changes(tmp_path) -> None:
         assert not w.get(LEASE)["spec"].get("holderIdentity")  # released on SIGTERM
 
 
-def test_sigterm_mid_pass_exits_cleanly_and_releases_the_lease(tmp_path) -> None:
-    with world(tmp_path, objects=_objects(), models=MODELS, rates=RATES) as w:
+def test_sigterm_mid_pass_exits_cleanly_and_releases_the_lease(tmp_path, shared_sizing_api) -> None:
+    with world(tmp_path, objects=_objects(), api_url=shared_sizing_api, rates=RATES) as w:
         # slow down the first PATCH of workload a (its server-side dry run) so SIGTERM lands mid-pass
         w.sandbox.faults.add("PATCH", r"/deployments/a$", latency=3.0, count=1)
         port = free_port()

@@ -12,17 +12,17 @@ from pathlib import Path
 
 import httpx
 
-from reconcile_fixtures import deployment, policy, world
+# shared_sizing_api is a pytest fixture (one real `ratefit serve` per session)
+from reconcile_fixtures import shared_sizing_api, deployment, policy, world
 from ratefit.controller.quantity import parse_cpu
 
 RATEFIT = Path(sys.executable).with_name("ratefit")
-MODELS = {"shop/web/app": {"base": 0.05, "slope": 0.004, "band": 0.02}}
 
 
-def test_a_spec_change_wakes_the_loop_and_logs_are_json(tmp_path) -> None:
+def test_a_spec_change_wakes_the_loop_and_logs_are_json(tmp_path, shared_sizing_api) -> None:
     objects = [deployment("shop", "web", [("app", "1000m", None)]),
                policy("shop", "web", workload="web", mode="dry-run", containers=[{"name": "app", "model": "shop/web/app"}])]
-    with world(tmp_path, objects=objects, models=MODELS, rates={("shop", "web"): [50.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         log = open(tmp_path / "run.log", "w")
         proc = subprocess.Popen([str(RATEFIT), "run", "--kubeconfig", str(w.kubeconfig), "--replay", str(w.history),
                                  "--rate-at", str(w.at), "--sizing-api", w.api_url, "--interval", "300s",

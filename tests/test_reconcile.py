@@ -16,7 +16,8 @@ import math
 
 import pytest
 
-from reconcile_fixtures import ceil5, deployment, hpa, policy, world
+# shared_sizing_api is a pytest fixture (one real `ratefit serve` per session)
+from reconcile_fixtures import shared_sizing_api, ceil5, deployment, hpa, policy, world
 from ratefit.controller.limits import Budget, TokenBucket
 from ratefit.controller.quantity import parse_cpu
 from ratefit.controller.reconcile import PassOutcome
@@ -36,16 +37,13 @@ def _m(q: str | None) -> int | None:
     return None if q is None else parse_cpu(q)
 
 
-def _models(*keys: str) -> dict[str, dict[str, float]]:
-    return {k: {"base": BASE, "slope": SLOPE, "band": BAND} for k in keys}
 
-
-def test_apply_patches_the_changed_container_and_a_second_pass_does_nothing(tmp_path) -> None:
+def test_apply_patches_the_changed_container_and_a_second_pass_does_nothing(tmp_path, shared_sizing_api) -> None:
     objects = [
         deployment("shop", "web", [("app", "100m", "200m"), ("sidecar", "50m", None)]),
         policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}]),
     ]
-    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [40.0, 50.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [40.0, 50.0]}) as w:
         rec = w.reconciler()
         r1 = rec.run_pass()
         assert r1.outcome is PassOutcome.DONE, r1.errors
@@ -86,12 +84,12 @@ def test_apply_patches_the_changed_container_and_a_second_pass_does_nothing(tmp_
         assert w.resource_versions() == after  # level-based: an unchanged world is left alone
 
 
-def test_dry_run_proposes_writes_status_once_and_never_patches(tmp_path) -> None:
+def test_dry_run_proposes_writes_status_once_and_never_patches(tmp_path, shared_sizing_api) -> None:
     objects = [
         deployment("shop", "api", [("app", "1000m", "2000m")]),
         policy("shop", "api", workload="api", mode="dry-run", containers=[{"name": "app", "model": "shop/api/app"}]),
     ]
-    with world(tmp_path, objects=objects, models=_models("shop/api/app"), rates={("shop", "api"): [25.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "api"): [25.0]}) as w:
         rec = w.reconciler()
         r1 = rec.run_pass()
         assert r1.patched == () and r1.status_writes == 1 and r1.events == 1
@@ -104,30 +102,30 @@ def test_dry_run_proposes_writes_status_once_and_never_patches(tmp_path) -> None
         assert (r2.status_writes, r2.events) == (0, 0) and w.resource_versions() == before
 
 
-def test_forced_dry_run_overrides_apply_mode(tmp_path) -> None:
+def test_forced_dry_run_overrides_apply_mode(tmp_path, shared_sizing_api) -> None:
     objects = [deployment("shop", "web", [("app", "100m", None)]),
                policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
-    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         r = w.reconciler(dry_run=True).run_pass()
         assert r.patched == () and r.rows[0].verdict == "proposed"
         assert w.cpu("shop", "web", "app") == ("100m", None)
 
 
-def test_plan_mode_writes_nothing_at_all(tmp_path) -> None:
+def test_plan_mode_writes_nothing_at_all(tmp_path, shared_sizing_api) -> None:
     objects = [deployment("shop", "web", [("app", "100m", None)]),
                policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
-    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         before = w.resource_versions()
         r = w.reconciler(dry_run=True, write=False).run_pass()
         assert r.rows[0].verdict == "proposed" and r.rows[0].proposed_m == target_m(50.0)
         assert w.resource_versions() == before
 
 
-def test_invalid_policy_gets_a_condition_naming_the_field_and_is_never_acted_on(tmp_path) -> None:
+def test_invalid_policy_gets_a_condition_naming_the_field_and_is_never_acted_on(tmp_path, shared_sizing_api) -> None:
     bad = policy("shop", "web", workload="web",
                  containers=[{"name": "app", "model": "shop/web/app", "floor": "300m", "ceiling": "200m"}])
     objects = [deployment("shop", "web", [("app", "100m", None)]), bad]
-    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         rec = w.reconciler()
         r = rec.run_pass()
         assert r.invalid == 1 and r.patched == ()
@@ -141,12 +139,12 @@ def test_invalid_policy_gets_a_condition_naming_the_field_and_is_never_acted_on(
         assert w.resource_versions() == before
 
 
-def test_the_budget_is_shared_by_the_whole_pass(tmp_path) -> None:
+def test_the_budget_is_shared_by_the_whole_pass(tmp_path, shared_sizing_api) -> None:
     names = ("a", "b", "c")
     objects = [o for n in names for o in (
         deployment("shop", n, [("app", "100m", None)]),
         policy("shop", n, workload=n, containers=[{"name": "app", "model": f"shop/{n}/app"}]))]
-    with world(tmp_path, objects=objects, models=_models(*(f"shop/{n}/app" for n in names)),
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api,
                rates={("shop", n): [50.0] for n in names}) as w:
         budget = Budget(bucket=TokenBucket.per_minute(1, now=0.0))
         rec = w.reconciler(budget=budget, monotonic=lambda: 0.0)
@@ -158,38 +156,38 @@ def test_the_budget_is_shared_by_the_whole_pass(tmp_path) -> None:
         assert [f"shop/Deployment/{n}" for n in changed] == list(r.patched)
 
 
-def test_cpu_utilisation_hpa_holds_the_workload(tmp_path) -> None:
+def test_cpu_utilisation_hpa_holds_the_workload(tmp_path, shared_sizing_api) -> None:
     objects = [deployment("shop", "web", [("app", "100m", None)]), hpa("shop", "web", target="web"),
                policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
-    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         r = w.reconciler().run_pass()
         assert r.patched == () and r.rows[0].why == ("HorizontalConflict",)
         assert w.cpu("shop", "web", "app") == ("100m", None)
 
 
-def test_unknown_model_is_held_nomodel(tmp_path) -> None:
+def test_unknown_model_is_held_nomodel(tmp_path, shared_sizing_api) -> None:
     objects = [deployment("shop", "web", [("app", "100m", None)]),
                policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/other"}])]
-    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         r = w.reconciler().run_pass()
         assert r.patched == () and r.rows[0].why == ("NoModel",)
 
 
-def test_missing_workload_gets_a_condition(tmp_path) -> None:
+def test_missing_workload_gets_a_condition(tmp_path, shared_sizing_api) -> None:
     objects = [policy("shop", "ghost", workload="ghost", containers=[{"name": "app", "model": "shop/web/app"}])]
-    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         r = w.reconciler().run_pass()
         cond = {c["type"]: c for c in w.sizing_policy("shop", "ghost")["status"]["conditions"]}["Ready"]
         assert cond["status"] == "False" and cond["reason"] == "WorkloadNotFound"
         assert r.rows[0].why == ("WorkloadNotFound",)
 
 
-def test_telemetry_counts_decisions_and_patches(tmp_path) -> None:
+def test_telemetry_counts_decisions_and_patches(tmp_path, shared_sizing_api) -> None:
     from ratefit.controller.telemetry import Telemetry
 
     objects = [deployment("shop", "web", [("app", "100m", None)]),
                policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
-    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         tel = Telemetry()
         rec = w.reconciler(telemetry=tel)
         rec.run_pass()
@@ -201,11 +199,11 @@ def test_telemetry_counts_decisions_and_patches(tmp_path) -> None:
         assert tel.value("ratefit_controller_pass_duration_seconds_count") == 2
 
 
-def test_in_place_resizes_pods_keeps_the_template_and_reapplies_to_new_pods(tmp_path) -> None:
+def test_in_place_resizes_pods_keeps_the_template_and_reapplies_to_new_pods(tmp_path, shared_sizing_api) -> None:
     objects = [deployment("shop", "web", [("app", "100m", "200m")], replicas=2),
                policy("shop", "web", workload="web", method="in-place",
                       containers=[{"name": "app", "model": "shop/web/app"}])]
-    with world(tmp_path, objects=objects, models=_models("shop/web/app"), rates={("shop", "web"): [50.0]}) as w:
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         def pod_cpu() -> dict[str, tuple[int, int]]:
             out = {}
             for p in w.get("/api/v1/namespaces/shop/pods?labelSelector=app%3Dweb")["items"]:

@@ -7,11 +7,11 @@ import subprocess
 import sys
 from pathlib import Path
 
-from reconcile_fixtures import deployment, policy, world
+# shared_sizing_api is a pytest fixture (one real `ratefit serve` per session)
+from reconcile_fixtures import shared_sizing_api, deployment, policy, world
 from ratefit.controller.quantity import parse_cpu
 
 RATEFIT = Path(sys.executable).with_name("ratefit")
-MODELS = {"shop/web/app": {"base": 0.05, "slope": 0.004, "band": 0.02}}
 OBJECTS = [deployment("shop", "web", [("app", "100m", "200m"), ("side", "50m", None)]),
            policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
 RATES = {("shop", "web"): [50.0]}
@@ -21,8 +21,8 @@ def _cli(*args: str) -> subprocess.CompletedProcess[str]:
     return subprocess.run([str(RATEFIT), *args], capture_output=True, text=True, timeout=120)
 
 
-def test_plan_table_and_markdown_change_nothing(tmp_path) -> None:
-    with world(tmp_path, objects=OBJECTS, models=MODELS, rates=RATES) as w:
+def test_plan_table_and_markdown_change_nothing(tmp_path, shared_sizing_api) -> None:
+    with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
         before = w.resource_versions()
         common = ["--kubeconfig", str(w.kubeconfig), "--replay", str(w.history), "--rate-at", str(w.at),
                   "--sizing-api", w.api_url]
@@ -36,8 +36,8 @@ def test_plan_table_and_markdown_change_nothing(tmp_path) -> None:
         assert w.resource_versions() == before
 
 
-def test_revert_restores_the_previous_requests(tmp_path) -> None:
-    with world(tmp_path, objects=OBJECTS, models=MODELS, rates=RATES) as w:
+def test_revert_restores_the_previous_requests(tmp_path, shared_sizing_api) -> None:
+    with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
         assert w.reconciler().run_pass().patched == ("shop/Deployment/web",)
         assert parse_cpu(w.cpu("shop", "web", "app")[0]) == 315
         r = _cli("revert", "shop/deploy/web", "--kubeconfig", str(w.kubeconfig))
@@ -50,7 +50,7 @@ def test_revert_restores_the_previous_requests(tmp_path) -> None:
         assert again.returncode == 0 and "nothing to revert" in again.stdout
 
 
-def test_bad_input_is_an_error_naming_the_flag(tmp_path) -> None:
+def test_bad_input_is_an_error_naming_the_flag(tmp_path, shared_sizing_api) -> None:
     r = _cli("revert", "shop/web")
     assert r.returncode == 2 and "NAMESPACE/KIND/NAME" in r.stderr
     r = _cli("plan", "--sizing-api", "http://127.0.0.1:1")
