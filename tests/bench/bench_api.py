@@ -282,7 +282,15 @@ def main(argv: list[str] | None = None) -> int:
                     )
             results["batch"] = batch_res
 
-            # 3. memory
+            # 3. a reload of the whole store (every file read and verified again)
+            with httpx.Client(base_url=srv.base_url, headers=srv.headers, timeout=300) as c:
+                t4 = time.perf_counter()
+                rep = c.post("/v1/reload").json()
+                reload_s = time.perf_counter() - t4
+            print(f"\nPOST /v1/reload of {rep['models']} models (unchanged): {reload_s:.2f} s")
+            results["reload_seconds"] = reload_s
+
+            # 4. memory
             mem1 = proc_status(srv.pid)
             print(
                 f"\nRSS with {args.models} models: {mem0['VmRSS']:.0f} MiB after load, "
