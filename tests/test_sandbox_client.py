@@ -237,15 +237,14 @@ def test_json_patch_ops_and_failed_test(apps, sandbox) -> None:
     apps.patch_namespaced_deployment("web", NS, [
         {"op": "test", "path": path, "value": "500m"},
         {"op": "replace", "path": path, "value": "600m"},
-        {"op": "add", "path": "/metadata/labels/owner", "value": "team~a"},
+        {"op": "add", "path": "/metadata/labels/example.test~1owner", "value": "team-a"},
         {"op": "remove", "path": "/spec/template/spec/containers/0/env/1"},
-        {"op": "copy", "from": "/metadata/labels/owner", "path": "/metadata/annotations"},
-    ][:4])
+    ])
     obj = sandbox.store.get("apps", "deployments", NS, "web")
     c = obj["spec"]["template"]["spec"]["containers"][0]
-    # RFC 6902 sections 4.1-4.6
+    # RFC 6902 sections 4.1-4.6; "~1" is "/" in a JSON pointer (RFC 6901 section 4)
     assert c["resources"]["requests"]["cpu"] == "600m"
-    assert obj["metadata"]["labels"]["owner"] == "team~a"
+    assert obj["metadata"]["labels"]["example.test/owner"] == "team-a"
     assert c["env"] == [{"name": "MODE", "value": "fast"}]
     rv = obj["metadata"]["resourceVersion"]
     with pytest.raises(ApiException) as err:
@@ -438,3 +437,25 @@ def test_list_pages_with_limit_and_continue(core) -> None:
     assert not rest.metadata._continue
     names = [n.metadata.name for n in first.items + rest.items]
     assert len(names) == 9 and len(set(names)) == 9
+
+
+def test_label_and_annotation_keys_are_validated(apps) -> None:
+    bad = deployment()
+    bad["metadata"]["labels"]["team"] = "a b"
+    bad["metadata"]["annotations"] = {"ratefit.dev/previous-requests": "{}", "bad key!": "x"}
+    with pytest.raises(ApiException) as err:
+        apps.create_namespaced_deployment(NS, bad)
+    # apimachinery ValidateObjectMeta: label values and qualified-name keys
+    fields = [c["field"] for c in status_of(err.value)["details"]["causes"]]
+    assert fields == ["metadata.labels", "metadata.annotations"]
+
+
+def test_custom_object_put_needs_a_resource_version(widgets) -> None:
+    g, v, p = "example.test", "v1", "widgets"
+    obj = widgets.create_namespaced_custom_object(g, v, NS, p, widget())
+    del obj["metadata"]["resourceVersion"]
+    with pytest.raises(ApiException) as err:
+        widgets.replace_namespaced_custom_object(g, v, NS, p, "w1", obj)
+    # custom resources allow no unconditional update (CRD docs; apiextensions strategy)
+    assert err.value.status == 422
+    assert "metadata.resourceVersion" in status_of(err.value)["message"]

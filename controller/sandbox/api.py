@@ -297,6 +297,7 @@ class Api:
         name = md.get("name") or ""
         errs: list[E.FieldError] = []
         errs += validation.name_errors(name, label=key == NAMESPACES)
+        errs += validation.metadata_errors(md)
         if rt.custom:
             errs += self._admit_custom(rt, obj, req)
         elif key == PODS:
@@ -423,6 +424,12 @@ class Api:
         body = self._load_body(req)
         if not isinstance(body, dict):
             raise E.bad_request("the request body must be a JSON object")
+        md = body.get("metadata") if isinstance(body.get("metadata"), dict) else {}
+        if r.rtype.custom and not md.get("resourceVersion"):
+            # custom resources allow no unconditional update (apiextensions strategy
+            # AllowUnconditionalUpdate() == false)
+            raise E.invalid(r.rtype.kind, r.rtype.group, r.name or "", [E.FieldError(
+                "metadata.resourceVersion", E.INVALID, 0, "must be specified for an update")])
         with self.store.lock:
             old = self._lookup(r)
             return self._write(r, req, old, body)

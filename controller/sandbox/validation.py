@@ -23,6 +23,7 @@ from ratefit.controller.sandbox.errors import (
     FORBIDDEN,
     INVALID,
     REQUIRED,
+    TOO_LONG,
     ApiError,
     FieldError,
 )
@@ -61,6 +62,63 @@ def name_errors(name: Any, *, label: bool, path: str = "metadata.name") -> list[
         errs.append(FieldError(path, INVALID, name, "must be no more than 253 characters"))
     if not _SUBDOMAIN_RE.match(name):
         errs.append(FieldError(path, INVALID, name, SUBDOMAIN_MSG))
+    return errs
+
+
+_LABEL_VALUE_RE = re.compile(r"^(([A-Za-z0-9][-A-Za-z0-9_.]*)?[A-Za-z0-9])?$")
+_QNAME_RE = re.compile(r"^([A-Za-z0-9][-A-Za-z0-9_.]*)?[A-Za-z0-9]$")
+LABEL_VALUE_MSG = ("a valid label must be an empty string or consist of alphanumeric characters, "
+                   "'-', '_' or '.', and must start and end with an alphanumeric character (e.g. "
+                   "'MyValue',  or 'my_value',  or '12345', regex used for validation is "
+                   "'(([A-Za-z0-9][-A-Za-z0-9_.]*)?[A-Za-z0-9])?')")
+QNAME_MSG = ("name part must consist of alphanumeric characters, '-', '_' or '.', and must start "
+             "and end with an alphanumeric character (e.g. 'MyName',  or 'my.name',  or "
+             "'123-abc', regex used for validation is "
+             "'([A-Za-z0-9][-A-Za-z0-9_.]*)?[A-Za-z0-9]')")
+#: apimachinery TotalAnnotationSizeLimitB
+ANNOTATIONS_MAX = 256 * 1024
+
+
+def _qualified_name_errors(key: Any, path: str) -> list[FieldError]:
+    """`validation.IsQualifiedName`: [prefix/]name, prefix a DNS subdomain, name ≤ 63."""
+    if not isinstance(key, str) or not key:
+        return [FieldError(path, INVALID, key, "name part must be non-empty")]
+    prefix, _, name = key.rpartition("/")
+    errs = []
+    if prefix and (len(prefix) > 253 or not _SUBDOMAIN_RE.match(prefix)):
+        errs.append(FieldError(path, INVALID, key, "prefix part " + SUBDOMAIN_MSG))
+    if len(name) > 63:
+        errs.append(FieldError(path, INVALID, key, "name part must be no more than 63 "
+                               "characters"))
+    if not _QNAME_RE.match(name):
+        errs.append(FieldError(path, INVALID, key, QNAME_MSG))
+    return errs
+
+
+def metadata_errors(md: dict) -> list[FieldError]:
+    """Label keys/values and annotation keys (apimachinery ValidateObjectMeta)."""
+    errs: list[FieldError] = []
+    labels = md.get("labels") or {}
+    if not isinstance(labels, dict):
+        return [FieldError("metadata.labels", INVALID, labels, "must be a map")]
+    for k, v in labels.items():
+        errs += _qualified_name_errors(k, "metadata.labels")
+        if not isinstance(v, str) or len(v) > 63 or not _LABEL_VALUE_RE.match(v):
+            errs.append(FieldError("metadata.labels", INVALID, v, LABEL_VALUE_MSG))
+    annotations = md.get("annotations") or {}
+    if not isinstance(annotations, dict):
+        return errs + [FieldError("metadata.annotations", INVALID, annotations, "must be a map")]
+    size = 0
+    for k, v in annotations.items():
+        errs += _qualified_name_errors(k, "metadata.annotations")
+        if not isinstance(v, str):
+            errs.append(FieldError(f"metadata.annotations[{k}]", INVALID, v,
+                                   "must be a string"))
+            continue
+        size += len(k) + len(v)
+    if size > ANNOTATIONS_MAX:
+        errs.append(FieldError("metadata.annotations", TOO_LONG,
+                               detail=f"may not be more than {ANNOTATIONS_MAX} bytes"))
     return errs
 
 
