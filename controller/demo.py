@@ -15,7 +15,10 @@ INVENTED DATA: Kestrel Post is a fictional parcel company (``models/scenario``).
 5. starts the sandbox API server loaded with the SizingPolicy CRD, the scenario's
    workloads and HPA, and the example policies (``manifests/``);
 6. runs ONE reconcile pass in forced dry-run (status and Events are written to the
-   sandbox, nothing is patched) and returns the review (also written as Markdown);
+   sandbox, nothing is patched), then a second, read-only dry-run pass at a simulated
+   time past the longest ``settle`` (as if the rates stayed the same) so the review also
+   shows where the decreases now "Settling" will go; both reviews are returned and
+   written as Markdown;
 7. stops everything it started — on success, on error and on Ctrl-C. With
    ``keep=True`` it first waits (Ctrl-C) so the sandbox can be explored with the
    kubeconfig it wrote.
@@ -51,7 +54,10 @@ def _say(msg: str) -> None:
 
 @dataclass(frozen=True)
 class DemoResult:
-    rows: tuple[Any, ...]  # review.ReviewRow
+    rows: tuple[Any, ...]  # review.ReviewRow of the pass now
+    #: the same world one settle period later (as if the rates stayed the same), read only
+    rows_after_settle: tuple[Any, ...]
+    simulated_at: Any  # datetime of the second pass
     out: Path
     review_markdown: Path
     rate_source: str  # "prometheus" | "replay"
@@ -265,9 +271,32 @@ def run_demo(
             raise DemoError(f"the reconcile pass failed: {'; '.join(result.errors)}")
         for err in result.errors:
             progress(f"warning: {err}")
+        # a second, read-only dry-run pass with the clock past the longest settle period, so a
+        # reviewer sees what the decreases now "Settling" will come to if the rates stay as they are
+        from datetime import datetime, timedelta, timezone
+
+        from ratefit.controller.policy import PolicyInvalid, parse_policy
+        from ratefit.controller.reconcile import policy_object_dict
+
+        settles = []
+        for obj in kube.list_policies().items:
+            try:
+                settles.append(parse_policy(policy_object_dict(obj)).settle_s)
+            except PolicyInvalid:
+                pass
+        simulated = datetime.now(timezone.utc) + timedelta(seconds=max(settles, default=0.0) + 60)
+        sim_label = simulated.strftime("%Y-%m-%d %H:%M:%SZ")
+        progress(f"pass 2 at simulated time {sim_label} (after the longest settle, as if the rates stayed the same; "
+                 "read only) …")
+        rec2 = Reconciler(kube=kube, rates=rates, sizing=sizing, wall_clock=lambda: simulated,
+                          config=ReconcileConfig(dry_run=True, write=False, identity="ratefit-demo"))
+        result2 = rec2.run_pass()
         md = out / "review.md"
         md.write_text(
             to_markdown(result.rows, title="ratefit review — Kestrel Post (INVENTED demo scenario)")
+            + f"\n## Pass 2 at simulated time {sim_label}\n\nThe same world after the longest settle period, "
+            "as if the rates stayed the same (nothing written):\n\n"
+            + to_markdown(result2.rows)
             + f"\nRates from: {'the real Prometheus (backfilled history)' if source == 'prometheus' else 'a replay of the history file'}"
             f", evaluated at the history's end ({time.strftime('%Y-%m-%d %H:%M:%SZ', time.gmtime(info.end))}).\n"
             "Training reports: reports/*.md\n",
@@ -281,7 +310,7 @@ def run_demo(
             except KeyboardInterrupt:
                 pass
         progress("stopping everything the demo started …")
-    return DemoResult(rows=result.rows, out=out, review_markdown=md, rate_source=source, kubeconfig=kubeconfig,
+    return DemoResult(rows=result.rows, rows_after_settle=result2.rows, simulated_at=simulated, out=out, review_markdown=md, rate_source=source, kubeconfig=kubeconfig,
                       seconds=time.monotonic() - t_start, history_end=info.end)
 
 

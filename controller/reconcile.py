@@ -95,6 +95,7 @@ __all__ = [
     "ReconcileConfig",
     "Reconciler",
     "crash_hook_from_env",
+    "policy_object_dict",
 ]
 
 log = logging.getLogger("ratefit.controller.reconcile")
@@ -198,7 +199,8 @@ def crash_hook_from_env(value: str | None) -> Callable[[str], None] | None:
 # ---------------------------------------------------------------- helpers on plain values
 
 
-def _policy_object_dict(obj: Any) -> dict[str, Any]:
+def policy_object_dict(obj: Any) -> dict[str, Any]:
+    """A stored SizingPolicy (``workload.PolicyObject``) as the object ``parse_policy`` reads."""
     return {
         "apiVersion": f"{GROUP}/{VERSION}",
         "kind": KIND,
@@ -333,7 +335,7 @@ class Reconciler:
         entries = [_Entry(obj=o) for o in sorted(objs, key=lambda o: (o.namespace, o.name))]
         for e in entries:
             try:
-                e.policy = parse_policy(_policy_object_dict(e.obj))
+                e.policy = parse_policy(policy_object_dict(e.obj))
             except PolicyInvalid as exc:
                 e.invalid = exc
         valid = [e for e in entries if e.policy is not None]

@@ -178,7 +178,7 @@ def summary(rows: Sequence[ReviewRow]) -> str:
         if r.verdict in ("changed", "proposed") and r.proposed_m is not None and r.current_m is not None:
             delta += r.proposed_m - r.current_m
     parts = ", ".join(f"{v}: {n}" for v, n in sorted(counts.items())) or "no containers"
-    return f"{len(rows)} containers ({parts}); net request change per pod {delta:+d}m"
+    return f"{len(rows)} containers ({parts}); net change of requests {delta:+d}m (one pod of each workload)"
 
 
 def render(rows: Sequence[ReviewRow], output: str = "table") -> str:

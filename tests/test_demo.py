@@ -31,10 +31,14 @@ def test_demo_prints_the_review_and_stops_everything(tmp_path, source) -> None:
     proc = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     out, err = proc.communicate(timeout=300)
     assert proc.returncode == 0, err[-3000:]
-    rows = json.loads(out)
+    doc = json.loads(out)
+    rows, later = doc["now"], doc["after_settle"]["rows"]
     want = {(s.namespace, s.workload, c.name) for s in SCENARIO for c in s.containers}
-    assert {(r["namespace"], r["workload"].split("/", 1)[1], r["container"]) for r in rows} == want
-    assert all(r["verdict"] in ("held", "proposed") for r in rows)  # a dry-run pass: nothing "changed"
+    for rs in (rows, later):
+        assert {(r["namespace"], r["workload"].split("/", 1)[1], r["container"]) for r in rs} == want
+        assert all(r["verdict"] in ("held", "proposed") for r in rs)  # dry-run passes: nothing "changed"
+    # past the settle period nothing is still Settling (the rates are the same)
+    assert not any(r["why"] == "Settling" for r in later)
     assert f"rates from {source}" in err
     assert ("backfilled with promtool" in err) == (source == "prometheus")
     outdir = tmp_path / "out"

@@ -48,5 +48,5 @@ def test_table_and_markdown_have_one_line_per_container() -> None:
     assert md_rows[0] == "| " + " | ".join(COLUMNS) + " |"
     assert len(md_rows) == 2 + 2  # header, separator, 2 rows
     assert all(r.count("|") == len(COLUMNS) + 1 for r in md_rows)
-    assert "net request change per pod -500m" in md
+    assert "net change of requests -500m" in md
     assert render(_rows(), "json").startswith("[")

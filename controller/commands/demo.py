@@ -14,8 +14,9 @@ the real Prometheus (if `prometheus` and `promtool` are installed; else replay t
 history file — the output says which), train a demand model for every container,
 start the sizing API (`ratefit serve`) and the sandbox API server (a local stand-in
 for Kubernetes) loaded with the scenario's workloads, the SizingPolicy CRD and the
-example policies, run one reconcile pass in dry-run, print the review, and stop
-everything it started (also on Ctrl-C or an error).
+example policies, run one reconcile pass in dry-run, then a read-only pass at a
+simulated time past the longest settle period (as if the rates stayed the same),
+print both reviews, and stop everything it started (also on Ctrl-C or an error).
 
 Writes into --out: review.md, reports/ (one training report + plot per model),
 samples/ (the invented CSVs), kubeconfig, run/ (history, model store, logs).
@@ -40,7 +41,21 @@ def _run(args: argparse.Namespace) -> int:
     from ratefit.controller.review import render
 
     res = run_demo(out=Path(args.out), keep=args.keep, hours=args.hours, use_prometheus=False if args.replay else None)
-    sys.stdout.write(render(res.rows, args.output))
+    later = res.simulated_at.strftime("%Y-%m-%d %H:%M:%SZ")
+    if args.output == "json":
+        import json
+
+        sys.stdout.write(json.dumps({
+            "now": [r.as_dict() for r in res.rows],
+            "after_settle": {"simulated_at": later, "rows": [r.as_dict() for r in res.rows_after_settle]},
+        }, indent=2) + "\n")
+    else:
+        head = "## " if args.output == "markdown" else ""
+        sys.stdout.write(f"{head}Pass 1 — now (dry-run; status and Events written to the sandbox)\n\n")
+        sys.stdout.write(render(res.rows, args.output))
+        sys.stdout.write(f"\n{head}Pass 2 — simulated time {later}: after the longest settle, "
+                         "as if the rates stayed the same (read only)\n\n")
+        sys.stdout.write(render(res.rows_after_settle, args.output))
     print(f"ratefit demo: done in {res.seconds:.0f}s (rates from {res.rate_source}); review in {res.review_markdown}, "
           f"training reports in {res.out / 'reports'}; everything it started is stopped", file=sys.stderr)
     return 0
