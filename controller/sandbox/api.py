@@ -436,10 +436,11 @@ class Api:
 
     def patch(self, r: Route, req: Request) -> dict:
         ctype = req.headers.get("content-type", "").split(";")[0].strip().lower()
-        accepted = [JSON_PATCH, MERGE_PATCH, APPLY_PATCH]
+        # server-side apply (application/apply-patch+yaml) is not implemented: 415
+        accepted = [JSON_PATCH, MERGE_PATCH]
         if not r.rtype.custom:
-            accepted.insert(2, STRATEGIC_PATCH)
-        if ctype not in accepted or ctype == APPLY_PATCH:
+            accepted.append(STRATEGIC_PATCH)
+        if ctype not in accepted:
             raise E.unsupported_media(ctype, accepted)
         patch = self._load_body(req)
         with self.store.lock:

@@ -70,7 +70,8 @@ def json_path(obj: Any, path: str) -> Any:
     return nodes[0] if len(nodes) == 1 else ",".join(str(n) for n in nodes)
 
 
-def _columns(rt: ResourceType) -> list[tuple[str, Any]]:
+def _columns(rt: ResourceType) -> list[tuple[Any, ...]]:
+    """(name, getter[, priority]) per column; priority 1 shows with `-o wide` only."""
     st = lambda o: o.get("status") or {}  # noqa: E731
     sp = lambda o: o.get("spec") or {}  # noqa: E731
     if rt.kind == "Pod":
@@ -80,9 +81,11 @@ def _columns(rt: ResourceType) -> list[tuple[str, Any]]:
             return f"{sum(1 for c in cs if c.get('ready'))}/{n}"
         return [("Ready", ready), ("Status", lambda o: st(o).get("phase", "Pending")),
                 ("Restarts", lambda o: sum(c.get("restartCount", 0)
-                                           for c in st(o).get("containerStatuses") or []))]
+                                           for c in st(o).get("containerStatuses") or [])),
+                ("IP", lambda o: st(o).get("podIP", "<none>"), 1),
+                ("Node", lambda o: sp(o).get("nodeName", "<none>"), 1)]
     if rt.kind in ("Deployment", "StatefulSet", "ReplicaSet"):
-        cols: list[tuple[str, Any]] = [
+        cols: list[tuple[Any, ...]] = [
             ("Ready", lambda o: f"{st(o).get('readyReplicas', 0)}/{sp(o).get('replicas', 1)}")]
         if rt.kind == "Deployment":
             cols += [("Up-to-date", lambda o: st(o).get("updatedReplicas", 0)),
@@ -148,11 +151,13 @@ def to_table(rt: ResourceType, items: list[dict], list_meta: dict) -> dict:
     if rt.custom:
         cols = _crd_columns(rt)
     else:
-        cols = [({"name": n, "type": "string", "format": "", "description": n, "priority": 0}, f)
-                for n, f in _columns(rt)]
-        cols.append(({"name": "Age", "type": "string", "format": "",
-                      "description": "CreationTimestamp", "priority": 0},
-                     lambda o: _age((o.get("metadata") or {}).get("creationTimestamp"))))
+        cols = [({"name": c[0], "type": "string", "format": "", "description": c[0],
+                  "priority": c[2] if len(c) > 2 else 0}, c[1]) for c in _columns(rt)]
+        age = ({"name": "Age", "type": "string", "format": "",
+                "description": "CreationTimestamp", "priority": 0},
+               lambda o: _age((o.get("metadata") or {}).get("creationTimestamp")))
+        cols = [c for c in cols if not c[0]["priority"]] + [age] + \
+            [c for c in cols if c[0]["priority"]]
     defs = [{"name": "Name", "type": "string", "format": "name",
              "description": "Name must be unique within a namespace.", "priority": 0}]
     defs += [d for d, _ in cols]
