@@ -69,6 +69,9 @@ def create_app(
             metrics.reloads.labels(report.result).inc()
             if not report.ok:
                 log.error("serving without models until a reload succeeds: %s", report.error)
+            # this coroutine stays suspended at the yield for the app's whole life: holding
+            # the report would keep the first snapshot alive after every later reload
+            del report
         yield
 
     app = FastAPI(

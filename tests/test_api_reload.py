@@ -214,3 +214,27 @@ def test_a_dropped_snapshot_leaves_no_reference_cycles(tmp_path: Path) -> None:
     finally:
         if was_enabled:
             gc.enable()
+
+
+def test_old_snapshots_are_freed_after_reloads(tmp_path: Path) -> None:
+    # memory must not grow with every reload: once no request uses it, an old snapshot is
+    # gone (with the GC freeze on, as served), including the one loaded at startup
+    import weakref
+
+    from fastapi.testclient import TestClient
+
+    from ratefit.models.api import ApiSettings, create_app
+
+    store = ModelStore(tmp_path / "store")
+    keys = demo_keys(10)
+    _write_round(store, keys, 0)
+    app = create_app(ApiSettings(store=tmp_path / "store"))
+    refs = []
+    with TestClient(app) as c:
+        for n in range(1, 4):
+            refs.append(weakref.ref(app.state.api_state.snapshot.bank))
+            _write_round(store, keys, n)
+            assert c.post("/v1/reload").json()["changed"] == len(keys)
+        alive = [r() is not None for r in refs]
+        assert alive == [False, False, False]
+        assert app.state.api_state.snapshot.generation == 4
