@@ -4,7 +4,8 @@
 - `sandbox_kubeconfig` (alias `kubeconfig`): a kubeconfig file for it.
 - `sandbox_api`: a `kubernetes.client.ApiClient` for it.
 - `kubectl`: run the real kubectl against it: `kubectl("get", "pods", "-o", "json")` →
-  CompletedProcess (text); skips when kubectl is not installed.
+  CompletedProcess (text); skips when kubectl is not installed (env RATEFIT_KUBECTL picks
+  the binary).
 - `sandbox_process`: `ratefit sandbox` in a subprocess → (url, kubeconfig path); killed after.
 - `test_crd`: a throwaway CRD (group example.test, kind Widget) as a dict.
 """
@@ -25,7 +26,8 @@ import pytest
 
 from ratefit.controller.sandbox.server import SandboxServer
 
-KUBECTL = shutil.which("kubectl")
+#: the kubectl to run (RATEFIT_KUBECTL picks another binary, e.g. a given minor version)
+KUBECTL = os.environ.get("RATEFIT_KUBECTL") or shutil.which("kubectl")
 
 
 @pytest.fixture
