@@ -13,7 +13,10 @@ Compact. The snapshot does not keep the parsed ``Artifact`` objects (about 17 KB
 with their float lists): each artifact is turned, as it is read, into a
 ``ServedModel`` holding its two answers pre-rendered as JSON bytes (the summary for
 ``/v1/models`` and the detail for ``/v1/models/{key}``) plus its ``DemandCurve``.
-Files are read one at a time so the whole store is never in memory as artifacts.
+Files are read one at a time so the whole store is never in memory as artifacts. A
+reload reads and verifies again only the files whose (inode, size, mtime) changed
+since the last load: ``ModelStore.save`` replaces a file by rename, so any rewrite is a
+new inode; a restart verifies everything.
 
 Refusals. A file that does not load (corrupt, truncated, edited, wrong key) is never
 served. If the key was served before the reload, its last good artifact is kept (the
@@ -24,6 +27,7 @@ key whose file was removed is dropped.
 
 from __future__ import annotations
 
+import dataclasses
 import gc
 import hashlib
 import json
@@ -64,9 +68,12 @@ class ServedModel:
     curve: DemandCurve
     summary_json: bytes
     detail_json: bytes
+    #: (inode, size, mtime_ns) of the file it was read from; a reload skips files
+    #: whose stat is unchanged (the store replaces files by rename: a new inode)
+    file_stat: tuple[int, int, int] = (0, 0, 0)
 
     @classmethod
-    def from_artifact(cls, art: Artifact) -> ServedModel:
+    def from_artifact(cls, art: Artifact, *, file_stat: tuple[int, int, int] = (0, 0, 0)) -> ServedModel:
         summary = {
             "key": art.key,
             "chosen": art.chosen,
@@ -88,7 +95,9 @@ class ServedModel:
             "band_m": to_millicores(art.curve.band),
             "content_hash": art.content_hash,
         }
-        return cls(art.key, art.version, art.demand_curve(), _compact_json(summary), _compact_json(detail))
+        return cls(
+            art.key, art.version, art.demand_curve(), _compact_json(summary), _compact_json(detail), file_stat
+        )
 
 
 def _compact_json(value: object) -> bytes:
@@ -162,16 +171,23 @@ def build_snapshot(
     for path in store.files():
         rel = str(path.relative_to(store.root))
         key = _expected_key(path)
+        old = before.get(key)
         try:
+            st = path.stat()
+            file_stat = (st.st_ino, st.st_size, st.st_mtime_ns)
+            if old is not None and old.file_stat == file_stat:
+                models[key] = old  # the very file read last time: nothing to verify again
+                continue
             art = parse_artifact(path.read_bytes(), origin=str(path))
             if art.key != key:
                 raise ArtifactError(f"{path}: holds key {art.key!r} but lies at the place of {key!r}")
         except (ArtifactError, OSError) as exc:
             failed.append((rel, key, str(exc)))
             continue
-        old = before.get(key)
-        # unchanged: keep the record already built (less work, less garbage)
-        models[key] = old if old is not None and old.version == art.version else ServedModel.from_artifact(art)
+        if old is not None and old.version == art.version:
+            models[key] = dataclasses.replace(old, file_stat=file_stat)  # same content, rewritten
+        else:
+            models[key] = ServedModel.from_artifact(art, file_stat=file_stat)
         del art
     for rel, key, message in failed:
         keep = key in before and key not in models
