@@ -172,3 +172,21 @@ def test_statefulset_template_change_replaces_pods(sandbox_api, core) -> None:
     s = apps.read_namespaced_stateful_set("db", NS).status
     assert s.observed_generation == 2 and s.updated_replicas == 3
     assert s.current_revision == s.update_revision
+
+
+def test_resize_beyond_the_node_is_infeasible(core, sandbox) -> None:
+    node = core.read_node("sandbox-node")
+    assert node.status.allocatable["cpu"] == "16"
+    core.create_namespaced_pod(NS, pod(cpu_lim="64"))
+    out = core.patch_namespaced_pod_resize("worker-0", NS, resize_body("32"))
+    # resize docs: a resize the node can never fit stays desired in spec, the pod keeps
+    # running with its old resources, condition PodResizePending reason Infeasible
+    assert out.spec.containers[0].resources.requests["cpu"] == "32"
+    st = {s.name: s for s in out.status.container_statuses}
+    assert st["main"].resources.requests["cpu"] == "250m"
+    cond = [c for c in out.status.conditions if c.type == "PodResizePending"]
+    assert len(cond) == 1 and cond[0].reason == "Infeasible" and cond[0].status == "True"
+    ok = core.patch_namespaced_pod_resize("worker-0", NS, resize_body("2"))
+    assert not [c for c in ok.status.conditions if c.type == "PodResizePending"]
+    assert {s.name: s for s in ok.status.container_statuses}["main"].resources.requests[
+        "cpu"] == "2"

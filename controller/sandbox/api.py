@@ -24,7 +24,7 @@ from typing import Any
 import yaml
 
 from ratefit.controller.sandbox import errors as E
-from ratefit.controller.sandbox import events, objects, schema, validation
+from ratefit.controller.sandbox import events, objects, quantities, schema, validation
 from ratefit.controller.sandbox.patches import PatchError, json_patch, merge_patch, strategic_merge
 from ratefit.controller.sandbox.resources import ResourceType, from_crd
 from ratefit.controller.sandbox.selectors import parse_field_selector, parse_label_selector
@@ -38,6 +38,8 @@ STRATEGIC_PATCH = "application/strategic-merge-patch+json"
 APPLY_PATCH = "application/apply-patch+yaml"
 
 CRDS = ("apiextensions.k8s.io", "customresourcedefinitions")
+#: allocatable resources of the pretend node `sandbox-node`
+NODE_ALLOCATABLE = {"cpu": "16", "memory": "64Gi", "pods": "1000"}
 PODS = ("", "pods")
 NAMESPACES = ("", "namespaces")
 _WORKLOADS = {("apps", "deployments"): "Deployment", ("apps", "statefulsets"): "StatefulSet",
@@ -88,8 +90,11 @@ class Api:
     """REST verbs over a `Store`; controllers (`Workloads`) run after each write."""
 
     def __init__(self, store: Store, *, bookmark_interval: float = 1.0,
-                 stopping: threading.Event | None = None) -> None:
+                 stopping: threading.Event | None = None,
+                 node_allocatable: dict[str, str] | None = None) -> None:
         self.store = store
+        #: what the one (pretend) node can give a pod; larger resizes are Infeasible
+        self.node_allocatable = dict(node_allocatable or NODE_ALLOCATABLE)
         self.workloads = Workloads(store)
         self.bookmark_interval = bookmark_interval
         self.stopping = stopping or threading.Event()
@@ -584,6 +589,19 @@ class Api:
             gen = old["metadata"].get("generation", 1) + 1
             new["metadata"]["generation"] = gen
             status = new.setdefault("status", {})
+            conds = [c for c in status.get("conditions") or []
+                     if c.get("type") not in ("PodResizePending", "PodResizeInProgress")]
+            short = self._infeasible(new["spec"])
+            if short:
+                # the kubelet cannot fit the pod on its node at all: the desired resources
+                # stay in spec, the actual ones in status (resize docs, PodResizePending)
+                conds.append({"type": "PodResizePending", "status": "True",
+                              "reason": "Infeasible", "message": short,
+                              "lastProbeTime": None, "lastTransitionTime": objects.now()})
+                status["conditions"] = conds
+                status["observedGeneration"] = gen
+                return new
+            status["conditions"] = conds
             statuses = container_statuses(new, status.get("containerStatuses"))
             for s in statuses:
                 if s["name"] in restarts:
@@ -594,6 +612,18 @@ class Api:
             status["containerStatuses"] = statuses
             status["observedGeneration"] = gen
         return new
+
+    def _infeasible(self, spec: dict) -> str:
+        """Why a pod's requests exceed the node's allocatable resources ("" if they fit)."""
+        for res, unit, scale in (("cpu", "m", 1000), ("memory", "", 1)):
+            cap = quantities.parse_value(self.node_allocatable.get(res, "0"))
+            want = sum((quantities.parse_value(((c.get("resources") or {}).get("requests")
+                                                or {}).get(res, "0"))
+                        for c in spec.get("containers") or []), start=quantities.Decimal(0))
+            if cap and want > cap:
+                return (f"Node didn't have enough capacity: {res}, requested: "
+                        f"{int(want * scale)}, capacity: {int(cap * scale)}")
+        return ""
 
     # --- delete -------------------------------------------------------------------------
     def delete(self, r: Route, req: Request) -> dict:

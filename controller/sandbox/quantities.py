@@ -31,6 +31,9 @@ _DEC_SUFFIX = {v: k for k, v in _DECIMAL.items()}
 _BIN_SUFFIX = {v: k for k, v in _BINARY.items()}
 
 
+__all__ = ["Decimal", "QuantityError", "canonical", "canonicalize", "parse", "parse_value"]
+
+
 class QuantityError(ValueError):
     """A string that is not a Kubernetes quantity."""
 

@@ -77,6 +77,8 @@ BUILTINS: tuple[ResourceType, ...] = (
     _r("", "v1", "namespaces", "Namespace", namespaced=False, short_names=("ns",),
        subresources=("status",), verbs=("create", "delete", "get", "list", "patch", "update",
                                          "watch")),
+    _r("", "v1", "nodes", "Node", namespaced=False, short_names=("no",),
+       subresources=("status",)),
     _r("", "v1", "pods", "Pod", short_names=("po",), subresources=("status", "resize"),
        categories=("all",)),
     _r("", "v1", "events", "Event", short_names=("ev",)),

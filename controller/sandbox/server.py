@@ -257,7 +257,8 @@ class SandboxServer:
 
     def __init__(self, *, host: str = "127.0.0.1", port: int = 0,
                  load: Iterable[str | Path] = (), history: int = 1000,
-                 bookmark_interval: float = 1.0) -> None:
+                 bookmark_interval: float = 1.0,
+                 node_allocatable: dict[str, str] | None = None) -> None:
         self.host = host
         self._port = port
         self._load = list(load)
@@ -266,11 +267,35 @@ class SandboxServer:
         #: the last requests served (method, path, query, contentType) — for assertions
         self.requests: deque[dict[str, Any]] = deque(maxlen=2000)
         self._stopping = threading.Event()
-        self.api = Api(self.store, bookmark_interval=bookmark_interval, stopping=self._stopping)
+        self.api = Api(self.store, bookmark_interval=bookmark_interval, stopping=self._stopping,
+                       node_allocatable=node_allocatable)
         self._httpd: _HTTPServer | None = None
         self._thread: threading.Thread | None = None
         for ns in DEFAULT_NAMESPACES:
             self.create({"apiVersion": "v1", "kind": "Namespace", "metadata": {"name": ns}})
+        alloc = self.api.node_allocatable
+        self.create({"apiVersion": "v1", "kind": "Node",
+                     "metadata": {"name": "sandbox-node",
+                                  "labels": {"kubernetes.io/hostname": "sandbox-node",
+                                             "kubernetes.io/os": "linux"}},
+                     "spec": {}})
+        node = self.store.raw(("", "nodes"), "", "sandbox-node")
+        if node is not None:   # the (absent) kubelet would report these
+            import copy
+
+            new = copy.deepcopy(node)
+            new["status"] = {"capacity": dict(alloc), "allocatable": dict(alloc),
+                             "conditions": [{"type": "Ready", "status": "True",
+                                             "reason": "KubeletReady",
+                                             "message": "ratefit sandbox stand-in node"}],
+                             "nodeInfo": {"kubeletVersion": "v1.33.0+ratefit-sandbox",
+                                          "kubeProxyVersion": "", "operatingSystem": "linux",
+                                          "architecture": "amd64", "bootID": "sandbox",
+                                          "containerRuntimeVersion": "none://sandbox",
+                                          "kernelVersion": "n/a", "machineID": "sandbox",
+                                          "osImage": "ratefit sandbox (no kubelet)",
+                                          "systemUUID": "00000000-0000-0000-0000-000000000000"}}
+            self.store.save(("", "nodes"), new, node)
 
     # --- lifecycle ----------------------------------------------------------------------
     def start(self) -> SandboxServer:

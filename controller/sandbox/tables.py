@@ -97,6 +97,12 @@ def _columns(rt: ResourceType) -> list[tuple[Any, ...]]:
                 ("MinPods", lambda o: sp(o).get("minReplicas", 1)),
                 ("MaxPods", lambda o: sp(o).get("maxReplicas")),
                 ("Replicas", lambda o: st(o).get("currentReplicas", 0))]
+    if rt.kind == "Node":
+        return [("Status", lambda o: "Ready" if any(
+                    c.get("type") == "Ready" and c.get("status") == "True"
+                    for c in st(o).get("conditions") or []) else "NotReady"),
+                ("Roles", lambda o: "<none>"),
+                ("Version", lambda o: (st(o).get("nodeInfo") or {}).get("kubeletVersion", ""))]
     if rt.kind == "Namespace":
         return [("Status", lambda o: st(o).get("phase", "Active"))]
     if rt.kind == "Lease":
