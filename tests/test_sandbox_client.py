@@ -459,3 +459,33 @@ def test_custom_object_put_needs_a_resource_version(widgets) -> None:
     # custom resources allow no unconditional update (CRD docs; apiextensions strategy)
     assert err.value.status == 422
     assert "metadata.resourceVersion" in status_of(err.value)["message"]
+
+
+def test_every_kind_reads_back_into_the_typed_client_models(sandbox_api, apps, core,
+                                                             test_crd) -> None:
+    """The v37 client validates its models (pydantic): every object the sandbox makes up
+    (statuses, conditions, owner references, node info) must carry the required fields."""
+    apps.create_namespaced_deployment(NS, deployment())
+    sts = deployment("db")
+    sts["kind"] = "StatefulSet"
+    apps.create_namespaced_stateful_set(NS, sts)
+    client.ApiextensionsV1Api(sandbox_api).create_custom_resource_definition(test_crd)
+    client.EventsV1Api(sandbox_api).create_namespaced_event(NS, {
+        "metadata": {"name": "e1"}, "eventTime": "2026-01-01T00:00:00.000000Z",
+        "reportingController": "ratefit.dev/controller", "reportingInstance": "t",
+        "action": "Patch", "reason": "Tested", "type": "Normal",
+        "regarding": {"kind": "Deployment", "namespace": NS, "name": "web"}})
+    client.CoordinationV1Api(sandbox_api).create_namespaced_lease(NS, {
+        "metadata": {"name": "l"}, "spec": {"holderIdentity": "x"}})
+    assert len(apps.list_namespaced_replica_set(NS).items) == 1
+    assert all(p.status.container_statuses for p in core.list_namespaced_pod(NS).items)
+    assert core.list_namespaced_event(NS).items[0].involved_object.name == "web"
+    assert core.read_namespace(NS).status.phase == "Active"
+    assert core.list_node().items[0].status.node_info.kubelet_version
+    assert apps.read_namespaced_deployment_scale("web", NS).spec.replicas == 2
+    assert apps.read_namespaced_stateful_set("db", NS).status.current_revision
+    crd = client.ApiextensionsV1Api(sandbox_api).read_custom_resource_definition(
+        "widgets.example.test")
+    assert [c.type for c in crd.status.conditions] == ["NamesAccepted", "Established"]
+    assert client.CoordinationV1Api(sandbox_api).read_namespaced_lease(
+        "l", NS).spec.holder_identity == "x"

@@ -276,6 +276,10 @@ class Api:
                 md["generation"] = 1
             if r.rtype.has_status and r.rtype.key != PODS:
                 body.pop("status", None)
+            if r.rtype.key == NAMESPACES:
+                body["status"] = {"phase": "Active"}
+                body.setdefault("spec", {}).setdefault("finalizers", ["kubernetes"])
+                md.setdefault("labels", {})["kubernetes.io/metadata.name"] = md.get("name", "")
             obj = self._to_storage(r.rtype, self._admit(r.rtype, body, None, req))
             if dry:
                 obj["metadata"].pop("resourceVersion", None)
@@ -495,7 +499,7 @@ class Api:
             new = self._resize(rt, old, body)
         else:
             new = body
-            if rt.has_status and rt.key != NAMESPACES:
+            if rt.has_status:
                 if "status" in old:
                     new["status"] = old["status"]
                 else:
