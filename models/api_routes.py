@@ -172,7 +172,7 @@ def reload_body(report: ReloadReport) -> dict[str, Any]:
     return {
         "ok": report.ok,
         "version": snap.version if snap is not None else None,
-        "previous_version": report.previous.version if report.previous is not None else None,
+        "previous_version": report.previous_version,
         "models": len(snap) if snap is not None else 0,
         "added": report.added,
         "removed": report.removed,
