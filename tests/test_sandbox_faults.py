@@ -65,8 +65,8 @@ def test_forced_conflict_and_latency(sandbox, core) -> None:
     core.read_namespace("lab")
     assert time.monotonic() - t0 >= 0.3
     sandbox.faults.clear()
-    assert core.patch_namespace("lab", {"metadata": {"labels": {"a": "b"}}}).metadata.labels \
-        == {"a": "b"}
+    assert core.patch_namespace("lab", {"metadata": {"labels": {"a": "b"}}}).metadata.labels[
+        "a"] == "b"
 
 
 def test_dropped_watch_stream(sandbox, core) -> None:
