@@ -43,9 +43,11 @@ at the n-th time the point is reached), used by ``tests/test_faults_crash.py``.
 
 from __future__ import annotations
 
+import gc
 import json
 import logging
 import math
+import threading
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
@@ -143,10 +145,16 @@ class PassResult:
 class KubePort(Protocol):
     """What a pass needs from the Kubernetes adapter (``controller/kube.KubeAdapter``)."""
 
-    def list_policies(self, namespace: str | None = None) -> Any: ...
-    def list_workloads(self, namespace: str) -> Any: ...
+    def list_policies(self, namespaces: Sequence[str] | None = None) -> Any: ...
+    def list_workloads(self, kind: Any, *, namespace: str | None = None) -> Any: ...
     def read_workload(self, namespace: str, kind: Any, name: str) -> Any: ...
-    def list_horizontal_scalers(self, namespace: str) -> Any: ...
+    def list_hpas(self, namespace: str | None = None) -> Any: ...
+    def list_pods(self, workload: Any) -> Any: ...
+    def patch_cpu(self, workload: Any, changes: Mapping[str, Any], **kwargs: Any) -> Any: ...
+    def resize_pods(self, pods: Iterable[Any], changes: Mapping[str, Any]) -> Any: ...
+    def write_policy_status(self, namespace: str, name: str, status: Mapping[str, Any], *,
+                            resource_version: str | None = None) -> Any: ...
+    def emit_event(self, **kwargs: Any) -> Any: ...
 
 
 class SizingPort(Protocol):
@@ -163,7 +171,7 @@ class ReconcileConfig:
     write: bool = True
     #: namespaces to watch (empty: all)
     namespaces: tuple[str, ...] = ()
-    #: this replica's name, reported in Events
+    #: this replica's name, in the pass log line (Events carry the adapter's identity)
     identity: str = "ratefit"
     #: re-read/recompute/retry rounds after a 409 on a patch
     conflict_attempts: int = 3
@@ -213,25 +221,21 @@ def _kind_value(kind: Any) -> str:
     return getattr(kind, "value", kind)
 
 
-def _normalise(value: Any) -> Any:
-    """Status as comparable plain data: drop None values (the server prunes them)."""
-    if isinstance(value, Mapping):
-        return {k: _normalise(v) for k, v in value.items() if v is not None}
-    if isinstance(value, (list, tuple)):
-        return [_normalise(v) for v in value]
-    if isinstance(value, float) and value.is_integer():
-        return int(value)
-    return value
-
-
-def _comparable(status: Mapping[str, Any]) -> Any:
-    """Status without what only ages (the proposals' free-text messages such as
-    "1234s of 7200s settle"): a pass that only has newer wording writes nothing."""
-    s = dict(_normalise(status))
-    if isinstance(s.get("proposals"), list):
-        s["proposals"] = [{k: v for k, v in p.items() if k != "message"} if isinstance(p, dict) else p
-                          for p in s["proposals"]]
-    return s
+def _comparable(status: Mapping[str, Any]) -> dict[str, Any]:
+    """Status as comparable plain data: None values dropped (the server prunes them, and
+    the merge patch deletes them), and without what only ages — the proposals' free-text
+    messages such as "1234s of 7200s settle" — so a pass with only newer wording writes
+    nothing. The status is shallow (lists of flat objects), so one level of lists is enough."""
+    out: dict[str, Any] = {}
+    for k, v in status.items():
+        if v is None:
+            continue
+        if isinstance(v, list):
+            drop = "message" if k == "proposals" else None
+            v = [{kk: vv for kk, vv in item.items() if vv is not None and kk != drop} if isinstance(item, Mapping)
+                 else item for item in v]
+        out[k] = v
+    return out
 
 
 def _sizing_of(answer: Any) -> Sizing | None:
@@ -301,10 +305,24 @@ class Reconciler:
         self._budget_seeded = False
         self._patch_kwargs: set[str] | None = None
         self._gather_split: dict[str, float] = {}
+        self._parsed: dict[tuple[str, str, str, int], Policy | PolicyInvalid] = {}
 
     # -- public -----------------------------------------------------------------
     def run_pass(self, control: Any = None) -> PassResult:
-        """One pass. ``control`` (``loop.PassControl``) may say stop / not leader."""
+        """One pass. ``control`` (``loop.PassControl``) may say stop / not leader.
+
+        The cyclic garbage collector is paused for the pass: a pass over thousands of
+        policies allocates many short-lived objects and full collections would run over
+        all of them repeatedly; the few cycles it leaves are collected afterwards."""
+        was_enabled = gc.isenabled()
+        gc.disable()
+        try:
+            return self._run_pass(control)
+        finally:
+            if was_enabled:
+                gc.enable()
+
+    def _run_pass(self, control: Any) -> PassResult:
         should_stop = getattr(control, "should_stop", None) or (lambda: False)
         may_act = getattr(control, "may_act", None) or (lambda: True)
         t0, c0 = self._mono(), time.process_time()
@@ -333,14 +351,59 @@ class Reconciler:
         t_g0 = time.perf_counter()
         objs = list(self.kube.list_policies(list(self.config.namespaces) or None).items)
         entries = [_Entry(obj=o) for o in sorted(objs, key=lambda o: (o.namespace, o.name))]
+        window_texts: dict[float, str] = {}
+
+        def window_text(seconds: float) -> str:
+            if seconds not in window_texts:
+                window_texts[seconds] = format_duration(seconds)
+            return window_texts[seconds]
+
+        cache: dict[tuple[str, str, str, int], Policy | PolicyInvalid] = {}
         for e in entries:
-            try:
-                e.policy = parse_policy(policy_object_dict(e.obj))
-            except PolicyInvalid as exc:
-                e.invalid = exc
+            # the spec only changes with the generation: parse each (uid, generation) once
+            ck = (e.obj.namespace, e.obj.name, e.obj.uid, e.obj.generation)
+            got = self._parsed.get(ck)
+            if got is None:
+                try:
+                    got = parse_policy(policy_object_dict(e.obj))
+                except PolicyInvalid as exc:
+                    got = exc
+            cache[ck] = got
+            if isinstance(got, PolicyInvalid):
+                e.invalid = got
+            else:
+                e.policy = got
+        self._parsed = cache  # forget policies that are gone
         valid = [e for e in entries if e.policy is not None]
         self.telemetry.policies.labels(state="valid").set(len(valid))
         self.telemetry.policies.labels(state="invalid").set(len(entries) - len(valid))
+
+        # the rates depend only on the policies: ask Prometheus while the workloads are listed
+        requests: list[RateRequest] = []
+        models: dict[tuple[str, str, str], str] = {}
+        for e in valid:
+            p = e.policy
+            for c in p.containers:
+                requests.append(
+                    RateRequest(
+                        namespace=p.namespace, policy=p.name, workload=p.workload_name, container=c.name,
+                        query=c.rate_query, rate_window=window_text(p.rate_window_s),
+                        percentile=p.rate_percentile,
+                    )
+                )
+                models[(p.namespace, p.name, c.name)] = c.model
+        rate_box: dict[str, Any] = {}
+
+        def ask_rates() -> None:
+            t = time.perf_counter()
+            try:
+                rate_box["rates"] = self._query_rates(requests, errors)
+            except BaseException as exc:  # handed to the pass's thread below
+                rate_box["error"] = exc
+            rate_box["seconds"] = time.perf_counter() - t
+
+        rate_thread = threading.Thread(target=ask_rates, name="ratefit-rates", daemon=True)
+        rate_thread.start()
 
         # one LIST of workloads and of HPAs per namespace that has policies
         workloads: dict[tuple[str, str, str], Any] = {}
@@ -374,8 +437,7 @@ class Reconciler:
         if self.budget.slots is not None:
             self.budget.slots.sync(rolling)  # level-based: the cluster says what is rolling
 
-        requests: list[RateRequest] = []
-        models: dict[tuple[str, str, str], str] = {}
+        found: set[tuple[str, str]] = set()
         for e in valid:
             p = e.policy
             w = workloads.get((p.namespace, p.workload_kind, p.workload_name))
@@ -384,22 +446,18 @@ class Reconciler:
                 continue
             e.workload = w
             e.hpa_on_cpu = (p.namespace, p.workload_kind, p.workload_name) in hpa_cpu
-            for c in p.containers:
-                requests.append(
-                    RateRequest(
-                        namespace=p.namespace, policy=p.name, workload=p.workload_name, container=c.name,
-                        query=c.rate_query, rate_window=format_duration(p.rate_window_s),
-                        percentile=p.rate_percentile,
-                    )
-                )
-                models[(p.namespace, p.name, c.name)] = c.model
+            found.add((p.namespace, p.name))
         t_lists = time.perf_counter()
-        rates = self._query_rates(requests, errors)
+        rate_thread.join()
+        if "error" in rate_box:
+            raise rate_box["error"]
+        rates = rate_box["rates"]
         t_rates = time.perf_counter()
-        sizing = self._query_sizing(requests, models, rates, errors)
+        asked = [r for r in requests if (r.namespace, r.policy) in found]
+        sizing = self._query_sizing(asked, models, rates, errors)
         t_sizing = time.perf_counter()
-        self._gather_split = {"gather_kube": t_lists - t_g0, "gather_rates": t_rates - t_lists,
-                              "gather_sizing": t_sizing - t_rates}
+        self._gather_split = {"gather_kube": t_lists - t_g0, "gather_rates": rate_box.get("seconds", 0.0),
+                              "gather_rates_wait": t_rates - t_lists, "gather_sizing": t_sizing - t_rates}
         for e in valid:
             if e.workload is None:
                 continue
@@ -892,7 +950,7 @@ class Reconciler:
         self.telemetry.pass_duration.observe(dur)
         self.telemetry.last_pass.set(time.time())
         log.info(json.dumps({
-            "msg": "pass", "outcome": result.outcome.value, "policies": result.policies,
+            "msg": "pass", "identity": self.config.identity, "outcome": result.outcome.value, "policies": result.policies,
             "invalid": result.invalid, "patched": len(result.patched), "status_writes": result.status_writes,
             "events": result.events, "errors": len(result.errors), "seconds": round(dur, 3),
         }, sort_keys=True))
@@ -907,11 +965,11 @@ def _cgroup(request_m: int | None, limit_m: int | None) -> dict[str, Any] | None
     """What the kernel gets for a request/limit (controller/cgroup), when that module is there."""
     if request_m is None:
         return None
-    from dataclasses import asdict
-
     from ratefit.controller.cgroup import cgroup_figures
 
     try:
-        return asdict(cgroup_figures(request_m, limit_m))
+        f = cgroup_figures(request_m, limit_m)
     except (ValueError, TypeError):  # a review extra must never break a pass
         return None
+    return {"shares": f.shares, "weight_linear": f.weight_linear, "weight_log": f.weight_log,
+            "quota_us": f.quota_us, "period_us": f.period_us, "cpu_max": f.cpu_max}
