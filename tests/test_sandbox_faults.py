@@ -170,3 +170,25 @@ def test_kubeconfig_loads_with_the_official_loader(sandbox, sandbox_kubeconfig) 
     assert cfg.host == sandbox.url
     with client.ApiClient(cfg) as api:
         assert client.VersionApi(api).get_code().git_version.startswith("v1.33")
+
+
+def test_a_sandbox_bug_is_a_500_status_and_requests_are_logged(sandbox, core, monkeypatch,
+                                                                capsys) -> None:
+    import io
+
+    log = io.StringIO()
+    sandbox.access_log = log
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("boom")
+
+    monkeypatch.setattr(sandbox.api, "list", broken)
+    with pytest.raises(ApiException) as err:
+        core.list_namespaced_pod(NS)
+    st = json.loads(err.value.body)
+    assert err.value.status == 500 and st["reason"] == "InternalError" and "boom" in st["message"]
+    assert "RuntimeError: boom" in capsys.readouterr().err    # traceback on stderr
+    assert core.read_namespace(NS).metadata.name == NS        # the server keeps serving
+    lines = log.getvalue().splitlines()
+    assert lines[0].startswith(tuple("0123456789")) and " GET /api/v1/namespaces/default/pods" \
+        in lines[0] and " 500 " in lines[0]

@@ -56,6 +56,8 @@ def register(sub: argparse._SubParsersAction) -> None:
                         "410 Gone (default 1000)")
     p.add_argument("--bookmark-interval", type=float, default=5.0, metavar="SECONDS",
                    help="how often watches with allowWatchBookmarks get a BOOKMARK (default 5)")
+    p.add_argument("--access-log", action="store_true",
+                   help="print one line per request on stderr (method, path, status, time)")
     p.set_defaults(handler=_run)
 
 
@@ -66,9 +68,10 @@ def _run(args: argparse.Namespace) -> int:
         print("ratefit sandbox: warning: binding a non-loopback address; the sandbox accepts "
               "any client without authentication", file=sys.stderr)
     sb = SandboxServer(host=args.host, port=args.port, load=args.load, history=args.history,
-                       bookmark_interval=args.bookmark_interval)
-    print(f"ratefit sandbox: loading {len(args.load)} path(s)…", file=sys.stderr) \
-        if args.load else None
+                       bookmark_interval=args.bookmark_interval,
+                       access_log=sys.stderr if args.access_log else None)
+    if args.load:
+        print(f"ratefit sandbox: loading {len(args.load)} path(s)…", file=sys.stderr)
     sb.start()
     path = sb.write_kubeconfig(args.kubeconfig)
     print(f"ratefit sandbox: serving {sb.url} (a stand-in, not a cluster)", file=sys.stderr)

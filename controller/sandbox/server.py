@@ -17,14 +17,16 @@ from __future__ import annotations
 import json
 import select
 import socket
+import sys
 import threading
+import traceback
 import time
 import urllib.parse
 from collections import deque
 from collections.abc import Iterable
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
-from typing import Any
+from typing import Any, TextIO
 
 from ratefit.controller.sandbox import discovery
 from ratefit.controller.sandbox import errors as E
@@ -106,6 +108,32 @@ class _Handler(BaseHTTPRequestHandler):
         self._send_json(err.code, err.status(), err.headers)
 
     def _serve(self) -> None:
+        """Answer one request; a bug in the sandbox becomes a 500 InternalError Status
+        (and a traceback on stderr) instead of a dropped connection."""
+        self._code = 0
+        started = time.perf_counter()
+        try:
+            self._serve_one()
+        except (BrokenPipeError, ConnectionResetError):
+            self.close_connection = True
+        except Exception as exc:  # noqa: BLE001 - report every server bug to the client
+            traceback.print_exc(file=sys.stderr)
+            try:
+                self._send_error(E.ApiError(500, "InternalError",
+                                            f"Internal error occurred: sandbox bug: {exc!r}"))
+            except OSError:
+                self.close_connection = True
+        finally:
+            log = self.server.sandbox.access_log
+            if log is not None:
+                print(f"{time.strftime('%H:%M:%S')} {self.command} {self.path} {self._code} "
+                      f"{(time.perf_counter() - started) * 1e3:.1f}ms", file=log, flush=True)
+
+    def send_response(self, code: int, message: str | None = None) -> None:
+        self._code = code
+        super().send_response(code, message)
+
+    def _serve_one(self) -> None:
         sb = self.server.sandbox
         url = urllib.parse.urlsplit(self.path)
         path = url.path.rstrip("/") or "/"
@@ -258,9 +286,12 @@ class SandboxServer:
     def __init__(self, *, host: str = "127.0.0.1", port: int = 0,
                  load: Iterable[str | Path] = (), history: int = 1000,
                  bookmark_interval: float = 1.0,
-                 node_allocatable: dict[str, str] | None = None) -> None:
+                 node_allocatable: dict[str, str] | None = None,
+                 access_log: TextIO | None = None) -> None:
         self.host = host
         self._port = port
+        #: where to write one line per request (None: no access log)
+        self.access_log = access_log
         self._load = list(load)
         self.store = Store(history=history)
         self.faults = Faults()
