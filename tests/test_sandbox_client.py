@@ -489,3 +489,74 @@ def test_every_kind_reads_back_into_the_typed_client_models(sandbox_api, apps, c
     assert [c.type for c in crd.status.conditions] == ["NamesAccepted", "Established"]
     assert client.CoordinationV1Api(sandbox_api).read_namespaced_lease(
         "l", NS).spec.holder_identity == "x"
+
+
+def test_concurrent_read_modify_write_has_one_winner(sandbox, sandbox_api) -> None:
+    import threading
+
+    coord = client.CoordinationV1Api(sandbox_api)
+    coord.create_namespaced_lease(NS, {"metadata": {"name": "race"},
+                                       "spec": {"holderIdentity": "nobody"}})
+    seen = coord.read_namespaced_lease("race", NS)
+    start = threading.Barrier(6)
+    results: list[str] = []
+
+    def contender(i: int) -> None:
+        api = sandbox.api_client()
+        try:
+            body = copy.deepcopy(seen)
+            body.spec.holder_identity = f"c{i}"
+            start.wait()
+            try:
+                client.CoordinationV1Api(api).replace_namespaced_lease("race", NS, body)
+                results.append(f"c{i}")
+            except ApiException as exc:
+                results.append(str(exc.status))
+        finally:
+            api.close()
+
+    threads = [threading.Thread(target=contender, args=(i,)) for i in range(6)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(10)
+    # optimistic concurrency (API Concepts): all carry the same resourceVersion, so exactly
+    # one update wins and the others get 409 Conflict
+    winners = [r for r in results if r.startswith("c")]
+    assert len(winners) == 1 and sorted(set(results) - set(winners)) == ["409"]
+    assert coord.read_namespaced_lease("race", NS).spec.holder_identity == winners[0]
+
+
+def test_cluster_scoped_crd_with_two_served_versions(sandbox_api, custom) -> None:
+    crd = {
+        "apiVersion": "apiextensions.k8s.io/v1", "kind": "CustomResourceDefinition",
+        "metadata": {"name": "zones.example.test"},
+        "spec": {"group": "example.test", "scope": "Cluster",
+                 "names": {"plural": "zones", "kind": "Zone"},
+                 "versions": [
+                     {"name": "v1beta1", "served": True, "storage": False,
+                      "schema": {"openAPIV3Schema": {"type": "object", "properties": {
+                          "spec": {"type": "object", "properties": {
+                              "cores": {"type": "integer"}}}}}}},
+                     {"name": "v1", "served": True, "storage": True,
+                      "schema": {"openAPIV3Schema": {"type": "object", "properties": {
+                          "spec": {"type": "object", "properties": {
+                              "cores": {"type": "integer", "minimum": 1}}}}}}}]}}
+    ext = client.ApiextensionsV1Api(sandbox_api)
+    ext.create_custom_resource_definition(crd)
+    custom.create_cluster_custom_object("example.test", "v1", "zones", {
+        "apiVersion": "example.test/v1", "kind": "Zone", "metadata": {"name": "north"},
+        "spec": {"cores": 8}})
+    old = custom.get_cluster_custom_object("example.test", "v1beta1", "zones", "north")
+    # CRD versioning docs: every served version shows the same objects (no conversion
+    # webhook: only apiVersion differs)
+    assert old["apiVersion"] == "example.test/v1beta1" and old["spec"]["cores"] == 8
+    with pytest.raises(ApiException) as err:
+        custom.create_cluster_custom_object("example.test", "v1", "zones", {
+            "apiVersion": "example.test/v1", "kind": "Zone", "metadata": {"name": "south"},
+            "spec": {"cores": 0}})
+    assert err.value.status == 422
+    ext.delete_custom_resource_definition("zones.example.test")
+    with pytest.raises(ApiException) as err:   # the resource is gone from the API
+        custom.list_cluster_custom_object("example.test", "v1", "zones")
+    assert err.value.status == 404
