@@ -142,10 +142,10 @@ class _Handler(BaseHTTPRequestHandler):
         body = self.rfile.read(length) if length else b""
         headers = {k.lower(): v for k, v in self.headers.items()}
         req = Request(self.command, path, query, headers, body)
-        sb.requests.append({"method": self.command, "path": path,
-                            "query": {k: v[-1] for k, v in query.items()},
-                            "contentType": headers.get("content-type", ""),
-                            "time": time.time()})
+        sb.log_request({"method": self.command, "path": path,
+                        "query": {k: v[-1] for k, v in query.items()},
+                        "contentType": headers.get("content-type", ""),
+                        "time": time.time()})
         if path.startswith("/_sandbox/"):
             return self._private(req)
         watch = req.flag("watch")
@@ -295,8 +295,8 @@ class SandboxServer:
         self._load = list(load)
         self.store = Store(history=history)
         self.faults = Faults()
-        #: the last requests served (method, path, query, contentType) — for assertions
-        self.requests: deque[dict[str, Any]] = deque(maxlen=2000)
+        self._requests: deque[dict[str, Any]] = deque(maxlen=2000)
+        self._requests_lock = threading.Lock()
         self._stopping = threading.Event()
         self.api = Api(self.store, bookmark_interval=bookmark_interval, stopping=self._stopping,
                        node_allocatable=node_allocatable)
@@ -327,6 +327,21 @@ class SandboxServer:
                                           "osImage": "ratefit sandbox (no kubelet)",
                                           "systemUUID": "00000000-0000-0000-0000-000000000000"}}
             self.store.save(("", "nodes"), new, node)
+
+    @property
+    def requests(self) -> list[dict[str, Any]]:
+        """A snapshot of the last 2000 requests served, oldest first: dicts with method,
+        path, query (last value of each parameter), contentType, time — for assertions."""
+        with self._requests_lock:
+            return list(self._requests)
+
+    def log_request(self, entry: dict[str, Any]) -> None:
+        with self._requests_lock:
+            self._requests.append(entry)
+
+    def clear_requests(self) -> None:
+        with self._requests_lock:
+            self._requests.clear()
 
     # --- lifecycle ----------------------------------------------------------------------
     def start(self) -> SandboxServer:
