@@ -179,3 +179,20 @@ def test_get_watch_streams_table_rows(kubectl, app_file) -> None:
     lines = out.stdout.splitlines()
     assert lines[0].split()[:2] == ["NAME", "READY"]
     assert lines[1].startswith("label-printer")
+
+
+def test_unknown_custom_fields_warn_or_fail_strictly(kubectl, tmp_path, test_crd) -> None:
+    f = tmp_path / "crd.yaml"
+    f.write_text(yaml.safe_dump(test_crd))
+    kubectl("apply", "-f", str(f), check=True)
+    w = tmp_path / "w.yaml"
+    w.write_text("apiVersion: example.test/v1\nkind: Widget\nmetadata: {name: odd}\n"
+                 "spec: {size: 4, colour: red}\n")
+    # kubectl docs (--validate): "strict" (the default) fails on unknown fields, "warn"
+    # warns and the API server prunes them (CRD docs "Field pruning")
+    strict = kubectl("apply", "-f", str(w))
+    assert strict.returncode != 0 and 'unknown field "spec.colour"' in strict.stderr
+    warn = kubectl("apply", "--validate=warn", "-f", str(w))
+    assert warn.returncode == 0 and 'unknown field "spec.colour"' in warn.stderr
+    got = json.loads(kubectl("get", "widget", "odd", "-o", "json", check=True).stdout)
+    assert "colour" not in got["spec"]

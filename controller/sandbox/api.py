@@ -55,6 +55,8 @@ class Request:
     query: dict[str, list[str]] = field(default_factory=dict)
     headers: dict[str, str] = field(default_factory=dict)
     body: bytes = b""
+    #: `Warning` header texts collected while serving (e.g. pruned unknown fields)
+    warnings: list[str] = field(default_factory=list)
 
     def q(self, name: str, default: str | None = None) -> str | None:
         values = self.query.get(name)
@@ -131,6 +133,15 @@ class Api:
         return Route(rtype, ns, name, sub)
 
     def handle(self, req: Request) -> Response:
+        resp = self._handle(req)
+        if req.warnings:
+            # RFC 9110 Warning-style header as the API server sends it: 299 - "text"
+            resp.headers["Warning"] = ", ".join(
+                '299 - "' + w.replace('\\', '\\\\').replace('"', '\\"') + '"'
+                for w in req.warnings)
+        return resp
+
+    def _handle(self, req: Request) -> Response:
         try:
             r = self.route(req.path)
             m = req.method
@@ -360,9 +371,13 @@ class Api:
         sch = rt.schema or {}
         schema.apply_defaults(sch, obj)
         dropped = schema.prune(sch, obj, root=True)
-        if dropped and (req.q("fieldValidation") or "").lower() == "strict":
-            raise E.bad_request("strict decoding error: " + ", ".join(
-                f'unknown field "{d}"' for d in dropped))
+        mode = (req.q("fieldValidation") or "").lower()
+        if dropped and mode == "strict":
+            raise E.bad_request(
+                f'{rt.kind} in version "{rt.version}" cannot be handled as a {rt.kind}: '
+                "strict decoding error: " + ", ".join(f'unknown field "{d}"' for d in dropped))
+        if dropped and mode != "ignore":
+            req.warnings += [f'unknown field "{d}"' for d in dropped]
         return schema.validate({k: v for k, v in sch.items()}, obj)
 
     def _crd_errors(self, crd: dict) -> list[E.FieldError]:
