@@ -26,7 +26,7 @@ samples/ (the invented CSVs), kubeconfig, run/ (history, model store, logs).
 def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("demo", help="run the whole flow on an invented scenario and print the review",
                        description=HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("--out", default="ratefit-demo", metavar="DIR", help="output directory (default %(default)s)")
+    p.add_argument("--out", default="demo-out", metavar="DIR", help="output directory (default %(default)s)")
     p.add_argument("--keep", action="store_true",
                    help="keep the sandbox, Prometheus and the sizing API running after the review until Ctrl-C")
     p.add_argument("--replay", action="store_true", help="replay the history file even when Prometheus is installed")
