@@ -156,13 +156,11 @@ def serve_process(
     extra_args: Sequence[str] = (),
     log_level: str = "info",
     ready_timeout: float = 60.0,
-    attempts: int = 3,
 ) -> Iterator[ServeProcess]:
     """Run ``ratefit serve --store STORE`` on a free 127.0.0.1 port until the block ends.
 
     Waits until ``/readyz`` answers 200. The process is always stopped (SIGTERM, then
-    SIGKILL) when the block exits, whatever happened. A port taken between choosing and
-    binding it is retried with another port."""
+    SIGKILL) when the block exits, whatever happened."""
     work = Path(workdir) if workdir is not None else Path(store).parent
     work.mkdir(parents=True, exist_ok=True)
     token_args: list[str] = []
@@ -171,41 +169,44 @@ def serve_process(
         token_file.write_text(token + "\n", encoding="utf-8")
         token_file.chmod(0o600)
         token_args = ["--token-file", str(token_file)]
-    last_error = ""
-    for attempt in range(attempts):
-        port = free_port()
+    # The fixture binds the port itself and hands the listening socket to the child
+    # (`ratefit serve --fd N`): no window in which another process on this shared
+    # machine could take the port, so whoever answers on it is our server.
+    listener = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    try:
+        listener.bind(("127.0.0.1", 0))
+        listener.listen(512)
+        port = int(listener.getsockname()[1])
         log_path = work / f"serve-{port}.log"
         cmd = [
             str(RATEFIT),
             "serve",
             "--store",
             str(store),
-            "--host",
-            "127.0.0.1",
-            "--port",
-            str(port),
+            "--fd",
+            str(listener.fileno()),
             "--log-level",
             log_level,
             *token_args,
             *extra_args,
         ]
         with open(log_path, "wb") as log_file:
-            proc = subprocess.Popen(cmd, stdout=log_file, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
-        server = ServeProcess(proc, f"http://127.0.0.1:{port}", port, token, log_path, Path(store))
-        try:
-            if _wait_ready(server, ready_timeout):
-                try:
-                    yield server
-                finally:
-                    server.stop()
-                return
-            last_error = server.log_text()[-2000:]
-        finally:
-            server.stop()
-    raise RuntimeError(f"ratefit serve did not become ready after {attempts} attempts; last log:\n{last_error}")
+            proc = subprocess.Popen(
+                cmd, stdout=log_file, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, pass_fds=(listener.fileno(),)
+            )
+    finally:
+        listener.close()  # the child holds its own copy
+    server = ServeProcess(proc, f"http://127.0.0.1:{port}", port, token, log_path, Path(store))
+    try:
+        if not _wait_ready(server, ready_timeout):
+            raise RuntimeError(f"ratefit serve did not become ready; its log:\n{server.log_text()[-3000:]}")
+        yield server
+    finally:
+        server.stop()
 
 
 def _wait_ready(server: ServeProcess, timeout: float) -> bool:
+    """True once ``/readyz`` answers 200 while the process is alive."""
     deadline = time.monotonic() + timeout
     with httpx.Client(base_url=server.base_url, headers=server.headers, timeout=2.0) as c:
         while time.monotonic() < deadline:
@@ -213,7 +214,7 @@ def _wait_ready(server: ServeProcess, timeout: float) -> bool:
                 return False
             try:
                 if c.get("/readyz").status_code == 200:
-                    return True
+                    return server.proc.poll() is None
             except httpx.TransportError:
                 pass
             time.sleep(0.05)

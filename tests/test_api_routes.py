@@ -471,3 +471,15 @@ def test_fast_path_can_be_turned_off(store_dir: Path) -> None:
             ra = a.get(f"/v1/models/{LOW_KEY}/demand", params={"rate": rate})
             rb = b.get(f"/v1/models/{LOW_KEY}/demand", params={"rate": rate})
             assert ra.content == rb.content
+
+
+def test_serve_cli_refuses_an_fd_that_is_not_a_socket(store_dir: Path, tmp_path: Path) -> None:
+    with open(tmp_path / "plain-file", "w") as fh:
+        out = subprocess.run(
+            [str(RATEFIT), "serve", "--store", str(store_dir), "--fd", str(fh.fileno())],
+            capture_output=True,
+            text=True,
+            timeout=60,
+            pass_fds=(fh.fileno(),),
+        )
+    assert out.returncode == 2 and "--fd" in out.stderr

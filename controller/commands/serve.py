@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import socket
 import stat
 from pathlib import Path
 
@@ -45,6 +46,14 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     p.add_argument("--port", type=int, default=DEFAULT_PORT, help=f"TCP port (default {DEFAULT_PORT})")
     p.add_argument(
+        "--fd",
+        type=int,
+        default=None,
+        metavar="N",
+        help="serve on an already bound, listening TCP socket inherited as file descriptor N "
+        "(socket activation, test harnesses); --host and --port are then ignored",
+    )
+    p.add_argument(
         "--token-file",
         metavar="FILE",
         help="file holding a bearer token; when given, every route but /healthz requires it",
@@ -78,6 +87,16 @@ def read_token(path: str) -> str:
             "(e.g. the output of `openssl rand -hex 32`)"
         )
     return token
+
+
+def _inherited_socket(fd: int) -> socket.socket:
+    try:
+        sock = socket.socket(fileno=fd)  # family and type detected from the descriptor
+    except OSError as exc:
+        raise InputError(f"--fd {fd}: not an open socket ({exc})") from exc
+    if sock.type != socket.SOCK_STREAM or sock.family not in (socket.AF_INET, socket.AF_INET6):
+        raise InputError(f"--fd {fd}: must be a listening TCP socket (got {sock.family!r}, {sock.type!r})")
+    return sock
 
 
 def _run(args: argparse.Namespace) -> int:
@@ -126,7 +145,8 @@ def _run(args: argparse.Namespace) -> int:
         server_header=False,
     )
     server = uvicorn.Server(config)
-    server.run()
+    sockets = [_inherited_socket(args.fd)] if args.fd is not None else None
+    server.run(sockets=sockets)
     if not server.started:
         raise InputError(f"could not start the server on {args.host}:{args.port} (see the log above: port in use?)")
     return 0
