@@ -9,7 +9,6 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Iterator
-from pathlib import Path
 from urllib.parse import quote
 
 import pytest
