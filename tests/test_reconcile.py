@@ -230,3 +230,43 @@ def test_in_place_resizes_pods_keeps_the_template_and_reapplies_to_new_pods(tmp_
         r3 = rec.run_pass()
         assert r3.patched == ()  # not a new change …
         assert pod_cpu()["web-new-pod"] == (315, 630)  # … but the decision is re-applied to the new pod
+
+
+def test_concurrent_rollout_slots_are_shared_by_the_pass(tmp_path, shared_sizing_api) -> None:
+    from ratefit.controller.limits import RolloutSlots
+
+    names = ("a", "b")
+    objects = [o for n in names for o in (
+        deployment("shop", n, [("app", "100m", None)]),
+        policy("shop", n, workload=n, containers=[{"name": "app", "model": f"shop/{n}/app"}]))]
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", n): [50.0] for n in names}) as w:
+        r = w.reconciler(budget=Budget(slots=RolloutSlots(1))).run_pass()
+        assert len(r.patched) == 1
+        assert sorted(row.why[0] for row in r.rows) == ["BudgetSpent", "NewTarget"]
+
+
+def test_a_pass_that_loses_the_lease_acts_no_more(tmp_path, shared_sizing_api) -> None:
+    from types import SimpleNamespace
+
+    objects = [deployment("shop", "web", [("app", "100m", None)]),
+               policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
+        before = w.resource_versions()
+        control = SimpleNamespace(should_stop=lambda: False, may_act=lambda: False)
+        r = w.reconciler().run_pass(control)
+        assert r.outcome is PassOutcome.ABANDONED and r.patched == ()
+        assert w.resource_versions() == before  # no patch, no status, no Event
+
+
+def test_invalid_policy_warns_once(tmp_path, shared_sizing_api) -> None:
+    # passes the CRD's schema, refused by parse_policy (floor above ceiling)
+    bad = policy("shop", "web", workload="web",
+                 containers=[{"name": "app", "model": "shop/web/app", "floor": "300m", "ceiling": "200m"}])
+    with world(tmp_path, objects=[deployment("shop", "web", [("app", "100m", None)]), bad],
+               api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
+        rec = w.reconciler()
+        rec.run_pass()
+        rec.run_pass()
+        warnings = [e for e in w.events("shop") if e["reason"] == "PolicyInvalid"]
+        assert len(warnings) == 1 and warnings[0]["type"] == "Warning"
+        assert "spec.containers[0].floor" in warnings[0]["note"]
