@@ -190,3 +190,83 @@ def test_resize_beyond_the_node_is_infeasible(core, sandbox) -> None:
     assert not [c for c in ok.status.conditions if c.type == "PodResizePending"]
     assert {s.name: s for s in ok.status.container_statuses}["main"].resources.requests[
         "cpu"] == "2"
+
+
+@pytest.fixture
+def slow_sandbox(request):
+    """A sandbox whose pods take `request.param` seconds (default 0.2) to become Ready."""
+    from ratefit.controller.sandbox.server import SandboxServer
+
+    sb = SandboxServer(startup_seconds=getattr(request, "param", 0.2),
+                       bookmark_interval=0.2).start()
+    try:
+        yield sb
+    finally:
+        sb.stop()
+
+
+def _wait(cond, timeout: float = 10.0) -> None:
+    import time
+
+    end = time.monotonic() + timeout
+    while not cond():
+        if time.monotonic() > end:
+            raise AssertionError("condition not reached in time")
+        time.sleep(0.02)
+
+
+@pytest.mark.parametrize("slow_sandbox", [1.0], indirect=True)   # room for the mid-rollout read
+def test_startup_delay_deployment_rollout_surges_then_scales_down(slow_sandbox) -> None:
+    api = slow_sandbox.api_client()
+    apps, core = client.AppsV1Api(api), client.CoreV1Api(api)
+    apps.create_namespaced_deployment(NS, {
+        "metadata": {"name": "api"},
+        "spec": {"replicas": 2, "selector": {"matchLabels": {"app": "api"}},
+                 "template": {"metadata": {"labels": {"app": "api"}}, "spec": {"containers": [
+                     {"name": "c", "image": "i:1", "resources": {"requests": {"cpu": "100m"}}}]}}}})
+    first = core.list_namespaced_pod(NS, label_selector="app=api").items
+    assert {p.status.phase for p in first} == {"Pending"}   # containers still starting
+    _wait(lambda: (apps.read_namespaced_deployment("api", NS).status.available_replicas
+                   or 0) == 2)
+    old = {p.metadata.name for p in core.list_namespaced_pod(NS, label_selector="app=api").items}
+    apps.patch_namespaced_deployment("api", NS, {"spec": {"template": {"spec": {"containers": [
+        {"name": "c", "resources": {"requests": {"cpu": "200m"}}}]}}}})
+    mid = apps.read_namespaced_deployment("api", NS).status
+    # Deployment docs (rolling update, "Progressing"): during the rollout the old pods keep
+    # serving while new ones start; the condition says ReplicaSetUpdated
+    assert mid.updated_replicas == 2 and mid.replicas == 4 and mid.ready_replicas == 2
+    prog = {c.type: c for c in mid.conditions}["Progressing"]
+    assert prog.reason == "ReplicaSetUpdated"
+    pods = core.list_namespaced_pod(NS, label_selector="app=api").items
+    assert old <= {p.metadata.name for p in pods}
+    _wait(lambda: {c.type: c.reason for c in apps.read_namespaced_deployment(
+        "api", NS).status.conditions}["Progressing"] == "NewReplicaSetAvailable")
+    done = core.list_namespaced_pod(NS, label_selector="app=api").items
+    assert len(done) == 2 and not old & {p.metadata.name for p in done}
+    assert {p.spec.containers[0].resources.requests["cpu"] for p in done} == {"200m"}
+    api.close()
+
+
+def test_startup_delay_statefulset_replaces_highest_ordinal_first(slow_sandbox) -> None:
+    api = slow_sandbox.api_client()
+    apps = client.AppsV1Api(api)
+    apps.create_namespaced_stateful_set(NS, {
+        "metadata": {"name": "db"},
+        "spec": {"replicas": 3, "serviceName": "db", "selector": {"matchLabels": {"app": "db"}},
+                 "template": {"metadata": {"labels": {"app": "db"}}, "spec": {"containers": [
+                     {"name": "c", "image": "i:1"}]}}}})
+    _wait(lambda: (apps.read_namespaced_stateful_set("db", NS).status.ready_replicas or 0)
+          == 3)
+    start = slow_sandbox.store.resource_version
+    apps.patch_namespaced_stateful_set("db", NS, {"spec": {"template": {"metadata": {
+        "annotations": {"rev": "2"}}}}})
+    _wait(lambda: apps.read_namespaced_stateful_set("db", NS).status.updated_replicas == 3
+          and apps.read_namespaced_stateful_set("db", NS).status.ready_replicas == 3)
+    deleted = [c.obj["metadata"]["name"] for c in slow_sandbox.store.changes_after(start)
+               if c.key == ("", "pods") and c.type == "DELETED"]
+    # StatefulSet docs (RollingUpdate): pods are updated one at a time, from the highest
+    # ordinal to the lowest, each waiting for the previous one to be Running and Ready
+    assert deleted == ["db-2", "db-1", "db-0"]
+    st = apps.read_namespaced_stateful_set("db", NS).status
+    assert st.current_revision == st.update_revision
+    api.close()

@@ -56,6 +56,10 @@ def register(sub: argparse._SubParsersAction) -> None:
                         "410 Gone (default 1000)")
     p.add_argument("--bookmark-interval", type=float, default=5.0, metavar="SECONDS",
                    help="how often watches with allowWatchBookmarks get a BOOKMARK (default 5)")
+    p.add_argument("--startup-seconds", type=float, default=0.0, metavar="SECONDS",
+                   help="pods start Pending and turn Running/Ready after this delay; rollouts "
+                        "then surge and wait (Deployments) or go one pod at a time, highest "
+                        "ordinal first (StatefulSets). Default 0: everything at once")
     p.add_argument("--access-log", action="store_true",
                    help="print one line per request on stderr (method, path, status, time)")
     p.set_defaults(handler=_run)
@@ -69,7 +73,8 @@ def _run(args: argparse.Namespace) -> int:
               "any client without authentication", file=sys.stderr)
     sb = SandboxServer(host=args.host, port=args.port, load=args.load, history=args.history,
                        bookmark_interval=args.bookmark_interval,
-                       access_log=sys.stderr if args.access_log else None)
+                       access_log=sys.stderr if args.access_log else None,
+                       startup_seconds=args.startup_seconds)
     if args.load:
         print(f"ratefit sandbox: loading {len(args.load)} path(s)…", file=sys.stderr)
     sb.start()

@@ -93,11 +93,12 @@ class Api:
 
     def __init__(self, store: Store, *, bookmark_interval: float = 1.0,
                  stopping: threading.Event | None = None,
-                 node_allocatable: dict[str, str] | None = None) -> None:
+                 node_allocatable: dict[str, str] | None = None,
+                 startup_seconds: float = 0.0) -> None:
         self.store = store
         #: what the one (pretend) node can give a pod; larger resizes are Infeasible
         self.node_allocatable = dict(node_allocatable or NODE_ALLOCATABLE)
-        self.workloads = Workloads(store)
+        self.workloads = Workloads(store, startup_seconds=startup_seconds)
         self.bookmark_interval = bookmark_interval
         self.stopping = stopping or threading.Event()
 
@@ -296,6 +297,8 @@ class Api:
                 obj["metadata"].pop("resourceVersion", None)
                 return self._shape(r.rtype, obj)
             saved = self.store.save(r.rtype.key, obj, None)
+            if r.rtype.key == PODS:
+                self.workloads.after_pod_create(saved)
             self._after_write(r.rtype, saved)
             return self._shape(r.rtype, saved)
 
@@ -327,7 +330,7 @@ class Api:
                 raise validation.bad_quantity(rt.kind, rt.version, exc) from exc
             errs += validation.pod_spec_errors(obj.get("spec"), "spec")
             if old is None and not errs:
-                prepare_pod(obj)
+                prepare_pod(obj, pending=self.workloads.delayed)
             elif old is not None:
                 errs += validation.pod_update_errors(obj, old)
         elif key in _WORKLOADS:

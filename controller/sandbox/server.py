@@ -287,7 +287,8 @@ class SandboxServer:
                  load: Iterable[str | Path] = (), history: int = 1000,
                  bookmark_interval: float = 1.0,
                  node_allocatable: dict[str, str] | None = None,
-                 access_log: TextIO | None = None) -> None:
+                 access_log: TextIO | None = None,
+                 startup_seconds: float = 0.0) -> None:
         self.host = host
         self._port = port
         #: where to write one line per request (None: no access log)
@@ -299,7 +300,8 @@ class SandboxServer:
         self._requests_lock = threading.Lock()
         self._stopping = threading.Event()
         self.api = Api(self.store, bookmark_interval=bookmark_interval, stopping=self._stopping,
-                       node_allocatable=node_allocatable)
+                       node_allocatable=node_allocatable, startup_seconds=startup_seconds)
+        self._ticker: threading.Thread | None = None
         self._httpd: _HTTPServer | None = None
         self._thread: threading.Thread | None = None
         for ns in DEFAULT_NAMESPACES:
@@ -353,7 +355,16 @@ class SandboxServer:
                                         kwargs={"poll_interval": 0.1},
                                         name="ratefit-sandbox", daemon=True)
         self._thread.start()
+        if self.api.workloads.delayed:
+            self._ticker = threading.Thread(target=self._tick_forever, name="ratefit-sandbox-pods",
+                                            daemon=True)
+            self._ticker.start()
         return self
+
+    def _tick_forever(self) -> None:
+        step = min(0.05, self.api.workloads.startup_seconds / 4)
+        while not self._stopping.wait(step):
+            self.api.workloads.tick()
 
     def stop(self) -> None:
         """Stop serving; ends open watches and connections."""
@@ -373,6 +384,9 @@ class SandboxServer:
         if self._thread is not None:
             self._thread.join(timeout=5)
             self._thread = None
+        if self._ticker is not None:
+            self._ticker.join(timeout=5)
+            self._ticker = None
 
     def serve_forever(self) -> None:
         """Block until interrupted (for the CLI)."""

@@ -16,6 +16,7 @@
 from __future__ import annotations
 
 import copy
+import time
 from typing import Any
 
 from ratefit.controller.sandbox import objects
@@ -81,7 +82,29 @@ def running_status(pod: dict) -> dict:
     }
 
 
-def prepare_pod(pod: dict) -> None:
+def pending_status(pod: dict) -> dict:
+    """A pod whose containers are still being created (startup delay mode)."""
+    status = running_status(pod)
+    status["phase"] = "Pending"
+    for c in status["conditions"]:
+        if c["type"] in ("Ready", "ContainersReady"):
+            c["status"] = "False"
+            c["reason"] = "ContainersNotReady"
+    status.pop("podIP")
+    status.pop("podIPs")
+    for cs in status["containerStatuses"]:
+        cs.update(ready=False, started=False,
+                  state={"waiting": {"reason": "ContainerCreating"}})
+    return status
+
+
+def is_ready(pod: dict) -> bool:
+    st = pod.get("status") or {}
+    return st.get("phase") == "Running" and any(
+        c.get("type") == "Ready" and c.get("status") == "True" for c in st.get("conditions") or [])
+
+
+def prepare_pod(pod: dict, *, pending: bool = False) -> None:
     """Defaulting a new pod gets and the status the (absent) kubelet would report."""
     spec = pod.setdefault("spec", {})
     default_pod_spec(spec)
@@ -89,14 +112,67 @@ def prepare_pod(pod: dict) -> None:
     spec.setdefault("nodeName", NODE)
     spec.setdefault("enableServiceLinks", True)
     spec.setdefault("priority", 0)
-    pod["status"] = running_status(pod)
+    pod["status"] = pending_status(pod) if pending else running_status(pod)
 
 
 class Workloads:
     """Runs the built-in rollout after writes to Deployments, StatefulSets and pods."""
 
-    def __init__(self, store: Store) -> None:
+    def __init__(self, store: Store, *, startup_seconds: float = 0.0) -> None:
         self.store = store
+        #: 0: pods are Running at once; > 0: pods start Pending and turn Ready after this
+        #: many seconds (`tick()`), and rollouts wait for them (surge, then scale down)
+        self.startup_seconds = startup_seconds
+        self._pending: dict[tuple[str, str, str], float] = {}
+
+    @property
+    def delayed(self) -> bool:
+        return self.startup_seconds > 0
+
+    def after_pod_create(self, pod: dict) -> None:
+        if (pod.get("status") or {}).get("phase") == "Pending":
+            md = pod["metadata"]
+            self._pending[(md.get("namespace", ""), md["name"], md["uid"])] = \
+                time.monotonic() + self.startup_seconds
+
+    def tick(self, now: float | None = None) -> int:
+        """Turn due Pending pods Running/Ready and resync their owners; returns how many."""
+        now = time.monotonic() if now is None else now
+        done = 0
+        with self.store.lock:
+            for key, due in sorted(self._pending.items(), key=lambda kv: kv[1]):
+                if due > now:
+                    continue
+                del self._pending[key]
+                ns, name, uid = key
+                pod = self.store.raw(PODS, ns, name)
+                if pod is None or pod["metadata"].get("uid") != uid:
+                    continue
+                new = copy.deepcopy(pod)
+                started = (pod.get("status") or {}).get("startTime")
+                new["status"] = running_status(new)
+                if started:
+                    new["status"]["startTime"] = started
+                self.store.save(PODS, new, pod)
+                done += 1
+                self._resync_owners(new)
+        return done
+
+    def _resync_owners(self, pod: dict) -> None:
+        ns = pod["metadata"].get("namespace", "")
+        for ref in pod["metadata"].get("ownerReferences") or []:
+            if ref.get("kind") == "StatefulSet":
+                sts = self.store.raw(STS, ns, ref.get("name"))
+                if sts is not None:
+                    self.sync_statefulset(copy.deepcopy(sts))
+            elif ref.get("kind") == "ReplicaSet":
+                rs = self.store.raw(RS, ns, ref.get("name"))
+                for dref in (rs or {}).get("metadata", {}).get("ownerReferences") or []:
+                    dep = self.store.raw(DEPLOY, ns, dref.get("name"))
+                    if dep is not None:
+                        self.sync_deployment(copy.deepcopy(dep))
+                if rs is not None and not rs["metadata"].get("ownerReferences"):
+                    self.sync_replicaset(copy.deepcopy(rs))
 
     # --- helpers ------------------------------------------------------------------------
     def _create(self, key: tuple[str, str], obj: dict) -> dict:
@@ -142,8 +218,10 @@ class Workloads:
         pod["metadata"]["uid"] = objects.new_uid()
         pod["metadata"]["creationTimestamp"] = objects.now()
         pod["metadata"]["generation"] = 1
-        prepare_pod(pod)
-        return self.store.save(PODS, pod, None)
+        prepare_pod(pod, pending=self.delayed)
+        saved = self.store.save(PODS, pod, None)
+        self.after_pod_create(saved)
+        return saved
 
     # --- entry points -------------------------------------------------------------------
     def after_write(self, key: tuple[str, str], obj: dict) -> None:
@@ -209,13 +287,17 @@ class Workloads:
             new["spec"]["replicas"] = replicas
             new["metadata"]["generation"] = new["metadata"].get("generation", 1) + 1
             current = self._update(RS, new, current)
+        self.sync_replicaset(current)
+        new_pods = self.store.dependents(current["metadata"]["uid"], PODS)
+        settled = not self.delayed or (len(new_pods) >= replicas
+                                       and all(is_ready(p) for p in new_pods))
         for rs in owned:
-            if rs["metadata"]["name"] != rs_name and rs["spec"].get("replicas", 0) != 0:
+            if rs["metadata"]["name"] != rs_name and rs["spec"].get("replicas", 0) != 0 \
+                    and settled:
                 new = copy.deepcopy(rs)
                 new["spec"]["replicas"] = 0
                 new["metadata"]["generation"] = new["metadata"].get("generation", 1) + 1
                 self.sync_replicaset(self._update(RS, new, rs))
-        self.sync_replicaset(current)
         limit = spec.get("revisionHistoryLimit", 10)
         old = sorted((rs for rs in self.store.dependents(uid, RS)
                       if rs["metadata"]["name"] != rs_name),
@@ -235,21 +317,36 @@ class Workloads:
         for rs in self.store.dependents(uid, RS):
             pods = self.store.dependents(rs["metadata"]["uid"], PODS)
             total += len(pods)
-            ready += sum(1 for p in pods if (p.get("status") or {}).get("phase") == "Running")
+            ready += sum(1 for p in pods if is_ready(p))
             if rs["metadata"]["name"].endswith(f"-{h}"):
                 updated += len(pods)
+                new_ready = sum(1 for p in pods if is_ready(p))
                 new_rs = rs["metadata"]["name"]
-        want = (dep.get("spec") or {}).get("replicas", 1)
+        spec = dep.get("spec") or {}
+        want = spec.get("replicas", 1)
         old_status = dep.get("status") or {}
         t = objects.now()
+        max_unavailable = ((spec.get("strategy") or {}).get("rollingUpdate") or {}).get(
+            "maxUnavailable", "25%")
+        if isinstance(max_unavailable, str) and max_unavailable.endswith("%"):
+            max_unavailable = want * int(max_unavailable[:-1] or 0) // 100
+        elif not isinstance(max_unavailable, int):
+            max_unavailable = 0
+        rolled = updated >= want and total <= updated and locals().get("new_ready", 0) >= want
 
-        def cond(ty: str, reason: str, message: str) -> dict:
+        def cond(ty: str, ok: bool, reason: str, message: str) -> dict:
             prev = next((c for c in old_status.get("conditions") or [] if c.get("type") == ty),
                         None)
-            same = prev and prev.get("status") == "True" and prev.get("reason") == reason
-            return {"type": ty, "status": "True", "lastUpdateTime": prev["lastUpdateTime"]
-                    if same else t, "lastTransitionTime": prev["lastTransitionTime"]
-                    if same else t, "reason": reason, "message": message}
+            state = "True" if ok else "False"
+            same = prev and prev.get("status") == state
+            return {"type": ty, "status": state,
+                    "lastUpdateTime": prev["lastUpdateTime"]
+                    if same and prev.get("reason") == reason else t,
+                    "lastTransitionTime": prev["lastTransitionTime"] if same else t,
+                    "reason": reason, "message": message}
+
+        available = ready >= want - max_unavailable
+        rs_name = locals().get("new_rs", md["name"])
 
         status: dict[str, Any] = {
             "observedGeneration": md.get("generation", 1),
@@ -258,11 +355,14 @@ class Workloads:
             "readyReplicas": ready,
             "availableReplicas": ready,
             "conditions": [
-                cond("Available", "MinimumReplicasAvailable",
-                     "Deployment has minimum availability."),
-                cond("Progressing", "NewReplicaSetAvailable",
-                     f'ReplicaSet "{locals().get("new_rs", md["name"])}" has successfully '
-                     "progressed."),
+                cond("Available", True, "MinimumReplicasAvailable",
+                     "Deployment has minimum availability.") if available else
+                cond("Available", False, "MinimumReplicasUnavailable",
+                     "Deployment does not have minimum availability."),
+                cond("Progressing", True, "NewReplicaSetAvailable",
+                     f'ReplicaSet "{rs_name}" has successfully progressed.') if rolled else
+                cond("Progressing", True, "ReplicaSetUpdated",
+                     f'ReplicaSet "{rs_name}" is progressing.'),
             ],
         }
         if want - ready > 0:
@@ -290,12 +390,14 @@ class Workloads:
             while self.store.raw(PODS, ns, name) is not None:
                 name = f"{md['name']}-{objects.rand_suffix()}"
             self._new_pod(template, namespace=ns, name=name, labels=dict(labels), owner=rs)
-        count = len(self.store.dependents(uid, PODS))
+        pods = self.store.dependents(uid, PODS)
+        count = len(pods)
+        ready = sum(1 for p in pods if is_ready(p))
         fresh = self.store.raw(RS, ns, md["name"])
         if fresh is None:
             return
-        status = {"replicas": count, "fullyLabeledReplicas": count, "readyReplicas": count,
-                  "availableReplicas": count,
+        status = {"replicas": count, "fullyLabeledReplicas": count, "readyReplicas": ready,
+                  "availableReplicas": ready,
                   "observedGeneration": fresh["metadata"].get("generation", 1)}
         status = {k: v for k, v in status.items() if v or k == "replicas"}
         if fresh.get("status") != status:
@@ -316,27 +418,48 @@ class Workloads:
             if suffix.isdigit():
                 ordinals[int(suffix)] = p
         for i in sorted(ordinals, reverse=True):
-            pod = ordinals[i]
-            stale = pod["metadata"].get("labels", {}).get("controller-revision-hash") != rev
-            if i >= replicas or stale:
-                self.store.remove(PODS, ns, pod["metadata"]["name"])
-                del ordinals[i]
+            if i >= replicas:
+                self.store.remove(PODS, ns, ordinals.pop(i)["metadata"]["name"])
+        old_rev = next((p["metadata"].get("labels", {}).get("controller-revision-hash")
+                        for p in ordinals.values()
+                        if p["metadata"].get("labels", {}).get("controller-revision-hash")
+                        != rev), None)
+        stale = [i for i in sorted(ordinals, reverse=True)
+                 if ordinals[i]["metadata"].get("labels", {}).get("controller-revision-hash")
+                 != rev]
+        all_ready = all(is_ready(p) for p in ordinals.values())
+        # without a startup delay everything is replaced at once; with one, like
+        # OrderedReady + RollingUpdate: one pod at a time, highest ordinal first
+        for i in (stale if not self.delayed else stale[:1] if all_ready else []):
+            self.store.remove(PODS, ns, ordinals.pop(i)["metadata"]["name"])
         for i in range(replicas):
             if i in ordinals:
                 continue
+            if self.delayed and not all(is_ready(p) for p in ordinals.values()):
+                break
+            if self.delayed and any(j not in ordinals for j in range(i)):
+                break
             labels = dict((template.get("metadata") or {}).get("labels") or {})
             labels.update({"controller-revision-hash": rev,
                            "statefulset.kubernetes.io/pod-name": f"{name}-{i}",
                            "apps.kubernetes.io/pod-index": str(i)})
-            self._new_pod(template, namespace=ns, name=f"{name}-{i}", labels=labels, owner=sts)
+            ordinals[i] = self._new_pod(template, namespace=ns, name=f"{name}-{i}",
+                                        labels=labels, owner=sts)
         fresh = self.store.raw(STS, ns, name)
         if fresh is None:
             return
-        count = len(self.store.dependents(md["uid"], PODS))
+        pods = self.store.dependents(md["uid"], PODS)
+        count = len(pods)
+        ready = sum(1 for p in pods if is_ready(p))
+        updated = sum(1 for p in pods
+                      if p["metadata"].get("labels", {}).get("controller-revision-hash") == rev)
+        done = updated == count == replicas
         status = {"observedGeneration": fresh["metadata"].get("generation", 1),
-                  "replicas": count, "readyReplicas": count, "currentReplicas": count,
-                  "updatedReplicas": count, "availableReplicas": count,
-                  "currentRevision": rev, "updateRevision": rev, "collisionCount": 0}
+                  "replicas": count, "readyReplicas": ready,
+                  "currentReplicas": count if done else count - updated,
+                  "updatedReplicas": updated, "availableReplicas": ready,
+                  "currentRevision": rev if done or not old_rev else old_rev,
+                  "updateRevision": rev, "collisionCount": 0}
         status = {k: v for k, v in status.items() if v != 0 or k in ("replicas",
                                                                         "collisionCount")}
         if fresh.get("status") != status:
