@@ -17,13 +17,11 @@ from __future__ import annotations
 
 import json
 import math
-import os
 import subprocess
 import sys
 from pathlib import Path
 
 import httpx
-import numpy as np
 import pytest
 
 from api_fixtures import serve_process
@@ -193,29 +191,3 @@ def test_apply_patches_exactly_the_changed_containers_and_a_second_pass_changes_
         assert {k: v for k, v in rvs(sb.url).items() if "/apis/apps/" in k} == first  # nothing changed
     finally:
         sb.stop()
-
-
-@pytest.mark.cluster
-def test_plan_against_a_real_cluster_changes_nothing(parts) -> None:
-    """With RATEFIT_CLUSTER_KUBECONFIG (a cluster where the scenario's workloads, the CRD
-    and manifests/examples are applied): `ratefit plan` answers and changes nothing."""
-    kc = os.environ.get("RATEFIT_CLUSTER_KUBECONFIG")
-    if not kc:
-        pytest.skip("set RATEFIT_CLUSTER_KUBECONFIG to run against a real cluster")
-    from ratefit.controller.kube import KubeAdapter
-
-    hist, api_url, _ = parts
-    kube = KubeAdapter.from_kubeconfig(kc)
-    try:
-        def versions() -> dict[str, str]:
-            out = {p.namespace + "/" + p.name: p.resource_version for p in kube.list_policies().items}
-            for kind in ("Deployment", "StatefulSet"):
-                out.update({w.key: w.resource_version for w in kube.list_workloads(kind)})
-            return out
-
-        before = versions()
-        rows = plan(Path(kc), hist.url, api_url, hist.end)
-        assert isinstance(rows, list)
-        assert versions() == before
-    finally:
-        kube.close()
