@@ -224,7 +224,9 @@ def main() -> int:
               f"batched sizing call {ph.get('gather_sizing', 0):.2f} s], decide {ph.get('decide', 0):.3f} s, act {ph.get('act', 0):.2f} s")
         print(f"  controller CPU {ps['cpu_s']:.2f} s: gather {ph.get('gather_cpu', 0):.2f} s (JSON decoding, client), "
               f"decide {ph.get('decide_cpu', 0):.3f} s, act {ph.get('act_cpu', 0):.3f} s")
-        print(f"  CPU outside I/O (decide + bookkeeping): {ps['cpu_outside_io_us_per_container']} µs per container (goal < 100 µs)")
+        share = ps["cpu_outside_io_us_per_container"] * ps["containers"] / 1e6 / max(ps["cpu_s"], 1e-9)
+        print(f"  CPU outside I/O (decide + bookkeeping): {ps['cpu_outside_io_us_per_container']} µs per container "
+              f"(goal < 100 µs), {100 * share:.0f}% of the controller's CPU; the rest is I/O (HTTP, JSON)")
         print(f"  review as JSON: {ps['review_json_cpu_s']:.2f} s CPU, {ps['review_bytes'] / 1e6:.1f} MB")
         if ps["errors"]:
             print(f"  errors: {ps['errors']}")
