@@ -12,6 +12,8 @@ error handlers and the lifespan. No route logic lives here (see ``models.api_rou
 
 from __future__ import annotations
 
+import asyncio
+import contextlib
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
@@ -72,7 +74,18 @@ def create_app(
             # this coroutine stays suspended at the yield for the app's whole life: holding
             # the report would keep the first snapshot alive after every later reload
             del report
-        yield
+        ticker = (
+            asyncio.create_task(_reload_every(settings.reload_interval, api_state, metrics))
+            if settings.reload_interval
+            else None
+        )
+        try:
+            yield
+        finally:
+            if ticker is not None:
+                ticker.cancel()
+                with contextlib.suppress(asyncio.CancelledError):
+                    await ticker
 
     app = FastAPI(
         title="ratefit sizing API",
@@ -122,6 +135,20 @@ def create_app(
     # added last, so outermost: it times and counts the fast path's answers too
     app.add_middleware(TelemetryMiddleware, metrics=metrics, access_logger=settings.access_logger)
     return app
+
+
+async def _reload_every(seconds: float, state: ApiState, metrics: ApiMetrics) -> None:
+    """``--reload-interval``: reload in a worker thread, forever; never dies of an error."""
+    while True:
+        await asyncio.sleep(seconds)
+        try:
+            report = await run_in_threadpool(state.reload)
+        except Exception:  # noqa: BLE001 - keep the ticker alive; the error is logged
+            log.exception("periodic store reload failed")
+            metrics.reloads.labels("failed").inc()
+            continue
+        metrics.reloads.labels(report.result).inc()
+        del report
 
 
 def _version() -> str:

@@ -95,6 +95,9 @@ class ApiSettings(BaseModel):
     max_batch: Annotated[int, Field(ge=1, le=10_000_000)] = DEFAULT_MAX_BATCH
     #: name of the logger the access log goes to (one JSON object per line)
     access_logger: str = "ratefit.api.access"
+    #: re-read the store every so many seconds (None: only on ``POST /v1/reload``); a
+    #: reload only re-verifies files that changed, so a short interval is cheap
+    reload_interval: Annotated[float, Field(gt=0)] | None = None
 
 
 # -- requests ---------------------------------------------------------------------------

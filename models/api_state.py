@@ -270,6 +270,16 @@ class ApiState:
                     seconds=time.perf_counter() - started,
                     error=message,
                 )
+            if previous is not None and new.version == previous.version and new.refused == previous.refused:
+                # nothing changed: keep serving the snapshot in place (no swap, no churn)
+                return ReloadReport(
+                    ok=True,
+                    snapshot=previous,
+                    previous_version=previous.version,
+                    unchanged=len(previous),
+                    seconds=time.perf_counter() - started,
+                    refused=previous.refused,
+                )
             self._generation += 1
             self._snapshot = new  # the swap: one reference assignment
             old = previous.models if previous is not None else {}

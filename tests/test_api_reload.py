@@ -238,3 +238,44 @@ def test_old_snapshots_are_freed_after_reloads(tmp_path: Path) -> None:
         alive = [r() is not None for r in refs]
         assert alive == [False, False, False]
         assert app.state.api_state.snapshot.generation == 4
+
+
+def test_reload_interval_picks_up_new_artifacts(tmp_path: Path) -> None:
+    from fastapi.testclient import TestClient
+
+    from ratefit.models.api import ApiSettings, create_app
+
+    store = ModelStore(tmp_path / "store")
+    _write_round(store, demo_keys(2), 0)
+    app = create_app(ApiSettings(store=tmp_path / "store", reload_interval=0.1))
+    with TestClient(app) as c:
+        assert len(c.get("/v1/models").json()["models"]) == 2
+        newcomer = "shop/late-arrival/app"
+        art = make_artifact(newcomer, slope=0.01)
+        store.save(art)
+        deadline = time.monotonic() + 20
+        while time.monotonic() < deadline:
+            r = c.get(f"/v1/models/{newcomer}/demand", params={"rate": 10})
+            if r.status_code == 200:
+                break
+            time.sleep(0.05)
+        assert r.status_code == 200 and r.json() == expected(art, 10.0)
+    # the ticker was stopped with the app: no reload after the lifespan ended
+    gen = app.state.api_state.snapshot.generation
+    time.sleep(0.3)
+    assert app.state.api_state.snapshot.generation == gen
+
+
+def test_serve_cli_checks_the_reload_interval(tmp_path: Path) -> None:
+    import subprocess
+
+    from api_fixtures import RATEFIT
+
+    (tmp_path / "store").mkdir()
+    out = subprocess.run(
+        [str(RATEFIT), "serve", "--store", str(tmp_path / "store"), "--reload-interval", "soon"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+    assert out.returncode == 2 and "--reload-interval" in out.stderr

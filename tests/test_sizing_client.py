@@ -27,7 +27,10 @@ def server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[str, dict
     work = tmp_path_factory.mktemp("client")
     write_store(work / "store", 12)
     arts = ModelStore(work / "store").load_all().artifacts
-    with serve_process(work / "store", token=TOKEN, workdir=work, log_level="warning") as srv:
+    # --reload-interval exercised too: a periodic reload must not disturb the answers
+    with serve_process(
+        work / "store", token=TOKEN, workdir=work, log_level="warning", extra_args=["--reload-interval", "300ms"]
+    ) as srv:
         yield srv.base_url, arts
 
 

@@ -66,6 +66,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="most items accepted in one POST /v1/demand (default 50000)",
     )
     p.add_argument(
+        "--reload-interval",
+        metavar="DURATION",
+        default=None,
+        help="also re-read the store every DURATION (e.g. 30s, 5m); only changed files are "
+        "verified again. Default: only on POST /v1/reload",
+    )
+    p.add_argument(
         "--log-level",
         default="info",
         choices=["debug", "info", "warning", "error"],
@@ -128,6 +135,10 @@ def _run(args: argparse.Namespace) -> int:
     settings_kw: dict[str, object] = {"store": store, "token": token}
     if args.max_batch is not None:
         settings_kw["max_batch"] = args.max_batch
+    if args.reload_interval is not None:
+        from ratefit.models.durations import parse_duration
+
+        settings_kw["reload_interval"] = parse_duration(args.reload_interval, field="--reload-interval")
     try:
         settings = ApiSettings(**settings_kw)  # type: ignore[arg-type]
     except ValueError as exc:
