@@ -54,3 +54,30 @@ def test_demo_prints_the_review_and_stops_everything(tmp_path, source) -> None:
     for url in urls:
         with pytest.raises(httpx.HTTPError):
             httpx.get(url + "/-/ready", timeout=2)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("sig", ["SIGINT", "SIGTERM"])
+def test_demo_interrupted_stops_everything(tmp_path, sig) -> None:
+    import signal
+    import time
+
+    proc = subprocess.Popen([str(RATEFIT), "demo", "--out", str(tmp_path / "out"), "--hours", "4", "--replay"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    seen = []
+    deadline = time.monotonic() + 120
+    while time.monotonic() < deadline:
+        line = proc.stderr.readline()
+        if not line:
+            break
+        seen.append(line)
+        if "sizing API: ratefit serve at" in line:
+            break
+    urls = re.findall(r"ratefit serve at (http://127\.0\.0\.1:\d+)", "".join(seen))
+    assert urls, "".join(seen)
+    assert httpx.get(urls[0] + "/healthz", timeout=5).status_code == 200  # it is up …
+    proc.send_signal(getattr(signal, sig))
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err  # the CLI's exit status for an interrupt
+    with pytest.raises(httpx.HTTPError):  # … and stopped
+        httpx.get(urls[0] + "/healthz", timeout=2)

@@ -37,8 +37,15 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
+    import signal
+
     from ratefit.controller.demo import run_demo
     from ratefit.controller.review import render
+
+    def on_term(signum: int, frame: object) -> None:
+        raise KeyboardInterrupt  # unwinds run_demo, which stops everything it started
+
+    signal.signal(signal.SIGTERM, on_term)
 
     res = run_demo(out=Path(args.out), keep=args.keep, hours=args.hours, use_prometheus=False if args.replay else None)
     later = res.simulated_at.strftime("%Y-%m-%d %H:%M:%SZ")
