@@ -225,7 +225,7 @@ def shared_sizing_api(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]
 @contextlib.contextmanager
 def world(tmp: Path, *, objects: Sequence[Mapping[str, Any]], rates: Mapping[tuple[str, str], Sequence[float]],
           models: Mapping[str, Mapping[str, float]] | None = None, api_url: str | None = None,
-          end: float | None = None) -> Iterator[World]:
+          end: float | None = None, sandbox: Mapping[str, Any] | None = None) -> Iterator[World]:
     """Start the sandbox (CRD + ``objects``) and write the rate history. The sizing API is
     ``api_url`` (e.g. the session's :func:`shared_sizing_api`) or, given ``models``, a real
     ``ratefit serve`` of its own with one linear curve per key (make_artifact kwargs)."""
@@ -239,7 +239,7 @@ def world(tmp: Path, *, objects: Sequence[Mapping[str, Any]], rates: Mapping[tup
             for key, kw in (models or {}).items():
                 store.save(make_artifact(key, **kw))
             api_url = stack.enter_context(serve_process(tmp / "store", workdir=tmp)).base_url
-        sb = SandboxServer(host="127.0.0.1", port=0, load=[CRD]).start()
+        sb = SandboxServer(host="127.0.0.1", port=0, load=[CRD], **dict(sandbox or {})).start()
         stack.callback(sb.stop)
         for obj in objects:
             sb.create(dict(obj))

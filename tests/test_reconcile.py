@@ -270,3 +270,32 @@ def test_invalid_policy_warns_once(tmp_path, shared_sizing_api) -> None:
         warnings = [e for e in w.events("shop") if e["reason"] == "PolicyInvalid"]
         assert len(warnings) == 1 and warnings[0]["type"] == "Warning"
         assert "spec.containers[0].floor" in warnings[0]["note"]
+
+
+def test_a_rolling_workload_keeps_its_rollout_slot_until_the_rollout_is_done(tmp_path, shared_sizing_api) -> None:
+    """Level-based slots: the workloads the cluster shows rolling out hold the slots
+    (updatedReplicas < replicas, Kubernetes Deployment status), whatever this process remembers."""
+    import time
+
+    from ratefit.controller.limits import RolloutSlots
+
+    names = ("a", "b")
+    objects = [o for n in names for o in (
+        deployment("shop", n, [("app", "100m", None)], replicas=1),
+        policy("shop", n, workload=n, containers=[{"name": "app", "model": f"shop/{n}/app"}]))]
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", n): [50.0] for n in names},
+               sandbox={"startup_seconds": 2.0}) as w:
+        time.sleep(2.5)  # the first pods become ready
+        rec = w.reconciler(budget=Budget(slots=RolloutSlots(1)))
+        r1 = rec.run_pass()
+        assert r1.patched == ("shop/Deployment/a",)
+        r2 = rec.run_pass()  # a is still rolling out: its slot stays taken
+        assert r2.patched == () and {row.workload: row.why[0] for row in r2.rows}["b"] == "BudgetSpent"
+        deadline = time.monotonic() + 20
+        while True:
+            r3 = rec.run_pass()
+            if r3.patched or time.monotonic() > deadline:
+                break
+            time.sleep(0.5)
+        assert r3.patched == ("shop/Deployment/b",)
+        assert parse_cpu(w.cpu("shop", "b", "app")[0]) == 315
