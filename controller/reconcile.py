@@ -98,6 +98,7 @@ __all__ = [
     "Reconciler",
     "crash_hook_from_env",
     "policy_object_dict",
+    "shard_of",
 ]
 
 log = logging.getLogger("ratefit.controller.reconcile")
@@ -175,6 +176,17 @@ class ReconcileConfig:
     identity: str = "ratefit"
     #: re-read/recompute/retry rounds after a 409 on a patch
     conflict_attempts: int = 3
+    #: (index, count): act only on policies whose namespace hashes to this shard
+    #: (DESIGN.md "Scale path"; each shard runs its own replicas and its own Lease)
+    shard: tuple[int, int] | None = None
+
+
+def shard_of(namespace: str, count: int) -> int:
+    """The shard (0 … count−1) of a namespace: CRC-32 of its name (stable across
+    processes and versions, unlike Python's ``hash``) modulo ``count``."""
+    import zlib
+
+    return zlib.crc32(namespace.encode("utf-8")) % count
 
 
 def crash_hook_from_env(value: str | None) -> Callable[[str], None] | None:
@@ -350,6 +362,9 @@ class Reconciler:
     def _gather(self, now: datetime, errors: list[str]) -> list[_Entry]:
         t_g0 = time.perf_counter()
         objs = list(self.kube.list_policies(list(self.config.namespaces) or None).items)
+        if self.config.shard is not None:
+            index, count = self.config.shard
+            objs = [o for o in objs if shard_of(o.namespace, count) == index]
         entries = [_Entry(obj=o) for o in sorted(objs, key=lambda o: (o.namespace, o.name))]
         window_texts: dict[float, str] = {}
 

@@ -158,7 +158,7 @@ class World:
     def reconciler(self, *, kube: Any = None, rates: Any = None, sizing: Any = None, **kwargs: Any) -> Any:
         from ratefit.controller.reconcile import ReconcileConfig, Reconciler
 
-        cfg = {k: kwargs.pop(k) for k in ("dry_run", "write", "namespaces", "identity", "conflict_attempts") if k in kwargs}
+        cfg = {k: kwargs.pop(k) for k in ("dry_run", "write", "namespaces", "identity", "conflict_attempts", "shard") if k in kwargs}
         return Reconciler(kube=kube or self.kube(), rates=rates or self.rates(), sizing=sizing or self.sizing(),
                           config=ReconcileConfig(**cfg), **kwargs)
 

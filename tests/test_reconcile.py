@@ -299,3 +299,15 @@ def test_a_rolling_workload_keeps_its_rollout_slot_until_the_rollout_is_done(tmp
             time.sleep(0.5)
         assert r3.patched == ("shop/Deployment/b",)
         assert parse_cpu(w.cpu("shop", "b", "app")[0]) == 315
+
+
+def test_shards_split_the_policies_by_namespace(tmp_path, shared_sizing_api) -> None:
+    """DESIGN.md "Scale path": every policy belongs to exactly one shard."""
+    from ratefit.controller.reconcile import shard_of
+
+    objects = [deployment("shop", "web", [("app", "100m", None)]),
+               policy("shop", "web", workload="web", mode="dry-run", containers=[{"name": "app", "model": "shop/web/app"}])]
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
+        mine = shard_of("shop", 3)
+        seen = [len(w.reconciler(write=False, shard=(i, 3)).run_pass().rows) for i in range(3)]
+        assert seen == [1 if i == mine else 0 for i in range(3)]

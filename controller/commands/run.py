@@ -156,6 +156,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--lease-namespace", default="ratefit-system", help="namespace of the leader Lease (default %(default)s)")
     p.add_argument("--lease-name", default="ratefit-controller", help="name of the leader Lease (default %(default)s)")
     p.add_argument("--no-leader-election", action="store_true", help="act without a Lease (only ever run ONE replica like this)")
+    p.add_argument("--shard", metavar="I/N",
+                   help="act only on policies whose namespace hashes (CRC-32 mod N) to shard I of N; the Lease "
+                        "becomes <lease-name>-I-of-N, so each shard elects its own leader")
     p.add_argument("--once", action="store_true", help="run one pass and exit (as leader, when the Lease can be had)")
     p.add_argument("--log-level", default="INFO", help="log level (default %(default)s)")
     p.set_defaults(handler=_run)
@@ -179,6 +182,7 @@ def _run(args: argparse.Namespace) -> int:
     interval = parse_duration(args.interval, field="--interval")
     if interval <= 0:
         raise InputError("--interval must be longer than 0s")
+    shard = parse_shard(args.shard)
     conns = connect(args, identity=args.identity)
     telemetry = Telemetry()
     mono = time.monotonic
@@ -189,12 +193,13 @@ def _run(args: argparse.Namespace) -> int:
     reconciler = Reconciler(
         kube=conns.kube, rates=conns.rates, sizing=conns.sizing,
         config=ReconcileConfig(dry_run=args.dry_run, write=True, namespaces=tuple(args.namespace),
-                               identity=conns.kube.identity),
+                               identity=conns.kube.identity, shard=shard),
         budget=budget, backoff=ExponentialBackoff(base=5.0, cap=300.0, rng=random.Random()),
         telemetry=telemetry, crash_hook=crash_hook_from_env(os.environ.get("RATEFIT_CRASH_AT")),
     )
+    lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
     elector = None if args.no_leader_election else conns.kube.leader_elector(
-        namespace=args.lease_namespace, name=args.lease_name)
+        namespace=args.lease_namespace, name=lease_name)
     loop = ControllerLoop(
         run_pass=reconciler.run_pass, elector=elector, interval_s=interval,
         retry_period_s=getattr(elector, "retry_period", 2.0), renew_deadline_s=getattr(elector, "renew_deadline", 10.0),
@@ -228,6 +233,20 @@ def _run(args: argparse.Namespace) -> int:
             health.stop()
         conns.close()
         print("ratefit run: stopped", file=sys.stderr, flush=True)
+
+
+def parse_shard(text: str | None) -> tuple[int, int] | None:
+    """``"1/4"`` → (1, 4): shard index 1 of 4."""
+    if not text:
+        return None
+    i, sep, n = text.partition("/")
+    try:
+        index, count = int(i), int(n)
+    except ValueError:
+        index, count = -1, 0
+    if not sep or count < 1 or not 0 <= index < count:
+        raise InputError(f"--shard {text!r}: write I/N with 0 <= I < N, e.g. 0/2")
+    return index, count
 
 
 def _watch(kube: Any, namespaces: list[str], loop: Any, stop: Any) -> None:
