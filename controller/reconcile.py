@@ -603,15 +603,17 @@ class Reconciler:
                 pass
         return hist
 
-    def _decide_one(self, e: _Entry, now: datetime, mono: float) -> WorkloadDecision:
+    def _decide_one(self, e: _Entry, now: datetime, mono: float, *, spent: bool = False) -> WorkloadDecision:
+        """Decide one policy and take its share of the budget. ``spent``: the budget was
+        already taken for this workload this pass (a recompute after a conflict)."""
         p = e.policy
         apply = p.mode is Mode.APPLY and not self.config.dry_run and self.config.write
-        view = self.budget.view(mono) if apply else BudgetView()
+        view = self.budget.view(mono) if apply and not spent else BudgetView()
         wd = decide_workload(
             p, e.inputs, history=self._history(e), now=now, budget=view,
             hpa_on_cpu=e.hpa_on_cpu, dry_run=not apply,
         )
-        if wd.changed:
+        if wd.changed and not spent:
             retry_at = self._retry_at.get(p.workload_key)
             if retry_at is not None and mono < retry_at:
                 return wd.rejected(f"the API server failed earlier; backing off {retry_at - mono:.0f}s more")
@@ -718,7 +720,7 @@ class Reconciler:
                     errors.append(str(exc2))
                     return
                 self._refresh_inputs(e)
-                e.decision = self._decide_one(e, now, self._mono())
+                e.decision = self._decide_one(e, now, self._mono(), spent=True)
             except KubeInvalid as exc:
                 self.telemetry.patch_errors.labels(kind="KubeInvalid").inc()
                 e.decision = wd.rejected(f"the API server refused the change: {exc.server_message}")

@@ -17,7 +17,7 @@ import httpx
 
 # shared_sizing_api is a pytest fixture (one real `ratefit serve` per session)
 from reconcile_fixtures import shared_sizing_api, deployment, policy, world
-from ratefit.controller.limits import ExponentialBackoff
+from ratefit.controller.limits import Budget, ExponentialBackoff, TokenBucket
 from ratefit.controller.quantity import parse_cpu
 
 OBJECTS = [
@@ -40,9 +40,11 @@ def test_conflict_rereads_recomputes_and_patches_once(tmp_path, shared_sizing_ap
                                 headers={"Content-Type": "application/merge-patch+json"}, timeout=10)
                 r.raise_for_status()
 
-        rec = w.reconciler(crash_hook=someone_else_edits)
+        budget = Budget(bucket=TokenBucket.per_minute(2, now=0.0))
+        rec = w.reconciler(crash_hook=someone_else_edits, budget=budget, monotonic=lambda: 0.0)
         r = rec.run_pass()
         assert interfered and r.patched == ("shop/Deployment/web",)
+        assert budget.view(0.0).changes_left == 1  # the retry after the conflict took no second token
         obj = w.workload("shop", "web")
         assert obj["metadata"]["labels"]["team"] == "parcels"  # the other writer's change is kept
         assert parse_cpu(w.cpu("shop", "web", "app")[0]) == 315
