@@ -192,7 +192,12 @@ def serve_process(
         ]
         with open(log_path, "wb") as log_file:
             proc = subprocess.Popen(
-                cmd, stdout=log_file, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL, pass_fds=(listener.fileno(),)
+                cmd,
+                stdout=log_file,
+                stderr=subprocess.STDOUT,
+                stdin=subprocess.DEVNULL,
+                pass_fds=(listener.fileno(),),
+                preexec_fn=_die_with_parent,
             )
     finally:
         listener.close()  # the child holds its own copy
@@ -203,6 +208,17 @@ def serve_process(
         yield server
     finally:
         server.stop()
+
+
+def _die_with_parent() -> None:
+    """In the child, before exec: ask Linux to SIGTERM it when the test process dies,
+    even by SIGKILL (prctl PR_SET_PDEATHSIG), so a killed test run leaves no server."""
+    try:
+        import ctypes
+
+        ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGTERM)  # 1 = PR_SET_PDEATHSIG
+    except (OSError, AttributeError):  # not Linux: the context manager still stops it
+        pass
 
 
 def _wait_ready(server: ServeProcess, timeout: float) -> bool:
