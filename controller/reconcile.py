@@ -888,7 +888,11 @@ class Reconciler:
                                 note=f"{e.invalid.field}: {e.invalid.problem}")
             return n
         if e.decision is None:
-            return 0
+            old_ready = {c.get("type"): c for c in old_status.get("conditions") or []}.get(CONDITION_READY, {})
+            if old_ready.get("reason") != "WorkloadNotFound":
+                n += self._emit(e, reason="WorkloadNotFound", type_="Warning", action="Read",
+                                note=(e.problem or "the workload could not be read") + "; nothing is changed")
+            return n
         for d in e.decision.decisions:
             before = old_props.get(d.container)
             now_p = d.to_status()

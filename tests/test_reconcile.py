@@ -180,6 +180,8 @@ def test_missing_workload_gets_a_condition(tmp_path, shared_sizing_api) -> None:
         cond = {c["type"]: c for c in w.sizing_policy("shop", "ghost")["status"]["conditions"]}["Ready"]
         assert cond["status"] == "False" and cond["reason"] == "WorkloadNotFound"
         assert r.rows[0].why == ("WorkloadNotFound",)
+        w.reconciler().run_pass()
+        assert [(e["reason"], e["type"]) for e in w.events("shop")] == [("WorkloadNotFound", "Warning")]
 
 
 def test_telemetry_counts_decisions_and_patches(tmp_path, shared_sizing_api) -> None:
