@@ -64,7 +64,7 @@ from typing import Any
 from ratefit.controller.limits import BudgetView, Cooldown, round_up, step_limit
 from ratefit.controller.policy import (
     ContainerHistory,
-    ContainerPolicy,
+    ContainerRule,
     LimitsMode,
     Method,
     Mode,
@@ -297,7 +297,7 @@ def _inside_deadband(current_m: int, target_m: int, deadband: float) -> bool:
 
 
 def decide_container(
-    policy: Policy, container: ContainerPolicy, observed: ContainerInput, *, history: ContainerHistory, now: datetime
+    policy: Policy, container: ContainerRule, observed: ContainerInput, *, history: ContainerHistory, now: datetime
 ) -> Decision:
     """Steps 1–5 and 7 for one container; the verdict is ``changed`` or ``held``
     (the workload gates, dry-run and the budget come in :func:`decide_workload`)."""

@@ -46,7 +46,7 @@ __all__ = [
     "Method",
     "LimitsMode",
     "StepLimit",
-    "ContainerPolicy",
+    "ContainerRule",
     "Policy",
     "PolicyInvalid",
     "parse_policy",
@@ -236,7 +236,7 @@ class StepLimit:
 
 
 @dataclass(frozen=True)
-class ContainerPolicy:
+class ContainerRule:
     name: str
     model: str  # sizing API key namespace/workload/container
     rate_query: str | None  # PromQL giving per-pod rates; None: the controller's template
@@ -251,7 +251,7 @@ class Policy:
     generation: int | None
     workload_kind: str  # Deployment | StatefulSet
     workload_name: str
-    containers: tuple[ContainerPolicy, ...]
+    containers: tuple[ContainerRule, ...]
     mode: Mode = Mode.DRY_RUN
     method: Method = Method.ROLLOUT
     headroom: float = 0.15
@@ -275,7 +275,7 @@ class Policy:
         """``namespace/Kind/name`` of the workload (the cooldown and rollout key)."""
         return f"{self.namespace}/{self.workload_kind}/{self.workload_name}"
 
-    def container(self, name: str) -> ContainerPolicy:
+    def container(self, name: str) -> ContainerRule:
         for c in self.containers:
             if c.name == name:
                 return c
@@ -357,7 +357,7 @@ def _to_policy(spec: SizingPolicySpec, *, namespace: str, name: str, generation:
             raise bad(f"spec.{fname}", str(exc).split(": ", 1)[1]) from exc
     if spec.method is Method.IN_PLACE and spec.limits is LimitsMode.DROP:
         raise bad("spec.limits", "'drop' cannot be used with method 'in-place': a resize cannot remove a limit")
-    containers: list[ContainerPolicy] = []
+    containers: list[ContainerRule] = []
     seen: set[str] = set()
     for i, c in enumerate(spec.containers):
         where = f"spec.containers[{i}]"
@@ -376,7 +376,7 @@ def _to_policy(spec: SizingPolicySpec, *, namespace: str, name: str, generation:
             raise bad(f"{where}.floor", f"{c.floor!r} is above ceiling {c.ceiling!r}; floor must be <= ceiling")
         if c.rate_query is not None and not c.rate_query.strip():
             raise bad(f"{where}.rateQuery", "is empty; leave it out to use the controller's template")
-        containers.append(ContainerPolicy(name=c.name, model=c.model, rate_query=c.rate_query, floor_m=floor_m, ceiling_m=ceiling_m))
+        containers.append(ContainerRule(name=c.name, model=c.model, rate_query=c.rate_query, floor_m=floor_m, ceiling_m=ceiling_m))
     return Policy(
         namespace=namespace,
         name=name,
