@@ -35,7 +35,6 @@ from ratefit.controller.sandbox.workloads import Workloads, container_statuses, 
 JSON_PATCH = "application/json-patch+json"
 MERGE_PATCH = "application/merge-patch+json"
 STRATEGIC_PATCH = "application/strategic-merge-patch+json"
-APPLY_PATCH = "application/apply-patch+yaml"
 
 CRDS = ("apiextensions.k8s.io", "customresourcedefinitions")
 #: allocatable resources of the pretend node `sandbox-node`

@@ -2,7 +2,7 @@
 
 - Deployments: a template change makes a new ReplicaSet `<name>-<hash>` (label
   `pod-template-hash`), scales the old ones to zero and replaces their pods at once
-  (no surge, no waiting); pods are named `<name>-<hash>-<rand5>`.
+  (no waiting unless a startup delay is set); pods are named `<name>-<hash>-<rand5>`.
 - StatefulSets: pods `<name>-<ordinal>` with `controller-revision-hash`; on a template
   change, pods of the old revision are replaced highest ordinal first (all in one go).
 - Pods: no scheduler, no kubelet — a pod is `Running` and Ready the moment it is stored,
@@ -11,6 +11,9 @@
 - Workload status counters (replicas, updatedReplicas, readyReplicas,
   availableReplicas, observedGeneration, conditions) are written after every sync.
 - Deleting an owner deletes what it owns (ownerReferences, background cascade).
+- With `startup_seconds > 0` pods start Pending and turn Ready after that delay
+  (`tick()`); Deployments then surge (old pods stay until all new ones are Ready) and
+  StatefulSets replace one pod at a time, highest ordinal first.
 """
 
 from __future__ import annotations
