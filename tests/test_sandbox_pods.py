@@ -270,3 +270,24 @@ def test_startup_delay_statefulset_replaces_highest_ordinal_first(slow_sandbox) 
     st = apps.read_namespaced_stateful_set("db", NS).status
     assert st.current_revision == st.update_revision
     api.close()
+
+
+def test_startup_delay_resize_is_in_progress_then_done(slow_sandbox) -> None:
+    api = slow_sandbox.api_client()
+    core = client.CoreV1Api(api)
+    core.create_namespaced_pod(NS, pod(restart_cpu=True))
+    _wait(lambda: core.read_namespaced_pod("worker-0", NS).status.phase == "Running")
+    out = core.patch_namespaced_pod_resize("worker-0", NS, resize_body("400m"))
+    # resize docs: while the kubelet actuates a resize the pod has PodResizeInProgress;
+    # status.containerStatuses[].resources shows the values in effect, allocatedResources
+    # what was admitted
+    assert "PodResizeInProgress" in [c.type for c in out.status.conditions]
+    main = {s.name: s for s in out.status.container_statuses}["main"]
+    assert main.resources.requests["cpu"] == "250m"
+    assert main.allocated_resources["cpu"] == "400m"
+    _wait(lambda: "PodResizeInProgress" not in [
+        c.type for c in core.read_namespaced_pod("worker-0", NS).status.conditions])
+    done = {s.name: s for s in core.read_namespaced_pod("worker-0", NS).status.container_statuses}
+    assert done["main"].resources.requests["cpu"] == "400m" and done["main"].restart_count == 1
+    assert done["log"].restart_count == 0
+    api.close()

@@ -13,7 +13,8 @@ write a kubeconfig (context `ratefit-sandbox`) that kubectl and the official
 scheduler and no kubelet — pods become Running at once on `sandbox-node`, an in-place
 resize (pods/resize) is applied at once and shown in status.containerStatuses[].resources
 (a resize beyond the pretend node's 16 CPU / 64Gi is left PodResizePending/Infeasible;
-Deferred and PodResizeInProgress are not simulated), a Deployment/StatefulSet template change
+with --startup-seconds a resize is PodResizeInProgress for that long; Deferred is not
+simulated), a Deployment/StatefulSet template change
 replaces all its pods at once. No authentication (any token is accepted), no RBAC, no
 admission webhooks, no CEL validation rules. State lives in memory and is lost on exit.
 

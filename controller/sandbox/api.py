@@ -30,7 +30,7 @@ from ratefit.controller.sandbox.resources import ResourceType, from_crd
 from ratefit.controller.sandbox.selectors import parse_field_selector, parse_label_selector
 from ratefit.controller.sandbox.store import Store
 from ratefit.controller.sandbox.tables import to_table
-from ratefit.controller.sandbox.workloads import Workloads, container_statuses, prepare_pod
+from ratefit.controller.sandbox.workloads import Workloads, finish_resize, prepare_pod
 
 JSON_PATCH = "application/json-patch+json"
 MERGE_PATCH = "application/merge-patch+json"
@@ -540,6 +540,8 @@ class Api:
         saved = self.store.save(rt.key, admitted, old)
         if r.sub is None:
             self._after_write(rt, saved)
+        elif r.sub == "resize":
+            self.workloads.after_resize(saved)
         return self._shape(rt, self.store.get(*rt.key, r.namespace, r.name or "") or saved)
 
     # --- scale subresource --------------------------------------------------------------
@@ -577,7 +579,6 @@ class Api:
                 validation.canonicalize_resources(c.get("resources"))
         except validation.QuantityDecodeError as exc:
             raise validation.bad_quantity("Pod", "v1", exc) from exc
-        restarts: set[str] = set()
         for i, c in enumerate(new["spec"].get("containers") or []):
             if c.get("name") not in wanted:
                 continue
@@ -594,11 +595,6 @@ class Api:
                     elif res in before and res not in after:
                         errs.append(E.FieldError(f"{path}.{part}[{res}]", E.FORBIDDEN,
                                                  detail="resource removal is not supported"))
-                    elif before.get(res) != after.get(res):
-                        for pol in c.get("resizePolicy") or []:
-                            if pol.get("resourceName") == res and \
-                                    pol.get("restartPolicy") == "RestartContainer":
-                                restarts.add(c["name"])
             c["resources"] = {k: v for k, v in want.items() if k in ("requests", "limits", "claims")}
             errs += validation.resource_errors(c["resources"], path)
         if not errs and validation.qos_class(new["spec"]) != validation.qos_class(old["spec"]):
@@ -623,15 +619,18 @@ class Api:
                 status["observedGeneration"] = gen
                 return new
             status["conditions"] = conds
-            statuses = container_statuses(new, status.get("containerStatuses"))
-            for s in statuses:
-                if s["name"] in restarts:
-                    s["restartCount"] = s.get("restartCount", 0) + 1
-                    s["lastState"] = {"terminated": {"exitCode": 0, "reason": "Resized",
-                                                     "finishedAt": objects.now()}}
-                    s["state"] = {"running": {"startedAt": objects.now()}}
-            status["containerStatuses"] = statuses
             status["observedGeneration"] = gen
+            if self.workloads.delayed:
+                # the kubelet admitted the resize (allocatedResources) and is actuating it
+                for cs in status.get("containerStatuses") or []:
+                    spec_c = next((c for c in new["spec"]["containers"]
+                                   if c.get("name") == cs.get("name")), {})
+                    if (spec_c.get("resources") or {}).get("requests"):
+                        cs["allocatedResources"] = dict(spec_c["resources"]["requests"])
+                conds.append({"type": "PodResizeInProgress", "status": "True",
+                              "lastProbeTime": None, "lastTransitionTime": objects.now()})
+            else:
+                finish_resize(new)
         return new
 
     def _infeasible(self, spec: dict) -> str:

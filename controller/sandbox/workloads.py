@@ -64,6 +64,34 @@ def container_statuses(pod: dict, previous: list[dict] | None = None) -> list[di
     return out
 
 
+def finish_resize(pod: dict) -> None:
+    """What the kubelet reports once a resize is actuated: status resources follow the
+    spec; a container whose changed resource has `resizePolicy` RestartContainer restarts;
+    the PodResizeInProgress condition goes away."""
+    status = pod.setdefault("status", {})
+    before = {c.get("name"): c for c in status.get("containerStatuses") or []}
+    restarts = set()
+    for c in (pod.get("spec") or {}).get("containers") or []:
+        have = (before.get(c.get("name")) or {}).get("resources") or {}
+        want = c.get("resources") or {}
+        for pol in c.get("resizePolicy") or []:
+            res = pol.get("resourceName")
+            if pol.get("restartPolicy") == "RestartContainer" and any(
+                    (have.get(part) or {}).get(res) != (want.get(part) or {}).get(res)
+                    for part in ("requests", "limits")):
+                restarts.add(c.get("name"))
+    statuses = container_statuses(pod, status.get("containerStatuses"))
+    for cs in statuses:
+        if cs["name"] in restarts:
+            cs["restartCount"] = cs.get("restartCount", 0) + 1
+            cs["lastState"] = {"terminated": {"exitCode": 0, "reason": "Resized",
+                                              "finishedAt": objects.now()}}
+            cs["state"] = {"running": {"startedAt": objects.now()}}
+    status["containerStatuses"] = statuses
+    status["conditions"] = [c for c in status.get("conditions") or []
+                            if c.get("type") != "PodResizeInProgress"]
+
+
 def running_status(pod: dict) -> dict:
     t = objects.now()
     conds = [{"type": ty, "status": "True", "lastProbeTime": None, "lastTransitionTime": t}
@@ -127,6 +155,7 @@ class Workloads:
         #: many seconds (`tick()`), and rollouts wait for them (surge, then scale down)
         self.startup_seconds = startup_seconds
         self._pending: dict[tuple[str, str, str], float] = {}
+        self._resizing: dict[tuple[str, str, str], float] = {}
 
     @property
     def delayed(self) -> bool:
@@ -138,11 +167,30 @@ class Workloads:
             self._pending[(md.get("namespace", ""), md["name"], md["uid"])] = \
                 time.monotonic() + self.startup_seconds
 
+    def after_resize(self, pod: dict) -> None:
+        if any(c.get("type") == "PodResizeInProgress"
+               for c in (pod.get("status") or {}).get("conditions") or []):
+            md = pod["metadata"]
+            self._resizing[(md.get("namespace", ""), md["name"], md["uid"])] = \
+                time.monotonic() + self.startup_seconds
+
     def tick(self, now: float | None = None) -> int:
-        """Turn due Pending pods Running/Ready and resync their owners; returns how many."""
+        """Turn due Pending pods Running/Ready (and resync their owners) and finish due
+        in-place resizes; returns how many pods changed."""
         now = time.monotonic() if now is None else now
         done = 0
         with self.store.lock:
+            for key, due in sorted(self._resizing.items(), key=lambda kv: kv[1]):
+                if due > now:
+                    continue
+                del self._resizing[key]
+                pod = self.store.raw(PODS, key[0], key[1])
+                if pod is None or pod["metadata"].get("uid") != key[2]:
+                    continue
+                new = copy.deepcopy(pod)
+                finish_resize(new)
+                self.store.save(PODS, new, pod)
+                done += 1
             for key, due in sorted(self._pending.items(), key=lambda kv: kv[1]):
                 if due > now:
                     continue
