@@ -893,6 +893,8 @@ class Reconciler:
                 n += self._emit(e, reason="WorkloadNotFound", type_="Warning", action="Read",
                                 note=(e.problem or "the workload could not be read") + "; nothing is changed")
             return n
+        # one Event per workload and kind of news, naming every container it concerns
+        news: dict[str, list[str]] = {}
         for d in e.decision.decisions:
             before = old_props.get(d.container)
             now_p = d.to_status()
@@ -901,14 +903,19 @@ class Reconciler:
             if same:
                 continue
             if d.verdict is Verdict.CHANGED:
-                n += self._emit(e, reason="CpuRequestChanged", type_="Normal", action="Resize",
-                                note=f"{d.container}: {d.message}")
+                news.setdefault("CpuRequestChanged", []).append(f"{d.container}: {d.message}")
             elif d.verdict is Verdict.PROPOSED:
-                n += self._emit(e, reason="CpuRequestProposed", type_="Normal", action="Propose",
-                                note=f"{d.container}: {d.message} (dry-run: nothing changed)")
+                news.setdefault("CpuRequestProposed", []).append(f"{d.container}: {d.message}")
             elif d.why is Why.REJECTED:
-                n += self._emit(e, reason="CpuChangeRejected", type_="Warning", action="Resize",
-                                note=f"{d.container}: {d.message}")
+                news.setdefault("CpuChangeRejected", []).append(f"{d.container}: {d.message}")
+        for reason, notes in news.items():
+            note = "; ".join(notes)
+            if reason == "CpuRequestProposed":
+                n += self._emit(e, reason=reason, type_="Normal", action="Propose", note=note + " (dry-run: nothing changed)")
+            elif reason == "CpuRequestChanged":
+                n += self._emit(e, reason=reason, type_="Normal", action="Resize", note=note)
+            else:
+                n += self._emit(e, reason=reason, type_="Warning", action="Resize", note=note)
         return n
 
     def _emit(self, e: _Entry, *, reason: str, type_: str, action: str, note: str) -> int:

@@ -90,3 +90,6 @@ def test_after_the_fault_the_next_pass_converges(tmp_path, shared_sizing_api, cl
         assert r.patched == ("shop/Deployment/web",)
         assert len(w.patches("shop", "web")) == 1  # both containers in ONE patch: never half a workload
         assert w.cpu("shop", "web", "app")[0] != "100m" and w.cpu("shop", "web", "side")[0] != "100m"
+        (ev,) = [e for e in w.events("shop") if e["reason"] == "CpuRequestChanged"]  # one Event per workload …
+        assert ev["note"].startswith("app: ") and "; side: " in ev["note"]  # … naming each container
+        assert ev["regarding"]["kind"] == "Deployment" and ev["regarding"]["name"] == "web"
