@@ -560,3 +560,14 @@ def test_cluster_scoped_crd_with_two_served_versions(sandbox_api, custom) -> Non
     with pytest.raises(ApiException) as err:   # the resource is gone from the API
         custom.list_cluster_custom_object("example.test", "v1", "zones")
     assert err.value.status == 404
+
+
+def test_watch_from_a_future_version_times_out_with_504(apps, sandbox) -> None:
+    future = sandbox.store.resource_version + 1000
+    resp = apps.list_namespaced_deployment(NS, watch=True, resource_version=str(future),
+                                           timeout_seconds=10, _preload_content=False)
+    events = [json.loads(line) for line in resp.read().decode().splitlines() if line]
+    # apiserver watch cache: "Too large resource version" (504, reason Timeout,
+    # cause ResourceVersionTooLarge) after waiting ~3 s (from memory)
+    assert events[0]["type"] == "ERROR" and events[0]["object"]["code"] == 504
+    assert events[0]["object"]["details"]["causes"][0]["reason"] == "ResourceVersionTooLarge"

@@ -770,6 +770,21 @@ class Api:
                     initial = []
                     if start < self.store.compacted:
                         initial = None
+            if start is not None and start > self.store.resource_version:
+                # a version from the future (e.g. from before a sandbox restart): like the
+                # watch cache, wait up to 3 s for it, then 504 "Too large resource version"
+                with self.store.changed:
+                    self.store.changed.wait_for(
+                        lambda: self.store.resource_version >= start or self.store.closed,
+                        timeout=3.0)
+                if start > self.store.resource_version:
+                    yield {"type": "ERROR", "object": E.ApiError(
+                        504, "Timeout", f"Too large resource version: {start}, current: "
+                        f"{self.store.resource_version}",
+                        {"causes": [{"reason": "ResourceVersionTooLarge",
+                                     "message": "Too large resource version"}],
+                         "retryAfterSeconds": 1}).status()}
+                    return
             if initial is None:
                 yield {"type": "ERROR",
                        "object": E.expired(start or 0, self.store.compacted + 1).status()}
