@@ -207,7 +207,12 @@ def _run(args: argparse.Namespace) -> int:
     )
     health = None
     if args.metrics_port >= 0:
-        health = HealthServer(telemetry, host=args.metrics_host, port=args.metrics_port).start()
+        try:
+            health = HealthServer(telemetry, host=args.metrics_host, port=args.metrics_port).start()
+        except OSError as exc:
+            conns.close()
+            raise InputError(f"--metrics-port {args.metrics_port} on {args.metrics_host}: {exc.strerror or exc}; "
+                             "pick another port (0: any free one, -1: off)") from exc
         print(f"ratefit run: /metrics /healthz /readyz on {health.url}", file=sys.stderr, flush=True)
     stop_watch = threading.Event()
 
