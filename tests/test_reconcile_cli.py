@@ -57,3 +57,19 @@ def test_bad_input_is_an_error_naming_the_flag(tmp_path, shared_sizing_api) -> N
     assert r.returncode == 2 and "--prometheus URL or --replay FILE" in r.stderr
     r = _cli("run", "--sizing-api", "http://127.0.0.1:1", "--replay", str(tmp_path / "nope.om"))
     assert r.returncode == 2 and "no such file" in r.stderr
+
+
+def test_run_honours_ratefit_dry_run_from_the_environment(tmp_path, shared_sizing_api) -> None:
+    """The deploy manifests set RATEFIT_DRY_RUN=true: every policy is forced to dry-run."""
+    import os
+
+    with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
+        env = {**os.environ, "RATEFIT_DRY_RUN": "true"}
+        r = subprocess.run([str(RATEFIT), "run", "--once", "--no-leader-election", "--metrics-port", "-1",
+                            "--kubeconfig", str(w.kubeconfig), "--replay", str(w.history), "--rate-at", str(w.at),
+                            "--sizing-api", w.api_url], capture_output=True, text=True, timeout=120, env=env)
+        assert r.returncode == 0, r.stderr
+        assert "mode dry-run (forced)" in r.stderr
+        assert w.cpu("shop", "web", "app") == ("100m", "200m") and w.patches("shop", "web") == []
+        (p,) = w.sizing_policy("shop", "web")["status"]["proposals"]
+        assert p["verdict"] == "proposed" and parse_cpu(p["proposed"]) == 315
