@@ -812,14 +812,18 @@ class Reconciler:
                 for name, ch in changes.items()
             ):
                 todo.append(pod)
-        for pod in todo:  # one pod at a time: the adapter stops at the first refusal
-            (outcome,) = self.kube.resize_pods([pod], changes)
-            if not outcome.ok:
-                if outcome.error_kind == "KubeNotFound":
-                    continue  # the pod went away; its successor starts at the template value
-                raise KubeInvalid(outcome.error or "resize refused", what=f"resize pod {pod.name}")
-            self.telemetry.patches.labels(method="in-place").inc()
-            self._hook("after-patch")
+        if not todo:
+            return
+        # the adapter dry-runs every pod's resize first (a value the server refuses leaves
+        # no pod resized), then resizes them one at a time, stopping at the first refusal
+        outcomes = self.kube.resize_pods(todo, changes)
+        done = sum(1 for o in outcomes if o.ok)
+        if done:
+            self.telemetry.patches.labels(method="in-place").inc(done)
+        refused = [o for o in outcomes if not o.ok and o.error_kind not in ("KubeNotFound", "Skipped")]
+        if refused:  # a pod that went away is fine: its successor starts at the template value
+            raise KubeInvalid(refused[0].error or "resize refused", what=f"resize pod {refused[0].pod}")
+        self._hook("after-patch")
 
     # -- status, events, logs, metrics ---------------------------------------------
     def _new_status(self, e: _Entry, now: datetime) -> dict[str, Any]:

@@ -104,3 +104,30 @@ def test_crash_after_a_status_write_then_converges(tmp_path, shared_sizing_api) 
         assert p3.returncode == 0
         after = w.resource_versions()
         assert {k: v for k, v in after.items() if "/apis/apps/" in k} == {k: v for k, v in before.items() if "/apis/apps/" in k}
+
+
+def test_crash_after_in_place_resizes_then_converges(tmp_path, shared_sizing_api) -> None:
+    """method in-place: killed after the pods were resized (before the status write), the
+    next run decides from what the pods run and resizes nothing again."""
+    objects = [deployment("shop", "a", [("app", "100m", "200m")], replicas=2),
+               policy("shop", "a", workload="a", method="in-place", containers=[{"name": "app", "model": "shop/a/app"}])]
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "a"): [50.0]}) as w:
+        def pods() -> list[int]:
+            items = w.get("/api/v1/namespaces/shop/pods?labelSelector=app%3Da")["items"]
+            return sorted(parse_cpu(p["spec"]["containers"][0]["resources"]["requests"]["cpu"]) for p in items)
+
+        def resizes() -> list[str]:
+            return [r["path"] for r in w.sandbox.requests if r["method"] == "PATCH" and r["path"].endswith("/resize")
+                    and r["query"].get("dryRun") != "All"]
+
+        p = run_controller(w, crash_at="after-patch:1")
+        assert p.returncode == -signal.SIGKILL, p.stderr
+        assert pods() == [315, 315] and len(resizes()) == 2
+        assert not (w.sizing_policy("shop", "a").get("status") or {}).get("proposals")  # the status was lost
+        p2 = run_controller(w)
+        assert p2.returncode == 0, p2.stderr
+        assert pods() == [315, 315]
+        assert len(resizes()) == 2 and len(set(resizes())) == 2  # each pod resized exactly once
+        assert w.cpu("shop", "a", "app") == ("100m", "200m")  # the template is left as it was
+        (prop,) = w.sizing_policy("shop", "a")["status"]["proposals"]
+        assert (prop["verdict"], prop["why"]) == ("held", "InsideDeadband")
