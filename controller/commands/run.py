@@ -62,6 +62,13 @@ class JsonLines(logging.Formatter):
         return json.dumps(out, sort_keys=False, default=str)
 
 
+def _default_metrics_host() -> str:
+    if os.environ.get("RATEFIT_METRICS_HOST"):
+        return os.environ["RATEFIT_METRICS_HOST"]
+    # in a pod (the service-account environment is set): probes come from the node
+    return "0.0.0.0" if os.environ.get("KUBERNETES_SERVICE_HOST") else "127.0.0.1"
+
+
 def _truthy(text: str | None) -> bool:
     return (text or "").strip().lower() in ("1", "true", "yes", "on")
 
@@ -151,7 +158,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--max-rollouts", type=int, default=1, metavar="N",
                    help="workloads rolling out at once, cluster-wide (0: unlimited; default %(default)s)")
     p.add_argument("--metrics-port", type=int, default=8471, help="port of /metrics, /healthz, /readyz (-1: off; default %(default)s)")
-    p.add_argument("--metrics-host", default="127.0.0.1", help="address to bind it to (0.0.0.0 in a cluster; default %(default)s)")
+    p.add_argument("--metrics-host", default=_default_metrics_host(),
+                   help="address to bind it to (default: $RATEFIT_METRICS_HOST, else 0.0.0.0 inside a pod — so the "
+                        "kubelet's probes reach it — else 127.0.0.1; now %(default)s)")
     p.add_argument("--identity", default=os.environ.get("POD_NAME"), help="this replica's name in the Lease and Events (default $POD_NAME or host name)")
     p.add_argument("--lease-namespace", default="ratefit-system", help="namespace of the leader Lease (default %(default)s)")
     p.add_argument("--lease-name", default="ratefit-controller", help="name of the leader Lease (default %(default)s)")
