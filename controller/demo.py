@@ -171,7 +171,7 @@ def start_serve(store: Path, work: Path, *, timeout: float = 60.0) -> Iterator[s
 def train_scenario(samples_dir: Path, store_dir: Path, reports_dir: Path, *, progress: Progress,
                    csv_paths: dict[str, Path]) -> list[str]:
     """Train every key of the scenario from its CSV; save artifacts and reports."""
-    from ratefit.models.report import write_report
+    from ratefit.models.report import fit_all_for_report, write_report
     from ratefit.models.samples import load_csv
     from ratefit.models.store import ModelStore
     from ratefit.models.train import train_key_detailed
@@ -183,12 +183,16 @@ def train_scenario(samples_dir: Path, store_dir: Path, reports_dir: Path, *, pro
         res = train_key_detailed(load_csv(csv_paths[key]), key=key)
         store.save(res.artifact)
         try:
-            write_report(res.artifact, reports_dir, samples=res.samples)
+            # every candidate and the fixed baseline on the plot, not only the chosen curve
+            write_report(res.artifact, reports_dir, samples=res.samples,
+                         estimators=fit_all_for_report(res.samples))
         except Exception as exc:  # a plot problem must not stop the demo
             progress(f"  report for {key} not written: {exc}")
-        best = min(res.artifact.cv, key=lambda r: r.rmse)
+        chosen = next(r for r in res.artifact.cv if r.model == res.artifact.chosen)
+        fixed = next((r for r in res.artifact.cv if r.model == "fixed"), None)
+        vs = f", fixed allocation {fixed.rmse * 1000:.1f}m" if fixed else ""
         progress(f"[{i}/{len(keys)}] trained {key}: chose {res.artifact.chosen} "
-                 f"(CV RMSE {best.rmse * 1000:.1f}m) in {time.perf_counter() - t0:.1f}s")
+                 f"(CV RMSE {chosen.rmse * 1000:.1f}m{vs}) in {time.perf_counter() - t0:.1f}s")
     return keys
 
 
