@@ -27,11 +27,7 @@ INVENTED DATA: Kestrel Post is a fictional parcel company (``models/scenario``).
 from __future__ import annotations
 
 import contextlib
-import os
 import shutil
-import signal
-import socket
-import subprocess
 import sys
 import time
 from collections.abc import Callable, Iterator
@@ -39,8 +35,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-import httpx
-
+from ratefit.controller import local_servers
 from ratefit.models.errors import RatefitError
 
 __all__ = ["DemoResult", "run_demo", "repo_manifests", "start_prometheus", "start_serve", "prometheus_binaries"]
@@ -82,90 +77,28 @@ def repo_manifests() -> Path:
 
 
 def prometheus_binaries() -> tuple[str, str] | None:
-    p, t = shutil.which("prometheus") or "/usr/bin/prometheus", shutil.which("promtool") or "/usr/bin/promtool"
-    return (p, t) if os.access(p, os.X_OK) and os.access(t, os.X_OK) else None
-
-
-def _free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
-def _stop(proc: subprocess.Popen[Any]) -> None:
-    """SIGTERM the process group, then SIGKILL after 10 s."""
-    if proc.poll() is not None:
-        return
-    with contextlib.suppress(ProcessLookupError):
-        os.killpg(proc.pid, signal.SIGTERM)
-    try:
-        proc.wait(timeout=10)
-    except subprocess.TimeoutExpired:
-        with contextlib.suppress(ProcessLookupError):
-            os.killpg(proc.pid, signal.SIGKILL)
-        proc.wait(timeout=10)
-
-
-def _wait_http(url: str, proc: subprocess.Popen[Any], *, timeout: float, log: Path, what: str) -> None:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if proc.poll() is not None:
-            raise DemoError(f"{what} exited with {proc.returncode}; log tail:\n{log.read_text()[-1500:]}")
-        try:
-            if httpx.get(url, timeout=1.0).status_code == 200:
-                return
-        except httpx.HTTPError:
-            pass
-        time.sleep(0.1)
-    raise DemoError(f"{what} was not ready at {url} after {timeout:.0f}s; log tail:\n{log.read_text()[-1500:]}")
+    return local_servers.prometheus_binaries()
 
 
 @contextlib.contextmanager
 def start_prometheus(openmetrics: Path, work: Path, *, timeout: float = 60.0) -> Iterator[str]:
     """Backfill ``openmetrics`` into ``work/tsdb`` and serve it; yields the base URL."""
-    found = prometheus_binaries()
-    if found is None:
-        raise DemoError("prometheus/promtool not installed (Debian: apt-get install prometheus)")
-    prometheus, promtool = found
-    tsdb = work / "tsdb"
-    r = subprocess.run([promtool, "tsdb", "create-blocks-from", "openmetrics", str(openmetrics), str(tsdb)],
-                       capture_output=True, text=True, timeout=600)
-    if r.returncode != 0:
-        raise DemoError(f"promtool backfill failed ({r.returncode}): {r.stderr[-1500:]}")
-    config = work / "prometheus.yml"
-    config.write_text("# ratefit demo: no scrape targets; the history is backfilled\nglobal:\n  scrape_interval: 1m\nscrape_configs: []\n")
-    log = work / "prometheus.log"
-    port = _free_port()
-    with open(log, "w") as fh:
-        proc = subprocess.Popen(
-            [prometheus, f"--config.file={config}", f"--storage.tsdb.path={tsdb}",
-             f"--web.listen-address=127.0.0.1:{port}", "--storage.tsdb.retention.time=3650d", "--log.level=warn"],
-            stdout=fh, stderr=subprocess.STDOUT, start_new_session=True,
-        )
     try:
-        url = f"http://127.0.0.1:{port}"
-        _wait_http(url + "/-/ready", proc, timeout=timeout, log=log, what="Prometheus")
-        yield url
-    finally:
-        _stop(proc)
+        local_servers.backfill(openmetrics, work / "tsdb")
+        with local_servers.run_prometheus(work / "tsdb", ready_timeout=timeout) as srv:
+            yield srv.url
+    except local_servers.LocalServerError as exc:
+        raise DemoError(str(exc)) from exc
 
 
 @contextlib.contextmanager
 def start_serve(store: Path, work: Path, *, timeout: float = 60.0) -> Iterator[str]:
     """A ``ratefit serve`` subprocess over ``store`` on a free loopback port; yields its URL."""
-    port = _free_port()
-    log = work / "serve.log"
-    exe = Path(sys.executable).with_name("ratefit")
-    cmd = [str(exe)] if exe.exists() else [sys.executable, "-m", "ratefit.controller.cli"]
-    with open(log, "w") as fh:
-        proc = subprocess.Popen(cmd + ["serve", "--store", str(store), "--host", "127.0.0.1", "--port", str(port)],
-                                stdout=fh, stderr=subprocess.STDOUT, start_new_session=True)
     try:
-        url = f"http://127.0.0.1:{port}"
-        _wait_http(url + "/readyz", proc, timeout=timeout, log=log, what="ratefit serve")
-        yield url
-    finally:
-        _stop(proc)
+        with local_servers.run_serve(store, work, timeout=timeout) as srv:
+            yield srv.url
+    except local_servers.LocalServerError as exc:
+        raise DemoError(str(exc)) from exc
 
 
 def train_scenario(samples_dir: Path, store_dir: Path, reports_dir: Path, *, progress: Progress,

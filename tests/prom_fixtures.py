@@ -31,20 +31,15 @@ from __future__ import annotations
 
 import contextlib
 import os
-import shutil
-import signal
-import socket
-import subprocess
 import time
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Iterator
 
-import httpx
 import pytest
 
-PROMETHEUS_BIN = os.environ.get("RATEFIT_PROMETHEUS_BIN", "/usr/bin/prometheus")
-PROMTOOL_BIN = os.environ.get("RATEFIT_PROMTOOL_BIN", "/usr/bin/promtool")
+from ratefit.controller import local_servers
+
 SCENARIO_HOURS = 6
 SCENARIO_STEP_S = 30
 SCENARIO_SEED = 0
@@ -72,9 +67,7 @@ class PromHistory:
 
 def binaries() -> tuple[str, str] | None:
     """(prometheus, promtool) if both are installed, else None."""
-    p = PROMETHEUS_BIN if os.access(PROMETHEUS_BIN, os.X_OK) else shutil.which("prometheus")
-    t = PROMTOOL_BIN if os.access(PROMTOOL_BIN, os.X_OK) else shutil.which("promtool")
-    return (p, t) if p and t else None
+    return local_servers.prometheus_binaries()
 
 
 def require_prometheus() -> tuple[str, str]:
@@ -90,79 +83,16 @@ def require_prometheus() -> tuple[str, str]:
 
 def backfill(openmetrics: Path, data_dir: Path) -> None:
     """``promtool tsdb create-blocks-from openmetrics`` into ``data_dir``; raises with promtool's output."""
-    _, promtool = require_prometheus()
-    r = subprocess.run(
-        [promtool, "tsdb", "create-blocks-from", "openmetrics", str(openmetrics), str(data_dir)],
-        capture_output=True, text=True, timeout=300,
-    )
-    if r.returncode != 0:
-        raise RuntimeError(f"promtool backfill of {openmetrics} failed ({r.returncode}): {r.stderr[-2000:]}")
-
-
-def _free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-def _stop(proc: subprocess.Popen) -> None:
-    if proc.poll() is not None:
-        return
-    with contextlib.suppress(ProcessLookupError):
-        os.killpg(proc.pid, signal.SIGTERM)
-    try:
-        proc.wait(timeout=10)
-    except subprocess.TimeoutExpired:
-        with contextlib.suppress(ProcessLookupError):
-            os.killpg(proc.pid, signal.SIGKILL)
-        proc.wait(timeout=10)
+    require_prometheus()
+    local_servers.backfill(Path(openmetrics), Path(data_dir), timeout=300)
 
 
 @contextlib.contextmanager
 def run_prometheus(data_dir: Path, *, ready_timeout: float = 60.0) -> Iterator[PromServer]:
     """Start Prometheus on ``data_dir`` (a TSDB), wait for ``/-/ready``, stop it on exit."""
-    prometheus, _ = require_prometheus()
-    data_dir = Path(data_dir)
-    config = data_dir.parent / f"{data_dir.name}-prometheus.yml"
-    config.write_text("# ratefit tests: no scrape targets; history is backfilled\nglobal:\n  scrape_interval: 1m\nscrape_configs: []\n")
-    log_path = data_dir.parent / f"{data_dir.name}-prometheus.log"
-    last_error = ""
-    for _attempt in range(3):  # a free port may be taken between probe and bind
-        port = _free_port()
-        url = f"http://127.0.0.1:{port}"
-        log = open(log_path, "w")
-        proc = subprocess.Popen(
-            [
-                prometheus,
-                f"--config.file={config}",
-                f"--storage.tsdb.path={data_dir}",
-                f"--web.listen-address=127.0.0.1:{port}",
-                "--storage.tsdb.retention.time=3650d",  # old fixed-date histories must not be deleted
-                "--log.level=warn",
-            ],
-            stdout=log, stderr=subprocess.STDOUT, start_new_session=True,
-        )
-        try:
-            deadline = time.monotonic() + ready_timeout
-            ready = False
-            while time.monotonic() < deadline and proc.poll() is None:
-                try:
-                    if httpx.get(url + "/-/ready", timeout=1.0).status_code == 200:
-                        ready = True
-                        break
-                except httpx.HTTPError:
-                    pass
-                time.sleep(0.1)
-            if not ready:
-                _stop(proc)
-                last_error = log_path.read_text()[-2000:]
-                continue
-            yield PromServer(url=url, data_dir=data_dir, pid=proc.pid)
-            return
-        finally:
-            _stop(proc)
-            log.close()
-    raise RuntimeError(f"Prometheus did not become ready on 127.0.0.1; log tail:\n{last_error}")
+    require_prometheus()
+    with local_servers.run_prometheus(Path(data_dir), ready_timeout=ready_timeout) as srv:
+        yield PromServer(url=srv.url, data_dir=Path(data_dir), pid=srv.pid)
 
 
 @pytest.fixture(scope="session")
@@ -275,4 +205,4 @@ def canned_server() -> Iterator[CannedServer]:
 @pytest.fixture
 def closed_port_url() -> str:
     """A loopback URL nothing listens on (connection refused)."""
-    return f"http://127.0.0.1:{_free_port()}"
+    return f"http://127.0.0.1:{local_servers.free_port()}"
