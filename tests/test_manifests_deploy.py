@@ -99,3 +99,23 @@ def test_pods_meet_restricted_pod_security() -> None:
         assert "requests" in c["resources"], f"{c['name']}: ratefit's own pods set requests"
     api = next(c for c in spec["containers"] if c["name"] == "sizing-api")
     assert "--host=127.0.0.1" in api["args"], "the sizing API stays on the pod's loopback"
+
+
+@needs_kubectl
+def test_container_args_are_accepted_by_the_cli() -> None:
+    """The Deployment's args parse with ratefit's own CLI ($(VAR) expanded as the
+    kubelet does from the ConfigMap — Kubernetes docs, "Define dependent environment
+    variables"), so a renamed flag cannot break the deployment unnoticed."""
+    import re
+
+    from ratefit.controller.cli import build_parser
+
+    docs = render("dry-run")
+    data = by_kind(docs, "ConfigMap")[0]["data"]
+    env = {**data, "POD_NAME": "ratefit-controller-0"}
+    spec = by_kind(docs, "Deployment")[0]["spec"]["template"]["spec"]
+    parser = build_parser()
+    for c in spec["containers"]:
+        args = [re.sub(r"\$\((\w+)\)", lambda m: env[m.group(1)], a) for a in c["args"]]
+        ns = parser.parse_args(args)
+        assert ns.command == args[0]
