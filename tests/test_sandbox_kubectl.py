@@ -196,3 +196,15 @@ def test_unknown_custom_fields_warn_or_fail_strictly(kubectl, tmp_path, test_crd
     assert warn.returncode == 0 and 'unknown field "spec.colour"' in warn.stderr
     got = json.loads(kubectl("get", "widget", "odd", "-o", "json", check=True).stdout)
     assert "colour" not in got["spec"]
+
+
+def test_protobuf_bodies_are_refused_plainly_and_yaml_works(kubectl, sandbox) -> None:
+    # kubectl's `create namespace` generator sends application/vnd.kubernetes.protobuf
+    # (client-go prefers protobuf for built-in kinds); the stand-in answers 415
+    # UnsupportedMediaType naming what it accepts, and `create -f` (JSON) works.
+    gen = kubectl("create", "namespace", "from-generator")
+    assert gen.returncode != 0
+    assert "UnsupportedMediaType" in gen.stderr and "application/json" in gen.stderr
+    made = kubectl("create", "-f", "-", input="apiVersion: v1\nkind: Namespace\nmetadata: {name: from-file}\n", check=True)
+    assert "from-file" in made.stdout
+    assert sandbox.store.get("", "namespaces", None, "from-file") is not None

@@ -188,6 +188,10 @@ class Api:
 
     def _load_body(self, req: Request) -> Any:
         ctype = req.headers.get("content-type", "application/json").split(";")[0].strip()
+        if ctype == "application/vnd.kubernetes.protobuf":
+            # A real API server also takes protobuf (kubectl's `create namespace|deployment …`
+            # generators send it); the stand-in speaks JSON and YAML only — say so plainly.
+            raise E.unsupported_media(ctype, ["application/json", "application/yaml"])
         try:
             if "yaml" in ctype:
                 return yaml.safe_load(req.body.decode() or "null")
