@@ -432,6 +432,20 @@ class KubeAdapter:
         body = cpu_patch_body(workload, changes, record_previous=record_previous, annotations=annotations)
         return self._dry_run_then_patch(workload, body, after_dry_run=after_dry_run)
 
+    def annotate_workload(self, workload: Workload, annotations: Mapping[str, str | None]) -> Workload:
+        """Set (or, with None, delete) annotations on the workload itself — a
+        metadata-only strategic-merge patch: the pod template and the generation stay
+        as they are, so nothing rolls. Carries ``workload.resource_version`` like
+        ``patch_cpu`` (a stale read → KubeConflict). Used after in-place resizes to
+        record the change time where a crash cannot lose it."""
+        body: dict[str, Any] = {"metadata": {"resourceVersion": workload.resource_version,
+                                             "annotations": dict(annotations)}}
+        fn = (self._apps.patch_namespaced_deployment if workload.kind is WorkloadKind.DEPLOYMENT
+              else self._apps.patch_namespaced_stateful_set)
+        stored = self._call(f"annotation patch of {workload.key}", fn, workload.name, workload.namespace, body,
+                            field_manager=FIELD_MANAGER, _content_type=_STRATEGIC)
+        return _workload(stored, workload.kind)
+
     def _dry_run_then_patch(
         self, workload: Workload, body: dict[str, Any], *, after_dry_run: Callable[[], None] | None = None
     ) -> Workload:

@@ -33,7 +33,9 @@ Crash safety: the change and its record travel together — the adapter writes t
 previous-requests annotation in the same patch as the new requests. If the process
 dies after the patch but before the status write, the next pass sees the workload
 already at the proposed value, so the change is not made twice; the cooldown is then
-recovered from the annotation ``ratefit.dev/last-change`` written in the same patch.
+recovered from the annotation ``ratefit.dev/last-change`` written in the same patch
+(for ``method: in-place``, in a metadata-only patch of the workload right after the
+pods' resizes — nothing rolls).
 
 Test hook: ``crash_hook(point)`` is called at the points ``after-dry-run``,
 ``after-patch`` and ``after-status`` (per workload). ``ratefit run`` wires it to the
@@ -151,8 +153,10 @@ class KubePort(Protocol):
     def read_workload(self, namespace: str, kind: Any, name: str) -> Any: ...
     def list_hpas(self, namespace: str | None = None) -> Any: ...
     def list_pods(self, workload: Any) -> Any: ...
-    def patch_cpu(self, workload: Any, changes: Mapping[str, Any], **kwargs: Any) -> Any: ...
+    def patch_cpu(self, workload: Any, changes: Mapping[str, Any], *, annotations: Mapping[str, str] | None = None,
+                  after_dry_run: Callable[[], None] | None = None) -> Any: ...
     def resize_pods(self, pods: Iterable[Any], changes: Mapping[str, Any]) -> Any: ...
+    def annotate_workload(self, workload: Any, annotations: Mapping[str, str | None]) -> Any: ...
     def write_policy_status(self, namespace: str, name: str, status: Mapping[str, Any], *,
                             resource_version: str | None = None) -> Any: ...
     def emit_event(self, **kwargs: Any) -> Any: ...
@@ -315,7 +319,6 @@ class Reconciler:
         self._hook = crash_hook or (lambda point: None)
         self._retry_at: dict[str, float] = {}
         self._budget_seeded = False
-        self._patch_kwargs: set[str] | None = None
         self._gather_split: dict[str, float] = {}
         self._parsed: dict[tuple[str, str, str, int], Policy | PolicyInvalid] = {}
 
@@ -735,21 +738,9 @@ class Reconciler:
         e.decision = e.decision.rejected(f"still conflicting after {self.config.conflict_attempts} attempts; retried next pass")
 
     def _patch(self, workload: Any, changes: Mapping[str, Any], *, now: datetime, after_dry_run: Callable[[], None]) -> None:
-        """The adapter's dry-run-then-patch, with the last-change annotation and the
-        between-hook when the adapter supports them (see helpers/notes-for-kube.md)."""
-        if self._patch_kwargs is None:
-            import inspect
-
-            params = inspect.signature(self.kube.patch_cpu).parameters
-            self._patch_kwargs = {k for k in ("annotations", "after_dry_run") if k in params}
-        kwargs: dict[str, Any] = {}
-        if "annotations" in self._patch_kwargs:
-            kwargs["annotations"] = self._annotations(now)
-        if "after_dry_run" in self._patch_kwargs:
-            kwargs["after_dry_run"] = after_dry_run
-        self.kube.patch_cpu(workload, changes, **kwargs)
-        if "after_dry_run" not in self._patch_kwargs:
-            self._hook("after-dry-run")  # best effort: the dry run and the patch both went
+        """The adapter's dry-run-then-patch; the last-change annotation travels in the
+        same patch as the change, and ``after_dry_run`` runs between the two calls."""
+        self.kube.patch_cpu(workload, changes, annotations=self._annotations(now), after_dry_run=after_dry_run)
 
     def _refresh_inputs(self, e: _Entry) -> None:
         """After a re-read: same rates and sizing, new current requests/limits."""
@@ -790,7 +781,8 @@ class Reconciler:
         want = {d.container: CpuChange(request_m=d.current_m, limit_m=d.limit_m)
                 for d in e.decision.decisions if d.current_m is not None}
         try:
-            self._resize_pods(e, want, pods=e.pods)
+            if self._resize_pods(e, want, pods=e.pods):
+                self._hook("after-patch")
         except KubeError as exc:
             self.telemetry.patch_errors.labels(kind=type(exc).__name__).inc()
             errors.append(f"re-applying {e.policy.workload_key} to new pods: {exc}")
@@ -799,9 +791,22 @@ class Reconciler:
         """Resize the running pods one at a time (the template stays as it is); pods
         already at the new values are skipped, so a re-run after a crash resizes only
         the rest."""
-        self._resize_pods(e, self._changes(wd), pods=None)
+        if self._resize_pods(e, self._changes(wd), pods=None):
+            # the change time goes on the workload (metadata only, nothing rolls) right
+            # after the resizes, so a crash before the status write keeps the cooldown
+            self._record_last_change(e, now)
+            self._hook("after-patch")
 
-    def _resize_pods(self, e: _Entry, changes: Mapping[str, Any], *, pods: Sequence[Any] | None) -> None:
+    def _record_last_change(self, e: _Entry, now: datetime) -> None:
+        for _ in range(max(1, self.config.conflict_attempts)):
+            try:
+                e.workload = self.kube.annotate_workload(e.workload, self._annotations(now))
+                return
+            except KubeConflict:
+                e.workload = self.kube.read_workload(e.workload.namespace, e.workload.kind, e.workload.name)
+
+    def _resize_pods(self, e: _Entry, changes: Mapping[str, Any], *, pods: Sequence[Any] | None) -> int:
+        """Resize the pods that differ from ``changes``; returns how many were resized."""
         todo = []
         listed = self.kube.list_pods(e.workload) if pods is None else pods
         for pod in sorted(listed, key=lambda p: p.name):
@@ -813,7 +818,7 @@ class Reconciler:
             ):
                 todo.append(pod)
         if not todo:
-            return
+            return 0
         # the adapter dry-runs every pod's resize first (a value the server refuses leaves
         # no pod resized), then resizes them one at a time, stopping at the first refusal
         outcomes = self.kube.resize_pods(todo, changes)
@@ -823,7 +828,7 @@ class Reconciler:
         refused = [o for o in outcomes if not o.ok and o.error_kind not in ("KubeNotFound", "Skipped")]
         if refused:  # a pod that went away is fine: its successor starts at the template value
             raise KubeInvalid(refused[0].error or "resize refused", what=f"resize pod {refused[0].pod}")
-        self._hook("after-patch")
+        return done
 
     # -- status, events, logs, metrics ---------------------------------------------
     def _new_status(self, e: _Entry, now: datetime) -> dict[str, Any]:

@@ -124,6 +124,11 @@ def test_crash_after_in_place_resizes_then_converges(tmp_path, shared_sizing_api
         assert p.returncode == -signal.SIGKILL, p.stderr
         assert pods() == [315, 315] and len(resizes()) == 2
         assert not (w.sizing_policy("shop", "a").get("status") or {}).get("proposals")  # the status was lost
+        # ... but the change time is on the workload (metadata only: no new generation, no rollout),
+        # so the cooldown survives the crash
+        wl = w.workload("shop", "a")
+        assert "ratefit.dev/last-change" in wl["metadata"]["annotations"]
+        assert wl["metadata"]["generation"] == 1
         p2 = run_controller(w)
         assert p2.returncode == 0, p2.stderr
         assert pods() == [315, 315]

@@ -359,6 +359,22 @@ def test_extra_annotations_and_after_dry_run_hook(target: Target, adapter: KubeA
     assert PREVIOUS_REQUESTS_ANNOTATION in stored.annotations
 
 
+
+def test_annotate_workload_touches_metadata_only(target: Target, adapter: KubeAdapter, ns: str,
+                                                 raw: k8s.ApiClient) -> None:
+    # metadata changes do not move metadata.generation (Kubernetes API conventions:
+    # generation tracks the desired state, i.e. spec) — so nothing rolls
+    target.create(deployment(ns))
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    before = read_raw(raw, ns)
+    stored = adapter.annotate_workload(wl, {"ratefit.dev/last-change": "2026-12-01T00:00:00Z"})
+    after = read_raw(raw, ns)
+    assert stored.annotations["ratefit.dev/last-change"] == "2026-12-01T00:00:00Z"
+    assert after["metadata"]["generation"] == before["metadata"]["generation"]
+    assert after["spec"]["template"] == before["spec"]["template"]
+    with pytest.raises(KubeConflict):  # the read it was given is stale now
+        adapter.annotate_workload(wl, {"ratefit.dev/last-change": None})
+
 def test_previous_requests_recorded_once_and_reverted(target: Target, adapter: KubeAdapter, ns: str,
                                                       raw: k8s.ApiClient) -> None:
     target.create(deployment(ns))
