@@ -144,17 +144,18 @@ class LeaderElector:
         if holder != self.identity:
             new_spec["acquireTime"] = micro_time(now)
             new_spec["leaseTransitions"] = int(spec.get("leaseTransitions") or 0) + (1 if holder else 0)
-        body = {
+        body = self._body(lease["metadata"]["resourceVersion"], new_spec)
+        return self._write(body, now, took_over=holder != self.identity)
+
+    def _body(self, resource_version: str, spec: dict[str, Any]) -> dict[str, Any]:
+        """The whole Lease for a replace, with the resourceVersion we read (optimistic
+        concurrency: a stale one → 409, someone else wrote in between)."""
+        return {
             "apiVersion": "coordination.k8s.io/v1",
             "kind": "Lease",
-            "metadata": {
-                "name": self.name,
-                "namespace": self.namespace,
-                "resourceVersion": lease["metadata"]["resourceVersion"],
-            },
-            "spec": new_spec,
+            "metadata": {"name": self.name, "namespace": self.namespace, "resourceVersion": resource_version},
+            "spec": spec,
         }
-        return self._write(body, now, took_over=holder != self.identity)
 
     def release(self) -> None:
         """Give the Lease up (only if we hold it): clear holderIdentity, as client-go does
@@ -174,16 +175,7 @@ class LeaderElector:
             new_spec.pop("holderIdentity", None)
             new_spec["leaseDurationSeconds"] = 1
             new_spec["renewTime"] = micro_time(now)
-            body = {
-                "apiVersion": "coordination.k8s.io/v1",
-                "kind": "Lease",
-                "metadata": {
-                    "name": self.name,
-                    "namespace": self.namespace,
-                    "resourceVersion": lease["metadata"]["resourceVersion"],
-                },
-                "spec": new_spec,
-            }
+            body = self._body(lease["metadata"]["resourceVersion"], new_spec)
             self._call("release lease", lambda: self._api.replace_namespaced_lease(
                 self.name, self.namespace, body, _preload_content=False))
         except (KubeConflict, KubeNotFound, KubeUnavailable) as exc:
