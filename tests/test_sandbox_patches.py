@@ -111,36 +111,36 @@ def test_json_patch_is_atomic() -> None:
     assert doc == {"a": 1}
 
 
-DEMO = {  # the Deployment of the kubectl patch task page, containers by name
+DEMO = {  # the case the kubectl patch task page walks through, with names of our own
     "spec": {"template": {"spec": {
-        "containers": [{"name": "patch-demo-ctr", "image": "nginx"}],
-        "tolerations": [{"effect": "NoSchedule", "key": "dedicated", "value": "test-team"}],
+        "containers": [{"name": "printer", "image": "registry.example/label-printer:3"}],
+        "tolerations": [{"effect": "NoSchedule", "key": "team", "value": "parcels"}],
     }}}}
 
 
 def test_strategic_merge_adds_a_container_by_name() -> None:
-    # kubectl patch task page: patch-file adds patch-demo-ctr-2 (redis); both are kept
+    # kubectl patch task page: a strategic patch adding a second container keeps both
     out = strategic_merge(DEMO, {"spec": {"template": {"spec": {"containers": [
-        {"name": "patch-demo-ctr-2", "image": "redis"}]}}}})
+        {"name": "log-shipper", "image": "registry.example/log-shipper:1"}]}}}})
     assert out["spec"]["template"]["spec"]["containers"] == [
-        {"name": "patch-demo-ctr", "image": "nginx"},
-        {"name": "patch-demo-ctr-2", "image": "redis"}]
+        {"name": "printer", "image": "registry.example/label-printer:3"},
+        {"name": "log-shipper", "image": "registry.example/log-shipper:1"}]
 
 
 def test_strategic_merge_replaces_lists_without_merge_key() -> None:
     # same page: `tolerations` has no patch strategy, so the list is replaced
     out = strategic_merge(DEMO, {"spec": {"template": {"spec": {"tolerations": [
-        {"effect": "NoSchedule", "key": "disktype", "value": "ssd"}]}}}})
+        {"effect": "NoSchedule", "key": "zone", "value": "north"}]}}}})
     assert out["spec"]["template"]["spec"]["tolerations"] == [
-        {"effect": "NoSchedule", "key": "disktype", "value": "ssd"}]
+        {"effect": "NoSchedule", "key": "zone", "value": "north"}]
 
 
 def test_json_merge_patch_replaces_containers_on_the_same_page() -> None:
     # same page, "Use a JSON merge patch": the containers list is replaced whole
     out = merge_patch(DEMO, {"spec": {"template": {"spec": {"containers": [
-        {"name": "patch-demo-ctr-3", "image": "gcr.io/google-samples/hello-app:2.0"}]}}}})
+        {"name": "printer-3", "image": "registry.example/label-printer:4"}]}}}})
     assert out["spec"]["template"]["spec"]["containers"] == [
-        {"name": "patch-demo-ctr-3", "image": "gcr.io/google-samples/hello-app:2.0"}]
+        {"name": "printer-3", "image": "registry.example/label-printer:4"}]
 
 
 def test_strategic_merge_directives() -> None:
