@@ -16,6 +16,7 @@ import platform
 import subprocess
 import sys
 import time
+from tests.bench.machine import cpu_model
 
 #: name → (module, full-size args, quick args)
 BENCHES: dict[str, tuple[str, list[str], list[str]]] = {
@@ -27,17 +28,6 @@ BENCHES: dict[str, tuple[str, list[str], list[str]]] = {
     "kube": ("tests.bench.bench_kube", [], ["--workloads", "300", "--patches", "20"]),
     "reconcile": ("tests.bench.bench_reconcile", [], ["--workloads", "1000"]),
 }
-
-
-def cpu_model() -> str:
-    try:
-        with open("/proc/cpuinfo", encoding="utf-8") as fh:
-            for line in fh:
-                if line.startswith("model name"):
-                    return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -37,18 +37,9 @@ import httpx
 
 from tests.api_fixtures import demo_keys, make_artifact, serve_process
 from ratefit.models.store import ModelStore
+from tests.bench.machine import cpu_model
 
 GOALS = {"single_ratio": 1.3, "batch10k_ms": 50.0, "rss_mb": 300.0}
-
-
-def cpu_model() -> str:
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
 
 
 def proc_status(pid: int) -> dict[str, float]:

@@ -1,6 +1,6 @@
 """Benchmark: the pure decision for N workloads (2 containers each), no I/O.
 
-    .venv/bin/python tests/bench/bench_decide.py [--workloads 10000] [--pods 4] [--repeat 3]
+    .venv/bin/python -m tests.bench.bench_decide [--workloads 10000] [--pods 4] [--repeat 3]
 
 Builds INVENTED policies (through ``parse_policy``) and observations, then times per
 pass: ``rate_percentile`` of each container's per-pod rates, ``decide_workload`` with a
@@ -23,16 +23,7 @@ from datetime import datetime, timedelta, timezone
 from ratefit.controller.decide import ContainerInput, Sizing, decide_workload, rate_percentile
 from ratefit.controller.limits import Budget, RolloutSlots, TokenBucket
 from ratefit.controller.policy import ContainerHistory, WorkloadHistory, history_to_status, parse_policy
-
-
-def cpu_model() -> str:
-    try:
-        for line in open("/proc/cpuinfo"):
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "?"
+from tests.bench.machine import cpu_model
 
 
 def policy_obj(i: int) -> dict:

@@ -36,6 +36,7 @@ import yaml
 
 from ratefit.controller.kube import KubeAdapter, _workload
 from ratefit.controller.workload import CpuChange, WorkloadKind
+from tests.bench.machine import cpu_model
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -95,7 +96,7 @@ def main() -> int:
             print(f"sandbox up with {args.workloads} deployments + {args.workloads} policies "
                   f"in {time.perf_counter() - t0:.1f} s", file=sys.stderr)
             kube = KubeAdapter.from_kubeconfig(str(kc), identity="bench")
-            print(f"machine: {os.cpu_count()} cores, {platform.processor() or platform.machine()}, "
+            print(f"machine: {os.cpu_count()} cores, {cpu_model()}, "
                   f"Python {platform.python_version()}")
 
             wls, wall, cpu = _timed(lambda: kube.list_workloads(WorkloadKind.DEPLOYMENT))

@@ -19,20 +19,7 @@ Goals (issue 2): single lookup ≥ 100× faster than predict; the 10,000-curve b
 < 2 ms; training 10k samples with all candidates < 30 s on 2 cores. Data: a convex
 synthetic curve (cpu = 0.1 + 0.0003·rate² + noise, rate uniform in 0..100 req/s).
 
-Last measured (2026-12-01, nproc 2, AMD EPYC, shared with other work: load average
-~4.5 during the run, so these are pessimistic; whole run ~6 min):
-
-==========  ==========  ==========
-samples     default     --tune
-==========  ==========  ==========
-1,000       1.8 s       18.5 s
-10,000      8.1 s       136.5 s
-100,000     33.0 s      140.3 s (inner search on 20,000-sample subsamples)
-==========  ==========  ==========
-
-single lookup 0.80 µs vs predict 882 µs (1,102×); batch of 10,000: 0.27 ms vs
-1.49 ms; 10,000 lookups over 10,000 curves in a CurveBank: 1.45 ms with row
-indices, 4.7 ms including the key → row mapping.
+The figures last measured, with the machine, are in DEVELOPERS.md (Benchmarks).
 """
 
 from __future__ import annotations
@@ -44,17 +31,7 @@ import statistics
 import time
 
 import numpy as np
-
-
-def _cpu_model() -> str:
-    try:
-        with open("/proc/cpuinfo") as fh:
-            for line in fh:
-                if line.startswith("model name"):
-                    return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
+from tests.bench.machine import cpu_model
 
 
 def _data(n: int, seed: int = 0):
@@ -148,7 +125,7 @@ def main() -> None:
     sizes = [int(s) for s in args.sizes.split(",") if s]
     import sklearn
 
-    print(f"ratefit models benchmark — nproc {os.cpu_count()}, CPU {_cpu_model()}, "
+    print(f"ratefit models benchmark — nproc {os.cpu_count()}, CPU {cpu_model()}, "
           f"python {platform.python_version()}, scikit-learn {sklearn.__version__}, numpy {np.__version__}")
     try:
         print(f"load average at start: {os.getloadavg()[0]:.2f} (the machine may be shared)")

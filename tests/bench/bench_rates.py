@@ -1,6 +1,6 @@
 """Benchmark: one grouped rate query for N workloads against the real Prometheus.
 
-    .venv/bin/python tests/bench/bench_rates.py [--workloads 10000] [--pods 2] [--repeat 3]
+    .venv/bin/python -m tests.bench.bench_rates [--workloads 10000] [--pods 2] [--repeat 3]
 
 Writes a synthetic history (INVENTED, constant per-pod rates: ``bench_http_requests_total``
 for ``--workloads`` workloads × ``--pods`` pods, 30 s steps, ending 5 min ago), backfills
@@ -28,19 +28,10 @@ from prom_fixtures import backfill, binaries, run_prometheus  # noqa: E402
 
 from ratefit.controller.metrics_source import PrometheusRateSource, RateRequest, RateTemplate  # noqa: E402
 from ratefit.models.prometheus import PrometheusClient  # noqa: E402
+from tests.bench.machine import cpu_model
 
 METRIC = "bench_http_requests_total"
 NAMESPACES = 50
-
-
-def cpu_model() -> str:
-    try:
-        for line in open("/proc/cpuinfo"):
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "?"
 
 
 def write_history(path: Path, *, workloads: int, pods: int, minutes: int, end: int) -> None:

@@ -36,6 +36,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from tests.bench.machine import cpu_model
 
 ROOT = Path(__file__).resolve().parents[2]
 CRD = ROOT / "manifests" / "crd" / "sizingpolicy.yaml"
@@ -170,8 +171,7 @@ def main() -> int:
     from ratefit.controller.demo import start_prometheus, start_serve
 
     n, n_ns = args.workloads, args.namespaces
-    cpu_model = next((ln.split(":", 1)[1].strip() for ln in open("/proc/cpuinfo") if ln.startswith("model name")), platform.processor())
-    print(f"bench_reconcile: {n} workloads ({2 * n} containers) in {n_ns} namespaces; nproc {os.cpu_count()}, CPU {cpu_model}",
+    print(f"bench_reconcile: {n} workloads ({2 * n} containers) in {n_ns} namespaces; nproc {os.cpu_count()}, CPU {cpu_model()}",
           file=sys.stderr)
     with tempfile.TemporaryDirectory(prefix="ratefit-bench-") as tmp, contextlib.ExitStack() as stack:
         work = Path(tmp)
@@ -212,7 +212,7 @@ def main() -> int:
             print(p.stderr[-3000:], file=sys.stderr)
             return 1
         res = json.loads(p.stdout.strip().splitlines()[-1])
-    print(f"\nratefit reconcile benchmark — nproc {os.cpu_count()}, {cpu_model}, Python {platform.python_version()}")
+    print(f"\nratefit reconcile benchmark — nproc {os.cpu_count()}, {cpu_model()}, Python {platform.python_version()}")
     print(f"{n} workloads, {2 * n} containers; controller peak RSS {res['rss_mb']} MB (goal < 500 MB)")
     for ps in res["passes"]:
         ph = ps["phases"]

@@ -28,6 +28,7 @@ import time
 from kubernetes import client
 
 from ratefit.controller.sandbox.server import SandboxServer
+from tests.bench.machine import cpu_model
 
 
 def _deployment(i: int) -> dict:
@@ -53,12 +54,7 @@ def main() -> None:
     ap.add_argument("--deployments", type=int, default=1000)
     ap.add_argument("--ops", type=int, default=300)
     args = ap.parse_args()
-    cpu = platform.processor() or platform.machine()
-    try:
-        with open("/proc/cpuinfo") as f:
-            cpu = next(line.split(":", 1)[1].strip() for line in f if line.startswith("model name"))
-    except (OSError, StopIteration):
-        pass
+    cpu = cpu_model()
     print(f"machine: {os.cpu_count()} cores ({cpu}), Python {platform.python_version()}")
     with SandboxServer(history=5000) as sb:
         t0 = time.perf_counter()
