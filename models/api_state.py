@@ -75,24 +75,10 @@ class ServedModel:
 
     @classmethod
     def from_artifact(cls, art: Artifact, *, file_stat: tuple[int, int, int] = (0, 0, 0)) -> ServedModel:
-        summary = {
-            "key": art.key,
-            "chosen": art.chosen,
-            "rate_range": [float(art.rate_range[0]), float(art.rate_range[1])],
-            "coverage": art.coverage,
-            "version": art.version,
-            "trained_at": art.trained_at,
-        }
+        described = art.describe()
+        summary = {k: described[k] for k in ("key", "chosen", "rate_range", "coverage", "version", "trained_at")}
         detail = {
-            **summary,
-            "samples": art.samples,
-            "samples_total": art.samples_total,
-            "dropped": dict(art.dropped),
-            "folds": art.folds,
-            "seed": art.seed,
-            "tuned": art.tuned,
-            "window": art.window.model_dump(mode="json"),
-            "cv": [row.model_dump(mode="json") for row in art.cv],
+            **described,
             "band_m": to_millicores(art.curve.band),
             "content_hash": art.content_hash,
         }

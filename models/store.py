@@ -103,6 +103,26 @@ class Artifact(_Strict):
         c = self.curve
         return DemandCurve(rate_lo=c.rate_lo, rate_hi=c.rate_hi, cpu=c.cpu, band=c.band)
 
+    def describe(self) -> dict[str, Any]:
+        """What the artifact says about itself, as plain JSON values (for `models show`
+        and the API's model detail; each adds its own extras)."""
+        return {
+            "key": self.key,
+            "chosen": self.chosen,
+            "rate_range": [float(self.rate_range[0]), float(self.rate_range[1])],
+            "coverage": self.coverage,
+            "version": self.version,
+            "trained_at": self.trained_at,
+            "samples": self.samples,
+            "samples_total": self.samples_total,
+            "dropped": dict(self.dropped),
+            "folds": self.folds,
+            "seed": self.seed,
+            "tuned": self.tuned,
+            "window": self.window.model_dump(mode="json"),
+            "cv": [row.model_dump(mode="json") for row in self.cv],
+        }
+
     def to_json_dict(self) -> dict[str, Any]:
         return self.model_dump(mode="json", by_alias=True)
 

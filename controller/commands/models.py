@@ -34,22 +34,9 @@ def register(sub: argparse._SubParsersAction) -> None:
 def show_dict(art: Any) -> dict[str, Any]:
     """The JSON object `models show --output json` prints for an artifact."""
     return {
-        "key": art.key,
-        "chosen": art.chosen,
-        "cv": [r.model_dump(mode="json") for r in art.cv],
-        "rate_range": list(art.rate_range),
-        "coverage": art.coverage,
+        **art.describe(),
         "band": art.curve.band,
         "demand_at_range": [art.curve.cpu[0], art.curve.cpu[-1]],
-        "samples": art.samples,
-        "samples_total": art.samples_total,
-        "dropped": dict(art.dropped),
-        "folds": art.folds,
-        "seed": art.seed,
-        "tuned": art.tuned,
-        "window": art.window.model_dump(mode="json"),
-        "trained_at": art.trained_at,
-        "version": art.version,
         "library": dict(art.library),
         "units": {"cpu": "cores", "rate": "req/s per pod"},
     }
