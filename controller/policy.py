@@ -73,10 +73,8 @@ __all__ = [
     "SettlingModel",
 ]
 
-GROUP = "ratefit.dev"
-VERSION = "v1alpha1"
-KIND = "SizingPolicy"
-PLURAL = "sizingpolicies"
+# the CRD's coordinates live in controller/crd.py (re-exported here for old imports)
+from ratefit.controller.crd import GROUP, KIND, PLURAL, VERSION  # noqa: E402
 
 #: Condition type written on every policy: True once a pass decided it, False when
 #: the policy is invalid (reason PolicyInvalid) or could not be decided.
