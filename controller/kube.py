@@ -163,7 +163,7 @@ class KubeAdapter:
         self._hpa = k8s.AutoscalingV2Api(api_client)
         self._events = k8s.EventsV1Api(api_client)
         #: one row per workload kind: the apps/v1 calls that read, list and patch it
-        self._workload_api = _workload_api_table(self._apps)
+        self._workload_api = dict(WORKLOAD_CALLS)
         #: retries made (temporary failures waited out) — for the controller's metrics
         self.retries = 0
 
@@ -242,11 +242,11 @@ class KubeAdapter:
 
     def _api_of(self, kind: WorkloadKind) -> _WorkloadApi:
         """The API calls of a workload kind; an unknown kind is an error, never a guess."""
-        api = self._workload_api.get(kind)
-        if api is None:
+        names = self._workload_api.get(kind)
+        if names is None:
             raise InputError(f"workload kind {kind!r} is not supported; use one of "
                              f"{', '.join(k.value for k in self._workload_api)}")
-        return api
+        return _WorkloadApi(*(getattr(self._apps, n) for n in names))
 
     # ---------------------------------------------------------------- SizingPolicies
     def list_policies(self, namespaces: Sequence[str] | None = None) -> PolicyList:
@@ -602,7 +602,7 @@ class KubeAdapter:
 # -------------------------------------------------------------------- workload kinds
 @dataclass(frozen=True)
 class _WorkloadApi:
-    """The apps/v1 calls for one workload kind."""
+    """The apps/v1 calls for one workload kind (bound to the adapter's AppsV1Api)."""
 
     read: Callable[..., Any]
     list_namespaced: Callable[..., Any]
@@ -610,16 +610,14 @@ class _WorkloadApi:
     patch: Callable[..., Any]
 
 
-def _workload_api_table(apps: k8s.AppsV1Api) -> dict[WorkloadKind, _WorkloadApi]:
-    """Workload kind → its API calls (one row per kind the controller sizes)."""
-    return {
-        WorkloadKind.DEPLOYMENT: _WorkloadApi(
-            read=apps.read_namespaced_deployment, list_namespaced=apps.list_namespaced_deployment,
-            list_all=apps.list_deployment_for_all_namespaces, patch=apps.patch_namespaced_deployment),
-        WorkloadKind.STATEFULSET: _WorkloadApi(
-            read=apps.read_namespaced_stateful_set, list_namespaced=apps.list_namespaced_stateful_set,
-            list_all=apps.list_stateful_set_for_all_namespaces, patch=apps.patch_namespaced_stateful_set),
-    }
+#: workload kind → the names of its AppsV1Api calls: read, list in a namespace, list in
+#: all namespaces, patch (looked up on each call, so a test may wrap one of them)
+WORKLOAD_CALLS: dict[WorkloadKind, tuple[str, str, str, str]] = {
+    WorkloadKind.DEPLOYMENT: ("read_namespaced_deployment", "list_namespaced_deployment",
+                              "list_deployment_for_all_namespaces", "patch_namespaced_deployment"),
+    WorkloadKind.STATEFULSET: ("read_namespaced_stateful_set", "list_namespaced_stateful_set",
+                               "list_stateful_set_for_all_namespaces", "patch_namespaced_stateful_set"),
+}
 
 
 # -------------------------------------------------------------------- patch bodies
