@@ -12,6 +12,7 @@
 - ``record.py`` — PURE: new status (validated by the CRD's status model), Events,
   decision log records and review rows, built from observation + decision.
 - ``write.py`` — writes what ``record`` built (status only when it changed, then Events, logs).
+- ``outcome.py`` — ``PassOutcome`` and ``PassResult``, what a pass came to.
 - ``crash.py`` — the ``RATEFIT_CRASH_AT`` test hook.
 - ``orchestrator.py`` — ``Reconciler``: runs the stages in order; the one place where a
   pass outcome becomes metrics and the pass log line.

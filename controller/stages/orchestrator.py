@@ -15,9 +15,8 @@ import json
 import logging
 import time
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from datetime import datetime, timezone
-from enum import StrEnum
 from typing import Protocol
 
 from ratefit.controller.errors import KubeError
@@ -26,6 +25,7 @@ from ratefit.controller.review import ReviewRow
 from ratefit.controller.stages.act import Actor
 from ratefit.controller.stages.decide import Decider
 from ratefit.controller.stages.observe import Observer
+from ratefit.controller.stages.outcome import PassOutcome, PassResult
 from ratefit.controller.stages.ports import Kube, KubeReader, RateSource, SizingSource
 from ratefit.controller.stages.record import review_rows
 from ratefit.controller.stages.write import RecordWriter
@@ -34,35 +34,6 @@ from ratefit.controller.telemetry import Telemetry
 __all__ = ["PassOutcome", "PassResult", "ReconcileConfig", "Reconciler"]
 
 log = logging.getLogger("ratefit.controller.reconcile")
-
-
-class PassOutcome(StrEnum):
-    """What one pass came to (one value per pass; the loop and the metric read it)."""
-
-    DONE = "done"  # every policy decided and acted on
-    DEGRADED = "degraded"  # done, but some inputs or writes failed (held, retried next pass)
-    ABANDONED = "abandoned"  # stopped early (SIGTERM or lost the Lease); the rest is left as it was
-    FAILED = "failed"  # could not even list the policies; nothing was done
-
-
-@dataclass(frozen=True)
-class PassResult:
-    """The one outcome type of a pass."""
-
-    outcome: PassOutcome
-    rows: tuple[ReviewRow, ...] = ()
-    policies: int = 0
-    invalid: int = 0
-    #: workload keys (namespace/Kind/name) changed in the cluster this pass
-    patched: tuple[str, ...] = ()
-    status_writes: int = 0
-    events: int = 0
-    errors: tuple[str, ...] = ()
-    duration_s: float = 0.0
-    #: seconds until the loop should run again (None: its interval)
-    requeue_after: float | None = None
-    #: wall time spent in each phase (seconds): gather, decide, act
-    phases: Mapping[str, float] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
