@@ -66,6 +66,7 @@ def test_decided_status_fits_the_status_model_and_a_reworded_one_is_current() ->
                          history=WorkloadHistory(), now=NOW, dry_run=True)
     status = new_status(o, wd, NOW)
     assert status is not None and status["proposals"][0]["verdict"] == "proposed"  # type: ignore[index]
+    assert validate_status(status, where="shop/web") is status
     reworded = {**status, "proposals": [{**p, "message": "other words"} for p in status["proposals"]]}  # type: ignore[union-attr]
     assert status_is_current(status, reworded)
     assert not status_is_current(status, OLD_STATUS)

@@ -2,9 +2,10 @@
 and final decision — the new status, the Kubernetes Events, the decision log records
 and the review rows. No I/O here: ``stages/write.py`` writes what this builds.
 
-- :func:`new_status` — conditions merged by type, proposals, lastChange, settling;
-  validated by the CRD's status model (``policy.SizingPolicyStatus``). None when the
-  observation was partial (the API failed): the last status is kept.
+- :func:`new_status` — conditions merged by type, proposals, lastChange, settling.
+  None when the observation was partial (the API failed): the last status is kept.
+- :func:`validate_status` — the CRD's status model (``policy.SizingPolicyStatus``)
+  checks a status before it is written (only then: most passes write nothing).
 - :func:`status_is_current` — level-based: a status that says nothing new is not written.
 - :func:`events_for` — one Event per workload and kind of news (never the same twice).
 - :func:`decision_records` — one JSON log record per container, flagged when it changed.
@@ -110,7 +111,7 @@ def new_status(o: Observed, wd: WorkloadDecision | None, now: datetime) -> dict[
         # the CRD's schema has no nullable fields: leave unknown values out
         status["proposals"] = [{k: v for k, v in d.to_status().items() if v is not None} for d in wd.decisions]
         status.update(history_to_status(wd.history))
-    return validate_status(status, where=f"{o.obj.namespace}/{o.obj.name}")
+    return status
 
 
 def validate_status(status: dict[str, object], *, where: str) -> dict[str, object]:

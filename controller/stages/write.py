@@ -1,5 +1,6 @@
 """Write what the record stage built: the status (through the status subresource,
-only when it says something new), then the Events and the decision log lines.
+only when it says something new, and only once the CRD's status model accepted it),
+then the Events and the decision log lines.
 
 A failed status write (409: someone edited the policy) is counted and left for the
 next pass, which re-reads the policy; a failed Event is logged and never fails a pass.
@@ -14,7 +15,14 @@ from datetime import datetime
 from ratefit.controller.errors import KubeError
 from ratefit.controller.stages.act import Acted
 from ratefit.controller.stages.ports import KubeWriter
-from ratefit.controller.stages.record import StatusInvalid, decision_records, events_for, new_status, status_is_current
+from ratefit.controller.stages.record import (
+    StatusInvalid,
+    decision_records,
+    events_for,
+    new_status,
+    status_is_current,
+    validate_status,
+)
 from ratefit.controller.telemetry import Telemetry
 
 __all__ = ["RecordWriter"]
@@ -35,15 +43,16 @@ class RecordWriter:
     def write(self, a: Acted, now: datetime, errors: list[str]) -> tuple[int, int]:
         """(status writes, events) for one policy."""
         o = a.observed
-        try:
-            new = new_status(o, a.decision, now)
-        except StatusInvalid as exc:
-            errors.append(str(exc))
-            log.error("%s", exc)
-            return 0, 0
+        new = new_status(o, a.decision, now)
         old = dict(o.obj.status or {})
         if new is None or status_is_current(new, old):
             return 0, 0  # level-based: nothing to say that the status does not already say
+        try:
+            validate_status(new, where=f"{o.obj.namespace}/{o.obj.name}")
+        except StatusInvalid as exc:  # a bug: say so, write nothing, keep passing
+            errors.append(str(exc))
+            log.error("%s", exc)
+            return 0, 0
         try:
             self.kube.write_policy_status(o.obj.namespace, o.obj.name, new,
                                           resource_version=o.obj.resource_version or None)
