@@ -96,6 +96,13 @@ class ApiMetrics:
             ["reason"],
             registry=r,
         )
+        self.connections_refused = Counter(
+            "ratefit_api_connections_refused",
+            "Connections refused or closed by the server's limits, by reason (header_bytes, header_count, "
+            "request_timeout, max_connections).",
+            ["reason"],
+            registry=r,
+        )
         self.store_loaded = Gauge(
             "ratefit_api_store_loaded_timestamp_seconds",
             "Unix time at which the store being served was loaded (0 before the first load).",
