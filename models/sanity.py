@@ -52,9 +52,13 @@ def _bounded(value: object, what: str, *, hi: float, unit: str) -> float:
 
 def check_sample(rate: float, cpu: float) -> None:
     """One training sample: rate (req/s per pod) and CPU (cores) inside their bounds.
-    ``models.samples`` calls this per CSV row and adds the file:line."""
-    _bounded(rate, "rate", hi=MAX_RATE, unit="req/s")
-    _bounded(cpu, "cpu", hi=MAX_CORES, unit="cores")
+    NaN is a missing value in ``models.samples`` (counted and dropped there) and passes;
+    anything else must be finite, >= 0 and within the bound. ``models.samples`` calls
+    this per CSV row and adds the file:line."""
+    if not (isinstance(rate, float) and math.isnan(rate)):
+        _bounded(rate, "rate", hi=MAX_RATE, unit="req/s")
+    if not (isinstance(cpu, float) and math.isnan(cpu)):
+        _bounded(cpu, "cpu", hi=MAX_CORES, unit="cores")
 
 
 def check_curve(
