@@ -73,3 +73,21 @@ def test_a_training_file_with_an_absurd_row_names_file_and_line(tmp_path: Path, 
     err = capsys.readouterr().err
     assert rc == 2 and f"{csv}:43:" in err
     assert not (tmp_path / "s" / "shop" / "absurd" / "app.json").exists()
+
+
+def test_millicore_conversion_saturates_never_wraps() -> None:
+    """An int64 cast of 1e17 cores × 1000 would wrap to -9223372036854775808 (the C/numpy
+    int64 range); the conversion saturates at 2**53 (every integer up to it exact in a float)."""
+    import numpy as np
+
+    from ratefit.models.curve import MAX_MILLICORES, CurveLookup, to_millicores
+    from ratefit.models.errors import InputError
+
+    huge = np.array([1e17, 1e308, np.inf, 0.4121])
+    look = CurveLookup(demand=huge, upper=huge + 1.0, extrapolated=np.zeros(4, dtype=bool))
+    demand_m, bound_m = look.millicores()
+    assert demand_m.tolist() == [MAX_MILLICORES, MAX_MILLICORES, MAX_MILLICORES, 413]
+    assert bound_m.min() > 0 and -(2**63) not in bound_m.tolist()
+    assert to_millicores(1e17) == MAX_MILLICORES and to_millicores(0.4121) == 413
+    with pytest.raises(InputError):
+        to_millicores(math.inf)
