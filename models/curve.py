@@ -59,10 +59,11 @@ class CurveLookup:
     def millicores(self) -> tuple[np.ndarray, np.ndarray]:
         """Demand and upper in integer millicores, rounded up."""
         # clipped before the int64 cast so that an absurd value saturates, never wraps
-        return (
-            np.ceil(np.round(np.clip(self.demand * 1000.0, 0.0, MAX_MILLICORES), 6)).astype(np.int64),
-            np.ceil(np.round(np.clip(self.upper * 1000.0, 0.0, MAX_MILLICORES), 6)).astype(np.int64),
-        )
+        with np.errstate(over="ignore"):  # 1e308 × 1000 is inf, then clipped
+            return (
+                np.ceil(np.round(np.clip(self.demand * 1000.0, 0.0, MAX_MILLICORES), 6)).astype(np.int64),
+                np.ceil(np.round(np.clip(self.upper * 1000.0, 0.0, MAX_MILLICORES), 6)).astype(np.int64),
+            )
 
 
 class DemandCurve:
