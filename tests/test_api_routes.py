@@ -402,7 +402,7 @@ def test_answers_equal_ratefit_predict(api: Api, rate: float) -> None:
         pytest.skip("`ratefit predict --output json` is not built yet (the curve lookup is compared in the other tests)")
     for key in (LINEAR_KEY, LOW_KEY):
         cli = subprocess.run(
-            [str(RATEFIT), "predict", "--store", str(api.store), "--key", key, "--rate", repr(rate), "--output", "json"],
+            [str(RATEFIT), "predict", key, "--store", str(api.store), "--rate", repr(rate), "--output", "json"],
             capture_output=True,
             text=True,
             timeout=60,
@@ -534,3 +534,19 @@ def test_serve_cli_refuses_an_fd_that_is_not_a_socket(store_dir: Path, tmp_path:
             pass_fds=(fh.fileno(),),
         )
     assert out.returncode == 2 and "--fd" in out.stderr
+
+
+def test_predict_speaks_table_markdown_and_json_with_a_positional_key(store_dir: Path) -> None:
+    def run(*args: str) -> subprocess.CompletedProcess[str]:
+        return subprocess.run([str(RATEFIT), "predict", *args], capture_output=True, text=True, timeout=60)
+
+    js = json.loads(run(LINEAR_KEY, "--store", str(store_dir), "--rate", "10", "--output", "json").stdout)
+    assert set(js) == {"model", "rate", "demand_m", "demand_bound_m", "extrapolated", "version"}
+    table = run(LINEAR_KEY, "--store", str(store_dir), "--rate", "10").stdout
+    assert "DEMAND BOUND" in table and f"{js['demand_bound_m']}m" in table
+    md = run(LINEAR_KEY, "--store", str(store_dir), "--rate", "10", "--output", "markdown").stdout.splitlines()
+    assert md[0].startswith("| MODEL |") and md[1].startswith("| --- |") and LINEAR_KEY in md[2]
+    old = run("--key", LINEAR_KEY, "--store", str(store_dir), "--rate", "10", "--output", "json")  # hidden alias
+    assert json.loads(old.stdout) == js
+    bad = run("--store", str(store_dir), "--rate", "10", "--output", "text")
+    assert bad.returncode == 2 and "invalid choice: 'text'" in bad.stderr
