@@ -45,7 +45,7 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from ratefit.models.curve import GRID_POINTS, DemandCurve
-from ratefit.models.errors import ArtifactError, InputError, UnknownModel
+from ratefit.models.errors import ArtifactError, UnknownModel
 from ratefit.models.keys import KEY_PATTERN, ModelKey, is_key, parse_key
 from ratefit.models.sanity import BoundError, check_curve
 

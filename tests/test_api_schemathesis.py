@@ -13,7 +13,6 @@ Bounded: ``EXAMPLES`` per operation and mode, with no deadline (the machine is s
 from __future__ import annotations
 
 from collections.abc import Iterator
-from pathlib import Path
 
 import httpx
 import pytest
