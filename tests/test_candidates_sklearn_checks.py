@@ -21,7 +21,9 @@ from ratefit.models.candidates import CappedForest, Subsampled, get_candidates
 #: CappedForest is a RandomForestRegressor whose fit only caps the bootstrap size; it
 #: inherits the forest's known exception: a bootstrapped forest is not equivalent
 #: when sample weights are replaced by repeated samples (the bootstrap draws differ),
-#: which scikit-learn lists as an expected failure for RandomForestRegressor itself.
+#: which scikit-learn lists as an expected failure for RandomForestRegressor itself
+#: (PER_ESTIMATOR_XFAIL_CHECKS in sklearn/utils/_test_common/instance_generator.py,
+#: scikit-learn 1.9). Subsampled skips nothing.
 EXPECTED_FAILURES: dict[str, dict[str, str]] = {
     "CappedForest": {
         "check_sample_weight_equivalence_on_dense_data": (
