@@ -72,7 +72,7 @@ def test_train_show_json_fields(trained, capsys) -> None:
 def test_report_written(trained) -> None:
     _, tmp = trained
     md = (tmp / "rep" / "shop__web__app.md").read_text()
-    assert "| model | RMSE | MAE | p95 abs error |" in md and "![demand curve" in md
+    assert "| estimator | RMSE | MAE | p95 abs error |" in md and "![demand curve" in md
     png = (tmp / "rep" / "shop__web__app.png").read_bytes()
     assert png[:8] == b"\x89PNG\r\n\x1a\n" and len(png) > 20_000
 
