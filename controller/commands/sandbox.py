@@ -8,8 +8,10 @@ import sys
 
 HELP = """\
 Serve a local STAND-IN for a Kubernetes API server on 127.0.0.1 (plain HTTP) and
-write a kubeconfig (context `ratefit-sandbox`) that kubectl and the official
-`kubernetes` Python client accept. It is a stand-in, not a cluster: there is no
+write a kubeconfig (context ratefit-sandbox) that kubectl and the official
+kubernetes Python client accept. An existing --kubeconfig file is replaced only if
+the sandbox wrote it (it opens with a "# ratefit sandbox kubeconfig" line and names
+only the ratefit-sandbox context); anything else is refused unless --force. It is a stand-in, not a cluster: there is no
 scheduler and no kubelet — pods become Running at once on `sandbox-node`, an in-place
 resize (pods/resize) is applied at once and shown in status.containerStatuses[].resources
 (a resize beyond the pretend node's 16 CPU / 64Gi is left PodResizePending/Infeasible;
@@ -48,7 +50,10 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="address to bind (default 127.0.0.1; the sandbox has no authentication)")
     p.add_argument("--kubeconfig", default="sandbox.kubeconfig", metavar="FILE",
                    help="where to write the kubeconfig (default ./sandbox.kubeconfig); use it "
-                        "with `KUBECONFIG=FILE kubectl …`")
+                        "with KUBECONFIG=FILE kubectl ... An existing file is replaced only if "
+                        "the sandbox wrote it (see --force)")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing --kubeconfig file even if the sandbox did not write it")
     p.add_argument("--load", nargs="+", default=[], metavar="PATH",
                    help="YAML/JSON manifests (files or directories, multi-document) to create "
                         "at start; CRDs and namespaces first, missing namespaces are created")
@@ -67,8 +72,11 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
-    from ratefit.controller.sandbox.server import SandboxServer
+    from ratefit.controller.sandbox import kubeconfig
+    from ratefit.controller.sandbox.server import CONTEXT, SandboxServer
 
+    # refuse a user's own kubeconfig before anything starts
+    kubeconfig.check_target(args.kubeconfig, CONTEXT, force=args.force)
     if args.host not in ("127.0.0.1", "localhost", "::1"):
         print("ratefit sandbox: warning: binding a non-loopback address; the sandbox accepts "
               "any client without authentication", file=sys.stderr)
@@ -79,7 +87,7 @@ def _run(args: argparse.Namespace) -> int:
     if args.load:
         print(f"ratefit sandbox: loading {len(args.load)} path(s)…", file=sys.stderr)
     sb.start()
-    path = sb.write_kubeconfig(args.kubeconfig)
+    path = sb.write_kubeconfig(args.kubeconfig, force=args.force)
     print(f"ratefit sandbox: serving {sb.url} (a stand-in, not a cluster)", file=sys.stderr)
     print(f"ratefit sandbox: kubeconfig written to {path}  (context ratefit-sandbox)",
           file=sys.stderr)

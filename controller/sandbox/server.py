@@ -454,14 +454,14 @@ class SandboxServer:
             "preferences": {},
         }
 
-    def write_kubeconfig(self, path: str | Path, *, namespace: str = "default") -> Path:
-        """Write a kubeconfig (context `ratefit-sandbox`) for kubectl and the Python client."""
-        import yaml
+    def write_kubeconfig(self, path: str | Path, *, namespace: str = "default",
+                         force: bool = False) -> Path:
+        """Write a kubeconfig (context `ratefit-sandbox`) for kubectl and the Python client.
+        An existing file is replaced only when the sandbox wrote it (or ``force``);
+        otherwise `kubeconfig.KubeconfigExists` says so."""
+        from ratefit.controller.sandbox import kubeconfig
 
-        path = Path(path)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        path.write_text(yaml.safe_dump(self.kubeconfig(namespace=namespace), sort_keys=False))
-        return path
+        return kubeconfig.write(path, self.kubeconfig(namespace=namespace), CONTEXT, force=force)
 
     def api_client(self) -> Any:
         """A `kubernetes.client.ApiClient` configured for this sandbox."""
