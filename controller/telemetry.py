@@ -3,8 +3,9 @@
 Everything is registered on a :class:`prometheus_client.CollectorRegistry` owned by
 one :class:`Telemetry` object (never the process-global registry), so tests and two
 controllers in one process do not share counters. :class:`HealthServer` serves the
-three routes on a small stdlib ``ThreadingHTTPServer`` (no framework needed for three
-GET routes; it keeps answering while the reconcile loop is busy or on standby):
+three routes on a small bounded stdlib HTTP server (``bounded_http``: a connection cap,
+header deadline and size limits; no framework needed for three GET routes; it keeps
+answering while the reconcile loop is busy or on standby):
 
 - ``/metrics`` — the Prometheus text exposition format (``prometheus_client`` renders it);
 - ``/healthz`` — 200 while the loop thread is alive (liveness: restart me if not);
@@ -18,13 +19,14 @@ Metric names follow the Prometheus naming guide (prometheus.io/docs/practices/na
 from __future__ import annotations
 
 import threading
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Callable
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
-__all__ = ["Telemetry", "HealthServer", "PASS_BUCKETS"]
+from ratefit.controller.bounded_http import BoundedHandler, BoundedHTTPServer, HttpLimits
+
+__all__ = ["Telemetry", "HealthServer", "HttpLimits", "PASS_BUCKETS"]
 
 #: pass-duration buckets (seconds): a pass over a few policies takes milliseconds,
 #: a pass over 10,000 workloads a few seconds (common practice, no source)
@@ -148,13 +150,16 @@ class HealthServer:
 
     ``port=0`` picks a free port (read it back from :attr:`port`). Binds 127.0.0.1
     unless told otherwise; in a cluster pass ``host="0.0.0.0"`` so probes reach it.
+    The server is bounded (:mod:`ratefit.controller.bounded_http`): a connection cap,
+    a header deadline, header size and count limits, one request per connection.
     """
 
-    def __init__(self, telemetry: Telemetry, *, host: str = "127.0.0.1", port: int = 0) -> None:
+    def __init__(self, telemetry: Telemetry, *, host: str = "127.0.0.1", port: int = 0,
+                 limits: HttpLimits | None = None) -> None:
         self.telemetry = telemetry
         tel = telemetry
 
-        class Handler(BaseHTTPRequestHandler):
+        class Handler(BoundedHandler):
             def do_GET(self) -> None:  # noqa: N802 - stdlib naming
                 path = self.path.split("?", 1)[0]
                 if path == "/metrics":
@@ -175,12 +180,22 @@ class HealthServer:
                 self.end_headers()
                 self.wfile.write(body)
 
-            def log_message(self, format: str, *args: object) -> None:  # noqa: A002
-                pass  # probes every few seconds would flood the controller's log
-
-        self._server = ThreadingHTTPServer((host, port), Handler)
-        self._server.daemon_threads = True
+        self._server = BoundedHTTPServer((host, port), Handler, limits=limits)
         self._thread: threading.Thread | None = None
+
+    @property
+    def limits(self) -> HttpLimits:
+        return self._server.limits
+
+    @property
+    def active_connections(self) -> int:
+        """Connections being served now (at most ``limits.max_connections``)."""
+        return self._server.active_connections
+
+    @property
+    def refused_connections(self) -> int:
+        """Connections answered 503 because the cap was reached, since start."""
+        return self._server.refused
 
     @property
     def port(self) -> int:
