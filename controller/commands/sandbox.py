@@ -32,6 +32,13 @@ Fault injection over HTTP (for tests driving a sandbox in another process):
   curl -X DELETE $URL/_sandbox/faults
 Fields: method ("*"), path (regex searched in the URL path), status, count (null = until
 cleared), latency (seconds), retryAfter, conflict (409), dropWatch (cut watch streams).
+Access reviews: POST /apis/authorization.k8s.io/v1/selfsubjectaccessreviews answers
+allowed (no RBAC here) unless a deny rule matches (--deny, or over HTTP:
+  curl -X POST $URL/_sandbox/access -d '{"verb":"patch","group":"apps","resource":"deployments"}'
+  curl -X DELETE $URL/_sandbox/access
+fields verb, group, resource, subresource, namespace; "*" matches any); a denied
+request gets 403 Forbidden. GET $URL/_sandbox/requests lists the last requests with
+their authorization attributes (verb, group, resource, subresource, namespace).
 POST $URL/_sandbox/compact forgets the watch history (next watches from an old
 resourceVersion get 410 Gone).
 """
@@ -66,6 +73,11 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="pods start Pending and turn Running/Ready after this delay; rollouts "
                         "then surge and wait (Deployments) or go one pod at a time, highest "
                         "ordinal first (StatefulSets). Default 0: everything at once")
+    p.add_argument("--deny", action="append", default=[], metavar="VERB:RESOURCE",
+                   help="fault mode: deny VERB on RESOURCE[.GROUP][/SUBRESOURCE] (e.g. "
+                        "patch:deployments.apps, patch:pods/resize, '*:leases.coordination.k8s.io'); "
+                        "SelfSubjectAccessReviews (kubectl auth can-i) answer no and such requests "
+                        "get 403 Forbidden. Repeatable. Default: everything is allowed")
     p.add_argument("--access-log", action="store_true",
                    help="print one line per request on stderr (method, path, status, time)")
     p.set_defaults(handler=_run)
@@ -75,8 +87,15 @@ def _run(args: argparse.Namespace) -> int:
     from ratefit.controller.sandbox import kubeconfig
     from ratefit.controller.sandbox.server import CONTEXT, SandboxServer
 
-    # refuse a user's own kubeconfig before anything starts
+    from ratefit.controller.sandbox.access import parse_deny
+    from ratefit.models.errors import InputError
+
+    # refuse a user's own kubeconfig and bad flags before anything starts
     kubeconfig.check_target(args.kubeconfig, CONTEXT, force=args.force)
+    try:
+        deny = [parse_deny(d) for d in args.deny]
+    except ValueError as exc:
+        raise InputError(str(exc)) from exc
     if args.host not in ("127.0.0.1", "localhost", "::1"):
         print("ratefit sandbox: warning: binding a non-loopback address; the sandbox accepts "
               "any client without authentication", file=sys.stderr)
@@ -84,6 +103,8 @@ def _run(args: argparse.Namespace) -> int:
                        bookmark_interval=args.bookmark_interval,
                        access_log=sys.stderr if args.access_log else None,
                        startup_seconds=args.startup_seconds)
+    for rule in deny:
+        sb.access.deny_json(rule)
     if args.load:
         print(f"ratefit sandbox: loading {len(args.load)} path(s)…", file=sys.stderr)
     sb.start()
