@@ -89,7 +89,7 @@ from ratefit.controller.policy import (
     set_condition,
 )
 from ratefit.controller.review import ReviewRow
-from ratefit.controller.telemetry import Telemetry
+from ratefit.controller.telemetry import CpuSample, Telemetry
 from ratefit.models.errors import RatefitError
 
 __all__ = [
@@ -528,6 +528,7 @@ class Reconciler:
             got: Mapping[str, RateResult] = self.rates.per_pod_rates(requests)
         except RatefitError as exc:  # a source that raises instead of answering NoMetrics
             got = {}
+            self.telemetry.rate_query_errors.labels(kind=type(exc).__name__).inc()
             errors.append(f"rates: {exc}")
         out: dict[str, float | None] = {}
         missing = 0
@@ -541,7 +542,7 @@ class Reconciler:
                 missing += 1
                 first_message = first_message or (res.message if res is not None else "no answer")
         if missing:
-            self.telemetry.metrics_errors.labels(kind="NoMetrics").inc(missing)
+            self.telemetry.rate_query_errors.labels(kind="NoMetrics").inc(missing)
             errors.append(f"rates: {missing} of {len(requests)} containers without a usable rate ({first_message})")
             log.warning("%d containers without a usable rate; held with NoMetrics: %s", missing, first_message)
         return out
@@ -704,7 +705,7 @@ class Reconciler:
                     except _LostLease:
                         e.decision = wd.rejected("lost the leader Lease before patching; nothing changed")
                         return
-                    self.telemetry.patches.labels(method="rollout").inc()
+                    self.telemetry.changes.labels(resize_by="Rollout").inc()
                     self._hook("after-patch")
                 self._retry_at.pop(key, None)
                 if self.backoff is not None:
@@ -824,7 +825,7 @@ class Reconciler:
         outcomes = self.kube.resize_pods(todo, changes)
         done = sum(1 for o in outcomes if o.ok)
         if done:
-            self.telemetry.patches.labels(method="in-place").inc(done)
+            self.telemetry.changes.labels(resize_by="InPlace").inc(done)
         refused = [o for o in outcomes if not o.ok and o.error_kind not in ("KubeNotFound", "Skipped")]
         if refused:  # a pod that went away is fine: its successor starts at the template value
             raise KubeInvalid(refused[0].error or "resize refused", what=f"resize pod {refused[0].pod}")
@@ -953,7 +954,7 @@ class Reconciler:
         if e.decision is None:
             return
         for d in e.decision.decisions:
-            self.telemetry.decisions.labels(verdict=d.verdict.value, why=d.why.value).inc()
+            self.telemetry.decisions.labels(verdict=d.verdict.value, reason=d.why.value).inc()
 
     def _rows(self, e: _Entry) -> list[ReviewRow]:
         obj = e.obj
@@ -984,6 +985,11 @@ class Reconciler:
     def _finish(self, result: PassResult, t0: float, phases: Mapping[str, float]) -> PassResult:
         dur = self._mono() - t0
         self.telemetry.passes.labels(outcome=result.outcome.value).inc()
+        if result.outcome in (PassOutcome.DONE, PassOutcome.DEGRADED):
+            self.telemetry.set_cpu(
+                CpuSample(namespace=r.namespace, workload=f"{r.kind}/{r.workload}", container=r.container,
+                          request_m=r.current_m, demand_m=r.demand_m, demand_bound_m=r.upper_m)
+                for r in result.rows)
         self.telemetry.pass_duration.observe(dur)
         self.telemetry.last_pass.set(time.time())
         log.info(json.dumps({
