@@ -224,3 +224,23 @@ def test_sandbox_cli_refuses_before_starting_and_force_replaces(tmp_path: Path) 
     finally:
         stop_process(res2)
     assert os.path.getsize(path) > 0
+
+
+# ---------------------------------------------------------------- demo without Prometheus
+
+@pytest.mark.slow
+def test_demo_without_prometheus_replays_the_history_and_says_so(tmp_path: Path) -> None:
+    """`make demo` needs neither root nor Prometheus: with no prometheus/promtool to be
+    found (RATEFIT_PROMETHEUS_BIN points nowhere, as local_servers.prometheus_binaries
+    reads it) and no --replay, the demo replays the history file and says so in one line."""
+    env = {**os.environ, "RATEFIT_PROMETHEUS_BIN": str(tmp_path / "no-prometheus"),
+           "RATEFIT_PROMTOOL_BIN": str(tmp_path / "no-promtool")}
+    out = tmp_path / "out"
+    res = subprocess.run([*RATEFIT, "demo", "--out", str(out), "--hours", "2", "--output", "json"],
+                         capture_output=True, text=True, timeout=600, env=env)
+    assert res.returncode == 0, res.stderr[-3000:]
+    said = [ln for ln in res.stderr.splitlines() if "Prometheus is not installed" in ln]
+    assert len(said) == 1 and "replays the history file" in said[0], res.stderr
+    assert "(rates from replay)" in res.stderr
+    assert "backfill" not in res.stderr
+    assert (out / "run" / RUN_MARKER).is_file()  # its own run dir, marked for the next run
