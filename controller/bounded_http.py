@@ -139,6 +139,9 @@ class BoundedHTTPServer(ThreadingHTTPServer):
 
     daemon_threads = True
     block_on_close = False
+    #: listen backlog (socketserver's default is 5: a burst of connections then waits
+    #: for SYN retries, seconds each, instead of being answered or refused at once)
+    request_queue_size = 128
 
     def __init__(self, address: tuple[str, int], handler: type[BoundedHandler], *,
                  limits: HttpLimits | None = None) -> None:
