@@ -145,3 +145,17 @@ def test_the_rbac_file_is_what_the_overlays_render() -> None:
               for d in yaml.safe_load_all((ROOT / "manifests" / "base" / "rbac.yaml").read_text())
               if d and d["kind"] in ("ClusterRole", "Role")}
     assert rendered == source
+
+
+def test_the_one_permission_list_matches_the_rbac_file() -> None:
+    """`ratefit check` asks one SelfSubjectAccessReview per entry of
+    ratefit.controller.permissions (issue 11): that list, the RBAC file and the derived set
+    above must be one and the same."""
+    permissions = pytest.importorskip("ratefit.controller.permissions",
+                                      reason="the permission list of `ratefit check` is not in this tree yet")
+    cluster, local = _rbac_rules()
+    listed = {(p.group, p.resource, p.verb) for p in permissions.all_permissions() if not p.lease}
+    listed_lease = {(p.group, p.resource, p.verb) for p in permissions.all_permissions() if p.lease}
+    assert listed == cluster, (f"in the list, not granted: {sorted(listed - cluster)}; "
+                               f"granted, not in the list: {sorted(cluster - listed)}")
+    assert listed_lease == local
