@@ -178,6 +178,12 @@ def run_demo(
     t_start = time.monotonic()
     out = Path(out).resolve()
     out.mkdir(parents=True, exist_ok=True)
+    from ratefit.controller.sandbox import kubeconfig as sandbox_kubeconfig
+    from ratefit.controller.sandbox.server import CONTEXT
+
+    # before any work: the demo writes DIR/kubeconfig, never over a user's own file
+    sandbox_kubeconfig.check_target(out / "kubeconfig", CONTEXT, what="the demo's kubeconfig",
+                                    fix="choose another --out, or move that file")
     work = prepare_run_dir(out / "run")
     manifests = repo_manifests()
     progress(f"scenario: {ORGANISATION} — INVENTED data; output in {out}")

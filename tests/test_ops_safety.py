@@ -144,6 +144,17 @@ def test_demo_cli_refuses_a_foreign_run_dir_in_one_line(tmp_path: Path) -> None:
     assert (out / "run" / "notes.txt").read_text() == "mine"
 
 
+def test_demo_cli_refuses_a_foreign_kubeconfig_in_out_before_any_work(tmp_path: Path) -> None:
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "kubeconfig").write_text(USER_KUBECONFIG)
+    res = subprocess.run([*RATEFIT, "demo", "--out", str(out), "--replay", "--hours", "1"],
+                         capture_output=True, text=True, timeout=120)
+    assert res.returncode == 2 and "is not a sandbox kubeconfig" in res.stderr.strip().splitlines()[-1]
+    assert (out / "kubeconfig").read_text() == USER_KUBECONFIG
+    assert not (out / "run").exists()  # refused before anything was written
+
+
 # ---------------------------------------------------------------- sandbox --kubeconfig
 
 def test_sandbox_kubeconfig_is_recognised_and_replaced(tmp_path: Path) -> None:

@@ -53,17 +53,18 @@ def is_sandbox_kubeconfig(path: Path, context: str) -> bool:
     return True
 
 
-def check_target(path: str | Path, context: str, *, force: bool = False) -> Path:
-    """Raise :class:`KubeconfigExists` unless ``path`` is free, one of ours, or ``force``."""
+def check_target(path: str | Path, context: str, *, force: bool = False,
+                 what: str = "--kubeconfig", fix: str = "choose another path, or pass --force to replace it") -> Path:
+    """Raise :class:`KubeconfigExists` unless ``path`` is free, one of ours, or ``force``.
+    ``what`` names the path in the message and ``fix`` says what to do."""
     path = Path(path)
     if force or not (path.exists() or path.is_symlink()):
         return path
     if path.is_dir():
-        raise KubeconfigExists(f"--kubeconfig {path} is a directory; give a file path")
+        raise KubeconfigExists(f"{what} {path} is a directory; give a file path")
     if not is_sandbox_kubeconfig(path, context):
         raise KubeconfigExists(
-            f"--kubeconfig {path} exists and is not a sandbox kubeconfig; refusing to overwrite "
-            "it (choose another path, or pass --force to replace it)")
+            f"{what} {path} exists and is not a sandbox kubeconfig; refusing to overwrite it ({fix})")
     return path
 
 
