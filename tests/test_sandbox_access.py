@@ -163,8 +163,13 @@ def test_request_attributes_follow_the_docs(method: str, path: str, query: dict,
 def test_request_log_carries_attributes(sandbox: SandboxServer, sandbox_api) -> None:
     sandbox.clear_requests()
     client.CoreV1Api(sandbox_api).list_namespaced_pod("default")
+    client.VersionApi(sandbox_api).get_code()
     (entry,) = [e for e in sandbox.requests if e["path"] == "/api/v1/namespaces/default/pods"]
     assert entry["attributes"] == {"verb": "list", "resource": "pods", "namespace": "default"}
+    (version,) = [e for e in sandbox.requests if e["path"] == "/version"]
+    assert version["attributes"] == {"verb": "get", "nonResourceURL": "/version"}
+    over_http = httpx.get(sandbox.url + "/_sandbox/requests").json()["requests"]
+    assert {"verb": "list", "resource": "pods", "namespace": "default"} in [e.get("attributes") for e in over_http]
 
 
 def test_parse_deny_spelling() -> None:

@@ -53,7 +53,9 @@ class Attributes:
         return not self.non_resource_url
 
     def to_json(self) -> dict[str, str]:
-        return {k: v for k, v in asdict(self).items() if v}
+        """The non-empty attributes, named as the SubjectAccessReview API names them."""
+        names = {"non_resource_url": "nonResourceURL"}
+        return {names.get(k, k): v for k, v in asdict(self).items() if v}
 
 
 def request_attributes(method: str, path: str, query: dict[str, list[str]] | None = None) -> Attributes:
