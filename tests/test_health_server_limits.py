@@ -145,7 +145,17 @@ def test_a_16_mib_header_is_never_read_to_the_end(server: HealthServer) -> None:
     assert sent < total
 
 
-def test_connections_beyond_the_cap_get_503_then_service_resumes(server: HealthServer) -> None:
+@pytest.fixture()
+def patient_server():
+    """Like `server`, with a header deadline long enough that the held sockets stay open
+    for the whole test however loaded the machine is."""
+    limits = HttpLimits(max_connections=4, header_timeout=60.0, write_timeout=5.0)
+    with HealthServer(Telemetry(), limits=limits) as srv:
+        yield srv
+
+
+def test_connections_beyond_the_cap_get_503_then_service_resumes(patient_server: HealthServer) -> None:
+    server = patient_server
     cap = server.limits.max_connections
     held = [_connect(server) for _ in range(cap)]
     # wait until the server has taken all of them (accept runs in its own thread)
