@@ -116,7 +116,7 @@ class Actor:
                                             after_dry_run=between)
                     except _LostLease:
                         return workload, wd.rejected("lost the leader Lease before patching; nothing changed")
-                    self.telemetry.patches.labels(method="rollout").inc()
+                    self.telemetry.changes.labels(resize_by="Rollout").inc()
                     self._hook("after-patch")
                 self.decider.retry_at.pop(key, None)
                 if self.backoff is not None:
@@ -202,7 +202,7 @@ class Actor:
         outcomes = self.kube.resize_pods(todo, changes)
         done = sum(1 for o in outcomes if o.ok)
         if done:
-            self.telemetry.patches.labels(method="in-place").inc(done)
+            self.telemetry.changes.labels(resize_by="InPlace").inc(done)
         refused = [o for o in outcomes if not o.ok and o.error_kind not in ("KubeNotFound", "Skipped")]
         if refused:  # a pod that went away is fine: its successor starts at the template value
             raise KubeInvalid(refused[0].error or "resize refused", what=f"resize pod {refused[0].pod}")

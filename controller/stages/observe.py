@@ -313,6 +313,7 @@ class Observer:
             got: Mapping[str, RateResult] = self.rates.per_pod_rates(requests)
         except RatefitError as exc:  # a source that raises instead of answering NoMetrics
             got = {}
+            self.telemetry.rate_query_errors.labels(kind=type(exc).__name__).inc()
             errors.append(f"rates: {exc}")
         out: dict[str, float | None] = {}
         missing = 0
@@ -326,7 +327,7 @@ class Observer:
                 missing += 1
                 first_message = first_message or (res.message if res is not None else "no answer")
         if missing:
-            self.telemetry.metrics_errors.labels(kind="NoMetrics").inc(missing)
+            self.telemetry.rate_query_errors.labels(kind="NoMetrics").inc(missing)
             errors.append(f"rates: {missing} of {len(requests)} containers without a usable rate ({first_message})")
             log.warning("%d containers without a usable rate; held with NoMetrics: %s", missing, first_message)
         return out

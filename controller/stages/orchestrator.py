@@ -29,7 +29,7 @@ from ratefit.controller.stages.outcome import PassOutcome, PassResult
 from ratefit.controller.stages.ports import Kube, KubeReader, RateSource, SizingSource
 from ratefit.controller.stages.record import review_rows
 from ratefit.controller.stages.write import RecordWriter
-from ratefit.controller.telemetry import Telemetry
+from ratefit.controller.telemetry import CpuSample, Telemetry
 
 __all__ = ["PassOutcome", "PassResult", "ReconcileConfig", "Reconciler"]
 
@@ -130,7 +130,7 @@ class Reconciler:
                 patched.append(o.policy.workload_key)
             rows.extend(review_rows(o, acted.decision, dry_run=self.config.dry_run))
             for d in acted.decision.decisions if acted.decision is not None else ():
-                self.telemetry.decisions.labels(verdict=d.verdict.value, why=d.why.value).inc()
+                self.telemetry.decisions.labels(verdict=d.verdict.value, reason=d.why.value).inc()
             if self.config.write and may_act():
                 w, ev = self.writer.write(acted, now, errors)
                 writes, events = writes + w, events + ev
@@ -159,6 +159,11 @@ class Reconciler:
         if view.rollouts_free is not None:
             self.telemetry.rollout_slots_left.set(view.rollouts_free)
         self.telemetry.passes.labels(outcome=result.outcome.value).inc()
+        if result.outcome in (PassOutcome.DONE, PassOutcome.DEGRADED):
+            self.telemetry.set_cpu(
+                CpuSample(namespace=r.namespace, workload=f"{r.kind}/{r.workload}", container=r.container,
+                          request_m=r.current_m, demand_m=r.demand_m, demand_bound_m=r.upper_m)
+                for r in result.rows)
         self.telemetry.pass_duration.observe(dur)
         self.telemetry.last_pass.set(time.time())
         log.info(json.dumps({
