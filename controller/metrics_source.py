@@ -250,7 +250,7 @@ def _failed(req: RateRequest, exc: PrometheusError, query: str) -> RateResult:
     """A Prometheus error as the request's answer: a refused query is QueryFailed (it will
     fail again until someone fixes it), anything else NoMetrics (temporary)."""
     if isinstance(exc, PromQLError):
-        return _missing(req, f"Prometheus refused the rate query: {exc}", query, QUERY_FAILED)
+        return _missing(req, str(exc), query, QUERY_FAILED)  # "Prometheus refused query … (HTTP 422 …): why"
     return _missing(req, str(exc), query)
 
 

@@ -26,7 +26,9 @@ The patterns (Kubernetes source facts, from memory, checked against copies of th
   them) each mapped into the alphabet ``bcdfghjklmnpqrstvwxz2456789`` (k8s.io/apimachinery
   ``pkg/util/rand``: no vowels, no 0, 1, 3). ``generateName`` appends ``rand.String(5)``
   from the same alphabet after cutting the prefix to 58 characters
-  (k8s.io/apiserver ``pkg/storage/names``: ``maxGeneratedNameLength = 63 - 5``). So::
+  (k8s.io/apiserver ``pkg/storage/names``: ``maxGeneratedNameLength = 63 - 5``). (As the
+  hash encodes decimal digits, real hashes use only ``456789bcdf``; the regex allows the
+  whole alphabet, a margin should a release change the encoding.) So::
 
       ^NAME-[bcdfghjklmnpqrstvwxz2456789]{1,10}-[bcdfghjklmnpqrstvwxz2456789]{5}$
 
