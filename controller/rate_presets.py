@@ -38,7 +38,7 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass, replace
 
-from ratefit.controller.metrics_source import RateTemplate
+from ratefit.controller.rate_template import RateTemplate
 from ratefit.models.errors import InputError
 
 __all__ = ["RatePreset", "PRESETS", "DEFAULT_PRESET", "PRESET_ENV", "preset", "template_for", "preset_table"]

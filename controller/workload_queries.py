@@ -32,7 +32,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from ratefit.controller.metrics_source import RateTemplate
+from ratefit.controller.rate_template import RateTemplate
 from ratefit.controller.pod_names import pod_name_regex, promql_string
 from ratefit.models.durations import parse_duration
 
