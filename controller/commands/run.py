@@ -73,8 +73,8 @@ def _truthy(text: str | None) -> bool:
     return (text or "").strip().lower() in ("1", "true", "yes", "on")
 
 
-def add_connection_flags(p: argparse.ArgumentParser) -> None:
-    """The flags `run` and `plan` share: where the cluster, the rates and the sizing API are."""
+def add_connection_flags(p: argparse.ArgumentParser, *, sizing_required: bool = True) -> None:
+    """The flags `run`, `plan` and `check` share: where the cluster, the rates and the sizing API are."""
     g = p.add_argument_group("connections")
     g.add_argument("--kubeconfig", metavar="FILE",
                    help="kubeconfig of the cluster (default: $KUBECONFIG, else in-cluster service account, else ~/.kube/config)")
@@ -82,7 +82,7 @@ def add_connection_flags(p: argparse.ArgumentParser) -> None:
     g.add_argument("--prometheus", metavar="URL", help="Prometheus base URL, e.g. http://127.0.0.1:9090")
     g.add_argument("--replay", metavar="FILE",
                    help="instead of --prometheus: compute the rates offline from an OpenMetrics history file")
-    g.add_argument("--sizing-api", metavar="URL", required=True, help="sizing API base URL (`ratefit serve`), e.g. http://127.0.0.1:8470")
+    g.add_argument("--sizing-api", metavar="URL", required=sizing_required, help="sizing API base URL (`ratefit serve`), e.g. http://127.0.0.1:8470")
     g.add_argument("--sizing-token-file", metavar="FILE", help="file holding the sizing API's bearer token")
     g.add_argument("--namespace", "-n", action="append", default=[], metavar="NS",
                    help="only SizingPolicies in this namespace (repeat for several; default: all namespaces)")
