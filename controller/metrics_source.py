@@ -148,6 +148,14 @@ class RateResult:
         """Alias of ``why``: the held reason when there is no rate."""
         return self.why
 
+    def status_message(self, limit: int = 1024) -> str:
+        """The message for the policy's status when there is no rate: why, then the query
+        that was (or would have been) sent, cut to ``limit`` characters."""
+        text = self.message or "no usable per-pod request rate"
+        if self.query:
+            text += " — query: " + " ".join(self.query.split())
+        return text if len(text) <= limit else text[: limit - 1] + "…"
+
 
 class RateSource(Protocol):
     def per_pod_rates(self, requests: Sequence[RateRequest]) -> dict[str, RateResult]: ...

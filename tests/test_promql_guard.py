@@ -40,7 +40,7 @@ ALLOWED = [
     "x_total{namespace='shop'}",
     'x_total{namespace="shop", namespace!="kube-system"}',
     'rate(x_total{namespace="shop"}[1m]) # a comment: other_total',
-    "vector(1) * on() group_left() x_total{namespace=\"shop\"}",
+    'x_total{namespace="shop"} * on() group_left() vector(1)',
 ]
 
 REFUSED = [
@@ -162,3 +162,72 @@ def test_prometheus_error_text_reaches_the_message(tmp_path, prometheus_from_ope
         got = PrometheusRateSource(c, at=end).per_pod_rates([r])[r.key]
     assert got.why == QUERY_FAILED
     assert "Prometheus refused query" in got.message and "invalid regular expression" in got.message
+
+
+@pytest.mark.prometheus
+def test_allowed_queries_answer_the_same_without_the_other_namespace(tmp_path, prometheus_from_openmetrics):
+    """Differential check against Prometheus itself: every query the guard lets through
+    answers exactly the same on a server that also holds another namespace's series (with
+    other values and the same pod names) as on a server holding only shop's — so nothing
+    of the other namespace reaches the answer, whatever the parser thinks."""
+    end = float(int(time.time()) - 600)
+    both, only = [], []
+    for ns, k in (("shop", 1.0), ("bank", 37.0)):
+        for fam in ("x_total", "http_requests_total", "a_total", "b_total"):
+            for i in range(3):
+                for t in range(0, 1801, 30):
+                    row = f'{fam}{{namespace="{ns}",pod="api-{i}",instance="i{i}"}} {k * (1 + i) * t} {end - 1800 + t}'
+                    both.append(row)
+                    if ns == "shop":
+                        only.append(row)
+
+    def write(name, rows):
+        rows = sorted(rows, key=lambda s: (s.split(" ")[0].split("{")[0], s.split(" ")[0], float(s.split(" ")[2])))
+        out, seen = [], set()
+        for r in rows:
+            fam = r.split("{")[0].removesuffix("_total")
+            if fam not in seen:
+                seen.add(fam)
+                out.append(f"# TYPE {fam} counter")
+            out.append(r)
+        (tmp_path / name).write_text("\n".join(out + ["# EOF", ""]))
+        return tmp_path / name
+
+    a = prometheus_from_openmetrics(write("both.om", both))
+    b = prometheus_from_openmetrics(write("only.om", only))
+    with PrometheusClient(a.url) as ca, PrometheusClient(b.url) as cb:
+        for q in ALLOWED:
+            check_namespace(q, NS)
+            ra = sorted((tuple(sorted(s.labels.items())), s.value) for s in ca.query(q, at=end))
+            rb = sorted((tuple(sorted(s.labels.items())), s.value) for s in cb.query(q, at=end))
+            assert ra == rb, q
+            assert ra, q  # and it answers something
+
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+POOL = ['namespace="shop"', 'namespace="bank"', 'namespace=~"shop"', 'namespace!="shop"', 'pod="p-1"',
+        'job!="x"', 'namespace=""']
+
+
+@settings(max_examples=300, deadline=None)
+@given(sels=st.lists(st.tuples(st.sampled_from(["x_total", "y_total", ""]),
+                               st.lists(st.sampled_from(POOL), max_size=4)), min_size=1, max_size=4),
+       ops=st.lists(st.sampled_from([" + ", " or ", " / on(pod) ", " and "]), min_size=3, max_size=3),
+       wrap=st.sampled_from(["{}", "rate({}[5m])", "sum by (pod) (rate({}[5m]))", "max_over_time({}[10m:1m])"]))
+def test_guard_accepts_exactly_the_queries_whose_every_selector_is_shops(sels, ops, wrap):
+    parts = []
+    for name, ms in sels:
+        if not name and not ms:
+            ms = ['pod="p-1"']  # a selector needs a name or a matcher
+        body = name + "{" + ",".join(ms) + "}"
+        parts.append(wrap.format(body) if "[" not in wrap or name or ms else body)
+    q = parts[0] + "".join(op + p for op, p in zip(ops, parts[1:]))
+    expected = all('namespace="shop"' in ms for _, ms in sels)
+    try:
+        check_namespace(q, NS)
+        accepted = True
+    except QueryRefused:
+        accepted = False
+    assert accepted == expected, q
