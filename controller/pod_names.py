@@ -68,6 +68,7 @@ __all__ = [
     "pod_name_regex",
     "promql_string",
     "PodAssigner",
+    "pods_regex",
 ]
 
 #: k8s.io/apimachinery pkg/util/rand: the alphabet of random suffixes and of pod-template hashes
@@ -135,42 +136,66 @@ class WorkloadRef:
         return pod_name_regex(self.kind, self.name)
 
 
+#: a Deployment whose name is at most this long never has its pods' hash cut (58 − 1 − 10 − 1)
+SHORT_NAME = MAX_GENERATED_PREFIX - MAX_HASH_LENGTH - 2
+
+
 class PodAssigner:
     """Assigns pod names to workloads of one set, by :func:`pod_name_regex`.
 
     A pod matching several workloads of its namespace goes to the one with the longest
     name (the more specific prefix); ties (the same name as Deployment and StatefulSet)
     go to the kind that sorts first, and are counted in :attr:`ambiguous`.
+
+    Cost per pod is constant, not proportional to the workloads: the candidate names are
+    cut from the pod name (its last one or two dash-separated parts: the hash and suffix
+    of a Deployment's pod, the ordinal of a StatefulSet's), looked up in a dict and
+    confirmed by that workload's regex; only Deployments with names longer than
+    :data:`SHORT_NAME` (whose pods' hash may be cut) are tried one by one.
     """
 
     def __init__(self, workloads: Iterable[WorkloadRef]) -> None:
-        by_ns: dict[str, dict[tuple[str, str], re.Pattern[str]]] = {}
+        self._by_name: dict[tuple[str, str], list[tuple[WorkloadRef, re.Pattern[str]]]] = {}
+        self._long: dict[str, list[tuple[WorkloadRef, re.Pattern[str]]]] = {}
+        self._refs: set[WorkloadRef] = set()
         for w in workloads:
-            by_ns.setdefault(w.namespace, {})[(w.kind, w.name)] = re.compile(w.regex)
-        # longest name first: the first match is the most specific
-        self._order = {
-            ns: sorted(pats.items(), key=lambda kv: (-len(kv[0][1]), kv[0][0] or "", kv[0][1]))
-            for ns, pats in by_ns.items()
-        }
+            if w in self._refs:
+                continue
+            self._refs.add(w)
+            entry = (w, re.compile(w.regex))
+            self._by_name.setdefault((w.namespace, w.name), []).append(entry)
+            if w.kind != "StatefulSet" and len(w.name) > SHORT_NAME:
+                self._long.setdefault(w.namespace, []).append(entry)
+        for entries in self._by_name.values():
+            entries.sort(key=lambda e: e[0].kind or "")
         self.ambiguous = 0
+
+    @property
+    def workloads(self) -> tuple[WorkloadRef, ...]:
+        return tuple(sorted(self._refs, key=lambda w: (w.namespace, w.name, w.kind or "")))
 
     def workload_of(self, namespace: str, pod: str) -> WorkloadRef | None:
         """The workload ``pod`` belongs to, or None when no workload of the set matches."""
-        found = None
-        for (kind, name), rx in self._order.get(namespace, ()):
-            if rx.match(pod):
-                if found is None:
-                    found = WorkloadRef(namespace, kind, name)
-                elif len(name) == len(found.name):
-                    self.ambiguous += 1
-                    break
-                else:
-                    break
-        return found
-
-    def regex_for(self, namespace: str) -> str:
-        """One regex for all pods of this set's workloads in ``namespace`` (an alternation)."""
-        return "|".join(f"({WorkloadRef(namespace, k, n).regex})" for (k, n), _ in self._order.get(namespace, ()))
+        names = set()
+        parts = pod.rsplit("-", 2)
+        if len(parts) >= 2:
+            names.add(parts[0] + "-" + parts[1] if len(parts) == 3 else parts[0])  # StatefulSet: cut the ordinal
+        if len(parts) == 3:
+            names.add(parts[0])  # Deployment: cut hash and suffix
+        found: list[WorkloadRef] = []
+        for name in names:
+            for w, rx in self._by_name.get((namespace, name), ()):
+                if rx.match(pod):
+                    found.append(w)
+        for w, rx in self._long.get(namespace, ()):
+            if w not in found and rx.match(pod):
+                found.append(w)
+        if not found:
+            return None
+        found.sort(key=lambda w: (-len(w.name), w.kind or ""))
+        if len(found) > 1 and len(found[1].name) == len(found[0].name):
+            self.ambiguous += 1
+        return found[0]
 
     def split(self, namespace: str, pods: Mapping[str, float]) -> dict[WorkloadRef, dict[str, float]]:
         """``{pod: value}`` of one namespace → ``{workload: {pod: value}}`` (unmatched pods dropped)."""
@@ -180,3 +205,25 @@ class PodAssigner:
             if w is not None:
                 out.setdefault(w, {})[pod] = v
         return out
+
+
+def pods_regex(workloads: Iterable[WorkloadRef]) -> str:
+    """One regex for the pods of all ``workloads`` (any namespace), factored so that a
+    regex engine matches it in time independent of the number of workloads: the names of
+    short-named Deployments share one ``(?:a|b|…)-HASH-SUFFIX`` branch, those of
+    StatefulSets one ``(?:a|b|…)-ORDINAL`` branch; long-named Deployments (whose hash may
+    be cut) get their own :func:`pod_name_regex`. Equivalent to the alternation of every
+    workload's own regex."""
+    dep, sts, long_ = set(), set(), set()
+    for w in workloads:
+        if w.kind in (None, "StatefulSet"):
+            sts.add(w.name)
+        if w.kind in (None, "Deployment"):
+            (dep if len(w.name) <= SHORT_NAME else long_).add(w.name)
+    branches = []
+    if dep:
+        branches.append(f"^(?:{'|'.join(_literal(n) for n in sorted(dep))})-{_CHAR}{{1,{MAX_HASH_LENGTH}}}-{_CHAR}{{5}}$")
+    if sts:
+        branches.append(f"^(?:{'|'.join(_literal(n) for n in sorted(sts))})-(0|[1-9][0-9]*)$")
+    branches += [pod_name_regex("Deployment", n) for n in sorted(long_)]
+    return "|".join(branches)

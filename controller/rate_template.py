@@ -12,7 +12,7 @@ import re
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from ratefit.controller.pod_names import WorkloadRef, pod_name_regex, promql_string
+from ratefit.controller.pod_names import WorkloadRef, pod_name_regex, pods_regex, promql_string
 from ratefit.models.durations import parse_duration
 from ratefit.models.errors import InputError
 
@@ -59,9 +59,9 @@ class RateTemplate:
             by = f"{self.namespace_label}, {self.workload_label}, {self.pod_label}"
         else:
             by = f"{self.namespace_label}, {self.pod_label}"
-            rx = sorted({w.regex for w in workloads})
+            rx = pods_regex(workloads)
             if rx:
-                sel += f',{self.pod_label}=~"{promql_string("|".join(rx))}"'
+                sel += f',{self.pod_label}=~"{promql_string(rx)}"'
         return f"sum by ({by}) (rate({self.metric}{{{sel}{self._fixed()}}}[{self.interval}]))"
 
     def for_workload(self, namespace: str, kind: str | None, name: str) -> str:

@@ -60,7 +60,7 @@ def test_grouped_query_text_is_documented_shape():
     one = [RateRequest("parcels", "p", "label-printer", "app", workload_kind="StatefulSet")]
     assert grouped_query(_groups(one), template=TEMPLATE, step="30s") == (
         'quantile_over_time(0.95, sum by (namespace, pod) (rate(kestrel_http_requests_total{namespace=~"parcels",'
-        'pod=~"^label-printer-(0|[1-9][0-9]*)$"}[2m]))[1h:30s])')
+        'pod=~"^(?:label-printer)-(0|[1-9][0-9]*)$"}[2m]))[1h:30s])')
 
 
 def test_one_grouped_query_equals_per_policy_queries(scenario_prometheus):

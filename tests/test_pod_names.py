@@ -166,3 +166,31 @@ def test_regexes_have_the_syntax_re2_and_python_share():
     for forbidden in ("(?P", "(?<", "\\d", "\\-"):
         assert forbidden not in rx
     assert set(string.ascii_uppercase) & set(rx.replace("Deployment", "")) == set()
+
+
+@settings(max_examples=200, deadline=None)
+@given(names=st.lists(st.tuples(st.sampled_from(["Deployment", "StatefulSet", None]),
+                                st.one_of(dns_label, st.from_regex(r"\Asvc-[a-z]{45,60}\Z"))), min_size=1, max_size=6),
+       seed=st.integers(0, 2**32 - 1))
+def test_the_factored_regex_and_the_assigner_equal_the_per_workload_regexes(names, seed):
+    """pods_regex (sent to Prometheus) matches exactly the pods some workload's own regex
+    matches, and PodAssigner's shortcut picks what trying every regex would pick."""
+    from ratefit.controller.pod_names import pods_regex
+
+    rng = random.Random(seed)
+    refs = [WorkloadRef("n", k, n) for k, n in names]
+    pods = set()
+    for _, n in names:
+        pods |= {deployment_pod(n, rng), f"{n}-{rng.randrange(100)}", f"{n}-x", f"{n}-{rng.randrange(100)}-0"}
+        pods.add(deployment_pod(n + "-" + rng.choice(["v2", "1", "api"]), rng))
+    big = re.compile(pods_regex(refs))
+    a = PodAssigner(refs)
+    for pod in pods:
+        own = [w for w in refs if re.match(w.regex, pod)]
+        assert (big.match(pod) is not None) == bool(own), pod
+        got = a.workload_of("n", pod)
+        if not own:
+            assert got is None, pod
+        else:
+            longest = max(len(w.name) for w in own)
+            assert got in own and len(got.name) == longest, pod
