@@ -320,14 +320,14 @@ def check_sizing(parts: CheckParts) -> tuple[list[CheckLine], dict[str, tuple[fl
     try:
         health = parts.sizing.health()
     except RatefitError as exc:
-        return [CheckLine("sizing api", Status.FAIL, str(exc), "start `ratefit serve` and pass its URL")], None
+        return [CheckLine("sizing api", Status.FAIL, str(exc), "start ratefit serve and pass its URL")], None
     try:
         models = parts.sizing.models()
     except RatefitError as exc:
         status = getattr(exc, "status", None)
         if status in (401, 403):
             return [CheckLine("sizing api", Status.FAIL, f"the token was refused (HTTP {status})",
-                              "pass --sizing-token-file with the token `ratefit serve` was started with")], None
+                              "pass --sizing-token-file with the token ratefit serve was started with")], None
         return [CheckLine("sizing api", Status.FAIL, str(exc), "check the sizing API")], None
     line = CheckLine("sizing api", Status.OK if health.ready else Status.WARN,
                      f"{parts.sizing.base_url} {'ready' if health.ready else 'NOT ready'}, {len(models)} models"

@@ -137,6 +137,9 @@ def test_against_prometheus_boundary_cap_and_errors(tmp_path, prometheus_from_op
     # the boundary: bank's series never reach shop's policy; nothing was sent for the refused ones
     assert by["other"].why == QUERY_REFUSED and 'x_total{namespace="bank"}' in by["other"].message
     assert by["all"].why == QUERY_REFUSED and "no namespace matcher" in by["all"].message
+    # what the policy's status gets: why, and the query as written
+    assert by["other"].status_message().endswith('query: sum by (pod) (rate(x_total{namespace="bank"}[2m]))')
+    assert len(by["own"].status_message(limit=80)) == 80
     assert by["bad"].why == QUERY_REFUSED
     # the cap: 12 pods > 10 → held, the largest value is not used
     assert by["own"].why == TOO_MANY_SERIES and by["own"].rate is None and "12 series" in by["own"].message

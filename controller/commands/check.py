@@ -29,7 +29,7 @@ OK / WARN / FAIL, with the fix for each problem:
   model        each container's model exists; the current rate is inside its
                trained range
 
-Takes the same connection and rate flags as `ratefit plan`. Changes nothing.
+Takes the same connection and rate flags as ratefit plan. Changes nothing.
 --output json prints {"ok": bool, "counts": {...}, "checks": [{check, status,
 detail, fix, subject, query}]}. Exit status: 0 when nothing FAILs, 1 on any FAIL,
 2 on bad input.
