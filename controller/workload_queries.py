@@ -46,6 +46,8 @@ __all__ = [
     "container_queries",
     "cpu_series_query",
     "normalised_rate_query",
+    "PolicyQueries",
+    "queries_for_policy",
 ]
 
 CPU_METRIC = "container_cpu_usage_seconds_total"
@@ -119,3 +121,35 @@ def container_queries(namespace: str, kind: str, workload: str, container: str, 
         cpu=cpu_query(namespace, kind, workload, container, interval=iv),
         throttle=throttle_query(namespace, kind, workload, container, interval=iv),
     )
+
+
+@dataclass(frozen=True, slots=True)
+class PolicyQueries:
+    """What training needs for one container of a SizingPolicy: the model key to write and
+    the container's three queries (the rate from the policy's own ``rateQuery`` when set)."""
+
+    model: str
+    queries: ContainerQueries
+
+
+def queries_for_policy(policy, *, template: RateTemplate = RateTemplate(), interval: str | None = None,
+                       guard=None) -> list[PolicyQueries]:
+    """Every container of ``policy`` (``controller/policy.Policy``) with its queries, for
+    ``ratefit train --from-policies``. A container's own ``rateQuery`` is used as written,
+    after ``guard`` (``promql_guard.QueryGuard``; default: the namespace boundary) —
+    it raises ``QueryRefused`` naming the selector for a query reaching outside the
+    policy's namespace, as the controller would refuse it."""
+    from dataclasses import replace
+
+    from ratefit.controller.promql_guard import QueryGuard
+
+    guard = guard if guard is not None else QueryGuard()
+    out = []
+    for c in policy.containers:
+        q = container_queries(policy.namespace, policy.workload_kind, policy.workload_name, c.name,
+                              template=template, interval=interval)
+        if c.rate_query is not None:
+            guard.check(c.rate_query, policy.namespace)
+            q = replace(q, rate=c.rate_query)
+        out.append(PolicyQueries(model=c.model, queries=q))
+    return out

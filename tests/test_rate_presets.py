@@ -183,3 +183,25 @@ def test_readme_table_is_the_generated_one():
     for p in PRESETS.values():
         q = p.template.for_workload("shop", "Deployment", "api")
         assert re.search(re.escape(q.replace("|", "\\|")), readme), p.name
+
+
+def test_queries_for_policy_keeps_the_namespace_boundary():
+    from ratefit.controller.policy import parse_policy
+    from ratefit.controller.promql_guard import QueryRefused
+    from ratefit.controller.workload_queries import queries_for_policy
+
+    def pol(rate_query=None):
+        c = {"name": "app", "model": "shop/db-1/app"}
+        if rate_query:
+            c["rateQuery"] = rate_query
+        return parse_policy({"apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
+                             "metadata": {"name": "db-1", "namespace": "shop"},
+                             "spec": {"workload": {"kind": "StatefulSet", "name": "db-1"}, "containers": [c]}})
+
+    [one] = queries_for_policy(pol())
+    assert one.model == "shop/db-1/app" and one.queries.cpu == cpu_query("shop", "StatefulSet", "db-1", "app")
+    assert 'pod=~"^db-1-(0|[1-9][0-9]*)$"' in one.queries.rate
+    own = 'sum by (namespace, pod) (rate(orders_total{namespace="shop"}[2m]))'
+    assert queries_for_policy(pol(own))[0].queries.rate == own
+    with pytest.raises(QueryRefused, match="bank"):
+        queries_for_policy(pol('sum by (pod) (rate(orders_total{namespace="bank"}[2m]))'))
