@@ -72,6 +72,10 @@ def world(scenario_prometheus, tmp_path_factory):
         cname = ghost["spec"]["template"]["spec"]["containers"][0]["name"]
         sb.create(policy(first.namespace, "ghost-api", workload="ghost-api", mode="dry-run",
                          containers=[{"name": cname, "model": f"{first.namespace}/ghost-api/{cname}"}]))
+        # a policy whose rateQuery reads another namespace's series: refused, never sent
+        sb.create(policy("parcels", "nosy", workload="label-printer", mode="dry-run",
+                         containers=[{"name": "app", "model": "parcels/label-printer/app",
+                                      "rateQuery": f'sum by (pod) (rate({REQUEST_METRIC}{{namespace="dispatch"}}[2m]))'}]))
         kc = sb.write_kubeconfig(tmp / "kubeconfig")
         with serve_process(tmp / "store", token=TOKEN, workdir=tmp) as api:
             (tmp / "token").write_text(TOKEN + "\n")
@@ -120,6 +124,9 @@ def test_check_reports_every_part_and_fails_the_policy_without_series(world):
     rate = lines(doc, "request rate", ghost)[0]
     assert rate["status"] == "FAIL" and rate["detail"].startswith("NoMetrics")
     assert REQUEST_METRIC in rate["query"] and "ghost-api" in rate["query"]
+    nosy = lines(doc, "request rate", "parcels/nosy/app")[0]
+    assert nosy["status"] == "FAIL" and nosy["detail"].startswith("QueryRefused")
+    assert 'namespace="dispatch"' in nosy["detail"] and 'namespace="parcels"' in nosy["fix"]
     model = lines(doc, "model", ghost)[0]
     assert model["status"] == "FAIL" and "train" in model["fix"]
     # every scenario container: series, a rate (the query printed), a model with the rate inside its range
