@@ -58,7 +58,7 @@ assigns them to workloads on the client.
 from __future__ import annotations
 
 import re
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 
 __all__ = [
@@ -139,6 +139,25 @@ class WorkloadRef:
 #: a Deployment whose name is at most this long never has its pods' hash cut (58 − 1 − 10 − 1)
 SHORT_NAME = MAX_GENERATED_PREFIX - MAX_HASH_LENGTH - 2
 
+_Match = Callable[[str], object]
+#: what follows the name in a pod of a short-named Deployment, and of any StatefulSet
+_DEPLOYMENT_TAIL = re.compile(f"-{_CHAR}{{1,{MAX_HASH_LENGTH}}}-{_CHAR}{{5}}")
+_STATEFULSET_TAIL = re.compile("-(0|[1-9][0-9]*)")
+
+
+def _matcher(w: WorkloadRef) -> _Match:
+    """``pod -> truthy`` exactly when ``pod_name_regex(w.kind, w.name)`` matches, without
+    compiling a regex per workload in the common cases (thousands of workloads per pass)."""
+    name = w.name
+    if w.kind is None:
+        dep, sts = _matcher(WorkloadRef(w.namespace, "Deployment", name)), _matcher(WorkloadRef(w.namespace, "StatefulSet", name))
+        return lambda pod: dep(pod) or sts(pod)
+    if w.kind == "StatefulSet":
+        return lambda pod: pod.startswith(name) and _STATEFULSET_TAIL.fullmatch(pod, len(name)) is not None
+    if len(name) <= SHORT_NAME:
+        return lambda pod: pod.startswith(name) and _DEPLOYMENT_TAIL.fullmatch(pod, len(name)) is not None
+    return re.compile(w.regex).match
+
 
 class PodAssigner:
     """Assigns pod names to workloads of one set, by :func:`pod_name_regex`.
@@ -155,14 +174,14 @@ class PodAssigner:
     """
 
     def __init__(self, workloads: Iterable[WorkloadRef]) -> None:
-        self._by_name: dict[tuple[str, str], list[tuple[WorkloadRef, re.Pattern[str]]]] = {}
-        self._long: dict[str, list[tuple[WorkloadRef, re.Pattern[str]]]] = {}
+        self._by_name: dict[tuple[str, str], list[tuple[WorkloadRef, _Match]]] = {}
+        self._long: dict[str, list[tuple[WorkloadRef, _Match]]] = {}
         self._refs: set[WorkloadRef] = set()
         for w in workloads:
             if w in self._refs:
                 continue
             self._refs.add(w)
-            entry = (w, re.compile(w.regex))
+            entry = (w, _matcher(w))
             self._by_name.setdefault((w.namespace, w.name), []).append(entry)
             if w.kind != "StatefulSet" and len(w.name) > SHORT_NAME:
                 self._long.setdefault(w.namespace, []).append(entry)
@@ -185,10 +204,10 @@ class PodAssigner:
         found: list[WorkloadRef] = []
         for name in names:
             for w, rx in self._by_name.get((namespace, name), ()):
-                if rx.match(pod):
+                if rx(pod):
                     found.append(w)
         for w, rx in self._long.get(namespace, ()):
-            if w not in found and rx.match(pod):
+            if w not in found and rx(pod):
                 found.append(w)
         if not found:
             return None
