@@ -261,3 +261,21 @@ def test_permission_list_matches_the_rbac_manifest():
                             granted[d["kind"]].add((g, r, v))
     for p in all_permissions():
         assert (p.group, p.resource, p.verb) in granted["Role" if p.lease else "ClusterRole"], p.text
+
+
+def test_store_instead_of_the_sizing_api(world):
+    p = subprocess.run([str(RATEFIT), "check", "--kubeconfig", str(world["kc"]), "--prometheus", world["prom"].url,
+                        "--rate-metric", REQUEST_METRIC, "--rate-at", str(world["prom"].end),
+                        "--store", str(world["tmp"] / "store"), "--output", "json"],
+                       capture_output=True, text=True, timeout=180)
+    doc = json.loads(p.stdout)
+    store = lines(doc, "model store")[0]
+    n = sum(len(s.containers) for s in SCENARIO)
+    assert store["status"] == "OK" and f"{n} models" in store["detail"]
+    s = SCENARIO[0]
+    key = f"{s.namespace}/{s.workload}/{s.containers[0].name}"
+    assert lines(doc, "model", key)[0]["status"] == "OK" and "inside its trained range" in lines(doc, "model", key)[0]["detail"]
+    assert lines(doc, "model", world["ghost"])[0]["status"] == "FAIL" and p.returncode == 1
+    bad = subprocess.run([str(RATEFIT), "check", "--prometheus", world["prom"].url, "--store", "x", "--sizing-api", "http://127.0.0.1:1"],
+                         capture_output=True, text=True, timeout=60)
+    assert bad.returncode == 2 and "not both" in bad.stderr
