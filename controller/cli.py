@@ -28,6 +28,7 @@ COMMANDS = (
     "plan",
     "run",
     "revert",
+    "profile",
 )
 
 DESCRIPTION = """\
