@@ -52,6 +52,19 @@ def nginx_missing_reason() -> str | None:
     return "nginx is not installed (Debian: apt-get install -y nginx-light; `make test` installs it as root)"
 
 
+def require_nginx() -> None:
+    """Skip when nginx is missing and we are not root; fail when root (CI): there
+    `make test` installs nginx-light, so a missing binary is a broken set-up."""
+    import pytest
+
+    reason = nginx_missing_reason()
+    if reason is None:
+        return
+    if os.geteuid() == 0:
+        pytest.fail(reason)
+    pytest.skip(reason)
+
+
 def parcels_json(n: int = 400, seed: int = 7) -> bytes:
     """An INVENTED Kestrel Post parcel list, about 100 bytes per parcel."""
     rnd = random.Random(seed)
@@ -188,7 +201,8 @@ def run_cpu_app(work: Path, *, cost_s: float) -> Iterator[Served]:
     with open(log, "w") as fh:
         proc = subprocess.Popen(
             [sys.executable, "-m", "uvicorn", "cpu_app:app", "--host", "127.0.0.1", "--port", str(port),
-             "--workers", "1", "--no-access-log", "--log-level", "warning", "--backlog", "4096"],
+             "--workers", "1", "--no-access-log", "--log-level", "warning", "--backlog", "4096",
+             "--timeout-graceful-shutdown", "1"],
             stdout=fh, stderr=subprocess.STDOUT, start_new_session=True, env=env, cwd=work,
         )
     try:
