@@ -12,11 +12,13 @@ $(STAMP): pyproject.toml
 	$(VENV)/bin/pip install -q -e '.[test]'
 	touch $(STAMP)
 
-# The tests run the real Prometheus server (Debian package `prometheus`).
+# The tests run the real Prometheus server (Debian package `prometheus`), and the
+# profiler's tests a real nginx (Debian package `nginx-light`; installed when root).
 prometheus:
-	@command -v prometheus >/dev/null 2>&1 && command -v promtool >/dev/null 2>&1 || { \
+	@command -v prometheus >/dev/null 2>&1 && command -v promtool >/dev/null 2>&1 && \
+	  { [ "$$(id -u)" != 0 ] || [ -x /usr/sbin/nginx ]; } || { \
 	  if [ "$$(id -u)" = 0 ]; then \
-	    apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq prometheus >/dev/null; \
+	    apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq prometheus nginx-light >/dev/null; \
 	    (service prometheus stop || pkill -x prometheus || true) >/dev/null 2>&1; \
 	  else echo "Prometheus is missing: sudo apt-get install -y prometheus" >&2; exit 1; fi; }
 
