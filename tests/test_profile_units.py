@@ -108,6 +108,21 @@ def test_summarize_step_counts_what_happened_in_the_measured_window() -> None:
     assert s.p50_ms == pytest.approx(5.0) and s.p99_ms == pytest.approx(5.0)
     assert len(s.samples) == 4 and all(x.cpu == pytest.approx(0.02) for x in s.samples)
     assert s.ok is False  # achieved 9 < 10 x 0.95
+    assert not s.client_limited and "achieved" in s.failed[0]
+
+
+def test_a_starved_client_is_not_taken_for_the_service_knee() -> None:
+    """When the client's own loop falls behind (tasks start late), the step says nothing
+    about the service: no capacity is recorded from it."""
+    c = Criteria(slo_p99_ms=100)
+    # due at 10 req/s over [0, 10); the client only got round to them at 6 req/s
+    outs = [Outcome(i / 10, i / 6, i / 6 + 0.005, 200, "", i / 6) for i in range(100)]
+    readings = [CpuReading(wall=0, mono=float(t), cpu_seconds=0.0) for t in (2, 6, 10)]
+    s = summarize_step(10.0, outs, readings, CounterProbe(), c)
+    assert s.dispatch_rate == pytest.approx(6.0, rel=0.1)
+    assert s.client_limited and "load generator fell behind" in s.failed[0]
+    ok = judged(step(5, 5), c)
+    assert find_capacity([ok, s]) is None
 
 
 def test_samples_csv_is_the_training_format(tmp_path: Path) -> None:

@@ -9,8 +9,8 @@ sender ("coordinated omission"). The scheduler sleeps to absolute due times, so
 timer jitter never accumulates into a lower rate: a late wake-up sends every overdue
 request at once.
 
-Each :class:`Outcome` records the scheduled, sent and finished times (event-loop
-monotonic clock, seconds), the HTTP status and an error text. Bodies are read and
+Each :class:`Outcome` records the scheduled, dispatched (the client's task began),
+sent and finished times (event-loop monotonic clock, seconds), the HTTP status and an error text. Bodies are read and
 discarded: ``Content-Length``, ``Transfer-Encoding: chunked`` and close-delimited
 bodies are understood. Plain ``http://`` and ``https://`` (default TLS context) URLs.
 
@@ -20,6 +20,7 @@ Nothing here measures CPU or judges results: see ``cpu_probe`` and ``steps``.
 from __future__ import annotations
 
 import asyncio
+import math
 import ssl
 from collections import deque
 from collections.abc import Callable, Mapping
@@ -119,6 +120,7 @@ class Outcome:
     finished: float
     status: int  # 0 when no HTTP answer came
     error: str = ""
+    dispatched: float = math.nan  # when the client got round to it (late only when the client is starved)
 
     @property
     def ok(self) -> bool:
@@ -263,6 +265,7 @@ class LoadGenerator:
     async def _one(self, scheduled: float, sink: Callable[[Outcome], None]) -> None:
         loop = asyncio.get_running_loop()
         sent = scheduled
+        started = loop.time()
         conn: _Conn | None = None
         try:
             async with asyncio.timeout_at(scheduled + self.timeout):
@@ -270,16 +273,16 @@ class LoadGenerator:
                 sent = loop.time()
                 status, keep = await self._exchange(conn)
             await self._release(conn, keep)
-            sink(Outcome(scheduled, sent, loop.time(), status))
+            sink(Outcome(scheduled, sent, loop.time(), status, "", started))
         except TimeoutError:
             if conn is not None:
                 await self._release(conn, False)
-            sink(Outcome(scheduled, sent, loop.time(), 0, "timeout"))
+            sink(Outcome(scheduled, sent, loop.time(), 0, "timeout", started))
         except (OSError, asyncio.IncompleteReadError, asyncio.LimitOverrunError, ValueError, _HTTPError) as exc:
             if conn is not None:
                 await self._release(conn, False)
             kind = type(exc).__name__ if not isinstance(exc, _HTTPError) else str(exc)
-            sink(Outcome(scheduled, sent, loop.time(), 0, kind))
+            sink(Outcome(scheduled, sent, loop.time(), 0, kind, started))
 
     # -- a run --------------------------------------------------------------------------
     async def run(

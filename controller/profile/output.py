@@ -35,6 +35,7 @@ def step_dict(s: StepResult) -> dict[str, Any]:
         "target_rate": s.target_rate,
         "achieved_rate": _num(s.achieved_rate, 3),
         "sent_rate": _num(s.sent_rate, 3),
+        "dispatch_rate": _num(s.dispatch_rate, 3),
         "cpu": _num(s.cpu, 5),
         "p50_ms": _num(s.p50_ms, 3),
         "p95_ms": _num(s.p95_ms, 3),
@@ -113,7 +114,7 @@ def _rows(p: Profile) -> list[tuple[str, ...]]:
             _cell(s.p95_ms, ".3g"),
             _cell(s.p99_ms, ".3g"),
             _cell(100 * s.error_share, ".3g"),
-            "ok" if s.ok else "beyond capacity",
+            "ok" if s.ok else "client fell behind" if s.client_limited else "beyond capacity",
         )
         for s in p.steps
     ]

@@ -15,7 +15,10 @@ boundaries the CPU probe is read. Per step:
   percentile); ``error_share`` — their share of errors (non-2xx/3xx, timeouts,
   connection failures).
 
-A step passes when p99 ≤ the SLO (if given), ``error_share`` ≤ ``max_errors`` and
+A step passes when the client kept its schedule (``dispatch_rate``: requests it got
+round to in the window, at least target × (1 − rate_tolerance); if not, the step
+measured the load generator, not the service, and stepping stops without a
+capacity), p99 ≤ the SLO (if given), ``error_share`` ≤ ``max_errors`` and
 ``achieved_rate ≥ target × (1 − rate_tolerance)``. Steps run in ascending order
 and stop after the first that fails: the **capacity** (per-pod capacity, req/s) is
 the target rate of the highest step that passed before it, None when no step
@@ -122,6 +125,13 @@ class StepResult:
     errors: int
     samples: tuple[Sample, ...] = ()
     failed: tuple[str, ...] = ()  # why the step is beyond capacity; empty = passed
+    dispatch_rate: float = math.nan  # requests the client got round to in the window, per second
+
+    @property
+    def client_limited(self) -> bool:
+        """The load generator itself fell behind (its event loop was starved of CPU):
+        the step says nothing about the service."""
+        return bool(self.failed) and self.failed[0].startswith("load generator")
 
     @property
     def ok(self) -> bool:
@@ -159,6 +169,11 @@ def plan_rates(*, rates: Sequence[float] | None = None, max_rate: float | None =
 def judge(step: StepResult, criteria: Criteria) -> tuple[str, ...]:
     """Why ``step`` lies beyond capacity (empty when it passes)."""
     why = []
+    if math.isfinite(step.dispatch_rate) and step.dispatch_rate < step.target_rate * (1 - criteria.rate_tolerance):
+        why.append(
+            f"load generator fell behind: it got round to {step.dispatch_rate:.4g} of {step.target_rate:g} req/s "
+            "(give the profiler more CPU, or run several)"
+        )
     if step.achieved_rate < step.target_rate * (1 - criteria.rate_tolerance):
         why.append(
             f"achieved {step.achieved_rate:.4g} req/s < target {step.target_rate:g} "
@@ -176,11 +191,12 @@ def judge(step: StepResult, criteria: Criteria) -> tuple[str, ...]:
 
 def find_capacity(steps: Sequence[StepResult]) -> float | None:
     """Target rate of the highest passing step below the first failing one (ascending
-    order); None when none failed or the first one did."""
+    order); None when none failed, the first one did, or the first failure was the
+    load generator's own (the service's knee was not reached)."""
     best = None
     for s in sorted(steps, key=lambda s: s.target_rate):
         if not s.ok:
-            return best
+            return None if s.client_limited else best
         best = s.target_rate
     return None
 
@@ -204,6 +220,7 @@ def summarize_step(
     errors = sum(1 for o in in_window if not o.ok)
     finished_ok = np.sort(np.array([o.finished for o in outcomes if o.ok], dtype=float))
     sent = np.array([o.sent for o in outcomes], dtype=float)
+    dispatched = np.array([o.dispatched for o in outcomes], dtype=float)
     cores = probe.cores(readings)
     thr = probe.throttled_shares(readings)
     samples = []
@@ -235,6 +252,10 @@ def summarize_step(
         requests=len(in_window),
         errors=errors,
         samples=tuple(samples),
+        dispatch_rate=(
+            float(np.count_nonzero((dispatched >= ws) & (dispatched < we))) / span
+            if np.isfinite(dispatched).any() else math.nan
+        ),
     )
     return _with_failed(step, judge(step, criteria))
 
@@ -311,6 +332,12 @@ async def run_profile(
                 f"cpu {step.cpu:.4g} cores, p50 {step.p50_ms:.3g} ms, p99 {step.p99_ms:.3g} ms, "
                 f"errors {100 * step.error_share:.3g}% - {verdict}"
             )
+        if step.client_limited:
+            stopped = (
+                f"stopped after step {i}/{len(rates)} ({rate:g} req/s): the load generator fell behind, "
+                "so the service's knee was not measured there"
+            )
+            break
         if not step.ok and stop_at_knee:
             stopped = f"stopped after step {i}/{len(rates)} ({rate:g} req/s): beyond capacity"
             break
