@@ -211,3 +211,32 @@ def run_cpu_app(work: Path, *, cost_s: float) -> Iterator[Served]:
         yield Served(url=url, pid=proc.pid, workers=(), log=log)
     finally:
         stop_process(proc)
+
+
+@contextlib.contextmanager
+def run_scraping_prometheus(work: Path, target: str, *, prometheus: str, interval: str = "1s") -> Iterator[Served]:
+    """The real Prometheus scraping ``target`` (host:port, path /metrics) as job ``app``
+    every ``interval``, with its own data directory, on a free loopback port."""
+    from ratefit.controller.local_servers import wait_http
+
+    work = Path(work)
+    (work / "data").mkdir(parents=True, exist_ok=True)
+    conf = work / "prometheus.yml"
+    conf.write_text(
+        f"global:\n  scrape_interval: {interval}\n  evaluation_interval: {interval}\n"
+        f"scrape_configs:\n  - job_name: app\n    static_configs:\n      - targets: ['{target}']\n"
+    )
+    port = free_port()
+    log = work / "prometheus.log"
+    with open(log, "w") as fh:
+        proc = subprocess.Popen(
+            [prometheus, f"--config.file={conf}", f"--storage.tsdb.path={work / 'data'}",
+             f"--web.listen-address=127.0.0.1:{port}", "--log.level=warn"],
+            stdout=fh, stderr=subprocess.STDOUT, start_new_session=True,
+        )
+    try:
+        url = f"http://127.0.0.1:{port}"
+        wait_http(url + "/-/ready", proc, timeout=60, log=log, what="Prometheus")
+        yield Served(url=url, pid=proc.pid, workers=(), log=log)
+    finally:
+        stop_process(proc)

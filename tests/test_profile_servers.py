@@ -158,3 +158,63 @@ def test_cgroup_v2_cpu_stat_agrees_with_proc(tmp_path: Path) -> None:
     assert used_cg > 0.1
     # /proc counts in clock ticks (10 ms): allow 5 % plus two ticks
     assert used_proc == pytest.approx(used_cg, rel=0.05, abs=0.02)
+
+
+@pytest.mark.slow
+@pytest.mark.prometheus
+def test_cpu_from_prometheus_agrees_with_proc(tmp_path: Path) -> None:
+    """`--cpu-from prometheus:QUERY` through the real Prometheus scraping the server's
+    process_cpu_seconds_total every second: each step's cores agree with /proc read
+    over the same windows (both are the kernel's utime + stime; proc(5)), and the CPU
+    follows the Utilization Law (cores ≈ X·S)."""
+    from prom_fixtures import require_prometheus
+    from profile_servers import run_scraping_prometheus
+    from ratefit.controller.profile.cpu_probe import PrometheusProbe
+    from ratefit.models.prometheus import PrometheusClient
+
+    prometheus, _ = require_prometheus()
+    cost = 0.005
+
+    class Both:
+        """The Prometheus probe, with /proc read at the same boundaries for comparison."""
+
+        def __init__(self, prom: PrometheusProbe, proc: ProcTreeProbe) -> None:
+            self.prom, self.proc, self.delay, self.description = prom, proc, 2.0, prom.description
+            self.proc_cores: list[float] = []
+            self._readings: list = []
+
+        def read(self, *, wall: float, mono: float):
+            self._readings.append(self.proc.read(wall=wall, mono=mono))
+            return self.prom.read(wall=wall, mono=mono)
+
+        def cores(self, readings):
+            n = len(readings)
+            mine, self._readings = self._readings[-n:], []
+            c = self.proc.cores(mine)
+            self.proc_cores.append(sum(c) / len(c))
+            return self.prom.cores(readings)
+
+        def throttled_shares(self, readings):
+            return None
+
+    with run_cpu_app(tmp_path / "app", cost_s=cost) as app:
+        target = app.url.split("//", 1)[1].rstrip("/")
+        with run_scraping_prometheus(tmp_path / "prom", target, prometheus=prometheus) as prom:
+            client = PrometheusClient(prom.url, timeout=10)
+            # wait until the first scrapes are in
+            for _ in range(100):
+                if client.query('process_cpu_seconds_total{job="app"}'):
+                    break
+                import time as _t
+
+                _t.sleep(0.2)
+            both = Both(PrometheusProbe(client, 'rate(process_cpu_seconds_total{job="app"}[3s])'), ProcTreeProbe([app.pid]))
+            gen = LoadGenerator(parse_target(app.url), timeout=3.0)
+            prof = asyncio.run(run_profile(gen, both, [20, 60], StepPlan(step_duration=7.0, warmup=3.0, sample_interval=1.0),
+                                           Criteria(slo_p99_ms=1000)))
+            client.close()
+    assert len(prof.steps) == 2
+    for st, proc_cpu in zip(prof.steps, both.proc_cores):
+        assert st.cpu == pytest.approx(proc_cpu, rel=0.25, abs=0.02), (st, proc_cpu)
+        assert st.cpu == pytest.approx(st.achieved_rate * cost, rel=0.4, abs=0.03)
+    assert prof.steps[1].cpu > 2 * prof.steps[0].cpu
