@@ -106,3 +106,30 @@ def test_open_loop_keeps_sending_when_the_server_falls_behind(tmp_path) -> None:
     # queueing: the last requests waited for everything before them (~ n·S − t elapsed)
     assert lat[-20:].mean() > 5 * lat[:20].mean()
     assert lat[-20:].mean() > 0.5  # 200 requests x 10 ms = 2 s of work, sent in 1 s
+
+
+def test_a_kept_alive_connection_closed_by_the_server_is_retried_once() -> None:
+    """HTTP/1.1 lets a server close an idle persistent connection (RFC 9112 §9.3); a
+    client resends an idempotent request on a new connection. A real asyncio server
+    answers one request per connection and then closes it without saying so."""
+
+    async def go() -> list[Outcome]:
+        async def handle(reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
+            await reader.readuntil(b"\r\n\r\n")
+            writer.write(b"HTTP/1.1 200 OK\r\nContent-Length: 2\r\n\r\nok")
+            await writer.drain()
+            await asyncio.sleep(0.05)
+            writer.close()
+
+        server = await asyncio.start_server(handle, "127.0.0.1", 0)
+        port = server.sockets[0].getsockname()[1]
+        gen = LoadGenerator(parse_target(f"http://127.0.0.1:{port}/"), timeout=2.0)
+        got: list[Outcome] = []
+        await gen.run(5.0, 1.0, got.append)  # 200 ms apart: each reuse finds a closed connection
+        await gen.aclose()
+        server.close()
+        await server.wait_closed()
+        return got
+
+    got = asyncio.run(go())
+    assert len(got) == 5 and all(o.ok for o in got), [o.error for o in got]

@@ -147,6 +147,10 @@ class _HTTPError(Exception):
     pass
 
 
+class _StaleConnection(_HTTPError):
+    """The server closed the connection before answering (an idle keep-alive timed out)."""
+
+
 class LoadGenerator:
     """Sends ``target`` requests on an open-loop schedule; reuse it across steps.
 
@@ -193,6 +197,23 @@ class LoadGenerator:
             async with self._freed:
                 await self._freed.wait()
 
+    async def _acquire_new(self) -> _Conn:
+        """A fresh connection (never an idle one), within ``max_connections``."""
+        while self._open >= self.max_connections:
+            if self._idle:
+                self._idle.pop().close()
+                self._open -= 1
+                break
+            async with self._freed:  # type: ignore[union-attr]
+                await self._freed.wait()  # type: ignore[union-attr]
+        self._open += 1
+        try:
+            return await self._connect()
+        except BaseException:
+            self._open -= 1
+            await self._notify()
+            raise
+
     async def _notify(self) -> None:
         if self._freed is not None:
             async with self._freed:
@@ -216,22 +237,23 @@ class LoadGenerator:
         conn.writer.write(self._request)
         await conn.writer.drain()
         r = conn.reader
-        line = await r.readline()
-        if not line:
-            raise _HTTPError("connection closed before a response")
-        parts = line.split(None, 2)
+        try:
+            head = await r.readuntil(b"\r\n\r\n")
+        except asyncio.IncompleteReadError as exc:
+            if not exc.partial:
+                raise _StaleConnection("connection closed before a response") from None
+            raise _HTTPError("connection closed inside the headers") from None
+        lines = head.split(b"\r\n")
+        parts = lines[0].split(None, 2)
         if len(parts) < 2 or not parts[0].startswith(b"HTTP/") or not parts[1].isdigit():
-            raise _HTTPError(f"not an HTTP response: {line[:60]!r}")
+            raise _HTTPError(f"not an HTTP response: {lines[0][:60]!r}")
         status = int(parts[1])
         keep = parts[0] == b"HTTP/1.1"
         length: int | None = None
         chunked = False
-        while True:
-            h = await r.readline()
-            if h in (b"\r\n", b"\n"):
-                break
+        for h in lines[1:]:
             if not h:
-                raise _HTTPError("connection closed inside the headers")
+                continue
             name, _, value = h.partition(b":")
             name = name.strip().lower()
             value = value.strip()
@@ -269,9 +291,19 @@ class LoadGenerator:
         conn: _Conn | None = None
         try:
             async with asyncio.timeout_at(scheduled + self.timeout):
+                reused = bool(self._idle)
                 conn = await self._acquire()
                 sent = loop.time()
-                status, keep = await self._exchange(conn)
+                try:
+                    status, keep = await self._exchange(conn)
+                except (_StaleConnection, ConnectionResetError, BrokenPipeError):
+                    if not reused:
+                        raise
+                    # a kept-alive connection the server closed while idle: once more on a new one
+                    await self._release(conn, False)
+                    conn = None
+                    conn = await self._acquire_new()
+                    status, keep = await self._exchange(conn)
             await self._release(conn, keep)
             sink(Outcome(scheduled, sent, loop.time(), status, "", started))
         except TimeoutError:
