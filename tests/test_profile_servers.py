@@ -100,6 +100,7 @@ def test_knee_found_where_a_single_worker_saturates_and_train_reads_the_csv(tmp_
     assert err.count("step ") == len(res["steps"]) == 3
     assert [s["target_rate"] for s in res["steps"]] == [10, 20, 200]
     assert res["capacity"] == 20
+    assert res["cpu_at_capacity"] == res["steps"][1]["cpu"]
     top = res["steps"][-1]
     assert not top["within_capacity"]
     assert top["achieved_rate"] <= 1.05 / cost  # X ≤ 1/S
@@ -211,13 +212,15 @@ def test_cpu_from_prometheus_agrees_with_proc(tmp_path: Path) -> None:
                 import time as _t
 
                 _t.sleep(0.2)
-            both = Both(PrometheusProbe(client, 'rate(process_cpu_seconds_total{job="app"}[3s])'), ProcTreeProbe([app.pid]))
+            # rate() over 4 s = the warm-up, so each window sees only its own step
+            both = Both(PrometheusProbe(client, 'rate(process_cpu_seconds_total{job="app"}[4s])'), ProcTreeProbe([app.pid]))
             gen = LoadGenerator(parse_target(app.url), timeout=3.0)
-            prof = asyncio.run(run_profile(gen, both, [20, 60], StepPlan(step_duration=7.0, warmup=3.0, sample_interval=1.0),
-                                           Criteria(slo_p99_ms=1000)))
+            prof = asyncio.run(run_profile(gen, both, [10, 30], StepPlan(step_duration=8.0, warmup=4.0, sample_interval=2.0),
+                                           Criteria(slo_p99_ms=None, max_errors=0.5, rate_tolerance=0.9)))
             client.close()
     assert len(prof.steps) == 2
     for st, proc_cpu in zip(prof.steps, both.proc_cores):
-        assert st.cpu == pytest.approx(proc_cpu, rel=0.25, abs=0.02), (st, proc_cpu)
+        # process_cpu_seconds_total counts 10 ms ticks and scrapes jitter: 30 % or 0.02 cores
+        assert st.cpu == pytest.approx(proc_cpu, rel=0.3, abs=0.02), (st, proc_cpu)
         assert st.cpu == pytest.approx(st.achieved_rate * cost, rel=0.4, abs=0.03)
     assert prof.steps[1].cpu > 2 * prof.steps[0].cpu

@@ -6,12 +6,15 @@ window boundary (:meth:`CpuProbe.read`, cheap, called on the load generator's
 clock) and divide the differences by the elapsed time; the Prometheus probe reads
 nothing during the load and asks Prometheus afterwards.
 
-- ``pid:N[,M…]`` — ``utime + stime`` of each process and all its live descendants
-  (field 14 and 15 of ``/proc/<pid>/stat``, in clock ticks of ``SC_CLK_TCK``; proc(5)).
-  Threads are included in a process's figures; children are found by their parent
-  pid (field 4) at every read, so an nginx master given as N brings its workers.
-  A process that exits keeps its last figures in the sum (the counter never goes
-  back); its CPU is not read from the parent's ``cutime`` so nothing counts twice.
+- ``pid:N[,M…]`` — CPU time of each process and all its live descendants. Children
+  are found by their parent pid (field 4 of ``/proc/<pid>/stat``) at every read, so an
+  nginx master given as N brings its workers. Each thread's time on the CPU comes from
+  ``/proc/<pid>/task/<tid>/schedstat`` (first field, nanoseconds; the kernel's
+  "scheduler statistics" docs) when the kernel has it, else from ``utime + stime``
+  (fields 14 and 15 of ``/proc/<pid>/stat``, whole clock ticks of ``SC_CLK_TCK``,
+  10 ms; proc(5)) — ticks are too coarse for windows of a second or two. A thread or
+  process that exits keeps its last figure in the sum (the counter never goes back);
+  nothing is read from a parent's ``cutime``, so nothing counts twice.
 - ``cgroup:PATH`` — cgroup v2 ``cpu.stat`` (``usage_usec``; ``nr_periods`` and
   ``nr_throttled`` give the throttled share; Linux docs, "Control Group v2") or,
   on a cgroup v1 ``cpuacct`` directory, ``cpuacct.usage`` (nanoseconds). A relative
@@ -95,7 +98,9 @@ class ProcTreeProbe:
         self.proc = proc
         self.roots = tuple(int(p) for p in pids)
         self.tick = float(os.sysconf("SC_CLK_TCK"))
-        self._seen: dict[tuple[int, int], int] = {}  # (pid, starttime) -> utime+stime ticks
+        self._seen: dict[tuple[int, int], float] = {}  # (pid, starttime) -> CPU seconds (ticks)
+        self._threads: dict[tuple[int, int, int], float] = {}  # (pid, starttime, tid) -> seconds
+        self.precise = (proc / str(self.roots[0]) / "schedstat").is_file()
         for pid in self.roots:
             if self._stat(pid) is None:
                 raise ProbeError(
@@ -135,10 +140,31 @@ class ProcTreeProbe:
             todo.extend(children.get(pid, ()))
         return out
 
+    def _thread_seconds(self, pid: int) -> dict[int, float] | None:
+        """CPU seconds per live thread of ``pid`` from schedstat, or None when unreadable."""
+        out: dict[int, float] = {}
+        try:
+            tids = [e.name for e in os.scandir(self.proc / str(pid) / "task") if e.name.isdigit()]
+        except OSError:
+            return None
+        for tid in tids:
+            try:
+                ns = (self.proc / str(pid) / "task" / tid / "schedstat").read_text().split()[0]
+            except (OSError, IndexError):
+                continue  # the thread just ended
+            out[int(tid)] = int(ns) / 1e9
+        return out
+
     def read(self, *, wall: float, mono: float) -> CpuReading:
         for pid, (start, ticks) in self._tree().items():
-            self._seen[(pid, start)] = ticks
-        return CpuReading(wall=wall, mono=mono, cpu_seconds=sum(self._seen.values()) / self.tick)
+            self._seen[(pid, start)] = ticks / self.tick
+            if self.precise:
+                threads = self._thread_seconds(pid)
+                if threads is not None:
+                    for tid, sec in threads.items():
+                        self._threads[(pid, start, tid)] = sec
+        total = sum(self._threads.values()) if self.precise else sum(self._seen.values())
+        return CpuReading(wall=wall, mono=mono, cpu_seconds=total)
 
     def pids(self) -> list[int]:
         """The live processes counted now (roots and descendants)."""

@@ -27,7 +27,8 @@ class LinearFit:
         return self.intercept + self.slope * rate
 
     @property
-    def cores_per_100_rps(self) -> float:
+    def marginal_cores_per_100_rps(self) -> float:
+        """Extra cores per extra 100 req/s (the slope); not the reserved cost per 100 req/s."""
         return 100.0 * self.slope
 
 

@@ -53,10 +53,10 @@ def profile_dict(p: Profile, *, url: str, cpu_from: str, samples_file: str | Non
     return {
         "steps": [step_dict(s) for s in p.steps],
         "capacity": p.capacity,
+        "cpu_at_capacity": next((_num(s.cpu, 5) for s in p.steps if s.target_rate == p.capacity), None),
         "slope": _num(f.slope, 8) if f else None,
         "intercept": _num(f.intercept, 6) if f else None,
         "r2": _num(f.r2, 5) if f else None,
-        "cores_per_100_rps": _num(f.cores_per_100_rps, 5) if f else None,
         "fit_points": f.n if f else 0,
         "stopped": p.stopped,
         "slo_p99_ms": p.criteria.slo_p99_ms,
@@ -125,7 +125,7 @@ def _summary(p: Profile) -> list[str]:
     if p.fit:
         out.append(
             f"fit: cpu = {p.fit.intercept:.4g} + {p.fit.slope:.4g} x rate cores "
-            f"({p.fit.cores_per_100_rps:.4g} cores per 100 req/s), R2 {p.fit.r2:.4f} over {p.fit.n} steps"
+            f"(+{p.fit.marginal_cores_per_100_rps:.4g} cores per extra 100 req/s), R2 {p.fit.r2:.4f} over {p.fit.n} steps"
         )
     out.append(p.stopped)
     return out
