@@ -145,6 +145,20 @@ def test_samples_csv_is_the_training_format(tmp_path: Path) -> None:
     d = profile_dict(prof, url="http://x", cpu_from="pid:1", samples_file=str(path))
     assert d["slope"] == pytest.approx(0.001) and d["r2"] == pytest.approx(1.0) and d["capacity"] is None
     assert "capacity: not found" in step_table(prof) and step_markdown(prof).startswith("| target req/s")
+    # the JSON round-trips to the capacity `ratefit train` will record in the model
+    import json
+
+    from ratefit.controller.profile.output import read_capacity
+
+    out = tmp_path / "profile.json"
+    out.write_text(json.dumps(d))
+    assert read_capacity(out) is None
+    out.write_text(json.dumps({**d, "capacity": 40}))
+    assert read_capacity(out) == 40.0
+    for bad in ('{"capacity": -3, "steps": []}', '{"capacity": "x", "steps": []}', "[]", "not json"):
+        out.write_text(bad)
+        with pytest.raises(InputError, match="profile.json"):
+            read_capacity(out)
 
 
 def test_proc_probe_reads_this_process_like_the_kernel_says() -> None:

@@ -23,7 +23,15 @@ from typing import Any
 
 from ratefit.controller.profile.steps import Profile, StepResult
 
-__all__ = ["profile_dict", "step_dict", "write_samples_csv", "step_table", "step_markdown", "write_plot"]
+__all__ = [
+    "profile_dict",
+    "step_dict",
+    "read_capacity",
+    "write_samples_csv",
+    "step_table",
+    "step_markdown",
+    "write_plot",
+]
 
 
 def _num(v: float, nd: int = 6) -> float | None:
@@ -65,6 +73,31 @@ def profile_dict(p: Profile, *, url: str, cpu_from: str, samples_file: str | Non
         "cpu_from": cpu_from,
         "samples_file": samples_file,
     }
+
+
+def read_capacity(path: str | os.PathLike[str]) -> float | None:
+    """The per-pod capacity (req/s) from a file holding the JSON that
+    ``ratefit profile --output json`` printed; None when the profile found no knee.
+    InputError naming the file when it is not such a JSON document."""
+    import json
+
+    from ratefit.models.errors import InputError
+
+    name = os.fspath(path)
+    try:
+        doc = json.loads(Path(name).read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise InputError(f"{name}: cannot read the profile ({exc.strerror or exc})") from None
+    except (ValueError, UnicodeDecodeError) as exc:
+        raise InputError(f"{name}: not JSON ({exc}); save the output of ratefit profile --output json") from None
+    if not isinstance(doc, dict) or "capacity" not in doc or "steps" not in doc:
+        raise InputError(f"{name}: no 'capacity' and 'steps' fields; is this the output of ratefit profile --output json?")
+    cap = doc["capacity"]
+    if cap is None:
+        return None
+    if isinstance(cap, bool) or not isinstance(cap, (int, float)) or not math.isfinite(cap) or cap <= 0:
+        raise InputError(f"{name}: capacity {cap!r} must be a positive number of req/s or null")
+    return float(cap)
 
 
 def write_samples_csv(
