@@ -271,9 +271,6 @@ async def _run_step(
 ) -> StepResult:
     loop = asyncio.get_running_loop()
     outcomes: list[Outcome] = []
-    refresh = getattr(probe, "refresh", None)
-    if refresh is not None:
-        refresh()
     t0 = loop.time() + 0.02
     load = loop.create_task(gen.run(rate, plan.step_duration, outcomes.append, start=t0))
     n = max(1, int(round(plan.measured / plan.interval)))
