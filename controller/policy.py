@@ -180,6 +180,10 @@ class SizingPolicySpec(_Camel):
     limits: LimitsMode = LimitsMode.KEEP_RATIO
     allow_horizontal_conflict: bool = False
     allow_extrapolation: bool = False
+    #: the HPA metric (Pods/Object/External, AverageValue target) that is this policy's
+    #: request rate; unset: the HPA's only Pods metric, if it has exactly one
+    autoscaler_rate_metric: str | None = Field(None, min_length=1, max_length=253,
+                                               pattern=r"^[A-Za-z_:][A-Za-z0-9_:.\-/]*$")
 
 
 class ConditionModel(_Camel):
@@ -263,6 +267,7 @@ class Policy:
     limits: LimitsMode = LimitsMode.KEEP_RATIO
     allow_horizontal_conflict: bool = False
     allow_extrapolation: bool = False
+    autoscaler_rate_metric: str | None = None
 
     @property
     def key(self) -> str:
@@ -395,6 +400,7 @@ def _to_policy(spec: SizingPolicySpec, *, namespace: str, name: str, generation:
         limits=spec.limits,
         allow_horizontal_conflict=spec.allow_horizontal_conflict,
         allow_extrapolation=spec.allow_extrapolation,
+        autoscaler_rate_metric=spec.autoscaler_rate_metric,
     )
 
 
