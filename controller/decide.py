@@ -37,6 +37,14 @@ The steps, in order (the first that stops a change names the ``why``):
    cooldown bounds rollouts); in apply mode the global budget (changes per minute,
    concurrent rollouts) → held **BudgetSpent**. Dry-run policies never draw from
    nor wait for the budget.
+   With the workload's autoscaler (``autoscaler=``, ``controller/hpa_sizing``): on a
+   per-pod request rate the sizing answer was asked at the rate the autoscaler lets a
+   pod reach (observe stage) and the message says "sized for the autoscaler's target
+   T req/s per pod" — no conflict; on CPU utilisation the HorizontalConflict message
+   carries the coupled answer (request, replicas, reserved CPU), and with
+   ``allowHorizontalConflict`` that request is the target (no headroom: the
+   autoscaler's utilisation target is the slack). Every decision reports reserved
+   cores per 100 req/s now and at the suggested size.
 7. Limits: ``keep-ratio`` scales the limit by the request's factor (rounded up to
    1m, never below the request); ``keep`` leaves it; ``drop`` removes it, together
    with the next request change (a limit alone never starts a rollout).
@@ -61,6 +69,7 @@ from datetime import datetime
 from enum import StrEnum
 from typing import Any
 
+from ratefit.controller.hpa_sizing import AutoscalerHint, AutoscalerView, ModelFacts, autoscaler_hint, cores_per_100
 from ratefit.controller.limits import BudgetView, Cooldown, round_up, step_limit
 from ratefit.controller.policy import (
     ContainerHistory,
@@ -146,6 +155,8 @@ class ContainerInput:
     limit_m: int | None  # the pod template's CPU limit (None: unset)
     rate: float | None  # per-pod request rate at the policy's percentile (None: no metrics)
     sizing: Sizing | None  # None: no model / sizing API unavailable
+    #: the model's trained range, capacity and curve points (asked only under an autoscaler)
+    facts: ModelFacts | None = None
 
 
 @dataclass(frozen=True)
@@ -174,6 +185,9 @@ class Decision:
     settle: ContainerHistory = ContainerHistory()
     #: settling record to persist if the change is not applied after all (Rejected)
     settle_if_held: ContainerHistory = field(default=ContainerHistory(), repr=False)
+    #: reserved cores per 100 req/s of the workload's load: now, and at the suggested size
+    cores_per_100_now: float | None = field(default=None, compare=False)
+    cores_per_100_suggested: float | None = field(default=None, compare=False)
 
     @property
     def moves(self) -> bool:
@@ -309,10 +323,13 @@ def _no_metrics(
 
 
 def decide_container(
-    policy: Policy, container: ContainerRule, observed: ContainerInput, *, history: ContainerHistory, now: datetime
+    policy: Policy, container: ContainerRule, observed: ContainerInput, *, history: ContainerHistory, now: datetime,
+    coupled_m: int | None = None,
 ) -> Decision:
     """Steps 1–5 and 7 for one container; the verdict is ``changed`` or ``held``
-    (the workload gates, dry-run and the budget come in :func:`decide_workload`)."""
+    (the workload gates, dry-run and the budget come in :func:`decide_workload`).
+    ``coupled_m``: the request sized with a CPU-utilisation autoscaler, taken as the
+    target instead of upper × (1 + headroom) (bounds and rounding still apply)."""
     current = observed.request_m if observed.request_m is not None else observed.limit_m
     limit = observed.limit_m
     # the fields every outcome shares (each return names its why); one Decision per return
@@ -345,6 +362,11 @@ def decide_container(
     target, bound = target_millicores(
         s.upper, headroom=policy.headroom, floor_m=container.floor_m, ceiling_m=container.ceiling_m, limit_m=keep_limit
     )
+    if coupled_m is not None:
+        target, bound = target_millicores(
+            coupled_m / 1000.0, headroom=0.0, floor_m=container.floor_m, ceiling_m=container.ceiling_m,
+            limit_m=keep_limit,
+        )
     base.update(target_m=target, demand=s.demand, upper=s.upper, extrapolated=s.extrapolated)
     if s.extrapolated and not policy.allow_extrapolation:
         return out(
@@ -434,6 +456,8 @@ def decide_workload(
     budget: BudgetView = BudgetView(),
     hpa_on_cpu: bool = False,
     dry_run: bool = False,
+    autoscaler: AutoscalerView | None = None,
+    replicas: int | None = None,
 ) -> WorkloadDecision:
     """All containers of one policy (in the policy's order), then the workload gates.
 
@@ -442,9 +466,12 @@ def decide_workload(
     ``ratefit plan``). A container named by the policy but not observed is held
     NoMetrics. In apply mode the caller must ``Budget.spend`` once when the result
     has changed containers, and persist ``history`` after the patch succeeded (or
-    ``rejected(...)`` and its history if it failed)."""
+    ``rejected(...)`` and its history if it failed). ``autoscaler``: the workload's
+    autoscaler as ``controller/hpa_sizing`` sees it; ``replicas``: the workload's
+    current replicas (for cores per 100 req/s)."""
     by_name: Mapping[str, ContainerInput] = {o.name: o for o in observed}
     decisions: list[Decision] = []
+    hints: dict[str, AutoscalerHint] = {}
     for c in policy.containers:
         h = history.container(c.name)
         o = by_name.get(c.name)
@@ -452,7 +479,11 @@ def decide_workload(
             decisions.append(_no_metrics(c.name, h, f"container {c.name!r} is not in {policy.workload_key}; "
                                          "fix spec.containers"))
             continue
-        decisions.append(decide_container(policy, c, o, history=h, now=now))
+        current = o.request_m if o.request_m is not None else o.limit_m
+        hint = hints[c.name] = autoscaler_hint(autoscaler, container=c.name, observed_rate=o.rate,
+                                               current_m=current, facts=o.facts)
+        coupled = hint.coupled_m if (hpa_on_cpu and policy.allow_horizontal_conflict) else None
+        decisions.append(decide_container(policy, c, o, history=h, now=now, coupled_m=coupled))
 
     def hold(d: Decision, why: Why, message: str) -> Decision:
         return replace(d, verdict=Verdict.HELD, why=why, message=message, settle=d.settle_if_held)
@@ -489,6 +520,7 @@ def decide_workload(
                 hold(d, Why.BUDGET_SPENT, refusal + "; retried next pass") if d.verdict is Verdict.CHANGED else d
                 for d in decisions
             ]
+    decisions = [_with_autoscaler(d, hints.get(d.container), autoscaler, replicas) for d in decisions]
     changed = any(d.verdict is Verdict.CHANGED for d in decisions)
     held_history = WorkloadHistory(
         last_change=history.last_change, containers={d.container: d.settle_if_held for d in decisions}
@@ -503,3 +535,19 @@ def decide_workload(
         history=new_history,
         history_if_held=held_history,
     )
+
+
+def _with_autoscaler(
+    d: Decision, hint: AutoscalerHint | None, autoscaler: AutoscalerView | None, replicas: int | None,
+) -> Decision:
+    """The autoscaler's words in the message, and cores per 100 req/s now and suggested."""
+    n = autoscaler.replicas if autoscaler is not None else replicas
+    if hint is None or n is None:
+        return d
+    now = cores_per_100(d.current_m, d.rate, n, n)
+    if hint.coupled is not None and hint.coupled.best is not None:
+        suggested: float | None = hint.coupled.best.cores_per_100_rps
+    else:
+        suggested = cores_per_100(d.proposed_m, d.rate, n, hint.replicas_after if hint.replicas_after is not None else n)
+    message = f"{d.message}; {hint.message}" if hint.message and d.message else (hint.message or d.message)
+    return replace(d, message=message, cores_per_100_now=now, cores_per_100_suggested=suggested)

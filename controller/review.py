@@ -41,6 +41,8 @@ EXTRA_KEYS = (
     "extrapolated",
     "note",
     "cgroup",
+    "cores_per_100_rps",
+    "cores_per_100_rps_suggested",
 )
 FORMATS = ("table", "json", "markdown")
 
@@ -79,6 +81,9 @@ class ReviewRow:
     note: str = ""
     #: what the kernel gets for the proposed request (controller/cgroup figures), if known
     cgroup: dict[str, Any] | None = field(default=None, compare=False)
+    #: reserved cores per 100 req/s of the workload's load, now and at the suggested size
+    cores_per_100: float | None = None
+    cores_per_100_suggested: float | None = None
 
     @property
     def why_text(self) -> str:
@@ -113,6 +118,9 @@ class ReviewRow:
             "extrapolated": bool(self.extrapolated),
             "note": note,
             "cgroup": self.cgroup,
+            "cores_per_100_rps": None if self.cores_per_100 is None else round(self.cores_per_100, 4),
+            "cores_per_100_rps_suggested": (
+                None if self.cores_per_100_suggested is None else round(self.cores_per_100_suggested, 4)),
         }
 
 

@@ -68,15 +68,17 @@ class Decider:
         apply = self.applies(o)
         view = self.budget.view(mono) if apply and not spent else BudgetView()
         history = history_of(o, workload)
+        extra = dict(autoscaler=o.autoscaler, replicas=workload.replicas if workload is not None else None)
         wd = decide_workload(p, inputs, history=history, now=now, budget=view,
-                             hpa_on_cpu=o.hpa_on_cpu, dry_run=not apply)
+                             hpa_on_cpu=o.hpa_on_cpu, dry_run=not apply, **extra)
         if wd.changed and not spent:
             retry_at = self.retry_at.get(p.workload_key)
             if retry_at is not None and mono < retry_at:
                 return wd.rejected(f"the API server failed earlier; backing off {retry_at - mono:.0f}s more")
             if not self.budget.spend(p.workload_key, mono):
                 wd = decide_workload(p, inputs, history=history, now=now,
-                                     budget=BudgetView(changes_left=0), hpa_on_cpu=o.hpa_on_cpu, dry_run=False)
+                                     budget=BudgetView(changes_left=0), hpa_on_cpu=o.hpa_on_cpu, dry_run=False,
+                                     **extra)
         return wd
 
     def _seed(self, snap: Snapshot) -> None:

@@ -8,6 +8,13 @@ ask the rate source for every container's per-pod rate in one grouped query (in 
 thread, while the workloads are listed) and the sizing API for every (model, rate)
 in one batch call. The result, :class:`Snapshot`, is what the decide stage reads.
 
+Under a horizontal autoscaler (``controller/hpa_sizing``): the sizing API is asked at
+the rate the decision will use (max(observed, T × (1 + tolerance)) under a per-pod
+rate target); for the workload's models the trained range and capacity are read
+(``GET /v1/models/{key}``, one per model) and, under a CPU-utilisation target, the
+curve at :data:`~ratefit.controller.hpa_sizing.GRID_POINTS` rates over the trained
+range in one more batch call. A failure there only drops the autoscaler's extras.
+
 A LIST that fails (429/5xx after the adapter's retries, 403 …) does not make its
 workloads "not found": their policies are marked ``unavailable`` (held
 ``ApiUnavailable``, status left as it was) — a partial observation never rewrites
@@ -28,11 +35,12 @@ from datetime import datetime
 from ratefit.controller.crd import API_VERSION, KIND
 from ratefit.controller.decide import ContainerInput, Sizing
 from ratefit.controller.errors import KubeError
+from ratefit.controller.hpa_sizing import AutoscalerView, ModelFacts, autoscaler_view, curve_grid, sizing_rate
 from ratefit.controller.metrics_source import RateRequest, RateResult
 from ratefit.controller.policy import Method, Policy, PolicyInvalid, format_duration, parse_policy
 from ratefit.controller.stages.ports import KubeReader, RateSource, SizingSource
 from ratefit.controller.telemetry import Telemetry
-from ratefit.controller.workload import Pod, PolicyObject, Workload
+from ratefit.controller.workload import HorizontalScaler, Pod, PolicyObject, Workload
 from ratefit.models.errors import RatefitError
 
 __all__ = ["Observed", "Observer", "Snapshot", "policy_object_dict", "shard_of"]
@@ -59,6 +67,8 @@ class Observed:
     unavailable: bool = False
     #: ``method: in-place``: the workload's pods, as listed this pass
     pods: tuple[Pod, ...] | None = None
+    #: the workload's horizontal autoscaler, as sizing sees it (None: none)
+    autoscaler: AutoscalerView | None = None
 
 
 @dataclass(frozen=True)
@@ -165,8 +175,9 @@ class Observer:
 
         rate_thread = threading.Thread(target=ask_rates, name="ratefit-rates", daemon=True)
         rate_thread.start()
+        scalers: dict[tuple[str, str, str], list[HorizontalScaler]] = {}
         try:
-            workloads, hpa_cpu, rolling, failed = self._list_workloads([p for _, p in valid], errors)
+            workloads, hpa_cpu, rolling, failed = self._list_workloads([p for _, p in valid], errors, scalers)
             t_lists = time.perf_counter()
         finally:
             rate_thread.join()
@@ -180,7 +191,16 @@ class Observer:
             if (p.namespace, p.workload_kind, p.workload_name) in workloads:
                 found.add((p.namespace, p.name))
         asked = [r for r in requests if (r.namespace, r.policy) in found]
-        sizing = self._query_sizing(asked, models, rates, errors)
+        views = self._autoscaler_views(valid, workloads, scalers)
+        facts = self._model_facts(asked, models, views, errors)
+        sizing_rates = dict(rates)
+        for r in asked:
+            view = views.get((r.namespace, r.policy))
+            if view is not None and view.rate_target is not None:
+                f = facts.get(r.key)
+                sizing_rates[r.key] = sizing_rate(view, rates.get(r.key), capacity=f.capacity if f else None)
+        sizing = self._query_sizing(asked, models, sizing_rates, errors)
+        facts = self._curve_points(asked, models, views, facts, errors)
         t_sizing = time.perf_counter()
 
         entries = []
@@ -188,7 +208,8 @@ class Observer:
             if isinstance(got, PolicyInvalid):
                 entries.append(Observed(obj=o, invalid=got))
                 continue
-            entries.append(self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors))
+            entries.append(self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors,
+                                     views=views, facts=facts))
         split = {"gather_kube": t_lists - t_g0, "gather_rates": float(rate_box.get("seconds", 0.0)),  # type: ignore[arg-type]
                  "gather_rates_wait": t_rates - t_lists, "gather_sizing": t_sizing - t_rates}
         return Snapshot(now=now, entries=tuple(entries), rolling=tuple(rolling), errors=tuple(errors), split=split)
@@ -212,6 +233,7 @@ class Observer:
 
     def _list_workloads(
         self, policies: Sequence[Policy], errors: list[str],
+        scalers: dict[tuple[str, str, str], list[HorizontalScaler]] | None = None,
     ) -> tuple[dict[tuple[str, str, str], Workload], set[tuple[str, str, str]], list[str], dict[tuple[str, str], str]]:
         """One LIST of workloads and of HPAs per namespace that has policies. Returns the
         workloads by (namespace, kind, name), the HPA-on-CPU targets, the rolling
@@ -244,6 +266,8 @@ class Observer:
                 for h in self.reader.list_hpas(ns):
                     if h.scales_on_cpu_utilization:
                         hpa_cpu.add((h.namespace, h.target_kind, h.target_name))
+                    if scalers is not None:
+                        scalers.setdefault((h.namespace, h.target_kind, h.target_name), []).append(h)
             except KubeError as exc:
                 self.telemetry.kube_errors.labels(kind=type(exc).__name__).inc()
                 errors.append(f"list horizontal autoscalers in {where}: {exc}")
@@ -253,7 +277,8 @@ class Observer:
     def _one(
         self, o: PolicyObject, p: Policy, workloads: Mapping[tuple[str, str, str], Workload],
         hpa_cpu: set[tuple[str, str, str]], failed: Mapping[tuple[str, str], str],
-        rates: Mapping[str, float | None], sizing: Mapping[str, Sizing | None], errors: list[str],
+        rates: Mapping[str, float | None], sizing: Mapping[str, Sizing | None], errors: list[str], *,
+        views: Mapping[tuple[str, str], AutoscalerView] | None = None, facts: Mapping[str, ModelFacts] | None = None,
     ) -> Observed:
         # a failed LIST (workloads of this kind, or HPAs) means "unknown", never "not found"
         why_unknown = next((failed[s] for s in ((p.namespace, p.workload_kind), ("*", p.workload_kind),
@@ -277,9 +302,11 @@ class Observer:
             inputs.append(ContainerInput(
                 name=c.name, request_m=current_req, limit_m=current_lim,
                 rate=rates.get(f"{p.key}/{c.name}"), sizing=sizing.get(f"{p.key}/{c.name}"),
+                facts=(facts or {}).get(f"{p.key}/{c.name}"),
             ))
         return Observed(obj=o, policy=p, workload=w, inputs=tuple(inputs), pods=pods,
-                        hpa_on_cpu=(p.namespace, p.workload_kind, p.workload_name) in hpa_cpu)
+                        hpa_on_cpu=(p.namespace, p.workload_kind, p.workload_name) in hpa_cpu,
+                        autoscaler=(views or {}).get((p.namespace, p.name)))
 
     def _running_values(
         self, p: Policy, w: Workload, errors: list[str],
@@ -355,4 +382,92 @@ class Observer:
         unknown = sum(1 for v in out.values() if v is None)
         if unknown:
             self.telemetry.api_errors.labels(kind="NoModel").inc(unknown)
+        return out
+
+    # -- the workload's horizontal autoscaler (controller/hpa_sizing) ------------------------
+    def _autoscaler_views(
+        self, valid: Sequence[tuple[PolicyObject, Policy]], workloads: Mapping[tuple[str, str, str], Workload],
+        scalers: Mapping[tuple[str, str, str], Sequence[HorizontalScaler]],
+    ) -> dict[tuple[str, str], AutoscalerView]:
+        """(namespace, policy) → the view of the autoscaler targeting its workload."""
+        out: dict[tuple[str, str], AutoscalerView] = {}
+        for _, p in valid:
+            wk = (p.namespace, p.workload_kind, p.workload_name)
+            w = workloads.get(wk)
+            view = autoscaler_view(scalers.get(wk, ()), metric_name=p.autoscaler_rate_metric,
+                                   workload_replicas=w.replicas if w is not None else 0) if w is not None else None
+            if view is not None:
+                out[(p.namespace, p.name)] = view
+        return out
+
+    def _model_facts(
+        self, asked: Sequence[RateRequest], models: Mapping[tuple[str, str, str], str],
+        views: Mapping[tuple[str, str], AutoscalerView], errors: list[str],
+    ) -> dict[str, ModelFacts]:
+        """Trained range and capacity of each model under an autoscaler (one GET per model)."""
+        detail = getattr(self.sizing, "model_detail", None)
+        if detail is None or not views:
+            return {}
+        by_model: dict[str, ModelFacts | None] = {}
+        out: dict[str, ModelFacts] = {}
+        for r in asked:
+            if (r.namespace, r.policy) not in views:
+                continue
+            model = models[(r.namespace, r.policy, r.container)]
+            if model not in by_model:
+                by_model[model] = None
+                try:
+                    d = detail(model)
+                    lo, hi = (float(d["rate_range"][0]), float(d["rate_range"][1]))
+                    cap = d.get("capacity")
+                    cap = float(cap) if isinstance(cap, (int, float)) and not isinstance(cap, bool) else None
+                    if math.isfinite(lo) and math.isfinite(hi) and 0 <= lo < hi:
+                        by_model[model] = ModelFacts(
+                            rate_lo=lo, rate_hi=hi,
+                            capacity=cap if cap is not None and math.isfinite(cap) and cap > 0 else None)
+                except (RatefitError, KeyError, TypeError, ValueError, IndexError) as exc:
+                    errors.append(f"sizing API: model {model}: {exc}")
+            f = by_model[model]
+            if f is not None:
+                out[r.key] = f
+        return out
+
+    def _curve_points(
+        self, asked: Sequence[RateRequest], models: Mapping[tuple[str, str, str], str],
+        views: Mapping[tuple[str, str], AutoscalerView], facts: Mapping[str, ModelFacts], errors: list[str],
+    ) -> dict[str, ModelFacts]:
+        """Under a CPU-utilisation autoscaler: demand at a grid of rates over each model's
+        trained range, all in one batch call."""
+        out = dict(facts)
+        wanted: dict[str, tuple[float, ...]] = {}
+        for r in asked:
+            view = views.get((r.namespace, r.policy))
+            f = facts.get(r.key)
+            if view is None or view.cpu is None or f is None:
+                continue
+            wanted.setdefault(models[(r.namespace, r.policy, r.container)], curve_grid(f.rate_lo, f.rate_hi))
+        if not wanted:
+            return out
+        items = [(m, rate) for m, grid in wanted.items() for rate in grid]
+        try:
+            answers = self.sizing.demand_batch(items)
+        except RatefitError as exc:
+            errors.append(f"sizing API (curve points): {exc}")
+            return out
+        if len(answers) != len(items):
+            errors.append(f"sizing API answered {len(answers)} curve points for {len(items)} asked")
+            return out
+        curves: dict[str, tuple[float, ...]] = {}
+        i = 0
+        for m, grid in wanted.items():
+            got = [sizing_of(a) for a in answers[i:i + len(grid)]]
+            i += len(grid)
+            if all(g is not None for g in got):
+                curves[m] = tuple(g.demand for g in got)  # type: ignore[union-attr]
+        for r in asked:
+            m = models[(r.namespace, r.policy, r.container)]
+            if r.key in out and m in curves:
+                f = out[r.key]
+                out[r.key] = ModelFacts(rate_lo=f.rate_lo, rate_hi=f.rate_hi, capacity=f.capacity,
+                                        rates=wanted[m], demand=curves[m])
         return out
