@@ -772,14 +772,17 @@ def _scales_on_cpu_utilization(spec: Mapping[str, Any]) -> bool:
         # autoscaling/v2 API reference, HorizontalPodAutoscalerSpec.metrics: "If not set,
         # the default metric will be set to 80% average CPU utilization."
         return True
-    for m in metrics:
+    for m in metrics if isinstance(metrics, list) else ():
+        if not isinstance(m, Mapping):
+            continue
         if m.get("type") == "Resource":
             src = m.get("resource") or {}
         elif m.get("type") == "ContainerResource":
             src = m.get("containerResource") or {}
         else:
             continue
-        if src.get("name") == "cpu" and (src.get("target") or {}).get("type") == "Utilization":
+        if isinstance(src, Mapping) and src.get("name") == "cpu" and isinstance(src.get("target"), Mapping) \
+                and src["target"].get("type") == "Utilization":
             return True
     return False
 
