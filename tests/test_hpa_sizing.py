@@ -266,3 +266,61 @@ def test_capacity_from_the_model_caps_the_per_pod_rate(tmp_path: Path) -> None:
     assert f"request {req_m}m" in rows["capcpu"].note and f"{n} replicas" in rows["capcpu"].note
     assert rows["capcpu"].cores_per_100_suggested == pytest.approx(reserved / total * 100)
     assert "above the measured per-pod capacity 100 req/s" in rows["caprate"].note
+
+
+# -- the pure decision with an autoscaler view (no I/O) --------------------------------------------
+
+
+def _view(**kw: Any) -> Any:
+    from ratefit.controller.hpa_sizing import AutoscalerView, CpuTarget, RateTarget
+
+    base = dict(hpa="parcels/label-printer", replicas=4, min_replicas=1, max_replicas=20, tolerance=0.1)
+    if kw.pop("rate", False):
+        base["rate_target"] = RateTarget(metric="http_requests", source="Pods", target=100.0, by_default=False)
+    if kw.pop("cpu", False):
+        base["cpu"] = CpuTarget(utilization=70.0)
+    base.update(kw)
+    return AutoscalerView(**base)  # type: ignore[arg-type]
+
+
+def _decide(policy: Any, rate: float | None, *, view: Any = None, facts: Any = None, hpa_on_cpu: bool = False,
+            replicas: int | None = 4) -> Any:
+    from decide_fixtures import NOW
+    from ratefit.controller.decide import ContainerInput, Sizing, decide_workload
+    from ratefit.controller.policy import WorkloadHistory
+
+    sizing = Sizing(demand=demand(rate or 0.0), upper=demand(rate or 0.0) + BAND)
+    return decide_workload(policy, [ContainerInput("app", 100, None, rate, sizing, facts=facts)],
+                           history=WorkloadHistory(), now=NOW, hpa_on_cpu=hpa_on_cpu, autoscaler=view,
+                           replicas=replicas).decisions[0]
+
+
+def test_pure_decision_reports_cores_per_100_without_an_autoscaler() -> None:
+    from decide_fixtures import make_policy
+
+    d = _decide(make_policy(), 50.0)
+    # 4 pods x 0.1 core over 4 x 50 req/s: 0.2 cores per 100 req/s now; at the proposed request
+    # (replicas unchanged without an autoscaler) proposed / 50 x 100
+    assert d.cores_per_100_now == pytest.approx(0.2)
+    assert d.cores_per_100_suggested == pytest.approx(d.proposed_m / 1000 / 50 * 100)
+    assert _decide(make_policy(), 50.0, replicas=None).cores_per_100_now is None  # replicas unknown: not guessed
+
+
+def test_pure_decision_without_a_rate_or_curve_points_says_so() -> None:
+    from decide_fixtures import make_policy
+
+    assert _decide(make_policy(), None, view=_view(rate=True)).why.value == "NoMetrics"
+    d = _decide(make_policy(), 50.0, view=_view(cpu=True), hpa_on_cpu=True)
+    assert d.why.value == "HorizontalConflict" and "no curve points" in d.message
+
+
+def test_pure_decision_proposes_the_coupled_request_in_dry_run() -> None:
+    from decide_fixtures import make_policy
+    from ratefit.controller.hpa_sizing import ModelFacts, curve_grid
+
+    grid = curve_grid(0.0, 200.0)
+    facts = ModelFacts(rate_lo=0.0, rate_hi=200.0, rates=grid, demand=tuple(demand(r) for r in grid))
+    p = make_policy(mode="dry-run", allowHorizontalConflict=True, stepLimit={"up": 20, "down": 0.5})
+    d = _decide(p, 44.0, view=_view(cpu=True), facts=facts, hpa_on_cpu=True)
+    n, req_m, _ = brute_force(total=176.0, u=0.7, hi=200.0)
+    assert d.verdict.value == "proposed" and d.proposed_m == req_m == 1080 and f"{n} replicas" in d.message
