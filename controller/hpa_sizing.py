@@ -59,6 +59,7 @@ __all__ = [
     "sizing_rate",
     "curve_grid",
     "autoscaler_hint",
+    "facts_from_curve",
 ]
 
 #: metric sources whose AverageValue target is a per-pod average (autoscaling/v2 API reference)
@@ -203,6 +204,16 @@ def curve_grid(rate_lo: float, rate_hi: float, points: int = GRID_POINTS) -> tup
         raise InputError(f"trained range [{rate_lo}, {rate_hi}] must have 0 <= lo < hi")
     n = max(2, int(points))
     return tuple(rate_lo + (rate_hi - rate_lo) * i / (n - 1) for i in range(n))
+
+
+def facts_from_curve(curve: object, *, capacity: float | None = None, points: int = GRID_POINTS) -> ModelFacts:
+    """ModelFacts from a ``models.curve.DemandCurve`` read from the store directly (the
+    replay, tools without the sizing API): its demand at :func:`curve_grid` rates."""
+    lo, hi = float(curve.rate_lo), float(curve.rate_hi)  # type: ignore[attr-defined]
+    grid = curve_grid(lo, hi, points)
+    look = curve.lookup_one  # type: ignore[attr-defined]
+    return ModelFacts(rate_lo=lo, rate_hi=hi, capacity=capacity, rates=grid,
+                      demand=tuple(float(look(r)[0]) for r in grid))
 
 
 def autoscaler_hint(

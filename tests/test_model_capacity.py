@@ -137,3 +137,12 @@ def test_curve_points_interpolate_and_extrapolate() -> None:
     for r in (0.0, 3.3, 100.0, 199.9, 210.0):  # linear: exact inside, the last slope above
         assert f(r) == pytest.approx(0.05 + 0.004 * r)
     assert f(-5.0) == pytest.approx(0.05)  # flat below
+
+
+def test_facts_from_a_stored_curve_match_the_sizing_api_grid() -> None:
+    from ratefit.controller.hpa_sizing import facts_from_curve
+
+    art = make_artifact(KEY, base=0.05, slope=0.004).with_capacity(120.0)
+    f = facts_from_curve(art.demand_curve(), capacity=art.capacity)
+    assert f.capacity == 120.0 and (f.rate_lo, f.rate_hi) == (0.0, 200.0) and len(f.rates) == 32
+    assert f(100.0) == pytest.approx(0.05 + 0.004 * 100.0)
