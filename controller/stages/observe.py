@@ -41,7 +41,7 @@ from ratefit.controller.policy import Method, Policy, PolicyInvalid, format_dura
 from ratefit.controller.stages.ports import KubeReader, RateSource, SizingSource
 from ratefit.controller.telemetry import Telemetry
 from ratefit.controller.workload import HorizontalScaler, Pod, PolicyObject, Workload
-from ratefit.models.errors import RatefitError
+from ratefit.models.errors import RatefitError, UnknownModel
 
 __all__ = ["Observed", "Observer", "Snapshot", "policy_object_dict", "shard_of"]
 
@@ -49,6 +49,8 @@ log = logging.getLogger("ratefit.controller.reconcile")
 
 #: up to this many namespaces with policies, workloads are listed per namespace
 LIST_PER_NAMESPACE_UP_TO = 3
+#: seconds a model's detail (trained range, capacity) is reused before it is read again
+FACTS_TTL_S = 600.0
 
 
 @dataclass(frozen=True)
@@ -135,6 +137,9 @@ class Observer:
         self.namespaces = namespaces
         self.shard = shard
         self._parsed: dict[tuple[str, str, str, int], Policy | PolicyInvalid] = {}
+        #: model → (monotonic time read, its facts or None): the model detail is read at most
+        #: every FACTS_TTL_S per model (models are retrained daily; a range minutes old is fine)
+        self._facts: dict[str, tuple[float, ModelFacts | None]] = {}
 
     def observe(self, now: datetime) -> Snapshot:
         """One snapshot. Raises KubeError when the policies cannot be listed."""
@@ -410,10 +415,14 @@ class Observer:
             return {}
         by_model: dict[str, ModelFacts | None] = {}
         out: dict[str, ModelFacts] = {}
+        mono = time.monotonic()
         for r in asked:
             if (r.namespace, r.policy) not in views:
                 continue
             model = models[(r.namespace, r.policy, r.container)]
+            cached = self._facts.get(model)
+            if model not in by_model and cached is not None and mono - cached[0] < FACTS_TTL_S:
+                by_model[model] = cached[1]
             if model not in by_model:
                 by_model[model] = None
                 try:
@@ -425,8 +434,12 @@ class Observer:
                         by_model[model] = ModelFacts(
                             rate_lo=lo, rate_hi=hi,
                             capacity=cap if cap is not None and math.isfinite(cap) and cap > 0 else None)
+                except UnknownModel:  # held NoModel by the decision already: not a failure of the pass
+                    self._facts[model] = (mono, None)
                 except (RatefitError, KeyError, TypeError, ValueError, IndexError) as exc:
                     errors.append(f"sizing API: model {model}: {exc}")
+                else:
+                    self._facts[model] = (mono, by_model[model])
             f = by_model[model]
             if f is not None:
                 out[r.key] = f
