@@ -255,7 +255,13 @@ def autoscaler_hint(
             else:
                 if coupled.best is not None:
                     coupled_m = int(round(coupled.best.request * 1000))
-                parts.append(f"with the autoscaler at {view.cpu.utilization:g}% CPU: {coupled.message}")
+                text = f"with the autoscaler at {view.cpu.utilization:g}% CPU: {coupled.message}"
+                if coupled.best is not None and coupled.current is None and current_m:
+                    lo, hi = coupled.rate_range
+                    top = f", at most {view.max_replicas} replicas" if view.max_replicas is not None else ""
+                    text += (f"; today {current_m}m has no settling point with pods within [{lo:g}, {hi:g}] "
+                             f"req/s{top}")
+                parts.append(text)
     return AutoscalerHint(rate=rate_s, coupled=coupled, coupled_m=coupled_m, replicas_after=after,
                           message="; ".join(p for p in parts if p))
 

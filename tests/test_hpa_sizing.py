@@ -324,3 +324,5 @@ def test_pure_decision_proposes_the_coupled_request_in_dry_run() -> None:
     d = _decide(p, 44.0, view=_view(cpu=True), facts=facts, hpa_on_cpu=True)
     n, req_m, _ = brute_force(total=176.0, u=0.7, hi=200.0)
     assert d.verdict.value == "proposed" and d.proposed_m == req_m == 1080 and f"{n} replicas" in d.message
+    # today's 100m settles at (0.07 - 0.05) / 0.004 = 5 req/s per pod: ceil(176 / 5) = 36 pods > maxReplicas 20
+    assert "today 100m has no settling point with pods within [0, 200] req/s, at most 20 replicas" in d.message
