@@ -14,8 +14,10 @@ The steps, each its own function so the CLI, the demo and the tests share them:
    *up to date*. An invalid policy or a refused query is a problem row, never a stop.
    ``shard=(I, N)`` keeps the keys whose CRC-32 (IEEE, ``zlib.crc32`` of the UTF-8 key)
    modulo N is I — stable across processes and machines, unlike Python's ``hash()`` —
-   so the N indexes of an Indexed Job split the keys disjointly and completely; a policy
-   problem belongs to the shard of the policy's own ``namespace/name``;
+   so the N indexes of an Indexed Job split the keys disjointly and completely; a problem
+   with one container (its query refused) belongs to the shard of its model key, an
+   invalid policy to the shard of the policy's own ``namespace/name``, so each problem is
+   reported by exactly one shard;
 3. **train** (:func:`train_models`) the planned keys in worker processes
    (``concurrent.futures.ProcessPoolExecutor``, ``spawn`` start method: no state is
    inherited from a parent that may hold threads and sockets), each reading its samples

@@ -231,8 +231,8 @@ def test_shards_split_the_models_disjointly_and_completely(prom, tmp_path):
             seen[m] = i
             assert shard_index(m, 3) == i
         assert set(ModelStore(store).keys()) == {m for m, r in rows(doc).items() if r["result"] == "trained"}
-        # the refused policy is reported by exactly one shard: its own key's
-        assert len(doc["problems"]) == (1 if shard_index(f"{OTHER_NS}/sneaky", 3) == i else 0)
+        # the refused container is reported by exactly one shard: the one of its model key
+        assert len(doc["problems"]) == (1 if shard_index(f"{OTHER_NS}/api/app", 3) == i else 0)
         assert code == (1 if doc["problems"] or doc["counts"]["failed"] else 0)
     assert set(seen) == GOOD | {GHOST}
 
@@ -294,6 +294,10 @@ def test_invalid_policy_and_duplicate_model_are_listed_not_fatal(tmp_path):
     models = sorted(t.model for t in plan.tasks)
     assert models == sorted((GOOD | {GHOST}) - {"shop/api/app"})  # each once; the invalid policy's not
     msgs = {p.policy: p.message for p in plan.problems}
+    # each problem in exactly one of 3 shards (invalid policy: by its own key; refused container: by its model)
+    per_shard = [plan_training([PolicySource("t", d) for d in [*docs, twin]], store_dir=tmp_path, max_age_s=1,
+                               now=time.time(), shard=(i, 3)).problems for i in range(3)]
+    assert sorted(p.message for ps in per_shard for p in ps) == sorted(p.message for p in plan.problems)
     assert "spec.containers[0].floor" in msgs["shop/api"]
     assert "other queries" in msgs["shop/api-v2-twin"]
     assert f'namespace="{NS}"' in msgs[f"{OTHER_NS}/sneaky"]
