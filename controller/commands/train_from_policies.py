@@ -89,7 +89,8 @@ def from_policies_or(handler: Callable[[argparse.Namespace], int]) -> Callable[[
         if getattr(args, "from_policies", False):
             return run(args)
         only = [flag for flag, dest in (("-f", "filename"), ("--kubeconfig", "kubeconfig"), ("--shard", "shard"),
-                                        ("--namespace", "namespace"), ("--jobs", "jobs"))
+                                        ("--namespace", "namespace"), ("--jobs", "jobs"),
+                                        ("--estimators", "estimators"), ("--context", "context"))
                 if getattr(args, dest, None)]
         if only:
             raise InputError(f"{', '.join(only)} only go with --from-policies")
