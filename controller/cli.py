@@ -29,6 +29,7 @@ COMMANDS = (
     "check",
     "run",
     "revert",
+    "profile",
 )
 
 DESCRIPTION = """\

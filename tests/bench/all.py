@@ -27,6 +27,8 @@ BENCHES: dict[str, tuple[str, list[str], list[str]]] = {
     "sandbox": ("tests.bench.bench_sandbox", [], ["--deployments", "200", "--ops", "100"]),
     "kube": ("tests.bench.bench_kube", [], ["--workloads", "300", "--patches", "20"]),
     "reconcile": ("tests.bench.bench_reconcile", [], ["--workloads", "1000"]),
+    "health": ("tests.bench.bench_health", [], ["--idle", "300", "--header-mib", "10"]),
+    "profile": ("tests.bench.bench_profile", [], ["--duration", "3", "--rates", "100,300"]),
 }
 
 
