@@ -451,14 +451,9 @@ def _samples_for(job: _WorkerJob):
 
 
 def _write_report(res: Any, report_dir: str, seed: int) -> None:
-    from ratefit.models import report
+    from ratefit.models.report import write_train_report
 
-    if hasattr(report, "write_train_report"):  # the report API with the CV comparison
-        report.write_train_report(res, report_dir, seed=seed)
-        return
-    ests = report.fit_all_for_report(res.samples, seed=seed)
-    ests[res.artifact.chosen] = res.selection.estimator
-    report.write_report(res.artifact, report_dir, samples=res.samples, estimators=ests)
+    write_train_report(res, report_dir, seed=seed)
 
 
 def _train_one(job: _WorkerJob) -> ModelOutcome:

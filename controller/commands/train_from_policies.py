@@ -108,15 +108,12 @@ def _seconds(text: str, flag: str) -> float:
 
 
 def _train_options(args: argparse.Namespace) -> dict:
-    """The models.train keyword options from the shared flags (also --cv when the parser has it)."""
-    if args.folds < 2:
-        raise InputError(f"--folds {args.folds}: give at least 2")
-    if not 0.0 < args.coverage < 1.0:
-        raise InputError(f"--coverage {args.coverage}: must lie strictly between 0 and 1")
-    opts = dict(folds=args.folds, coverage=args.coverage, tune=args.tune, seed=args.seed,
+    """The models.train keyword options (``TrainOptions`` fields) from the shared flags."""
+    from ratefit.models.options import TrainOptions
+
+    opts = dict(folds=args.folds, coverage=args.coverage, tune=args.tune, seed=args.seed, cv=args.cv,
                 throttle_threshold=args.throttle_threshold, warmup=_seconds(args.warmup, "--warmup"))
-    if getattr(args, "cv", None):
-        opts["cv"] = args.cv
+    TrainOptions(**opts)  # every value checked once, before any work (one-line InputError)
     return opts
 
 
