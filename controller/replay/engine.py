@@ -1,0 +1,159 @@
+"""One replay from its parts: history + targets + sizer → simulated passes → outcome.
+
+:func:`run_replay` is what ``ratefit replay`` and the demo call. The steps:
+
+1. pass times ``start, start + step, … ≤ end``; minutes (t − 60, t] inside [start, end];
+2. per policy container its rate at every pass (:func:`series.workload_rates`: the
+   policy's rateWindow and ratePercentile over the busiest pod, from samples up to each
+   pass only) and the sizer's answer at that rate;
+3. :func:`simulate.simulate` — the live loop's decision pass by pass;
+4. per container and pod the usage per minute (:func:`series.pod_usage`), the three
+   strategies' figures (:mod:`outcome`) and the nodes needed at each pass.
+
+A policy with its own ``rateQuery`` cannot be evaluated from raw counters: its containers
+have no rate (held NoMetrics, as the offline rate source answers) unless ``custom_rates``
+supplies them (``ratefit replay --prometheus`` evaluates such queries on the server).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ratefit.controller.policy import Method
+from ratefit.controller.replay.history import History
+from ratefit.controller.replay.inputs import Sizer, Targets
+from ratefit.controller.replay.outcome import STRATEGIES, ContainerFigures, Outcome, container_figures, node_counts, step_values
+from ratefit.controller.replay.series import MINUTE, PodUsage, pod_usage, workload_rates
+from ratefit.controller.replay.simulate import BudgetConfig, SimResult, SizingTrack, simulate
+from ratefit.models.errors import InputError
+
+__all__ = ["ReplayOptions", "ReplayResult", "run_replay", "pass_times"]
+
+
+@dataclass(frozen=True)
+class ReplayOptions:
+    step_s: float = 300.0
+    node_cpu: float = 8.0
+    as_written: bool = False
+    rollout_s: float = 120.0
+    rate_interval_s: float = 120.0  # rate() interval of the default template (plan's --rate-interval)
+    rate_step_s: float = 30.0  # subquery step of the percentile (plan's --rate-step)
+    budget: BudgetConfig = BudgetConfig()
+
+
+@dataclass
+class ReplayResult:
+    outcome: Outcome
+    sim: SimResult
+    tracks: Mapping[tuple[str, str], SizingTrack]
+    minutes: np.ndarray
+    #: (workload, container) → its pods' usage
+    usage: dict[tuple[str, str], list[PodUsage]] = field(default_factory=dict)
+    #: (workload, container) → (current_m, fixed_m)
+    static: dict[tuple[str, str], tuple[int | None, float]] = field(default_factory=dict)
+
+
+def pass_times(start: float, end: float, step_s: float) -> np.ndarray:
+    if not (math.isfinite(start) and math.isfinite(end)) or end <= start:
+        raise InputError(f"the replay window [{start}, {end}] is empty: the end must come after the start")
+    if not step_s > 0:
+        raise InputError(f"--step must be longer than 0s, got {step_s}")
+    n = int(math.floor((end - start) / step_s + 1e-9)) + 1
+    return start + step_s * np.arange(n, dtype=float)
+
+
+def _minutes(start: float, end: float) -> np.ndarray:
+    first = math.ceil((start + MINUTE) / MINUTE) * MINUTE
+    if first > end:
+        return np.zeros(0)
+    return np.arange(first, end + 1e-9, MINUTE, dtype=float)
+
+
+def run_replay(history: History, targets: Targets, sizer: Sizer, *, start: float, end: float,
+               options: ReplayOptions = ReplayOptions(),
+               custom_rates: Mapping[tuple[str, str], np.ndarray] | None = None,
+               keep: tuple[int, ...] = (), progress: Callable[[str], None] | None = None) -> ReplayResult:
+    say = progress or (lambda _m: None)
+    times = pass_times(start, end, options.step_s)
+    notes = list(targets.notes)
+    tracks: dict[tuple[str, str], SizingTrack] = {}
+    rate_cache: dict[tuple[str, str, float, float], np.ndarray] = {}
+    for t in targets.targets:
+        p = t.policy
+        pods = history.pods_of(p.namespace, p.workload_name, p.workload_kind)
+        counters = [history.requests.get((p.namespace, p.workload_name, pod), ()) for pod in pods]
+        for c in p.containers:
+            if c.rate_query is not None:
+                rates = (custom_rates or {}).get((p.key, c.name))
+                if rates is None:
+                    rates = np.full(len(times), np.nan)
+                    notes.append(f"{p.key}/{c.name} has its own rateQuery, which only a Prometheus can evaluate; "
+                                 "held NoMetrics (replay with --prometheus)")
+            else:
+                ck = (p.namespace, p.workload_name, p.rate_window_s, p.rate_percentile)
+                if ck not in rate_cache:
+                    rate_cache[ck] = workload_rates(counters, times, window_s=p.rate_window_s,
+                                                    quantile=p.rate_percentile / 100.0, step_s=options.rate_step_s,
+                                                    interval_s=options.rate_interval_s)
+                rates = rate_cache[ck]
+            d, u, x = sizer.answers(c.model, rates)
+            tracks[(p.key, c.name)] = SizingTrack(rate=rates, demand=d, upper=u, extrapolated=x)
+    missing = sorted(getattr(sizer, "missing", ()))
+    if missing:
+        notes.append(f"no model for {', '.join(missing)}: held NoModel")
+    say(f"rates and sizing answers ready for {len(tracks)} containers over {len(times)} passes")
+    sim = simulate(targets.targets, tracks, times, as_written=options.as_written, rollout_s=options.rollout_s,
+                   budget=options.budget, keep=keep)
+    say(f"simulated {len(times)} passes: {len(sim.changes)} changes")
+    minutes = _minutes(start, end)
+    figs: list[ContainerFigures] = []
+    usage: dict[tuple[str, str], list[PodUsage]] = {}
+    static: dict[tuple[str, str], tuple[int | None, float]] = {}
+    # per pod: containers' requests at each pass, for the node count
+    pod_req = {s: [] for s in STRATEGIES}
+    alive_rows = []
+    k_pass = np.clip(np.searchsorted(minutes, times + 1e-9, side="left"), 0, max(len(minutes) - 1, 0))
+    for t in targets.targets:
+        p = t.policy
+        wk = p.workload_key
+        pods = history.pods_of(p.namespace, p.workload_name, p.workload_kind)
+        pod_sizes = {s: np.zeros((len(pods), len(times)), dtype=np.int64) for s in STRATEGIES}
+        pod_alive = np.zeros((len(pods), len(times)), dtype=bool)
+        for cname, (req, _lim) in t.containers.items():
+            steps = sim.steps.get((wk, cname), [(float(times[0]), req)])
+            per_pod = []
+            for j, pod in enumerate(pods):
+                u = pod_usage(history.cpu.get((p.namespace, pod, cname), ()), minutes)
+                per_pod.append(u if u is not None else PodUsage(first=0, cores=np.zeros(0, dtype=np.float32)))
+            f = container_figures(wk, cname, per_pod, minutes, steps)
+            figs.append(f)
+            usage[(wk, cname)] = per_pod
+            static[(wk, cname)] = (req, f.fixed_m)
+            rf = step_values(steps, times)
+            for j, u in enumerate(per_pod):
+                if not len(u.cores):
+                    continue
+                live = (k_pass >= u.first) & (k_pass < u.stop)
+                pod_alive[j] |= live
+                pod_sizes["current"][j] += (req or 0)
+                pod_sizes["fixed"][j] += int(math.ceil(f.fixed_m - 1e-9))
+                pod_sizes["ratefit"][j] += rf
+        alive_rows.append(pod_alive)
+        for s in STRATEGIES:
+            pod_req[s].append(pod_sizes[s])
+    alive = np.concatenate(alive_rows) if alive_rows else np.zeros((0, len(times)), dtype=bool)
+    reqs = {s: (np.concatenate(v) if v else np.zeros((0, len(times)), dtype=np.int64)) for s, v in pod_req.items()}
+    nodes = node_counts(reqs, alive, int(round(options.node_cpu * 1000)))
+    changes: dict[str, dict[str, int]] = {t.policy.workload_key: {"changes": 0, "rollouts": 0, "resizes": 0}
+                                          for t in targets.targets}
+    for ch in sim.changes:
+        c = changes[ch.workload]
+        c["changes"] += 1
+        c["resizes" if ch.method is Method.IN_PLACE else "rollouts"] += 1
+    outcome = Outcome(start=start, end=end, step_s=options.step_s, node_cpu=options.node_cpu, containers=figs,
+                      changes=changes, nodes=nodes, notes=notes)
+    return ReplayResult(outcome=outcome, sim=sim, tracks=tracks, minutes=minutes, usage=usage, static=static)

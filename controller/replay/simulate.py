@@ -1,0 +1,207 @@
+"""The simulation: pass by pass at simulated times, the live loop's decision with its state
+carried from pass to pass.
+
+Per pass at time T and per policy (in the live loop's order: namespace, name):
+
+1. inputs as the live loop gathers them: each container's current request and limit
+   (the pod template; for ``method: in-place`` what the pods run after earlier resizes),
+   the rate at T (:mod:`controller.replay.series`, from samples up to T only) and the
+   sizing answer at that rate;
+2. the decision by ``controller.decide.decide_workload`` — the live loop's own pure
+   function, never a copy — with the history (``lastChange``, settling) the previous pass
+   left, and the cluster budget (``controller.limits.Budget``: changes per minute,
+   concurrent rollouts) drawn exactly as the live loop draws it: view, decide, spend, and
+   decide again with the budget spent if the spend failed;
+3. a changed workload takes its new requests at once for an in-place resize and after
+   ``rollout_s`` for a rollout; the rollout holds a rollout slot until then.
+
+Simplifications (said here so a reader of the numbers knows them): a rollout changes every
+pod of the workload at once when it completes (the history's pod names stay as they are);
+an in-place resize reaches every pod, also pods started later (the live loop re-applies
+it each pass); the API server accepts every change (no Rejected).
+
+Rates, sizing answers and usage do not depend on the decisions, so they are computed
+once up front (vectorised); only the decisions run pass by pass.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+
+import numpy as np
+
+from ratefit.controller.decide import ContainerInput, Sizing, WorkloadDecision, decide_workload
+from ratefit.controller.limits import Budget, BudgetView, RolloutSlots, TokenBucket
+from ratefit.controller.policy import Method, Mode, Policy, WorkloadHistory
+
+__all__ = [
+    "ReplayTarget",
+    "SizingTrack",
+    "Change",
+    "BudgetConfig",
+    "SimResult",
+    "simulate",
+]
+
+
+@dataclass(frozen=True)
+class ReplayTarget:
+    """One policy and the workload it sizes, as the replay starts from them."""
+
+    policy: Policy
+    #: container → (request_m, limit_m) of the workload's pod template today
+    containers: Mapping[str, tuple[int | None, int | None]]
+    hpa_on_cpu: bool = False
+
+
+@dataclass(frozen=True)
+class SizingTrack:
+    """One container's inputs at every pass: rate (NaN: none) and the sizing answer in
+    cores (NaN: no answer) with the extrapolated flag."""
+
+    rate: np.ndarray
+    demand: np.ndarray
+    upper: np.ndarray
+    extrapolated: np.ndarray
+
+
+@dataclass(frozen=True)
+class Change:
+    """One applied change of one workload."""
+
+    workload: str
+    decided_at: float  # unix s (the pass)
+    effective_at: float  # unix s (at once for in-place, after the rollout delay otherwise)
+    method: Method
+    #: container → (old request, new request, old limit, new limit), millicores
+    containers: Mapping[str, tuple[int | None, int | None, int | None, int | None]]
+    why: str
+
+
+@dataclass(frozen=True)
+class BudgetConfig:
+    """The cluster budget of ``ratefit run`` (0: unlimited), same defaults."""
+
+    per_minute: float = 2.0
+    max_rollouts: int = 1
+
+    def build(self, now: float) -> Budget:
+        return Budget(
+            bucket=TokenBucket.per_minute(self.per_minute, now=now) if self.per_minute > 0 else None,
+            slots=RolloutSlots(self.max_rollouts) if self.max_rollouts > 0 else None,
+        )
+
+
+@dataclass
+class SimResult:
+    pass_times: np.ndarray
+    changes: list[Change] = field(default_factory=list)
+    #: (workload key, container) → [(effective time, request_m)], starting with today's value
+    steps: dict[tuple[str, str], list[tuple[float, int | None]]] = field(default_factory=dict)
+    #: pass index → decisions of that pass (only the passes asked for in ``keep``)
+    decisions: dict[int, list[WorkloadDecision]] = field(default_factory=dict)
+    #: workload key → count of (verdict, why) over all passes
+    verdicts: dict[str, dict[tuple[str, str], int]] = field(default_factory=dict)
+
+
+def _utc(t: float) -> datetime:
+    return datetime.fromtimestamp(t, tz=timezone.utc)
+
+
+def _sizing(track: SizingTrack, i: int) -> tuple[float | None, Sizing | None]:
+    r = float(track.rate[i])
+    if not math.isfinite(r):
+        return None, None
+    d = float(track.demand[i])
+    if not math.isfinite(d):
+        return r, None
+    return r, Sizing(demand=d, upper=float(track.upper[i]), extrapolated=bool(track.extrapolated[i]))
+
+
+def simulate(
+    targets: Sequence[ReplayTarget],
+    tracks: Mapping[tuple[str, str], SizingTrack],
+    pass_times: np.ndarray,
+    *,
+    as_written: bool = False,
+    rollout_s: float = 120.0,
+    budget: BudgetConfig = BudgetConfig(),
+    keep: Sequence[int] = (),
+    on_pass: Callable[[int], None] | None = None,
+) -> SimResult:
+    """Run every pass. ``tracks`` is keyed by (policy key, container). ``as_written``
+    keeps each policy's mode (a dry-run policy then changes nothing); otherwise every
+    policy is simulated in apply mode. ``keep``: pass indices whose decisions are kept."""
+    order = sorted(targets, key=lambda t: (t.policy.namespace, t.policy.name))
+    policies = [t.policy if as_written else dataclasses.replace(t.policy, mode=Mode.APPLY) for t in order]
+    values: list[dict[str, tuple[int | None, int | None]]] = [dict(t.containers) for t in order]
+    history: list[WorkloadHistory] = [WorkloadHistory() for _ in order]
+    pending: list[tuple[float, int]] = []  # rollouts in flight: (done at, workload index)
+    keep_set = set(keep)
+    res = SimResult(pass_times=np.asarray(pass_times, dtype=float))
+    if len(res.pass_times) == 0:
+        return res
+    bud = budget.build(float(res.pass_times[0]))
+    track_rows = [[tracks[(p.key, c.name)] for c in p.containers] for p in policies]
+    for t, p in zip(order, policies):
+        for c in p.containers:
+            res.steps[(p.workload_key, c.name)] = [(float(res.pass_times[0]), t.containers.get(c.name, (None, None))[0])]
+        res.verdicts[p.workload_key] = {}
+    for i, now_s in enumerate(res.pass_times.tolist()):
+        # rollouts still under way hold their slot (level-based, as the live loop syncs it)
+        pending = [(eff, w) for eff, w in pending if eff > now_s]
+        if bud.slots is not None:
+            bud.slots.sync(policies[w].workload_key for _, w in pending)
+        now = _utc(now_s)
+        kept: list[WorkloadDecision] = []
+        for w, p in enumerate(policies):
+            inputs = []
+            for c, track in zip(p.containers, track_rows[w]):
+                if c.name not in values[w]:
+                    continue  # not in the workload: decide holds it NoMetrics naming the container
+                req, lim = values[w][c.name]
+                rate, sizing = _sizing(track, i)
+                inputs.append(ContainerInput(name=c.name, request_m=req, limit_m=lim, rate=rate, sizing=sizing))
+            apply = p.mode is Mode.APPLY
+            view = bud.view(now_s) if apply else BudgetView()
+            hpa = order[w].hpa_on_cpu
+            wd = decide_workload(p, inputs, history=history[w], now=now, budget=view, hpa_on_cpu=hpa, dry_run=not apply)
+            if wd.changed and not bud.spend(p.workload_key, now_s):
+                wd = decide_workload(p, inputs, history=history[w], now=now, budget=BudgetView(changes_left=0),
+                                     hpa_on_cpu=hpa, dry_run=False)
+            history[w] = wd.history
+            counts = res.verdicts[p.workload_key]
+            for d in wd.decisions:
+                k = (d.verdict.value, d.why.value)
+                counts[k] = counts.get(k, 0) + 1
+            if i in keep_set:
+                kept.append(wd)
+            changed = wd.changed
+            if not changed:
+                continue
+            new = {d.container: (d.proposed_m, d.proposed_limit_m) for d in changed}
+            old = {d.container: (d.current_m, d.limit_m) for d in changed}
+            in_place = p.method is Method.IN_PLACE
+            eff = now_s if in_place else now_s + rollout_s
+            # the next pass reads the patched template (rollout) or the resized pods (in-place);
+            # the pods run the new request from ``eff`` on
+            values[w].update(new)
+            if not in_place:
+                pending.append((eff, w))
+            res.changes.append(Change(
+                workload=p.workload_key, decided_at=now_s, effective_at=eff, method=p.method,
+                containers={c: (old[c][0], new[c][0], old[c][1], new[c][1]) for c in new},
+                why=",".join(sorted({d.why.value for d in changed})),
+            ))
+            for c, (req, _lim) in new.items():
+                res.steps[(p.workload_key, c)].append((eff, req))
+        if i in keep_set:
+            res.decisions[i] = kept
+        if on_pass is not None:
+            on_pass(i)
+    return res
+
