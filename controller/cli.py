@@ -26,6 +26,7 @@ COMMANDS = (
     "serve",
     "sandbox",
     "plan",
+    "replay",
     "run",
     "revert",
 )

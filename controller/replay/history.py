@@ -179,3 +179,29 @@ def read_prometheus(client, *, start: float, end: float, request_metric: str, na
     if not cpu:
         raise InputError(f"Prometheus has no samples of {cpu_metric} in the window")
     return History.build(req, cpu, source="prometheus")  # type: ignore[arg-type]
+
+
+def custom_rates(client, requests, pass_times: np.ndarray, *, rate_step: str) -> dict[tuple[str, str], np.ndarray]:
+    """For policies with their own ``rateQuery``: the query the live loop sends
+    (``metrics_source.custom_query``), evaluated by Prometheus at every pass time with a
+    range query; per pass the busiest pod's value, NaN where none. ``requests``: pairs of
+    ((policy key, container), ``metrics_source.RateRequest``)."""
+    from ratefit.controller.metrics_source import custom_query
+
+    out: dict[tuple[str, str], np.ndarray] = {}
+    times = np.asarray(pass_times, dtype=float)
+    step = float(times[1] - times[0]) if len(times) > 1 else 60.0
+    for key, req in requests:
+        best = np.full(len(times), np.nan)
+        try:
+            got = client.query_range(custom_query(req, step=rate_step), start=float(times[0]), end=float(times[-1]),
+                                     step=step)
+        except PrometheusError as exc:
+            raise InputError(f"rateQuery of {key[0]}/{key[1]}: {exc}") from exc
+        for s in got:
+            idx = np.searchsorted(times, np.asarray(s.timestamps, dtype=float) - 1e-6)
+            ok = (idx < len(times)) & np.isfinite(s.values)
+            idx, vals = idx[ok], np.asarray(s.values, dtype=float)[ok]
+            best[idx] = np.fmax(best[idx], vals)
+        out[key] = best
+    return out
