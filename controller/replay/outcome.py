@@ -35,6 +35,9 @@ __all__ = ["STRATEGIES", "ContainerFigures", "Outcome", "container_figures", "no
 
 STRATEGIES = ("current", "fixed", "ratefit")
 FIXED_QUANTILE = 0.95
+#: usage counts as over the request only beyond this many cores (usage is stored as
+#: float32: 0.6 reads back as 0.60000002; a micro-core is far below Kubernetes' 1m)
+EPS = 1e-6
 
 
 @dataclass(frozen=True)
@@ -82,9 +85,9 @@ def container_figures(workload: str, container: str, pods: Sequence[PodUsage], m
         hours["fixed"] += fixed_c * x.size / 60.0
         r = ratefit_m[u.first:u.stop] / 1000.0
         hours["ratefit"] += float(r.sum()) / 60.0
-        under["current"] += int(np.count_nonzero(x > cur_c))
-        under["fixed"] += int(np.count_nonzero(x > fixed_c))
-        under["ratefit"] += int(np.count_nonzero(x > r))
+        under["current"] += int(np.count_nonzero(x > cur_c + EPS))
+        under["fixed"] += int(np.count_nonzero(x > fixed_c + EPS))
+        under["ratefit"] += int(np.count_nonzero(x > r + EPS))
     return ContainerFigures(workload=workload, container=container, pod_minutes=n, cpu_hours=hours,
                             under_minutes=under, current_m=current, fixed_m=fixed_c * 1000.0)
 

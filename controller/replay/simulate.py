@@ -104,6 +104,8 @@ class SimResult:
     steps: dict[tuple[str, str], list[tuple[float, int | None]]] = field(default_factory=dict)
     #: pass index → decisions of that pass (only the passes asked for in ``keep``)
     decisions: dict[int, list[WorkloadDecision]] = field(default_factory=dict)
+    #: pass index → policy key → (history, inputs) the decision started from (``keep`` only)
+    states: dict[int, dict[str, tuple[WorkloadHistory, tuple[ContainerInput, ...]]]] = field(default_factory=dict)
     #: workload key → count of (verdict, why) over all passes
     verdicts: dict[str, dict[tuple[str, str], int]] = field(default_factory=dict)
 
@@ -173,6 +175,7 @@ def simulate(
             if wd.changed and not bud.spend(p.workload_key, now_s):
                 wd = decide_workload(p, inputs, history=history[w], now=now, budget=BudgetView(changes_left=0),
                                      hpa_on_cpu=hpa, dry_run=False)
+            history_before = history[w]
             history[w] = wd.history
             counts = res.verdicts[p.workload_key]
             for d in wd.decisions:
@@ -180,6 +183,7 @@ def simulate(
                 counts[k] = counts.get(k, 0) + 1
             if i in keep_set:
                 kept.append(wd)
+                res.states.setdefault(i, {})[p.key] = (history_before, tuple(inputs))
             changed = wd.changed
             if not changed:
                 continue
