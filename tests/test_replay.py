@@ -230,3 +230,70 @@ def test_the_command_prints_the_json_contract_and_writes_the_report(week, tmp_pa
     bad = subprocess.run([str(RATEFIT), "replay", "-f", str(man), "--store", str(store)],
                          capture_output=True, text=True, timeout=60)
     assert bad.returncode == 2 and "--history" in bad.stderr and len(bad.stderr.strip().splitlines()) == 1
+
+
+def _ffd_by_the_book(sizes, node_m):
+    """First fit decreasing written the plain way (a list scan per pod): the reference."""
+    free, loads, over = [], [], 0
+    for s in sorted(sizes, reverse=True):
+        if s > node_m:
+            over += 1
+            free.append(-1)
+            loads.append(s)
+            continue
+        for i, f in enumerate(free):
+            if f >= s:
+                free[i] -= s
+                loads[i] += s
+                break
+        else:
+            free.append(node_m - s)
+            loads.append(s)
+    return len(loads), tuple(loads), over
+
+
+def test_first_fit_decreasing_equals_the_plain_scan_on_random_pods() -> None:
+    rng = np.random.default_rng(7)
+    for _ in range(300):
+        sizes = rng.integers(1, 9000, int(rng.integers(0, 200))).tolist()
+        p = first_fit_decreasing(sizes, 8000)
+        assert (p.nodes, p.loads, p.oversized) == _ffd_by_the_book(sizes, 8000)
+
+
+def test_window_quantiles_are_numpy_percentile_floats() -> None:
+    """The vectorised window quantile gives exactly np.percentile's floats (numpy's
+    'linear' method, Hyndman & Fan type 7), missing values left out."""
+    from ratefit.controller.replay.series import window_quantiles
+
+    rng = np.random.default_rng(1)
+    v = rng.uniform(0, 100, 3000)
+    v[rng.uniform(size=3000) < 0.1] = np.nan
+    v[:40] = np.nan
+    lo = np.arange(0, 2800, 7)
+    hi = lo + rng.integers(1, 200, len(lo))
+    for q in (0.95, 0.5, 0.99):
+        want = [np.percentile(w[~np.isnan(w)], q * 100) if (~np.isnan(w)).any() else np.nan
+                for w in (v[a:b] for a, b in zip(lo, hi))]
+        assert np.array_equal(window_quantiles(v, lo, hi, q), np.array(want), equal_nan=True)
+
+
+def test_a_split_replay_equals_the_single_process_one(tmp_path: Path, monkeypatch) -> None:
+    """Without a cluster budget workloads are independent and may be simulated in parallel:
+    the merged result must be the one process's, change for change."""
+    import ratefit.controller.replay.engine as engine
+
+    info = write_openmetrics(tmp_path / "h.om", end=END, hours=10, step_s=60, seed=2)
+    hist = read_openmetrics(info.path, request_metric=REQUEST_METRIC)
+    targets = targets_from_objects(scenario_objects(default_policies()))
+    sizer = StoreSizer(truth_store(tmp_path / "store"))
+    opts = ReplayOptions(budget=BudgetConfig(per_minute=0, max_rollouts=0))
+    keep = (10, 60, 110)
+    one = run_replay(hist, targets, sizer, start=hist.start, end=hist.end, options=opts, keep=keep)
+    monkeypatch.setattr(engine, "PARALLEL_FROM", 1)
+    monkeypatch.setattr(engine.os if hasattr(engine, "os") else __import__("os"), "sched_getaffinity",
+                        lambda _pid: {0, 1}, raising=False)
+    split = run_replay(hist, targets, sizer, start=hist.start, end=hist.end, options=opts, keep=keep)
+    assert split.sim.changes == one.sim.changes and split.sim.changes
+    assert split.sim.steps == one.sim.steps
+    assert split.sim.decisions == one.sim.decisions
+    assert to_json(split.outcome) == to_json(one.outcome)

@@ -73,6 +73,58 @@ def _minutes(start: float, end: float) -> np.ndarray:
     return np.arange(first, end + 1e-9, MINUTE, dtype=float)
 
 
+#: workloads from which an unlimited-budget replay is split over the CPUs
+PARALLEL_FROM = 200
+_WORK: dict = {}
+
+
+def _simulate_part(index: int) -> SimResult:
+    targets, tracks, times, options, keep = _WORK["args"]
+    part = _WORK["parts"][index]
+    return simulate(part, tracks, times, as_written=options.as_written, rollout_s=options.rollout_s,
+                    budget=options.budget, keep=keep)
+
+
+def _simulate(targets: Targets, tracks, times: np.ndarray, options: ReplayOptions, keep: tuple[int, ...]) -> SimResult:
+    """The passes. With no cluster budget (``--budget-per-minute 0 --max-rollouts 0``) no
+    workload's decision depends on another's, so many workloads are split over the CPUs
+    (forked processes, each simulating its share in the live order); the merged result is
+    the same as one process gives. With a budget the workloads share it: one process."""
+    import os
+
+    cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    unlimited = options.budget.per_minute <= 0 and options.budget.max_rollouts <= 0
+    if not unlimited or cpus < 2 or len(targets.targets) < PARALLEL_FROM:
+        return simulate(targets.targets, tracks, times, as_written=options.as_written, rollout_s=options.rollout_s,
+                        budget=options.budget, keep=keep)
+    import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor
+
+    order = sorted(targets.targets, key=lambda t: (t.policy.namespace, t.policy.name))
+    k = min(cpus, 4)
+    _WORK["args"] = (targets, tracks, times, options, keep)
+    _WORK["parts"] = [order[i::k] for i in range(k)]
+    try:
+        with ProcessPoolExecutor(max_workers=k, mp_context=mp.get_context("fork")) as pool:
+            parts = list(pool.map(_simulate_part, range(k)))
+    finally:
+        _WORK.clear()
+    merged = SimResult(pass_times=parts[0].pass_times)
+    for r in parts:
+        merged.changes.extend(r.changes)
+        merged.steps.update(r.steps)
+        for i, ds in r.decisions.items():
+            merged.decisions.setdefault(i, []).extend(ds)
+        for i, st in r.states.items():
+            merged.states.setdefault(i, {}).update(st)
+    rank = {t.policy.key: n for n, t in enumerate(order)}
+    wrank = {t.policy.workload_key: n for n, t in enumerate(order)}
+    merged.changes.sort(key=lambda c: (c.decided_at, wrank[c.workload]))
+    for i in merged.decisions:
+        merged.decisions[i].sort(key=lambda wd: rank[wd.policy])
+    return merged
+
+
 def run_replay(history: History, targets: Targets, sizer: Sizer, *, start: float, end: float,
                options: ReplayOptions = ReplayOptions(),
                custom_rates: Mapping[tuple[str, str], np.ndarray] | None = None,
@@ -106,8 +158,7 @@ def run_replay(history: History, targets: Targets, sizer: Sizer, *, start: float
     if missing:
         notes.append(f"no model for {', '.join(missing)}: held NoModel")
     say(f"rates and sizing answers ready for {len(tracks)} containers over {len(times)} passes")
-    sim = simulate(targets.targets, tracks, times, as_written=options.as_written, rollout_s=options.rollout_s,
-                   budget=options.budget, keep=keep)
+    sim = _simulate(targets, tracks, times, options, keep)
     say(f"simulated {len(times)} passes: {len(sim.changes)} changes")
     minutes = _minutes(start, end)
     figs: list[ContainerFigures] = []

@@ -28,31 +28,46 @@ class Packing:
 
 
 def first_fit_decreasing(requests_m: Sequence[int] | np.ndarray, node_m: int) -> Packing:
-    """Pack pods of ``requests_m`` millicores onto nodes of ``node_m`` millicores."""
+    """Pack pods of ``requests_m`` millicores onto nodes of ``node_m`` millicores.
+
+    "The first node with room" is found in O(log n) with a max-tree over the nodes' free
+    capacity (nodes not yet opened count as empty), so a pack of thousands of pods takes
+    milliseconds; the result is plain first fit decreasing."""
     if node_m <= 0:
         raise ValueError(f"a node needs a positive CPU capacity, got {node_m}m")
-    sizes = np.sort(np.asarray(requests_m, dtype=np.int64))[::-1]
-    free = np.empty(len(sizes) + 1, dtype=np.int64)
+    items = sorted((int(x) for x in np.asarray(requests_m).tolist()), reverse=True)
+    size = 1
+    while size < max(len(items), 1):
+        size *= 2
+    tree = [node_m] * (2 * size)  # max free capacity below each tree node
     used = 0
     oversized = 0
     loads: list[int] = []
-    for s in sizes.tolist():
-        if s > node_m:
+    for s in items:
+        if s > node_m:  # fits nowhere: a node of its own, closed to everything else
             oversized += 1
-            loads.append(s)
-            free[used] = -1  # nothing else fits beside it
+            leaf = used + size
             used += 1
-            continue
-        if used:
-            fits = np.flatnonzero(free[:used] >= s)
-            if fits.size:
-                i = int(fits[0])
-                free[i] -= s
-                loads[i] += s
-                continue
-        free[used] = node_m - s
-        loads.append(s)
-        used += 1
+            loads.append(s)
+            tree[leaf] = -1
+        else:
+            leaf = 1
+            while leaf < size:  # leftmost leaf with free >= s
+                leaf = 2 * leaf if tree[2 * leaf] >= s else 2 * leaf + 1
+            i = leaf - size
+            if i >= used:
+                used = i + 1
+                loads.append(0)
+            loads[i] += s
+            tree[leaf] -= s
+        j = leaf // 2
+        while j:
+            a, b = tree[2 * j], tree[2 * j + 1]
+            m = a if a > b else b
+            if tree[j] == m:
+                break
+            tree[j] = m
+            j //= 2
     return Packing(nodes=used, loads=tuple(loads), oversized=oversized)
 
 

@@ -106,22 +106,27 @@ class SimResult:
     decisions: dict[int, list[WorkloadDecision]] = field(default_factory=dict)
     #: pass index → policy key → (history, inputs) the decision started from (``keep`` only)
     states: dict[int, dict[str, tuple[WorkloadHistory, tuple[ContainerInput, ...]]]] = field(default_factory=dict)
-    #: workload key → count of (verdict, why) over all passes
-    verdicts: dict[str, dict[tuple[str, str], int]] = field(default_factory=dict)
 
 
 def _utc(t: float) -> datetime:
     return datetime.fromtimestamp(t, tz=timezone.utc)
 
 
-def _sizing(track: SizingTrack, i: int) -> tuple[float | None, Sizing | None]:
-    r = float(track.rate[i])
-    if not math.isfinite(r):
-        return None, None
-    d = float(track.demand[i])
-    if not math.isfinite(d):
-        return r, None
-    return r, Sizing(demand=d, upper=float(track.upper[i]), extrapolated=bool(track.extrapolated[i]))
+def _inputs(track: SizingTrack) -> list[tuple[float | None, Sizing | None]]:
+    """(rate, sizing answer) at every pass as plain Python values, built once."""
+    out: list[tuple[float | None, Sizing | None]] = []
+    last: Sizing | None = None
+    for r, d, u, x in zip(track.rate.tolist(), track.demand.tolist(), track.upper.tolist(),
+                          track.extrapolated.tolist()):
+        if not math.isfinite(r):
+            out.append((None, None))
+        elif not math.isfinite(d):
+            out.append((r, None))
+        else:
+            if last is None or (last.demand, last.upper, last.extrapolated) != (d, u, bool(x)):
+                last = Sizing(demand=d, upper=u, extrapolated=bool(x))
+            out.append((r, last))
+    return out
 
 
 def simulate(
@@ -148,11 +153,10 @@ def simulate(
     if len(res.pass_times) == 0:
         return res
     bud = budget.build(float(res.pass_times[0]))
-    track_rows = [[tracks[(p.key, c.name)] for c in p.containers] for p in policies]
+    track_rows = [[_inputs(tracks[(p.key, c.name)]) for c in p.containers] for p in policies]
     for t, p in zip(order, policies):
         for c in p.containers:
             res.steps[(p.workload_key, c.name)] = [(float(res.pass_times[0]), t.containers.get(c.name, (None, None))[0])]
-        res.verdicts[p.workload_key] = {}
     for i, now_s in enumerate(res.pass_times.tolist()):
         # rollouts still under way hold their slot (level-based, as the live loop syncs it)
         pending = [(eff, w) for eff, w in pending if eff > now_s]
@@ -166,7 +170,7 @@ def simulate(
                 if c.name not in values[w]:
                     continue  # not in the workload: decide holds it NoMetrics naming the container
                 req, lim = values[w][c.name]
-                rate, sizing = _sizing(track, i)
+                rate, sizing = track[i]
                 inputs.append(ContainerInput(name=c.name, request_m=req, limit_m=lim, rate=rate, sizing=sizing))
             apply = p.mode is Mode.APPLY
             view = bud.view(now_s) if apply else BudgetView()
@@ -177,10 +181,6 @@ def simulate(
                                      hpa_on_cpu=hpa, dry_run=False)
             history_before = history[w]
             history[w] = wd.history
-            counts = res.verdicts[p.workload_key]
-            for d in wd.decisions:
-                k = (d.verdict.value, d.why.value)
-                counts[k] = counts.get(k, 0) + 1
             if i in keep_set:
                 kept.append(wd)
                 res.states.setdefault(i, {})[p.key] = (history_before, tuple(inputs))
