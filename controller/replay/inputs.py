@@ -131,11 +131,13 @@ def targets_from_objects(objs: Iterable[Mapping[str, Any]]) -> Targets:
 
 def targets_from_cluster(kube: Any, namespaces: Sequence[str] = ()) -> Targets:
     """LIST the policies, workloads and autoscalers through the Kubernetes adapter (read only)."""
-    from ratefit.controller.reconcile import policy_object_dict
+    from ratefit.controller.policy import GROUP, VERSION
 
     objs: list[dict[str, Any]] = []
     pols = list(kube.list_policies(list(namespaces) or None).items)
-    objs.extend(policy_object_dict(p) for p in pols)
+    objs.extend({"apiVersion": f"{GROUP}/{VERSION}", "kind": KIND,
+                 "metadata": {"namespace": p.namespace, "name": p.name, "generation": p.generation},
+                 "spec": dict(p.spec or {})} for p in pols)
     for ns in sorted({p.namespace for p in pols}):
         for kind in ("Deployment", "StatefulSet"):
             for w in kube.list_workloads(kind, namespace=ns):
