@@ -153,3 +153,57 @@ def test_replay_decisions_equal_plan_at_several_times(tmp_path: Path, prometheus
     seen = {d.verdict.value for i in keep for wd in res.sim.decisions[i] for d in wd.decisions}
     assert len(seen) >= 2, seen
     assert np.isfinite(res.tracks[("parcels/label-printer", "app")].rate[keep[-1]])
+
+
+def test_prometheus_input_gives_the_same_replay_as_the_file(tmp_path: Path, prometheus_from_openmetrics) -> None:
+    """`--prometheus URL --from --to` reads the same raw samples the OpenMetrics file holds
+    (range selectors, stitched by day), so the replay is the same; a policy with its own
+    rateQuery (here spelling out the template's expression) is evaluated by Prometheus and
+    gets the template's rates."""
+    import yaml
+
+    end = float(int((time.time() - 300) // 60) * 60)
+    info = write_openmetrics(tmp_path / "h.om", end=end, hours=30, step_s=60, seed=4)
+    prom = prometheus_from_openmetrics(info.path)
+    store = truth_store(tmp_path / "store")
+    pols = default_policies()
+    twin = json.loads(json.dumps(next(p for p in pols if p["metadata"]["name"] == "customs-gateway")))
+    twin["metadata"]["name"] = "customs-gateway-own-query"
+    twin["spec"]["containers"][0]["rateQuery"] = (
+        f'sum by (namespace, pod) (rate({REQUEST_METRIC}{{namespace="dispatch",workload="customs-gateway"}}[2m]))')
+    man = tmp_path / "m.yaml"
+    man.write_text(yaml.safe_dump_all([o for objs in manifest_objects().values() for o in objs] + pols + [twin]))
+    start = info.start + 6 * 3600
+    common = ["-f", str(man), "--store", str(store), "--rate-metric", REQUEST_METRIC, "--output", "json",
+              "--from", str(start), "--to", str(info.end)]
+    a = subprocess.run([str(RATEFIT), "replay", "--history", str(info.path), *common],
+                       capture_output=True, text=True, timeout=300)
+    b = subprocess.run([str(RATEFIT), "replay", "--prometheus", prom.url, *common],
+                       capture_output=True, text=True, timeout=300)
+    assert a.returncode == 0 and b.returncode == 0, (a.stderr, b.stderr)
+    fa, fb = json.loads(a.stdout), json.loads(b.stdout)
+    wa = {w["workload"]: w for w in fa["workloads"]}
+    wb = {w["workload"]: w for w in fb["workloads"]}
+    for w in wa:
+        if w.endswith("/customs-gateway"):
+            continue  # two policies size it: the file cannot evaluate the twin's own query
+        assert wa[w]["cpu_hours"] == wb[w]["cpu_hours"], w
+        assert (wa[w]["changes"], wa[w]["under_share"]) == (wb[w]["changes"], wb[w]["under_share"]), w
+    assert any("rateQuery" in n for n in fa["notes"]) and not any("rateQuery" in n for n in fb["notes"])
+    # the twin's own query, evaluated by Prometheus at every pass, gives the template's rates
+    from ratefit.controller.metrics_source import RateRequest
+    from ratefit.controller.replay.engine import pass_times
+    from ratefit.controller.replay.history import custom_rates
+    from ratefit.controller.replay.series import workload_rates
+    from ratefit.models.prometheus import PrometheusClient
+
+    times = pass_times(start, info.end, 300.0)
+    hist = read_openmetrics(info.path, request_metric=REQUEST_METRIC)
+    pods = hist.pods_of("dispatch", "customs-gateway", "StatefulSet")
+    mine = workload_rates([hist.requests[("dispatch", "customs-gateway", p)] for p in pods], times,
+                          window_s=86400.0, quantile=0.95, step_s=30.0, interval_s=120.0)
+    req = RateRequest(namespace="dispatch", policy="twin", workload="customs-gateway", container="gateway",
+                      query=twin["spec"]["containers"][0]["rateQuery"], rate_window="1d", percentile=95.0)
+    with PrometheusClient(prom.url, timeout=60) as client:
+        theirs = custom_rates(client, [(("dispatch/twin", "gateway"), req)], times, rate_step="30s")
+    np.testing.assert_allclose(theirs[("dispatch/twin", "gateway")], mine, rtol=1e-6)
