@@ -297,3 +297,41 @@ def test_a_split_replay_equals_the_single_process_one(tmp_path: Path, monkeypatc
     assert split.sim.steps == one.sim.steps
     assert split.sim.decisions == one.sim.decisions
     assert to_json(split.outcome) == to_json(one.outcome)
+
+
+def test_replay_reads_policies_and_workloads_from_a_cluster_and_writes_nothing(tmp_path: Path) -> None:
+    """--kubeconfig: the sandbox API server (a local stand-in for Kubernetes) holding the
+    scenario; the replay only LISTs — every resourceVersion stays as it was."""
+    import httpx
+
+    from reconcile_fixtures import CRD
+    from ratefit.controller.sandbox import SandboxServer
+
+    info = write_openmetrics(tmp_path / "h.om", end=END, hours=6, step_s=60, seed=1)
+    store = truth_store(tmp_path / "store")
+    sb = SandboxServer(host="127.0.0.1", port=0, load=[CRD]).start()
+    try:
+        for o in scenario_objects(default_policies()):
+            if o["kind"] != "Service":
+                sb.create(o)
+        kc = sb.write_kubeconfig(tmp_path / "kubeconfig")
+
+        def versions() -> dict[str, str]:
+            out = {}
+            for path in ("/apis/apps/v1/deployments", "/apis/apps/v1/statefulsets",
+                         "/apis/ratefit.dev/v1alpha1/sizingpolicies"):
+                for o in httpx.get(sb.url + path, timeout=10).json()["items"]:
+                    out[path + o["metadata"]["name"]] = o["metadata"]["resourceVersion"]
+            return out
+
+        before = versions()
+        p = subprocess.run([str(RATEFIT), "replay", "--kubeconfig", str(kc), "--history", str(info.path),
+                            "--store", str(store), "--rate-metric", REQUEST_METRIC, "--output", "json"],
+                           capture_output=True, text=True, timeout=300)
+        assert p.returncode == 0, p.stderr
+        assert versions() == before
+    finally:
+        sb.stop()
+    doc = json.loads(p.stdout)
+    assert {w["workload"] for w in doc["workloads"]} == {f"{s.namespace}/{s.kind}/{s.workload}" for s in SCENARIO}
+    assert doc["totals"]["cpu_hours"]["current"] > doc["totals"]["cpu_hours"]["ratefit"] > 0

@@ -118,7 +118,9 @@ def main(argv: list[str] | None = None) -> int:
               f"rates+sizing {r['rates']:.1f} s, passes {r['passes']:.1f} s, usage+figures+nodes {r['figures']:.1f} s, "
               f"total {r['total']:.1f} s wall; {r['changes']} changes", flush=True)
     rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(f"peak RSS {rss:.0f} MB (this process, the largest size included)")
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    print(f"peak RSS {rss:.0f} MB (this process, the largest size included); largest forked pass worker "
+          f"{kids:.0f} MB (pages shared with this process counted again)")
     return 0
 
 
