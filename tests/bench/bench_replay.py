@@ -16,6 +16,7 @@ time grows. A benchmark, not a test: nothing is asserted (goal: < 60 s, < 1 GB).
 from __future__ import annotations
 
 import argparse
+import os
 import resource
 import tempfile
 import time
@@ -86,13 +87,17 @@ def one(workloads: int, days: float) -> dict[str, float]:
         write_store(Path(tmp), curves)
         targets = targets_from_objects(objs)
         marks: list[float] = []
+        c0 = os.times()
         t0 = time.perf_counter()
         res = run_replay(hist, targets, StoreSizer(tmp), start=hist.start, end=hist.end,
                          options=ReplayOptions(step_s=STEP, rate_interval_s=600.0, rate_step_s=STEP,
                                                budget=BudgetConfig(per_minute=0, max_rollouts=0)),
                          progress=lambda _m: marks.append(time.perf_counter()))
         t3 = time.perf_counter()
-    return {"rates": marks[0] - t0, "passes": marks[1] - marks[0], "figures": t3 - marks[1], "total": t3 - t0,
+        c1 = os.times()
+    cpu = (c1.user + c1.system + c1.children_user + c1.children_system) - (
+        c0.user + c0.system + c0.children_user + c0.children_system)
+    return {"cpu": cpu, "rates": marks[0] - t0, "passes": marks[1] - marks[0], "figures": t3 - marks[1], "total": t3 - t0,
             "passes_n": len(res.sim.pass_times), "changes": len(res.sim.changes),
             "containers": sum(len(t.policy.containers) for t in targets.targets)}
 
@@ -104,7 +109,6 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--days", type=float, default=7.0)
     ap.add_argument("--scaling", action="store_true", help="also ¼ and ½ of the workloads and of the days")
     a = ap.parse_args(argv)
-    import os
     import platform
 
     print(f"machine: nproc {os.cpu_count()}, {cpu_model()}, Python {platform.python_version()}")
@@ -116,7 +120,9 @@ def main(argv: list[str] | None = None) -> int:
         r = one(w, d)
         print(f"replay {w} workloads / {r['containers']} containers, {d:g} days = {r['passes_n']} passes: "
               f"rates+sizing {r['rates']:.1f} s, passes {r['passes']:.1f} s, usage+figures+nodes {r['figures']:.1f} s, "
-              f"total {r['total']:.1f} s wall; {r['changes']} changes", flush=True)
+              f"total {r['total']:.1f} s wall, {r['cpu']:.1f} s CPU (all processes); "
+              f"{r['cpu'] / max(1, r['passes_n'] * w) * 1e6:.0f} µs CPU per workload-pass; {r['changes']} changes",
+              flush=True)
     rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     print(f"peak RSS {rss:.0f} MB (this process, the largest size included); largest forked pass worker "
