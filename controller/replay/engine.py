@@ -75,14 +75,6 @@ def _minutes(start: float, end: float) -> np.ndarray:
 
 #: workloads from which an unlimited-budget replay is split over the CPUs
 PARALLEL_FROM = 200
-_WORK: dict = {}
-
-
-def _simulate_part(index: int) -> SimResult:
-    targets, tracks, times, options, keep = _WORK["args"]
-    part = _WORK["parts"][index]
-    return simulate(part, tracks, times, as_written=options.as_written, rollout_s=options.rollout_s,
-                    budget=options.budget, keep=keep)
 
 
 def _simulate(targets: Targets, tracks, times: np.ndarray, options: ReplayOptions, keep: tuple[int, ...]) -> SimResult:
@@ -98,17 +90,42 @@ def _simulate(targets: Targets, tracks, times: np.ndarray, options: ReplayOption
         return simulate(targets.targets, tracks, times, as_written=options.as_written, rollout_s=options.rollout_s,
                         budget=options.budget, keep=keep)
     import multiprocessing as mp
-    from concurrent.futures import ProcessPoolExecutor
 
     order = sorted(targets.targets, key=lambda t: (t.policy.namespace, t.policy.name))
     k = min(cpus, 4)
-    _WORK["args"] = (targets, tracks, times, options, keep)
-    _WORK["parts"] = [order[i::k] for i in range(k)]
+    ctx = mp.get_context("fork")  # the children inherit the inputs; only results travel back
+    jobs = []
+    for i in range(k):
+        recv, send = ctx.Pipe(duplex=False)
+        part = order[i::k]
+
+        def work(part=part, send=send) -> None:
+            try:
+                send.send(simulate(part, tracks, times, as_written=options.as_written, rollout_s=options.rollout_s,
+                                   budget=options.budget, keep=keep))
+            except BaseException as exc:  # handed to the parent, which raises it
+                send.send(exc)
+            finally:
+                send.close()
+
+        proc = ctx.Process(target=work, daemon=True)
+        proc.start()
+        send.close()
+        jobs.append((proc, recv))
+    parts: list[SimResult] = []
     try:
-        with ProcessPoolExecutor(max_workers=k, mp_context=mp.get_context("fork")) as pool:
-            parts = list(pool.map(_simulate_part, range(k)))
+        for proc, recv in jobs:
+            got = recv.recv()
+            if isinstance(got, BaseException):
+                raise got
+            parts.append(got)
     finally:
-        _WORK.clear()
+        for proc, recv in jobs:
+            recv.close()
+            proc.join(timeout=5)
+            if proc.is_alive():
+                proc.kill()  # by its own handle, never by name
+                proc.join()
     merged = SimResult(pass_times=parts[0].pass_times)
     for r in parts:
         merged.changes.extend(r.changes)
