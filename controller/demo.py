@@ -165,8 +165,9 @@ def run_demo(
     progress(f"scenario: {ORGANISATION} — INVENTED data; output in {out}")
     end = float(int(time.time() // step_s) * step_s - 5 * step_s)
     info = write_openmetrics(work / "history.om", end=end, hours=hours, step_s=step_s, seed=0)
-    # a week of training samples at 10-minute steps (at 60 s the training would take minutes)
-    csv_paths = write_csv(out / "samples", seed=0, hours=hours, step_s=step_s if hours <= 24 else 600.0, end=end)
+    # a week of training samples at 5-minute steps (at 60 s the training would take minutes; longer
+    # steps than the 5-minute warm-up span would all be cleaned away as warm-up)
+    csv_paths = write_csv(out / "samples", seed=0, hours=hours, step_s=step_s if hours <= 24 else 300.0, end=end)
     progress(f"history: {info.series} series, {info.samples} samples over {hours:g}h at {step_s:g}s steps")
     if use_prometheus is None:
         use_prometheus = prometheus_binaries() is not None

@@ -176,6 +176,7 @@ def to_json(o: Outcome) -> dict[str, Any]:
             "under_share": {k: _r(v, 6) for k, v in under.items()},
             "changes": tot["changes"], "rollouts": tot["rollouts"], "resizes": tot["resizes"],
             "peak_nodes": {s: int(o.nodes[s].max()) if len(o.nodes[s]) else 0 for s in STRATEGIES},
+            "end_nodes": {s: int(o.nodes[s][-1]) if len(o.nodes[s]) else 0 for s in STRATEGIES},
             "pod_minutes": n,
         },
         "workloads": workloads,
@@ -200,7 +201,9 @@ def render(o: Outcome, fmt: str) -> str:
 
     rows = [row(w["workload"], w) for w in doc["workloads"]] + [row("TOTAL", doc["totals"])]
     pk = doc["totals"]["peak_nodes"]
-    foot = (f"peak nodes of {o.node_cpu:g} CPU: current {pk['current']}, fixed {pk['fixed']}, ratefit {pk['ratefit']}; "
+    en = doc["totals"]["end_nodes"]
+    foot = (f"nodes of {o.node_cpu:g} CPU at the peak: current {pk['current']}, fixed {pk['fixed']}, ratefit {pk['ratefit']}; "
+            f"at the end: {en['current']}, {en['fixed']}, {en['ratefit']}; "
             f"{doc['from']} to {doc['to']}, a pass every {doc['step_seconds']}s")
     if fmt == "markdown":
         lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
