@@ -26,6 +26,7 @@ COMMANDS = (
     "serve",
     "sandbox",
     "plan",
+    "check",
     "replay",
     "run",
     "revert",

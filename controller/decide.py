@@ -127,6 +127,7 @@ class Why(StrEnum):
     HORIZONTAL_CONFLICT = "HorizontalConflict"  # an HPA scales this workload on CPU utilisation
     IN_PLACE_UNSUPPORTED = "InPlaceUnsupported"  # a resize cannot make this change
     REJECTED = "Rejected"  # the API server refused the change (set by reconcile)
+    API_UNAVAILABLE = "ApiUnavailable"  # the workload's LIST failed (429/5xx …): not observed this pass
 
 
 @dataclass(frozen=True)
@@ -298,6 +299,17 @@ def _inside_deadband(current_m: int, target_m: int, deadband: float) -> bool:
     return not (diff > deadband * current_m and diff >= MIN_CHANGE_M)
 
 
+def _no_metrics(
+    name: str, history: ContainerHistory, message: str, *, current_m: int | None = None, limit_m: int | None = None,
+) -> Decision:
+    """The one NoMetrics decision: held at the current value, nothing observed to decide from."""
+    return Decision(
+        container=name, verdict=Verdict.HELD, why=Why.NO_METRICS, current_m=current_m, limit_m=limit_m,
+        proposed_m=current_m, proposed_limit_m=limit_m, rate=None, message=message,
+        settle=history, settle_if_held=history,
+    )
+
+
 def decide_container(
     policy: Policy, container: ContainerRule, observed: ContainerInput, *, history: ContainerHistory, now: datetime
 ) -> Decision:
@@ -305,11 +317,11 @@ def decide_container(
     (the workload gates, dry-run and the budget come in :func:`decide_workload`)."""
     current = observed.request_m if observed.request_m is not None else observed.limit_m
     limit = observed.limit_m
-    # the fields every outcome shares; each return builds one Decision (cheaper than dataclasses.replace)
+    # the fields every outcome shares (each return names its why); one Decision per return
+    # (cheaper than dataclasses.replace)
     base: dict[str, Any] = dict(
         container=container.name,
         verdict=Verdict.HELD,
-        why=Why.NO_METRICS,
         current_m=current,
         limit_m=limit,
         proposed_m=current,
@@ -324,7 +336,8 @@ def decide_container(
 
     rate = observed.rate
     if rate is None or not math.isfinite(rate) or rate < 0:
-        return out(rate=None, message="no usable per-pod request rate this pass; nothing changes")
+        return _no_metrics(container.name, history, "no usable per-pod request rate this pass; nothing changes",
+                           current_m=current, limit_m=limit)
     s = observed.sizing
     if s is None:
         return out(why=Why.NO_MODEL, message=f"the sizing API has no answer for model {container.model!r}")
@@ -444,20 +457,8 @@ def decide_workload(
         h = history.container(c.name)
         o = by_name.get(c.name)
         if o is None:
-            decisions.append(
-                Decision(
-                    container=c.name,
-                    verdict=Verdict.HELD,
-                    why=Why.NO_METRICS,
-                    current_m=None,
-                    limit_m=None,
-                    proposed_m=None,
-                    proposed_limit_m=None,
-                    message=f"container {c.name!r} is not in {policy.workload_key}; fix spec.containers",
-                    settle=h,
-                    settle_if_held=h,
-                )
-            )
+            decisions.append(_no_metrics(c.name, h, f"container {c.name!r} is not in {policy.workload_key}; "
+                                         "fix spec.containers"))
             continue
         decisions.append(decide_container(policy, c, o, history=h, now=now))
 

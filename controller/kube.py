@@ -45,6 +45,7 @@ import threading
 import time
 import uuid
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 from kubernetes import client as k8s
@@ -77,6 +78,7 @@ from ratefit.controller.workload import (
     WorkloadKind,
     encode_previous_requests,
 )
+from ratefit.controller import crd
 from ratefit.models.errors import InputError
 
 __all__ = [
@@ -94,9 +96,10 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
-POLICY_GROUP = "ratefit.dev"
-POLICY_VERSION = "v1alpha1"
-POLICY_PLURAL = "sizingpolicies"
+# the CRD's coordinates: one home, controller/crd.py
+POLICY_GROUP = crd.GROUP
+POLICY_VERSION = crd.VERSION
+POLICY_PLURAL = crd.PLURAL
 #: events.k8s.io/v1 reportingController: "<domain>/<name>" as the Events API asks
 REPORTING_CONTROLLER = "ratefit.dev/controller"
 FIELD_MANAGER = "ratefit"
@@ -159,6 +162,8 @@ class KubeAdapter:
         self._custom = k8s.CustomObjectsApi(api_client)
         self._hpa = k8s.AutoscalingV2Api(api_client)
         self._events = k8s.EventsV1Api(api_client)
+        #: one row per workload kind: the apps/v1 calls that read, list and patch it
+        self._workload_api = dict(WORKLOAD_CALLS)
         #: retries made (temporary failures waited out) — for the controller's metrics
         self.retries = 0
 
@@ -234,6 +239,14 @@ class KubeAdapter:
             token = meta.get("continue") or None
             if not token:
                 return items, str(meta.get("resourceVersion") or "")
+
+    def _api_of(self, kind: WorkloadKind) -> _WorkloadApi:
+        """The API calls of a workload kind; an unknown kind is an error, never a guess."""
+        names = self._workload_api.get(kind)
+        if names is None:
+            raise InputError(f"workload kind {kind!r} is not supported; use one of "
+                             f"{', '.join(k.value for k in self._workload_api)}")
+        return _WorkloadApi(*(getattr(self._apps, n) for n in names))
 
     # ---------------------------------------------------------------- SizingPolicies
     def list_policies(self, namespaces: Sequence[str] | None = None) -> PolicyList:
@@ -369,8 +382,7 @@ class KubeAdapter:
     # ---------------------------------------------------------------- workloads
     def read_workload(self, namespace: str, kind: WorkloadKind | str, name: str) -> Workload:
         kind = kind if isinstance(kind, WorkloadKind) else WorkloadKind.parse(kind)
-        fn = (self._apps.read_namespaced_deployment if kind is WorkloadKind.DEPLOYMENT
-              else self._apps.read_namespaced_stateful_set)
+        fn = self._api_of(kind).read
         return _workload(self._call(f"read {kind.value} {namespace}/{name}", fn, name, namespace), kind)
 
     def list_workloads(
@@ -379,10 +391,8 @@ class KubeAdapter:
         """All Deployments (or StatefulSets) in a namespace or the cluster — one paged
         list instead of one read per workload."""
         kind = kind if isinstance(kind, WorkloadKind) else WorkloadKind.parse(kind)
-        if kind is WorkloadKind.DEPLOYMENT:
-            fn = self._apps.list_namespaced_deployment if namespace else self._apps.list_deployment_for_all_namespaces
-        else:
-            fn = self._apps.list_namespaced_stateful_set if namespace else self._apps.list_stateful_set_for_all_namespaces
+        api = self._api_of(kind)
+        fn = api.list_namespaced if namespace else api.list_all
         args = (namespace,) if namespace else ()
         items, _ = self._list_all(f"list {kind.value}s", fn, *args, label_selector=label_selector)
         return tuple(_workload(o, kind) for o in items)
@@ -440,8 +450,7 @@ class KubeAdapter:
         record the change time where a crash cannot lose it."""
         body: dict[str, Any] = {"metadata": {"resourceVersion": workload.resource_version,
                                              "annotations": dict(annotations)}}
-        fn = (self._apps.patch_namespaced_deployment if workload.kind is WorkloadKind.DEPLOYMENT
-              else self._apps.patch_namespaced_stateful_set)
+        fn = self._api_of(workload.kind).patch
         stored = self._call(f"annotation patch of {workload.key}", fn, workload.name, workload.namespace, body,
                             field_manager=FIELD_MANAGER, _content_type=_STRATEGIC)
         return _workload(stored, workload.kind)
@@ -449,8 +458,7 @@ class KubeAdapter:
     def _dry_run_then_patch(
         self, workload: Workload, body: dict[str, Any], *, after_dry_run: Callable[[], None] | None = None
     ) -> Workload:
-        fn = (self._apps.patch_namespaced_deployment if workload.kind is WorkloadKind.DEPLOYMENT
-              else self._apps.patch_namespaced_stateful_set)
+        fn = self._api_of(workload.kind).patch
         common = dict(field_manager=FIELD_MANAGER, _content_type=_STRATEGIC)
         self._call(f"dry-run patch of {workload.key}", fn, workload.name, workload.namespace, body,
                    dry_run="All", **common)
@@ -589,6 +597,27 @@ class KubeAdapter:
         self._call(f"create event for {regarding.kind} {regarding.namespace}/{regarding.name}",
                    self._events.create_namespaced_event, regarding.namespace, body)
         return name
+
+
+# -------------------------------------------------------------------- workload kinds
+@dataclass(frozen=True)
+class _WorkloadApi:
+    """The apps/v1 calls for one workload kind (bound to the adapter's AppsV1Api)."""
+
+    read: Callable[..., Any]
+    list_namespaced: Callable[..., Any]
+    list_all: Callable[..., Any]
+    patch: Callable[..., Any]
+
+
+#: workload kind → the names of its AppsV1Api calls: read, list in a namespace, list in
+#: all namespaces, patch (looked up on each call, so a test may wrap one of them)
+WORKLOAD_CALLS: dict[WorkloadKind, tuple[str, str, str, str]] = {
+    WorkloadKind.DEPLOYMENT: ("read_namespaced_deployment", "list_namespaced_deployment",
+                              "list_deployment_for_all_namespaces", "patch_namespaced_deployment"),
+    WorkloadKind.STATEFULSET: ("read_namespaced_stateful_set", "list_namespaced_stateful_set",
+                               "list_stateful_set_for_all_namespaces", "patch_namespaced_stateful_set"),
+}
 
 
 # -------------------------------------------------------------------- patch bodies

@@ -11,6 +11,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
+from ratefit.controller import crd
 from ratefit.controller.quantity import format_cpu, parse_cpu
 from ratefit.models.errors import InputError
 
@@ -232,7 +233,7 @@ class PolicyObject:
 
     @property
     def ref(self) -> ObjectRef:
-        return ObjectRef("ratefit.dev/v1alpha1", "SizingPolicy", self.namespace, self.name, self.uid or None)
+        return ObjectRef(crd.API_VERSION, crd.KIND, self.namespace, self.name, self.uid or None)
 
 
 @dataclass(frozen=True, slots=True)

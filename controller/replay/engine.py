@@ -10,7 +10,9 @@
 4. per container and pod the usage per minute (:func:`series.pod_usage`), the three
    strategies' figures (:mod:`outcome`) and the nodes needed at each pass.
 
-A policy with its own ``rateQuery`` cannot be evaluated from raw counters: its containers
+Pods belong to workloads by their names (the live loop's ``pod_names.PodAssigner``); the
+request counter needs only ``namespace`` and ``pod`` labels. A policy with its own
+``rateQuery`` cannot be evaluated from raw counters: its containers
 have no rate (held NoMetrics, as the offline rate source answers) unless ``custom_rates``
 supplies them (``ratefit replay --prometheus`` evaluates such queries on the server).
 """
@@ -23,6 +25,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ratefit.controller.pod_names import PodAssigner, WorkloadRef
 from ratefit.controller.policy import Method
 from ratefit.controller.replay.history import History
 from ratefit.controller.replay.inputs import Sizer, Targets
@@ -151,10 +154,14 @@ def run_replay(history: History, targets: Targets, sizer: Sizer, *, start: float
     notes = list(targets.notes)
     tracks: dict[tuple[str, str], SizingTrack] = {}
     rate_cache: dict[tuple[str, str, float, float], np.ndarray] = {}
+    # pods belong to workloads by their names, as the live loop assigns them
+    assigner = PodAssigner(WorkloadRef(t.policy.namespace, t.policy.workload_kind, t.policy.workload_name)
+                           for t in targets.targets)
+    pods_of = history.pods_by_workload(assigner)
     for t in targets.targets:
         p = t.policy
-        pods = history.pods_of(p.namespace, p.workload_name, p.workload_kind)
-        counters = [history.requests.get((p.namespace, p.workload_name, pod), ()) for pod in pods]
+        pods = pods_of.get((p.namespace, p.workload_kind, p.workload_name), [])
+        counters = [history.requests.get((p.namespace, pod), ()) for pod in pods]
         for c in p.containers:
             if c.rate_query is not None:
                 rates = (custom_rates or {}).get((p.key, c.name))
@@ -188,7 +195,7 @@ def run_replay(history: History, targets: Targets, sizer: Sizer, *, start: float
     for t in targets.targets:
         p = t.policy
         wk = p.workload_key
-        pods = history.pods_of(p.namespace, p.workload_name, p.workload_kind)
+        pods = pods_of.get((p.namespace, p.workload_kind, p.workload_name), [])
         pod_sizes = {s: np.zeros((len(pods), len(times)), dtype=np.int64) for s in STRATEGIES}
         pod_alive = np.zeros((len(pods), len(times)), dtype=bool)
         for cname, (req, _lim) in t.containers.items():

@@ -10,9 +10,10 @@ Two sources, one shape (:class:`History`):
 
 Series kept:
 
-* the request counter (the rate template's metric, labels namespace/workload/pod):
-  ``requests[(namespace, workload, pod)]`` — a list, several series of one pod are summed
-  later the way ``sum by (namespace, workload, pod)`` does;
+* the request counter (the rate template's metric, labels namespace and pod):
+  ``requests[(namespace, pod)]`` — a list, several series of one pod are summed later the
+  way ``sum by (namespace, pod)`` does; pods are assigned to workloads by their names, as
+  the live loop does (``controller/pod_names.PodAssigner``);
 * the cAdvisor CPU counter ``container_cpu_usage_seconds_total`` (labels
   namespace/pod/container; the pod-level series with ``container=""`` is dropped to avoid
   double counting — DESIGN.md "cAdvisor series"): ``cpu[(namespace, pod, container)]``.
@@ -24,9 +25,8 @@ Nothing here decides anything; the replay computes rates and usage from these ar
 from __future__ import annotations
 
 import math
-import re
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -34,7 +34,7 @@ import numpy as np
 from ratefit.controller.metrics_source import read_counter_series
 from ratefit.models.errors import InputError, PrometheusError
 
-__all__ = ["CPU_METRIC", "Counter", "History", "read_openmetrics", "read_prometheus", "workload_of_pod"]
+__all__ = ["CPU_METRIC", "Counter", "History", "read_openmetrics", "read_prometheus", "custom_rates"]
 
 CPU_METRIC = "container_cpu_usage_seconds_total"
 
@@ -46,24 +46,21 @@ Counter = tuple[np.ndarray, np.ndarray]
 class History:
     """Counter series by pod. ``start``/``end``: first and last sample time seen."""
 
-    requests: Mapping[tuple[str, str, str], Sequence[Counter]]
-    cpu: Mapping[tuple[str, str, str], Sequence[Counter]]
+    requests: Mapping[tuple[str, str], Sequence[Counter]]  # (namespace, pod)
+    cpu: Mapping[tuple[str, str, str], Sequence[Counter]]  # (namespace, pod, container)
     start: float
     end: float
     source: str = ""
-    #: (namespace, pod) → workload, from the request counter's labels
-    pod_workload: Mapping[tuple[str, str], str] = field(default_factory=dict)
 
     @classmethod
-    def build(cls, requests: Mapping[tuple[str, str, str], Sequence[Counter]],
+    def build(cls, requests: Mapping[tuple[str, str], Sequence[Counter]],
               cpu: Mapping[tuple[str, str, str], Sequence[Counter]], *, source: str = "") -> History:
         ts = [s[0] for group in (*requests.values(), *cpu.values()) for s in group if len(s[0])]
         if not ts:
             raise InputError(f"{source or 'the history'} holds no samples of the request or CPU counters")
         start = min(float(t[0]) for t in ts)
         end = max(float(t[-1]) for t in ts)
-        pods = {(ns, pod): wl for (ns, wl, pod) in requests}
-        return cls(requests=dict(requests), cpu=dict(cpu), start=start, end=end, source=source, pod_workload=pods)
+        return cls(requests=dict(requests), cpu=dict(cpu), start=start, end=end, source=source)
 
     def truncated(self, at: float) -> History:
         """The same history holding only samples at or before ``at`` (for tests)."""
@@ -78,23 +75,16 @@ class History:
         cpu = {k: c for k, g in self.cpu.items() if (c := cut(g))}
         return History.build(req, cpu, source=self.source)
 
-    def pods_of(self, namespace: str, workload: str, kind: str) -> list[str]:
-        """Pods of a workload: those the request counter labels with it, plus CPU-only pods
-        whose name has the workload's shape (Deployment ``name-hash-suffix``, StatefulSet
-        ``name-ordinal``)."""
-        pods = {pod for (ns, wl, pod) in self.requests if ns == namespace and wl == workload}
-        for (ns, pod, _c) in self.cpu:
-            if ns == namespace and (ns, pod) not in self.pod_workload and workload_of_pod(pod, workload, kind):
-                pods.add(pod)
-        return sorted(pods)
-
-
-def workload_of_pod(pod: str, workload: str, kind: str) -> bool:
-    """True when ``pod`` is named like a pod of ``workload`` (a Deployment's pods are
-    ``name-<template hash>-<suffix>``, a StatefulSet's ``name-<ordinal>``: Kubernetes docs)."""
-    if kind == "StatefulSet":
-        return re.fullmatch(re.escape(workload) + r"-[0-9]+", pod) is not None
-    return re.fullmatch(re.escape(workload) + r"-[a-z0-9]+-[a-z0-9]+", pod) is not None
+    def pods_by_workload(self, assigner) -> dict[tuple[str, str | None, str], list[str]]:
+        """(namespace, kind, name) → its pods (sorted), from every pod seen in either counter,
+        assigned by name with the live loop's ``PodAssigner`` (the longer workload name wins)."""
+        out: dict[tuple[str, str | None, str], set[str]] = {}
+        seen = {(ns, pod) for (ns, pod) in self.requests} | {(ns, pod) for (ns, pod, _c) in self.cpu}
+        for ns, pod in seen:
+            w = assigner.workload_of(ns, pod)
+            if w is not None:
+                out.setdefault((w.namespace, w.kind, w.name), set()).add(pod)
+        return {k: sorted(v) for k, v in out.items()}
 
 
 def _by_pod(series: Mapping[tuple[tuple[str, str], ...], Counter], keys: tuple[str, ...],
@@ -118,13 +108,13 @@ def read_openmetrics(path: str | Path, *, request_metric: str, cpu_metric: str =
     if not p.is_file():
         raise InputError(f"--history {p}: no such file")
     want = set(namespaces) if namespaces else None
-    req = _by_pod(read_counter_series(p, request_metric), ("namespace", "workload", "pod"))
+    req = _by_pod(read_counter_series(p, request_metric), ("namespace", "pod"))
     cpu = _by_pod(read_counter_series(p, cpu_metric), ("namespace", "pod", "container"), drop_empty="container")
     if want is not None:
         req = {k: v for k, v in req.items() if k[0] in want}
         cpu = {k: v for k, v in cpu.items() if k[0] in want}
     if not req:
-        raise InputError(f"{p} holds no samples of {request_metric} with labels namespace, workload, pod; "
+        raise InputError(f"{p} holds no samples of {request_metric} with labels namespace and pod; "
                          "check --rate-metric")
     if not cpu:
         raise InputError(f"{p} holds no samples of {cpu_metric} with labels namespace, pod, container")
@@ -172,7 +162,7 @@ def read_prometheus(client, *, start: float, end: float, request_metric: str, na
             ts, vs = ts[order], vs[order]
             keep = np.concatenate([[True], np.diff(ts) > 0])
             merged[metric][key] = (ts[keep], vs[keep])
-    req = _by_pod(merged[request_metric], ("namespace", "workload", "pod"))
+    req = _by_pod(merged[request_metric], ("namespace", "pod"))
     cpu = _by_pod(merged[cpu_metric], ("namespace", "pod", "container"), drop_empty="container")
     if not req:
         raise InputError(f"Prometheus has no samples of {request_metric} in the window; check --rate-metric and --from/--to")
@@ -187,15 +177,22 @@ def custom_rates(client, requests, pass_times: np.ndarray, *, rate_step: str) ->
     range query; per pass the busiest pod's value, NaN where none. ``requests``: pairs of
     ((policy key, container), ``metrics_source.RateRequest``)."""
     from ratefit.controller.metrics_source import custom_query
+    from ratefit.controller.promql_guard import QueryGuard, QueryRefused
 
+    guard = QueryGuard()  # the live loop's rules: a policy's query stays inside its namespace
     out: dict[tuple[str, str], np.ndarray] = {}
     times = np.asarray(pass_times, dtype=float)
     step = float(times[1] - times[0]) if len(times) > 1 else 60.0
     for key, req in requests:
         best = np.full(len(times), np.nan)
+        q = custom_query(req, step=rate_step)
         try:
-            got = client.query_range(custom_query(req, step=rate_step), start=float(times[0]), end=float(times[-1]),
-                                     step=step)
+            guard.check(q, req.namespace)
+        except QueryRefused:
+            out[key] = best  # refused as the live loop refuses it: no rate (QueryRefused there)
+            continue
+        try:
+            got = client.query_range(q, start=float(times[0]), end=float(times[-1]), step=step)
         except PrometheusError as exc:
             raise InputError(f"rateQuery of {key[0]}/{key[1]}: {exc}") from exc
         for s in got:

@@ -54,9 +54,9 @@ def cluster(workloads: int, days: float, seed: int = 0) -> tuple[History, list[d
             curves[f"{ns}/{name}/{c}"] = (base, slope)
             conts.append({"name": c, "resources": {"requests": {"cpu": f"{int(rng.uniform(200, 2000))}m"}}})
         for p in range(2):
-            pod = f"{name}-abc12345-p{p}"
+            pod = f"{name}-7c9f5d4b2-xz2k{'bc'[p]}"  # a Deployment's pod name: <name>-<hash>-<suffix>
             rate = peak * daily * (1 + 0.05 * rng.standard_normal(n)).clip(0.5)
-            requests[(ns, name, pod)] = [(t, np.cumsum(rate * STEP))]
+            requests[(ns, pod)] = [(t, np.cumsum(rate * STEP))]
             for c in ("app", "side"):
                 base, slope = curves[f"{ns}/{name}/{c}"]
                 use = (base + slope * rate) * (1 + 0.03 * rng.standard_normal(n)).clip(0.5)
