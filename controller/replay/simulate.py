@@ -7,11 +7,12 @@ Per pass at time T and per policy (in the live loop's order: namespace, name):
    (the pod template; for ``method: in-place`` what the pods run after earlier resizes),
    the rate at T (:mod:`controller.replay.series`, from samples up to T only) and the
    sizing answer at that rate;
-2. the decision by ``controller.decide.decide_workload`` — the live loop's own pure
-   function, never a copy — with the history (``lastChange``, settling) the previous pass
-   left, and the cluster budget (``controller.limits.Budget``: changes per minute,
-   concurrent rollouts) drawn exactly as the live loop draws it: view, decide, spend, and
-   decide again with the budget spent if the spend failed;
+2. the decision by the live loop's decide stage (``controller.stages.decide.Decider.
+   decide_one`` over ``controller.decide.decide_workload`` — never a copy), reading the
+   history (``lastChange``, settling) from the status the previous pass left
+   (``policy.history_to_status``, as the record stage writes it), and drawing the cluster
+   budget (``controller.limits.Budget``: changes per minute, concurrent rollouts) as the
+   live pass does;
 3. a changed workload takes its new requests at once for an in-place resize and after
    ``rollout_s`` for a rollout; the rollout holds a rollout slot until then.
 
@@ -34,9 +35,12 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from ratefit.controller.decide import ContainerInput, Sizing, WorkloadDecision, decide_workload
-from ratefit.controller.limits import Budget, BudgetView, RolloutSlots, TokenBucket
-from ratefit.controller.policy import Method, Mode, Policy, WorkloadHistory
+from ratefit.controller.decide import ContainerInput, Sizing, WorkloadDecision
+from ratefit.controller.limits import Budget, RolloutSlots, TokenBucket
+from ratefit.controller.policy import Method, Mode, Policy, WorkloadHistory, history_to_status
+from ratefit.controller.stages.decide import Decider
+from ratefit.controller.stages.observe import Observed
+from ratefit.controller.workload import PolicyObject
 
 __all__ = [
     "ReplayTarget",
@@ -108,6 +112,11 @@ class SimResult:
     states: dict[int, dict[str, tuple[WorkloadHistory, tuple[ContainerInput, ...]]]] = field(default_factory=dict)
 
 
+def _policy_object(p: Policy, status: dict) -> PolicyObject:
+    return PolicyObject(namespace=p.namespace, name=p.name, uid="", generation=p.generation or 0,
+                        resource_version="", spec={}, status=status)
+
+
 def _utc(t: float) -> datetime:
     return datetime.fromtimestamp(t, tz=timezone.utc)
 
@@ -147,12 +156,14 @@ def simulate(
     policies = [t.policy if as_written else dataclasses.replace(t.policy, mode=Mode.APPLY) for t in order]
     values: list[dict[str, tuple[int | None, int | None]]] = [dict(t.containers) for t in order]
     history: list[WorkloadHistory] = [WorkloadHistory() for _ in order]
+    status: list[dict] = [{} for _ in order]  # what the live loop keeps in status.lastChange/settling
     pending: list[tuple[float, int]] = []  # rollouts in flight: (done at, workload index)
     keep_set = set(keep)
     res = SimResult(pass_times=np.asarray(pass_times, dtype=float))
     if len(res.pass_times) == 0:
         return res
     bud = budget.build(float(res.pass_times[0]))
+    decider = Decider(budget=bud, monotonic=lambda: 0.0, dry_run=False, write=True)
     track_rows = [[_inputs(tracks[(p.key, c.name)]) for c in p.containers] for p in policies]
     for t, p in zip(order, policies):
         for c in p.containers:
@@ -172,15 +183,14 @@ def simulate(
                 req, lim = values[w][c.name]
                 rate, sizing = track[i]
                 inputs.append(ContainerInput(name=c.name, request_m=req, limit_m=lim, rate=rate, sizing=sizing))
-            apply = p.mode is Mode.APPLY
-            view = bud.view(now_s) if apply else BudgetView()
-            hpa = order[w].hpa_on_cpu
-            wd = decide_workload(p, inputs, history=history[w], now=now, budget=view, hpa_on_cpu=hpa, dry_run=not apply)
-            if wd.changed and not bud.spend(p.workload_key, now_s):
-                wd = decide_workload(p, inputs, history=history[w], now=now, budget=BudgetView(changes_left=0),
-                                     hpa_on_cpu=hpa, dry_run=False)
+            # the live loop's decide stage, reading the history from the status the previous
+            # pass wrote (lastChange, settling), drawing the budget the way the live pass does
+            obs = Observed(obj=_policy_object(p, status[w]), policy=p, hpa_on_cpu=order[w].hpa_on_cpu,
+                           inputs=tuple(inputs))
+            wd = decider.decide_one(obs, None, obs.inputs, now, now_s)
             history_before = history[w]
             history[w] = wd.history
+            status[w] = history_to_status(wd.history)
             if i in keep_set:
                 kept.append(wd)
                 res.states.setdefault(i, {})[p.key] = (history_before, tuple(inputs))
