@@ -36,7 +36,21 @@ prometheus: prometheus-optional
 	@command -v prometheus >/dev/null 2>&1 && command -v promtool >/dev/null 2>&1 || { \
 	  echo "Prometheus is missing: sudo apt-get install -y prometheus" >&2; exit 1; }
 
-test: $(STAMP) prometheus
+# The profiler's tests drive a real nginx (Debian package `nginx-light`), installed when
+# root; its packaged service is stopped by its unit, like Prometheus's. Without root the
+# profiler's nginx tests skip with a note.
+nginx:
+	@[ -x /usr/sbin/nginx ] || { \
+	  if [ "$$(id -u)" = 0 ]; then \
+	    apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq nginx-light >/dev/null; \
+	    if command -v systemctl >/dev/null 2>&1 && systemctl is-active --quiet nginx 2>/dev/null; then \
+	      systemctl stop nginx; \
+	    elif command -v service >/dev/null 2>&1; then \
+	      service nginx stop >/dev/null 2>&1 || true; \
+	    fi; \
+	  else echo "note: nginx is not installed (sudo apt-get install -y nginx-light); its tests skip" >&2; fi; }
+
+test: $(STAMP) prometheus nginx
 	$(VENV)/bin/pytest
 
 # Works without root and without Prometheus: the demo then replays the history file

@@ -300,9 +300,9 @@ def check_sizing(parts: CheckParts) -> tuple[list[CheckLine], dict[str, tuple[fl
         return [CheckLine("sizing api", Status.FAIL, str(exc), "check the sizing API")], None
     line = CheckLine("sizing api", Status.OK if health.ready else Status.WARN,
                      f"{parts.sizing.base_url} {'ready' if health.ready else 'NOT ready'}, {len(models)} models"
-                     + (f", {health.refused} artifacts refused" if health.refused else ""),
+                     + (f", {health.refused_count} models refused" if health.refused_count else ""),
                      "" if health.ready else "the API serves no model yet: train, then POST /v1/reload")
-    return [line], {m.key: m.rate_range for m in models}
+    return [line], {m.model: m.rate_range for m in models}
 
 
 def check_models(policies: Sequence[Policy], rates: dict[str, float],

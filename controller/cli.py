@@ -30,6 +30,7 @@ COMMANDS = (
     "replay",
     "run",
     "revert",
+    "profile",
 )
 
 DESCRIPTION = """\

@@ -11,12 +11,12 @@ a collection ``list``, with ``?watch`` ``watch``; PATCH ``patch``; PUT ``update`
 ==========================  =======================================  ===========================
 resource (group)            verbs                                    call
 ==========================  =======================================  ===========================
-sizingpolicies (ratefit.dev)  get, list, watch                       read, list and watch policies
+sizingpolicies (ratefit.dev)  list, watch                            list and watch policies (the cache)
 sizingpolicies/status       patch                                    write a policy's status
-deployments, statefulsets   get, list, patch                         read, list, patch CPU and annotations
-pods                        list                                     pods of a workload (in-place)
+deployments, statefulsets   get, list, watch, patch                  the cache; get: re-read after a 409; patch
+pods                        list, watch                              pods of in-place workloads (the cache)
 pods/resize                 patch                                    in-place resize
-horizontalpodautoscalers    list                                     CPU-autoscaler conflicts
+horizontalpodautoscalers    list, watch                              autoscaler conflicts (the cache)
 events (events.k8s.io)      create                                   an Event per change/proposal
 leases (coordination.k8s.io)  get, create, update                    the leader Lease (its namespace only)
 ==========================  =======================================  ===========================
@@ -56,13 +56,13 @@ def _p(group: str, resource: str, *verbs: str, lease: bool = False) -> list[Perm
 
 #: cluster-wide (or per watched namespace) permissions of the controller
 CONTROLLER_PERMISSIONS: tuple[Permission, ...] = tuple(
-    _p("ratefit.dev", "sizingpolicies", "get", "list", "watch")
+    _p("ratefit.dev", "sizingpolicies", "list", "watch")
     + _p("ratefit.dev", "sizingpolicies/status", "patch")
-    + _p("apps", "deployments", "get", "list", "patch")
-    + _p("apps", "statefulsets", "get", "list", "patch")
-    + _p("", "pods", "list")
+    + _p("apps", "deployments", "get", "list", "watch", "patch")
+    + _p("apps", "statefulsets", "get", "list", "watch", "patch")
+    + _p("", "pods", "list", "watch")
     + _p("", "pods/resize", "patch")
-    + _p("autoscaling", "horizontalpodautoscalers", "list")
+    + _p("autoscaling", "horizontalpodautoscalers", "list", "watch")
     + _p("events.k8s.io", "events", "create")
 )
 

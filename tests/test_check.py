@@ -92,6 +92,7 @@ def check(w, *extra: str, token: str = "token", kubeconfig: Path | None = None) 
             "--sizing-token-file", str(w["tmp"] / token), *extra]
     p = subprocess.run(args + ["--output", "json"], capture_output=True, text=True, timeout=180)
     assert p.returncode in (0, 1), p.stderr
+    assert p.stdout.strip(), p.stderr
     return p.returncode, json.loads(p.stdout), p.stderr
 
 
