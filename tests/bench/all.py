@@ -29,6 +29,7 @@ BENCHES: dict[str, tuple[str, list[str], list[str]]] = {
     "reconcile": ("tests.bench.bench_reconcile", [], ["--workloads", "1000"]),
     "health": ("tests.bench.bench_health", [], ["--idle", "300", "--header-mib", "10"]),
     "profile": ("tests.bench.bench_profile", [], ["--duration", "3", "--rates", "100,300"]),
+    "replay": ("tests.bench.bench_replay", ["--scaling"], ["--workloads", "100", "--days", "2"]),
 }
 
 
