@@ -27,6 +27,7 @@ BENCHES: dict[str, tuple[str, list[str], list[str]]] = {
     "sandbox": ("tests.bench.bench_sandbox", [], ["--deployments", "200", "--ops", "100"]),
     "kube": ("tests.bench.bench_kube", [], ["--workloads", "300", "--patches", "20"]),
     "reconcile": ("tests.bench.bench_reconcile", [], ["--workloads", "1000"]),
+    "cache": ("tests.bench.bench_cache", [], ["--workloads", "1000", "--no-writes"]),
 }
 
 
