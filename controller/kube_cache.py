@@ -397,8 +397,14 @@ class Informer:
                     continue
                 # client-go's reflector: a server-side timeout of 5-10 min, jittered
                 timeout = min(left, self.watch_timeout_s * (1.0 + self._rng()))
+                opened, events = self._clock(), self.stats.events + self.stats.bookmarks
                 rv = self._watch(rv, max(1, int(timeout)))
-                failures = 0
+                if self._clock() - opened < 1.0 and self.stats.events + self.stats.bookmarks == events:
+                    # ended at once with nothing in it: never spin on a server that does that
+                    self._pause(failures + 1)
+                    failures += 1
+                else:
+                    failures = 0
             except _Dropped as exc:
                 self.stats.drops += 1
                 log.info("%s: watch stream dropped (%s); resuming from resourceVersion %s", self.what, exc, rv)
@@ -490,10 +496,7 @@ class Informer:
             resp = self._call(watch=True, resource_version=rv, allow_watch_bookmarks=True, timeout_seconds=timeout_s,
                               _preload_content=False, _request_timeout=(self._timeout, timeout_s + 30))
         except (ApiException, Urllib3Error, ConnectionError, TimeoutError) as exc:
-            err = translate(exc, what=f"watch {self.what}")
-            if isinstance(err, KubeGone):
-                raise err from exc
-            raise err from exc
+            raise translate(exc, what=f"watch {self.what}") from exc  # 410 → KubeGone → relist
         self._resp = resp
         try:
             if self._stop.is_set():
