@@ -54,6 +54,7 @@ from __future__ import annotations
 import copy
 import logging
 import random
+import sys
 import threading
 import time
 from collections.abc import Callable, Iterable, Mapping, Sequence
@@ -162,11 +163,14 @@ class FrozenList(list):  # type: ignore[type-arg]
 
 
 def freeze(value: Any) -> Any:
-    """``value`` with every dict/list inside it made read-only (FrozenDict/FrozenList)."""
+    """``value`` with every dict/list inside it made read-only (FrozenDict/FrozenList);
+    short strings are interned (10,000 policies repeat "dry-run", "Deployment", "30m" …)."""
     if isinstance(value, dict):
         return FrozenDict((k, freeze(v)) for k, v in value.items())
     if isinstance(value, list):
         return FrozenList(freeze(v) for v in value)
+    if type(value) is str and len(value) <= 40:
+        return sys.intern(value)
     return value
 
 
@@ -445,32 +449,31 @@ class Informer:
             resp.release_conn()
 
     def _relist(self) -> str:
-        """LIST every page, convert, swap the store in one step; returns the list's resourceVersion."""
-        items: list[dict[str, Any]] = []
+        """LIST every page, converting each page as it arrives (only one page of raw JSON
+        is ever held), then swap the store in one step; returns the list's resourceVersion."""
+        fresh: dict[str, dict[str, Any]] = {}
+        count = 0
         token: str | None = None
         while True:
             page = call_with_retry(lambda: self._get_json(limit=_PAGE, _continue=token), what=f"list {self.what}",
                                    policy=self._retry, sleep=self._stop.wait, rng=self._rng)
-            items.extend(page.get("items") or [])
+            for obj in page.get("items") or []:
+                meta = obj.get("metadata") or {}
+                ns, name = meta.get("namespace") or "", meta.get("name") or ""
+                try:
+                    value = self._convert(obj)
+                except _BAD_OBJECT as exc:
+                    self.stats.bad_objects += 1
+                    log.warning("%s: %s/%s left out of the cache: %s", self.what, ns, name, exc)
+                    continue
+                fresh.setdefault(ns, {})[name] = value
+                count += 1
             meta = page.get("metadata") or {}
             token = meta.get("continue") or None
+            del page
             if not token:
                 rv = str(meta.get("resourceVersion") or "")
                 break
-        fresh: dict[str, dict[str, Any]] = {}
-        count = 0
-        for obj in items:
-            meta = obj.get("metadata") or {}
-            ns, name = meta.get("namespace") or "", meta.get("name") or ""
-            try:
-                value = self._convert(obj)
-            except _BAD_OBJECT as exc:
-                self.stats.bad_objects += 1
-                log.warning("%s: %s/%s left out of the cache: %s", self.what, ns, name, exc)
-                continue
-            fresh.setdefault(ns, {})[name] = value
-            count += 1
-        del items
         with self.lock:
             old = self._items
             self._items = fresh

@@ -140,6 +140,16 @@ def child_cache(args: argparse.Namespace) -> None:
         events = now
     one("steady state (nothing changed)")
     one("steady state, again")
+    # the cache's own share: the read calls a pass makes, alone
+    from ratefit.controller.workload import WorkloadKind
+
+    t = time.perf_counter()
+    for _ in range(5):
+        cache.list_policies()
+        cache.list_workloads(WorkloadKind.DEPLOYMENT)
+        cache.list_workloads(WorkloadKind.STATEFULSET)
+        cache.list_hpas()
+    reads_ms = (time.perf_counter() - t) / 5 * 1e3
     profile = ""
     if args.profile:
         prof = cProfile.Profile()
@@ -157,7 +167,7 @@ def child_cache(args: argparse.Namespace) -> None:
         "synced": synced, "sync_s": round(sync_s, 2), "sync_requests": sync_requests, "objects": objects,
         "rss_before_mb": round(rss_before, 1), "rss_synced_mb": round(rss_synced, 1), "rss_end_mb": round(_rss_mb(), 1),
         "peak_rss_mb": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1),
-        "relists": stats.total("relists"), "watch_events": stats.total("events"), "passes": out, "profile": profile,
+        "cache_reads_ms": round(reads_ms, 1), "relists": stats.total("relists"), "watch_events": stats.total("events"), "passes": out, "profile": profile,
     }))
     cache.stop()
     kube.close()
@@ -238,11 +248,13 @@ def main() -> int:
         print(f"  phases: gather {ph.get('gather', 0):.2f} s [cache reads {ph.get('gather_kube', 0):.3f} s, "
               f"PromQL {ph.get('gather_rates', 0):.2f} s (waited {ph.get('gather_rates_wait', 0):.2f} s after the "
               f"reads), sizing {ph.get('gather_sizing', 0):.2f} s], decide {ph.get('decide', 0):.2f} s, act {ph.get('act', 0):.2f} s")
+        full = " (the sandbox's log keeps the last 2000 requests: at least this many)" if sum(kr.values()) >= 1990 else ""
         print(f"  API requests in the pass: {kr['LIST']} LIST, {kr['WATCH']} WATCH (re)opened, {kr['GET']} GET, "
-              f"{kr['write']} writes; {ps['prom_queries']} PromQL queries; {ps['sizing_calls']} batched sizing calls")
+              f"{kr['write']} writes{full}; {ps['prom_queries']} PromQL queries; {ps['sizing_calls']} batched sizing calls")
         if ps["errors"]:
             print(f"  errors: {ps['errors']}")
-    print(f"\ncache: {res['watch_events']} watch events applied, {res['relists']} relists")
+    print(f"\ncache: {res['watch_events']} watch events applied, {res['relists']} relists; the read calls of one pass "
+          f"alone (list_policies, list_workloads ×2, list_hpas over everything): {res['cache_reads_ms']} ms")
     if res["profile"]:
         print("\nprofile of one steady-state pass (cProfile; times inflated by the profiler):")
         print(res["profile"])
