@@ -45,8 +45,10 @@ missing), and a 409 Conflict marks the workload so the next ``read_workload`` of
 goes to the API server (a stale cache would otherwise answer the re-read with the same
 stale object).
 
-Memory: only the converted values are kept (the raw JSON is dropped as it is read):
-measured about NN KB per policy+workload pair (``tests/bench/bench_cache.py``).
+Memory: only the converted values are kept; each LIST page's raw JSON is dropped as soon
+as it is converted. Measured (``tests/bench/bench_cache.py``): 41 MB of RSS for 10,000
+SizingPolicies + 10,000 Deployments after the first sync (about 4 KB a pair); policies
+grow with their status once the controller has written it.
 """
 
 from __future__ import annotations
