@@ -28,7 +28,7 @@ cluster-wide budget of --budget-per-minute changes and --max-rollouts rollouts.
 Reads come from a watch-fed cache: SizingPolicies, Deployments, StatefulSets and
 HPAs (and the pods of in-place policies) are listed once, then watched (per
 namespace when --namespace is given); a pass sends no LIST. /readyz answers 503
-until the cache has synced. --once reads with plain LISTs instead, like `plan`.
+until the cache has synced. --once reads with plain LISTs instead, like plan.
 
 Only the holder of the Lease --lease-namespace/--lease-name acts; other replicas
 stand by and keep answering /healthz and /readyz on --metrics-port.
