@@ -109,3 +109,9 @@ def test_readyz_is_503_until_the_cache_has_synced(tmp_path, shared_sizing_api) -
                 stop_process(proc)
                 log.close()
         assert code == 0, (tmp_path / "run.log").read_text()[-2000:]
+
+
+def test_a_bad_resync_period_is_an_error_naming_the_flag(tmp_path) -> None:
+    r = subprocess.run([str(RATEFIT), "run", "--sizing-api", "http://127.0.0.1:1", "--replay", str(tmp_path / "none.om"),
+                        "--cache-resync", "soon"], capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2 and "--cache-resync" in r.stderr and "duration" in r.stderr
