@@ -26,8 +26,10 @@ COMMANDS = (
     "serve",
     "sandbox",
     "plan",
+    "check",
     "run",
     "revert",
+    "profile",
 )
 
 DESCRIPTION = """\

@@ -38,7 +38,7 @@ from typing import Any
 from ratefit.controller import local_servers
 from ratefit.models.errors import RatefitError
 
-__all__ = ["DemoResult", "run_demo", "repo_manifests", "start_prometheus", "start_serve", "prometheus_binaries"]
+__all__ = ["DemoResult", "DemoError", "RUN_MARKER", "prepare_run_dir", "run_demo", "repo_manifests", "start_prometheus", "start_serve", "prometheus_binaries"]
 
 Progress = Callable[[str], None]
 
@@ -63,6 +63,30 @@ class DemoResult:
 
 class DemoError(RatefitError):
     """A part of the demo could not be started; the message says which and why."""
+
+
+#: written into ``DIR/run`` when the demo creates it; only a directory holding it is
+#: ever deleted by a later demo
+RUN_MARKER = ".ratefit-demo-run"
+_MARKER_TEXT = "created by `ratefit demo`; the next demo with the same --out deletes this directory\n"
+
+
+def prepare_run_dir(work: Path) -> Path:
+    """An empty ``work`` directory for this run. An existing one is deleted only when the
+    demo created it (it holds :data:`RUN_MARKER` and is a real directory, not a symlink);
+    anything else is refused with a :class:`DemoError` naming the path and what to do."""
+    if work.is_symlink() or (work.exists() and not work.is_dir()):
+        raise DemoError(f"refusing to delete {work}: it is not a directory the demo created "
+                        "(a symlink or a file); choose another --out or remove it yourself")
+    if work.exists():
+        marker = work / RUN_MARKER
+        if marker.is_symlink() or not marker.is_file():
+            raise DemoError(f"refusing to delete {work}: it was not created by `ratefit demo` "
+                            f"(no {RUN_MARKER} marker inside); choose another --out or remove it yourself")
+        shutil.rmtree(work)
+    work.mkdir()
+    (work / RUN_MARKER).write_text(_MARKER_TEXT, encoding="utf-8")
+    return work
 
 
 def repo_manifests() -> Path:
@@ -154,10 +178,13 @@ def run_demo(
     t_start = time.monotonic()
     out = Path(out).resolve()
     out.mkdir(parents=True, exist_ok=True)
-    work = out / "run"
-    if work.exists():
-        shutil.rmtree(work)
-    work.mkdir()
+    from ratefit.controller.sandbox import kubeconfig as sandbox_kubeconfig
+    from ratefit.controller.sandbox.server import CONTEXT
+
+    # before any work: the demo writes DIR/kubeconfig, never over a user's own file
+    sandbox_kubeconfig.check_target(out / "kubeconfig", CONTEXT, what="the demo's kubeconfig",
+                                    fix="choose another --out, or move that file")
+    work = prepare_run_dir(out / "run")
     manifests = repo_manifests()
     progress(f"scenario: {ORGANISATION} — INVENTED data; output in {out}")
     end = float(int(time.time() // step_s) * step_s - 5 * step_s)
@@ -179,8 +206,12 @@ def run_demo(
         else:
             rates = ReplayRateSource(info.path, at=info.end, template=template)
             source = "replay"
-            why = "as asked (--replay)" if prometheus_binaries() else "prometheus/promtool not installed"
-            progress(f"rates: replayed from {info.path} ({why}; same numbers as a Prometheus holding that history)")
+            if prometheus_binaries():
+                progress(f"rates: replayed from {info.path} as asked (--replay; same numbers as a "
+                         "Prometheus holding that history)")
+            else:
+                progress(f"rates: Prometheus is not installed (no prometheus/promtool), so the demo replays "
+                         f"the history file {info.path} instead (same numbers as a Prometheus holding it)")
         progress(f"training {len(csv_paths)} models (k-fold CV over every candidate; ~5 s each) …")
         train_scenario(out / "samples", work / "store", out / "reports", progress=progress, csv_paths=csv_paths)
         api_url = stack.enter_context(start_serve(work / "store", work))

@@ -45,6 +45,7 @@ import threading
 import time
 import uuid
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 from kubernetes import client as k8s
@@ -60,6 +61,7 @@ from ratefit.controller.kube_lease import LeaderElector, micro_time
 from ratefit.controller.kube_retry import RetryPolicy, call_with_retry, retry_on_conflict, translate
 from ratefit.controller.quantity import format_cpu, parse_cpu
 from ratefit.controller.workload import (
+    LAST_CHANGE_ANNOTATION,
     PREVIOUS_REQUESTS_ANNOTATION,
     ContainerResources,
     CpuChange,
@@ -77,6 +79,7 @@ from ratefit.controller.workload import (
     WorkloadKind,
     encode_previous_requests,
 )
+from ratefit.controller import crd
 from ratefit.models.errors import InputError
 
 __all__ = [
@@ -98,9 +101,10 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
-POLICY_GROUP = "ratefit.dev"
-POLICY_VERSION = "v1alpha1"
-POLICY_PLURAL = "sizingpolicies"
+# the CRD's coordinates: one home, controller/crd.py
+POLICY_GROUP = crd.GROUP
+POLICY_VERSION = crd.VERSION
+POLICY_PLURAL = crd.PLURAL
 #: events.k8s.io/v1 reportingController: "<domain>/<name>" as the Events API asks
 REPORTING_CONTROLLER = "ratefit.dev/controller"
 FIELD_MANAGER = "ratefit"
@@ -163,6 +167,8 @@ class KubeAdapter:
         self._custom = k8s.CustomObjectsApi(api_client)
         self._hpa = k8s.AutoscalingV2Api(api_client)
         self._events = k8s.EventsV1Api(api_client)
+        #: one row per workload kind: the apps/v1 calls that read, list and patch it
+        self._workload_api = dict(WORKLOAD_CALLS)
         #: retries made (temporary failures waited out) — for the controller's metrics
         self.retries = 0
 
@@ -238,6 +244,14 @@ class KubeAdapter:
             token = meta.get("continue") or None
             if not token:
                 return items, str(meta.get("resourceVersion") or "")
+
+    def _api_of(self, kind: WorkloadKind) -> _WorkloadApi:
+        """The API calls of a workload kind; an unknown kind is an error, never a guess."""
+        names = self._workload_api.get(kind)
+        if names is None:
+            raise InputError(f"workload kind {kind!r} is not supported; use one of "
+                             f"{', '.join(k.value for k in self._workload_api)}")
+        return _WorkloadApi(*(getattr(self._apps, n) for n in names))
 
     # ---------------------------------------------------------------- SizingPolicies
     def list_policies(self, namespaces: Sequence[str] | None = None) -> PolicyList:
@@ -373,8 +387,7 @@ class KubeAdapter:
     # ---------------------------------------------------------------- workloads
     def read_workload(self, namespace: str, kind: WorkloadKind | str, name: str) -> Workload:
         kind = kind if isinstance(kind, WorkloadKind) else WorkloadKind.parse(kind)
-        fn = (self._apps.read_namespaced_deployment if kind is WorkloadKind.DEPLOYMENT
-              else self._apps.read_namespaced_stateful_set)
+        fn = self._api_of(kind).read
         return _workload(self._call(f"read {kind.value} {namespace}/{name}", fn, name, namespace), kind)
 
     def list_workloads(
@@ -383,10 +396,8 @@ class KubeAdapter:
         """All Deployments (or StatefulSets) in a namespace or the cluster — one paged
         list instead of one read per workload."""
         kind = kind if isinstance(kind, WorkloadKind) else WorkloadKind.parse(kind)
-        if kind is WorkloadKind.DEPLOYMENT:
-            fn = self._apps.list_namespaced_deployment if namespace else self._apps.list_deployment_for_all_namespaces
-        else:
-            fn = self._apps.list_namespaced_stateful_set if namespace else self._apps.list_stateful_set_for_all_namespaces
+        api = self._api_of(kind)
+        fn = api.list_namespaced if namespace else api.list_all
         args = (namespace,) if namespace else ()
         items, _ = self._list_all(f"list {kind.value}s", fn, *args, label_selector=label_selector)
         return tuple(_workload(o, kind) for o in items)
@@ -444,8 +455,7 @@ class KubeAdapter:
         record the change time where a crash cannot lose it."""
         body: dict[str, Any] = {"metadata": {"resourceVersion": workload.resource_version,
                                              "annotations": dict(annotations)}}
-        fn = (self._apps.patch_namespaced_deployment if workload.kind is WorkloadKind.DEPLOYMENT
-              else self._apps.patch_namespaced_stateful_set)
+        fn = self._api_of(workload.kind).patch
         stored = self._call(f"annotation patch of {workload.key}", fn, workload.name, workload.namespace, body,
                             field_manager=FIELD_MANAGER, _content_type=_STRATEGIC)
         return _workload(stored, workload.kind)
@@ -453,8 +463,7 @@ class KubeAdapter:
     def _dry_run_then_patch(
         self, workload: Workload, body: dict[str, Any], *, after_dry_run: Callable[[], None] | None = None
     ) -> Workload:
-        fn = (self._apps.patch_namespaced_deployment if workload.kind is WorkloadKind.DEPLOYMENT
-              else self._apps.patch_namespaced_stateful_set)
+        fn = self._api_of(workload.kind).patch
         common = dict(field_manager=FIELD_MANAGER, _content_type=_STRATEGIC)
         self._call(f"dry-run patch of {workload.key}", fn, workload.name, workload.namespace, body,
                    dry_run="All", **common)
@@ -468,24 +477,30 @@ class KubeAdapter:
         Returns the stored workload, or None when there is nothing to revert. Containers
         that no longer exist are skipped. Conflicts are re-read and retried."""
 
+        kind = kind if isinstance(kind, WorkloadKind) else WorkloadKind.parse(kind)
+
         def once() -> Workload | None:
-            wl = self.read_workload(namespace, kind, name)
+            raw = self._call(f"read {kind.value} {namespace}/{name}", self._api_of(kind).read, name, namespace)
+            wl = _workload(raw, kind)
             previous = wl.previous_requests
             if not previous:
                 return None
-            names = {c.name for c in wl.containers}
+            raw_containers = {c.get("name"): c for c in (((raw.get("spec") or {}).get("template") or {})
+                                                         .get("spec") or {}).get("containers") or []}
             containers = []
             for cname, prev in sorted(previous.items()):
-                if cname not in names:
+                if cname not in raw_containers:
                     log.warning("%s: container %s is gone; not reverted", wl.key, cname)
                     continue
+                res = raw_containers[cname].get("resources") or {}
                 containers.append({"name": cname, "resources": {
-                    "requests": {"cpu": None if prev.cpu_request_m is None else format_cpu(prev.cpu_request_m)},
-                    "limits": {"cpu": None if prev.cpu_limit_m is None else format_cpu(prev.cpu_limit_m)},
+                    "requests": _revert_map(res.get("requests"), prev.cpu_request_m),
+                    "limits": _revert_map(res.get("limits"), prev.cpu_limit_m),
                 }})
+            # the revert leaves no trace of ratefit: both of its annotations go
             body = {
                 "metadata": {"resourceVersion": wl.resource_version,
-                             "annotations": {PREVIOUS_REQUESTS_ANNOTATION: None}},
+                             "annotations": {PREVIOUS_REQUESTS_ANNOTATION: None, LAST_CHANGE_ANNOTATION: None}},
                 "spec": {"template": {"spec": {"containers": containers}}},
             }
             return self._dry_run_then_patch(wl, body)
@@ -595,6 +610,27 @@ class KubeAdapter:
         return name
 
 
+# -------------------------------------------------------------------- workload kinds
+@dataclass(frozen=True)
+class _WorkloadApi:
+    """The apps/v1 calls for one workload kind (bound to the adapter's AppsV1Api)."""
+
+    read: Callable[..., Any]
+    list_namespaced: Callable[..., Any]
+    list_all: Callable[..., Any]
+    patch: Callable[..., Any]
+
+
+#: workload kind → the names of its AppsV1Api calls: read, list in a namespace, list in
+#: all namespaces, patch (looked up on each call, so a test may wrap one of them)
+WORKLOAD_CALLS: dict[WorkloadKind, tuple[str, str, str, str]] = {
+    WorkloadKind.DEPLOYMENT: ("read_namespaced_deployment", "list_namespaced_deployment",
+                              "list_deployment_for_all_namespaces", "patch_namespaced_deployment"),
+    WorkloadKind.STATEFULSET: ("read_namespaced_stateful_set", "list_namespaced_stateful_set",
+                               "list_stateful_set_for_all_namespaces", "patch_namespaced_stateful_set"),
+}
+
+
 # -------------------------------------------------------------------- patch bodies
 def cpu_patch_body(
     workload: Workload,
@@ -625,6 +661,17 @@ def cpu_patch_body(
 
 
 # -------------------------------------------------------------------- JSON → values
+def _revert_map(current: Mapping[str, Any] | None, previous_m: int | None) -> dict[str, Any] | None:
+    """The strategic-merge value that puts one ``requests``/``limits`` map back: the CPU
+    set to its previous value, or removed — and the whole map removed (None) when CPU was
+    its only key, so a revert never leaves an empty ``requests: {}``/``limits: {}``."""
+    if previous_m is not None:
+        return {"cpu": format_cpu(previous_m)}
+    if not set(current or {}) - {"cpu"}:
+        return None
+    return {"cpu": None}
+
+
 def _ref(ref: ObjectRef) -> dict[str, str]:
     out = {"apiVersion": ref.api_version, "kind": ref.kind, "namespace": ref.namespace, "name": ref.name}
     if ref.uid:

@@ -10,8 +10,8 @@
 - :class:`ExponentialBackoff` — per-key retry delay for failed calls (429/5xx),
   doubling up to a cap, with full jitter drawn from an injected ``random.Random``.
 
-Shaped like client-go's rate limiters (a per-item exponential failure limiter, a
-global token bucket, combined by taking the larger delay — :func:`max_delay`), with
+Shaped like client-go's rate limiters (a per-item exponential failure limiter and a
+global token bucket), with
 the clock injected: every method takes ``now`` (float seconds from any monotonic
 origin), nothing reads the time itself.
 """
@@ -33,7 +33,6 @@ __all__ = [
     "Budget",
     "BudgetView",
     "ExponentialBackoff",
-    "max_delay",
 ]
 
 
@@ -237,7 +236,3 @@ class ExponentialBackoff:
     def forget(self, key: str) -> None:
         self._failures.pop(key, None)
 
-
-def max_delay(*delays: float) -> float:
-    """Compose limiters the client-go way: the caller waits for the longest of them."""
-    return max((d for d in delays), default=0.0)

@@ -6,22 +6,40 @@ One pass asks for the rates of every (policy, container) at once with
 template's rate interval, ``M`` = the template's request counter):
 
 * Every request whose policy has no ``rateQuery`` follows the **default template** and
-  is answered by ONE instant query per pass. For a single (W, φ) group::
+  is answered by ONE instant query per pass. The counter needs only ``namespace`` and
+  ``pod`` labels: the controller maps pods to workloads by their names
+  (``controller/pod_names``: one anchored regex per workload from its kind and name). For a
+  single (W, φ) group::
 
-      quantile_over_time(φ, sum by (namespace, workload, pod) (rate(M{namespace=~"ns1|ns2"}[R]))[W:S])
+      quantile_over_time(φ, sum by (namespace, pod) (rate(M{namespace=~"ns1|ns2",pod=~"RX"}[R]))[W:S])
 
-  i.e. per pod, the φ-quantile of its request rate sampled every S over the last W
-  (a subquery; Prometheus docs "Subquery", ``quantile_over_time``). Policies with other
-  (W, φ) pairs are added to the same query with ``or``, each part tagged by
-  ``label_replace(…, "ratefit_group", "<i>", "", "")`` so the parts never collide.
-  The answer is split per (namespace, workload) on the client.
+  where ``RX`` is the alternation of the wanted workloads' pod-name regexes, i.e. per pod,
+  the φ-quantile of its request rate sampled every S over the last W (a subquery;
+  Prometheus docs "Subquery", ``quantile_over_time``). Policies with other (W, φ) pairs are
+  added to the same query with ``or``, each part tagged by
+  ``label_replace(…, "ratefit_group", "<i>", "", "")`` so the parts never collide. The
+  answer is split per (namespace, workload) on the client, by the same regexes (a pod
+  matching two workloads goes to the longer name). The template's label names, counter
+  and fixed matchers come from a preset (``controller/rate_presets``); a template with a
+  ``workload_label`` (a counter that carries one) sums by (namespace, workload, pod) and
+  matches that label instead.
 * A request with its own ``rateQuery`` Q (which must answer one series per pod) is
-  sent on its own: ``quantile_over_time(φ, (Q)[W:S])``.
+  sent on its own: ``quantile_over_time(φ, (Q\\n)[W:S])``; before it is sent the whole
+  expression passes the :class:`~ratefit.controller.promql_guard.QueryGuard` (every selector
+  limited to the policy's namespace, unless raw queries are allowed).
 
 Result per request (:class:`RateResult`): ``pod_rates`` — pod → φ-quantile of that pod's
 rate over W; ``rate`` — the largest of them (the request applies to every pod, so the
-busiest pod decides); or, when Prometheus is down, slow, answers garbage or nothing,
-``rate=None`` with ``why="NoMetrics"`` and the error text in ``message``.
+busiest pod decides); or ``rate=None`` with ``why`` saying why and ``message`` the text
+for the policy's status (the query is in ``query``):
+
+* ``NoMetrics`` — Prometheus down, slow, answering garbage, or no series for the workload;
+* ``QueryRefused`` — the policy's rateQuery may not be sent (it reaches outside the
+  policy's namespace, or it is not PromQL); nothing was sent;
+* ``QueryFailed`` — Prometheus refused the query (a PromQL error: 400/422), its error text
+  in the message;
+* ``TooManySeries`` — the query answered more series than the cap (default 500): the
+  container is held, the largest value is NOT used.
 
 :class:`ReplayRateSource` computes the same numbers offline from an OpenMetrics history
 file (the demo scenario's format): Prometheus' ``rate()`` extrapolation, the subquery's
@@ -40,12 +58,19 @@ from typing import Mapping, Protocol, Sequence
 
 import numpy as np
 
+from ratefit.controller.pod_names import PodAssigner, WorkloadRef, pod_name_regex
+from ratefit.controller.promql_guard import QueryGuard, QueryRefused
+from ratefit.controller.rate_template import RateTemplate, _regex_literal  # noqa: F401 (re-exported)
 from ratefit.models.durations import format_duration, parse_duration
-from ratefit.models.errors import InputError, PrometheusError
+from ratefit.models.errors import InputError, PrometheusError, PromQLError
 from ratefit.models.prometheus import PrometheusClient, RangeSeries
 
 __all__ = [
     "NO_METRICS",
+    "QUERY_REFUSED",
+    "QUERY_FAILED",
+    "TOO_MANY_SERIES",
+    "RATE_REASONS",
     "RateRequest",
     "RateResult",
     "RateTemplate",
@@ -57,6 +82,11 @@ __all__ = [
 ]
 
 NO_METRICS = "NoMetrics"
+QUERY_REFUSED = "QueryRefused"
+QUERY_FAILED = "QueryFailed"
+TOO_MANY_SERIES = "TooManySeries"
+#: every ``RateResult.why`` a source may give (the held reasons of the observe stage)
+RATE_REASONS = (NO_METRICS, QUERY_REFUSED, QUERY_FAILED, TOO_MANY_SERIES)
 GROUP_LABEL = "ratefit_group"
 
 
@@ -65,6 +95,8 @@ class RateRequest:
     """What one (policy, container) needs: its workload's per-pod rate over ``rate_window``.
 
     ``percentile`` is on the 0–100 scale (95 = p95). ``query`` None means the default template.
+    ``workload_kind`` (Deployment | StatefulSet) picks the pod-name pattern; None accepts
+    the names of either kind.
     """
 
     namespace: str
@@ -74,11 +106,16 @@ class RateRequest:
     query: str | None = None
     rate_window: str = "1h"
     percentile: float = 95.0
+    workload_kind: str | None = None
 
     @property
     def key(self) -> str:
         """``namespace/policy/container`` — the key of the answer."""
         return f"{self.namespace}/{self.policy}/{self.container}"
+
+    @property
+    def workload_ref(self) -> WorkloadRef:
+        return WorkloadRef(self.namespace, self.workload_kind, self.workload)
 
     def window_s(self) -> float:
         return parse_duration(self.rate_window, field=f"{self.key}: rateWindow")
@@ -92,12 +129,13 @@ class RateRequest:
 
 @dataclass(frozen=True, slots=True)
 class RateResult:
-    """The answer for one request: a rate, or why there is none."""
+    """The answer for one request: a rate, or why there is none (``why``, one of
+    :data:`RATE_REASONS`, and ``message`` for the policy's status)."""
 
     key: str
     rate: float | None
     pod_rates: Mapping[str, float] = field(default_factory=dict)
-    why: str | None = None  # NO_METRICS when missing
+    why: str | None = None
     message: str = ""
     query: str = ""
 
@@ -105,48 +143,51 @@ class RateResult:
     def missing(self) -> bool:
         return self.rate is None
 
+    @property
+    def reason(self) -> str | None:
+        """Alias of ``why``: the held reason when there is no rate."""
+        return self.why
 
-@dataclass(frozen=True, slots=True)
-class RateTemplate:
-    """The default per-pod request-rate expression: ``rate(metric[interval])`` summed by
-    namespace, workload and pod labels of the request counter."""
-
-    metric: str = "http_requests_total"
-    namespace_label: str = "namespace"
-    workload_label: str = "workload"
-    pod_label: str = "pod"
-    interval: str = "2m"
-
-    def inner(self, namespaces: Sequence[str]) -> str:
-        alts = "|".join(_regex_literal(ns) for ns in sorted(set(namespaces)))
-        by = f"{self.namespace_label}, {self.workload_label}, {self.pod_label}"
-        return f'sum by ({by}) (rate({self.metric}{{{self.namespace_label}=~"{alts}"}}[{self.interval}]))'
-
-
-_RE2_META = re.compile(r"([.^$*+?()\[\]{}|\\])")
-
-
-def _regex_literal(text: str) -> str:
-    """``text`` as a literal inside a PromQL ``=~"…"`` matcher: RE2 metacharacters escaped,
-    then backslashes and quotes escaped for the PromQL string. (Python's ``re.escape`` also
-    escapes ``-``, and ``"\\-"`` is not a valid PromQL string escape: Prometheus refuses it.)"""
-    rx = _RE2_META.sub(r"\\\1", text)
-    return rx.replace("\\", "\\\\").replace('"', '\\"')
+    def status_message(self, limit: int = 1024) -> str:
+        """The message for the policy's status when there is no rate: why, then the query
+        that was (or would have been) sent, cut to ``limit`` characters."""
+        text = self.message or "no usable per-pod request rate"
+        if self.query:
+            text += " — query: " + " ".join(self.query.split())
+        return text if len(text) <= limit else text[: limit - 1] + "…"
 
 
 class RateSource(Protocol):
     def per_pod_rates(self, requests: Sequence[RateRequest]) -> dict[str, RateResult]: ...
 
 
-def _missing(req: RateRequest, message: str, query: str = "") -> RateResult:
-    return RateResult(key=req.key, rate=None, why=NO_METRICS, message=message, query=query)
+def _missing(req: RateRequest, message: str, query: str = "", why: str = NO_METRICS) -> RateResult:
+    return RateResult(key=req.key, rate=None, why=why, message=message, query=query)
 
 
-def _result(req: RateRequest, pods: Mapping[str, float], query: str, empty_msg: str) -> RateResult:
+def _result(req: RateRequest, pods: Mapping[str, float], query: str, empty_msg: str,
+            max_series: int = 0) -> RateResult:
+    if max_series > 0 and len(pods) > max_series:
+        return _too_many(req, len(pods), max_series, query)
     clean = {p: float(v) for p, v in pods.items() if math.isfinite(v)}
     if not clean:
         return _missing(req, empty_msg, query)
     return RateResult(key=req.key, rate=max(clean.values()), pod_rates=clean, query=query)
+
+
+def _too_many(req: RateRequest, count: int, cap: int, query: str) -> RateResult:
+    return _missing(
+        req, f"the rate query answered {count} series, more than the cap of {cap} per container; "
+             "narrow it to the workload's pods (one series per pod) or raise --max-rate-series",
+        query, TOO_MANY_SERIES)
+
+
+def _failed(req: RateRequest, exc: PrometheusError, query: str) -> RateResult:
+    """A Prometheus error as the request's answer: a refused query is QueryFailed (it will
+    fail again until someone fixes it), anything else NoMetrics (temporary)."""
+    if isinstance(exc, PromQLError):
+        return _missing(req, str(exc), query, QUERY_FAILED)  # "Prometheus refused query … (HTTP 422 …): why"
+    return _missing(req, str(exc), query)
 
 
 def _groups(requests: Sequence[RateRequest]) -> list[tuple[float, float, list[RateRequest]]]:
@@ -167,10 +208,8 @@ def grouped_query(
     """The one PromQL expression for all default-template requests (see the module docstring)."""
     parts = []
     for i, (window_s, phi, reqs) in enumerate(groups):
-        expr = (
-            f"quantile_over_time({_phi_text(phi)}, "
-            f"{template.inner([r.namespace for r in reqs])}[{format_duration(window_s)}:{step}])"
-        )
+        inner = template.inner([r.namespace for r in reqs], [r.workload_ref for r in reqs])
+        expr = f"quantile_over_time({_phi_text(phi)}, {inner}[{format_duration(window_s)}:{step}])"
         if len(groups) > 1:
             expr = f'label_replace({expr}, "{GROUP_LABEL}", "{i}", "", "")'
         parts.append(expr)
@@ -178,8 +217,9 @@ def grouped_query(
 
 
 def custom_query(req: RateRequest, *, step: str) -> str:
-    """The PromQL sent for a request with its own ``rateQuery``."""
-    return f"quantile_over_time({_phi_text(req.phi())}, ({req.query})[{format_duration(req.window_s())}:{step}])"
+    """The PromQL sent for a request with its own ``rateQuery`` (the newline ends a
+    trailing ``#`` comment of the policy's text before the wrapper's parenthesis)."""
+    return f"quantile_over_time({_phi_text(req.phi())}, ({req.query}\n)[{format_duration(req.window_s())}:{step}])"
 
 
 def _pod_name(labels: Mapping[str, str], pod_label: str) -> str:
@@ -194,18 +234,32 @@ def _validate(requests: Sequence[RateRequest]) -> tuple[list[RateRequest], dict[
         try:
             r.window_s()
             r.phi()
-        except InputError as e:
+            if r.query is None and r.workload_kind is not None:
+                pod_name_regex(r.workload_kind, r.workload)
+        except (InputError, ValueError) as e:
             bad[r.key] = _missing(r, str(e))
         else:
             ok.append(r)
     return ok, bad
 
 
+def _no_series_message(t: RateTemplate, r: RateRequest, where: str) -> str:
+    if t.workload_label:
+        who = f"{t.workload_label}={r.workload!r}"
+    else:
+        who = f"pods named like {r.workload_kind or 'Deployment or StatefulSet'} {r.workload!r} ({pod_name_regex(r.workload_kind, r.workload)})"
+    return (f"no series of {t.metric} with {t.namespace_label}={r.namespace!r} and {who} over the last "
+            f"{r.rate_window} ({where}); check the workload is instrumented and scraped with "
+            f"{t.namespace_label} and {t.pod_label} labels, or pick a --rate-preset that matches its counter")
+
+
 class PrometheusRateSource:
     """Rates from a Prometheus server through :class:`PrometheusClient` (passed in).
 
     ``at`` fixes the evaluation time (unix s; None: the server's now). ``step`` is the
-    subquery resolution. Never raises for Prometheus trouble: it answers NoMetrics.
+    subquery resolution. ``guard`` holds the rules for policies' own queries (namespace
+    boundary, series cap; see ``controller/promql_guard``). Never raises for Prometheus
+    trouble: every request gets a :class:`RateResult`, with ``why`` when there is no rate.
     """
 
     def __init__(
@@ -215,12 +269,14 @@ class PrometheusRateSource:
         at: float | None = None,
         template: RateTemplate = RateTemplate(),
         step: str = "30s",
+        guard: QueryGuard = QueryGuard(),
     ) -> None:
         parse_duration(step, field="rate step")
         self.client = client
         self.at = at
         self.template = template
         self.step = step
+        self.guard = guard
         self.queries_sent = 0  # for telemetry and tests: instant queries sent by this source
 
     def per_pod_rates(self, requests: Sequence[RateRequest]) -> dict[str, RateResult]:
@@ -233,6 +289,13 @@ class PrometheusRateSource:
             out[r.key] = self._custom(r)
         return out
 
+    def query_for(self, r: RateRequest) -> str:
+        """The PromQL that answers ``r`` (for the review and ``ratefit check``): its own
+        wrapped rateQuery, or the default template's query for its workload alone."""
+        if r.query is not None:
+            return custom_query(r, step=self.step)
+        return grouped_query([(r.window_s(), r.phi(), [r])], template=self.template, step=self.step)
+
     def _default(self, requests: list[RateRequest]) -> dict[str, RateResult]:
         groups = _groups(requests)
         q = grouped_query(groups, template=self.template, step=self.step)
@@ -240,33 +303,50 @@ class PrometheusRateSource:
         try:
             samples = self.client.query(q, at=self.at)
         except PrometheusError as e:
-            return {r.key: _missing(r, str(e), q) for r in requests}
+            return {r.key: _failed(r, e, q) for r in requests}
         t = self.template
-        # (group index, namespace, workload) -> pod -> value
+        # (group index, namespace) -> pod -> value; (group, namespace, workload) -> pod -> value
         by: dict[tuple[int, str, str], dict[str, float]] = {}
+        raw: dict[tuple[int, str], dict[str, float]] = {}
         for s in samples:
             g = int(s.labels.get(GROUP_LABEL, "0")) if len(groups) > 1 else 0
-            k = (g, s.labels.get(t.namespace_label, ""), s.labels.get(t.workload_label, ""))
-            by.setdefault(k, {})[_pod_name(s.labels, t.pod_label)] = s.value
+            ns = s.labels.get(t.namespace_label, "")
+            pod = _pod_name(s.labels, t.pod_label)
+            if t.workload_label:
+                by.setdefault((g, ns, s.labels.get(t.workload_label, "")), {})[pod] = s.value
+            else:
+                raw.setdefault((g, ns), {})[pod] = s.value
+        refs: dict[tuple[int, str, str], dict[str, float]] = {}
+        if not t.workload_label:
+            for g, (_w, _phi, reqs) in enumerate(groups):
+                assigner = PodAssigner(r.workload_ref for r in reqs)
+                for ns in {r.namespace for r in reqs}:
+                    for ref, pods in assigner.split(ns, raw.get((g, ns), {})).items():
+                        refs[(g, ns, f"{ref.kind}/{ref.name}")] = pods
         out = {}
         for g, (_w, _phi, reqs) in enumerate(groups):
             for r in reqs:
-                pods = by.get((g, r.namespace, r.workload), {})
-                out[r.key] = _result(
-                    r, pods, q,
-                    f"no series of {t.metric} with {t.namespace_label}={r.namespace!r}, "
-                    f"{t.workload_label}={r.workload!r} over the last {r.rate_window} "
-                    f"(Prometheus at {self.client.base_url}); check the workload is instrumented",
-                )
+                if t.workload_label:
+                    pods = by.get((g, r.namespace, r.workload), {})
+                else:
+                    pods = refs.get((g, r.namespace, f"{r.workload_kind}/{r.workload}"), {})
+                out[r.key] = _result(r, pods, q, _no_series_message(t, r, f"Prometheus at {self.client.base_url}"),
+                                     self.guard.max_series)
         return out
 
     def _custom(self, r: RateRequest) -> RateResult:
         q = custom_query(r, step=self.step)
+        try:
+            self.guard.check(q, r.namespace)
+        except QueryRefused as e:
+            return _missing(r, str(e), r.query or "", QUERY_REFUSED)
         self.queries_sent += 1
         try:
             samples = self.client.query(q, at=self.at)
         except PrometheusError as e:
-            return _missing(r, str(e), q)
+            return _failed(r, e, q)
+        if self.guard.too_many(len(samples)):  # every series counts, also those without a pod label
+            return _too_many(r, len(samples), self.guard.max_series, q)
         pods = {_pod_name(s.labels, self.template.pod_label): s.value for s in samples}
         return _result(r, pods, q, f"rateQuery of {r.key} answered no series over the last {r.rate_window}")
 
@@ -385,6 +465,7 @@ class ReplayRateSource:
     def per_pod_rates(self, requests: Sequence[RateRequest]) -> dict[str, RateResult]:
         ok, out = _validate(requests)
         t = self.template
+        assigner = PodAssigner(r.workload_ref for r in ok if r.query is None)
         for r in ok:
             if r.query is not None:
                 out[r.key] = _missing(r, f"{r.key} has its own rateQuery; replay ({self.path}) evaluates only the default template")
@@ -396,7 +477,12 @@ class ReplayRateSource:
             per_pod: dict[str, np.ndarray] = {}
             for labels, (ts, vs) in self._series.items():
                 lab = dict(labels)
-                if lab.get(t.namespace_label) != r.namespace or lab.get(t.workload_label) != r.workload:
+                if lab.get(t.namespace_label) != r.namespace or any(lab.get(k) != v for k, v in t.matchers):
+                    continue
+                if t.workload_label:
+                    if lab.get(t.workload_label) != r.workload:
+                        continue
+                elif assigner.workload_of(r.namespace, lab.get(t.pod_label, "")) != r.workload_ref:
                     continue
                 rates = extrapolated_rate(ts, vs, ev, self.interval_s)
                 pod = lab.get(t.pod_label, "")
@@ -410,6 +496,6 @@ class ReplayRateSource:
                     pods[pod] = float(np.percentile(v, r.phi() * 100.0))
             out[r.key] = _result(
                 r, pods, f"replay:{self.path}",
-                f"no series of {t.metric} for {r.namespace}/{r.workload} within {r.rate_window} before {self.at} in {self.path}",
+                _no_series_message(t, r, f"within {r.rate_window} before {self.at} in {self.path}"),
             )
         return out

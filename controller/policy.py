@@ -36,6 +36,7 @@ from ratefit.controller.quantity import format_cpu, parse_cpu
 from ratefit.models.durations import format_duration as _format_duration
 from ratefit.models.durations import parse_duration as _parse_duration
 from ratefit.models.errors import InputError
+from ratefit.models.keys import KEY_RE
 
 __all__ = [
     "GROUP",
@@ -73,10 +74,8 @@ __all__ = [
     "SettlingModel",
 ]
 
-GROUP = "ratefit.dev"
-VERSION = "v1alpha1"
-KIND = "SizingPolicy"
-PLURAL = "sizingpolicies"
+# the CRD's coordinates live in controller/crd.py (re-exported here for old imports)
+from ratefit.controller.crd import GROUP, KIND, PLURAL, VERSION  # noqa: E402
 
 #: Condition type written on every policy: True once a pass decided it, False when
 #: the policy is invalid (reason PolicyInvalid) or could not be decided.
@@ -121,7 +120,7 @@ def format_duration(seconds: float) -> str:
 
 # ---------------------------------------------------------------- pydantic models (the boundary)
 
-_MODEL_KEY = re.compile(r"^[a-z0-9]([-a-z0-9.]*[a-z0-9])?/[A-Za-z0-9]([-A-Za-z0-9._]*[A-Za-z0-9])?/[a-z0-9]([-a-z0-9]*[a-z0-9])?$")
+_MODEL_KEY = KEY_RE  # the one key grammar (models/keys.py), shared with the CRD and the sizing API
 
 
 class _Camel(BaseModel):

@@ -3,10 +3,16 @@ reconcile pass.
 
 ``SizingClient(base_url, *, token=None, timeout=5.0, retries=2, client=None)``:
 
-- ``demand_batch([(key, rate), …])`` → ``[DemandAnswer | DemandError, …]`` in the same
-  order; an unknown key is a ``DemandError`` for that item only. Batches larger than
-  the server's cap are split (``max_batch``) and the answers joined in order.
-- ``demand(key, rate)`` → ``DemandAnswer`` (``UnknownModel`` for an unknown key).
+- ``demand_batch([(model, rate), …])`` → ``[DemandAnswer | DemandError, …]`` in the same
+  order. Every item is answered on its own: an item the server could not answer (no
+  model for the key, a key outside the Kubernetes name grammar, a rate that is not a
+  finite number >= 0, a demand beyond the physical bound) is a ``DemandError`` for that
+  item only, with the server's ``reason`` — the caller holds that one container and
+  sizes the rest. A rate that cannot be sent (NaN, infinite, negative) becomes a
+  ``DemandError`` locally without a request. Batches larger than the server's cap are
+  split (``max_batch``) and the answers joined in order.
+- ``demand(model, rate)`` → ``DemandAnswer`` (``UnknownModel`` for an unknown key,
+  ``InputError`` for another item error).
 - ``models()`` → ``[ModelInfo, …]``; ``health()`` → ``ApiHealth`` (readiness);
   ``reload()`` → the server's reload report (a dict).
 
@@ -36,6 +42,7 @@ __all__ = [
     "SizingClient",
     "DemandAnswer",
     "DemandError",
+    "ITEM_ERROR_REASONS",
     "ModelInfo",
     "ApiHealth",
     "SizingApiError",
@@ -46,31 +53,46 @@ __all__ = [
 #: the server's default cap on items per batch (models.api_schemas.DEFAULT_MAX_BATCH)
 DEFAULT_MAX_BATCH = 50_000
 
+#: the ``reason`` of a ``DemandError`` (the server's, models.api_schemas.ITEM_ERROR_REASONS):
+#: unknown_model — no model is loaded for the key (train it);
+#: invalid_model — the key is not namespace/workload/container in Kubernetes name syntax;
+#: invalid_rate — the rate is not a finite number >= 0 (at most 1e9 req/s);
+#: invalid_item — the item is not {model, rate};
+#: out_of_range — the demand at that rate is beyond the physical bound (1,024 cores)
+ITEM_ERROR_REASONS = ("unknown_model", "invalid_model", "invalid_rate", "invalid_item", "out_of_range")
+
 
 @dataclass(frozen=True)
 class DemandAnswer:
-    """What ``key`` needs at ``rate``: millicores, rounded up; ``upper_m`` is the upper band."""
+    """What ``model`` needs at ``rate``: millicores, rounded up; ``demand_bound_m`` is
+    the upper bound of the demand (demand + conformal band)."""
 
-    key: str
+    model: str
     rate: float
-    cpu_m: int
-    upper_m: int
+    demand_m: int
+    demand_bound_m: int
     extrapolated: bool
     version: str
 
 
 @dataclass(frozen=True)
 class DemandError:
-    """No answer for this item (the key has no model); the message says what to do."""
+    """No answer for this item alone; ``reason`` is one of ``ITEM_ERROR_REASONS`` and
+    ``error`` says what to do. ``model`` is the key as the caller asked it."""
 
-    key: str
+    model: str
     error: str
+    reason: str = "unknown_model"
     rate: float | None = None
+
+    @property
+    def key(self) -> str:  # deprecated alias (see DemandAnswer)
+        return self.model
 
 
 @dataclass(frozen=True)
 class ModelInfo:
-    key: str
+    model: str
     chosen: str
     rate_range: tuple[float, float]
     coverage: float
@@ -81,9 +103,9 @@ class ModelInfo:
 @dataclass(frozen=True)
 class ApiHealth:
     ready: bool
-    models: int
-    version: str | None
-    refused: int
+    model_count: int
+    store_version: str | None
+    refused_count: int
 
 
 class SizingClient:
@@ -132,14 +154,25 @@ class SizingClient:
 
     # -- calls ------------------------------------------------------------------------------
     def demand_batch(self, items: Sequence[tuple[str, float]]) -> list[DemandAnswer | DemandError]:
-        """One answer per ``(key, rate)``, in order (split into requests of ``max_batch``)."""
-        body_items = []
-        for i, (key, rate) in enumerate(items):
-            r = float(rate)
+        """One answer per ``(model, rate)``, in order (split into requests of ``max_batch``).
+        A per-item problem is a ``DemandError`` in its place, never an exception."""
+        out: list[DemandAnswer | DemandError | None] = [None] * len(items)
+        send: list[int] = []
+        body_items: list[dict[str, Any]] = []
+        for i, (model, rate) in enumerate(items):
+            try:
+                r = float(rate)
+            except (TypeError, ValueError):
+                r = math.nan
             if not math.isfinite(r) or r < 0:
-                raise InputError(f"items[{i}] ({key!r}): rate {rate!r} must be a finite number >= 0 req/s")
-            body_items.append({"model": key, "rate": r})
-        out: list[DemandAnswer | DemandError] = []
+                out[i] = DemandError(
+                    model=str(model),
+                    error=f"items[{i}]: the rate is not a finite number >= 0 req/s; nothing was asked",
+                    reason="invalid_rate",
+                )
+                continue
+            send.append(i)
+            body_items.append({"model": model, "rate": r})
         for start in range(0, len(body_items), self.max_batch):
             chunk = body_items[start : start + self.max_batch]
             body = self._call("POST", "/v1/demand", content=json.dumps({"items": chunk}).encode())
@@ -151,26 +184,31 @@ class SizingClient:
                     url=self.base_url,
                 )
             try:
-                out.extend(_answer(a) for a in answers)
+                for j, (asked, a) in enumerate(zip(chunk, answers)):
+                    out[send[start + j]] = _answer(asked, a)
             except (KeyError, TypeError, ValueError) as exc:
                 raise SizingApiError(
-                    f"{self.base_url}/v1/demand answered an item without {exc}: is this a ratefit sizing API?",
+                    f"{self.base_url}/v1/demand answered an item without {exc}: is this a ratefit sizing API "
+                    "of this version (fields demand_m, demand_bound_m)?",
                     url=self.base_url,
                 ) from exc
-        return out
+        return out  # type: ignore[return-value]
 
-    def demand(self, key: str, rate: float) -> DemandAnswer:
-        """One lookup; ``UnknownModel`` when the key has no model."""
-        answer = self.demand_batch([(key, rate)])[0]
+    def demand(self, model: str, rate: float) -> DemandAnswer:
+        """One lookup; ``UnknownModel`` when the key has no model, ``InputError`` for
+        another problem of the item (bad key or rate, beyond the bound)."""
+        answer = self.demand_batch([(model, rate)])[0]
         if isinstance(answer, DemandError):
-            raise UnknownModel(key)
+            if answer.reason == "unknown_model":
+                raise UnknownModel(model)
+            raise InputError(answer.error)
         return answer
 
     def models(self) -> list[ModelInfo]:
         body = self._call("GET", "/v1/models")
         return [
             ModelInfo(
-                key=m["key"],
+                model=m["model"],
                 chosen=m["chosen"],
                 rate_range=(float(m["rate_range"][0]), float(m["rate_range"][1])),
                 coverage=float(m["coverage"]),
@@ -184,7 +222,10 @@ class SizingClient:
         """Readiness (``/readyz``); a not-ready server is an answer, not an error."""
         body = self._call("GET", "/readyz", ok_statuses=(200, 503))
         return ApiHealth(
-            ready=bool(body["ready"]), models=int(body["models"]), version=body["version"], refused=int(body["refused"])
+            ready=bool(body["ready"]),
+            model_count=int(body["model_count"]),
+            store_version=body["store_version"],
+            refused_count=int(body["refused_count"]),
         )
 
     def reload(self) -> dict[str, Any]:
@@ -238,14 +279,19 @@ def _server_message(r: httpx.Response) -> str:
     return r.text[:200]
 
 
-def _answer(a: dict[str, Any]) -> DemandAnswer | DemandError:
+def _answer(asked: dict[str, Any], a: dict[str, Any]) -> DemandAnswer | DemandError:
+    """One item of the answer; the model is the one asked (the server may leave an
+    invalid one out rather than echo it)."""
+    model = str(asked["model"])
     if a.get("error") is not None:
-        return DemandError(key=a["model"], error=str(a["error"]), rate=a.get("rate"))
+        return DemandError(
+            model=model, error=str(a["error"]), reason=str(a.get("reason") or "unknown_model"), rate=a.get("rate")
+        )
     return DemandAnswer(
-        key=a["model"],
+        model=str(a["model"]),
         rate=float(a["rate"]),
-        cpu_m=int(a["cpu_m"]),
-        upper_m=int(a["upper_m"]),
+        demand_m=int(a["demand_m"]),
+        demand_bound_m=int(a["demand_bound_m"]),
         extrapolated=bool(a["extrapolated"]),
         version=str(a["version"]),
     )

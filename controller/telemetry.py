@@ -3,8 +3,9 @@
 Everything is registered on a :class:`prometheus_client.CollectorRegistry` owned by
 one :class:`Telemetry` object (never the process-global registry), so tests and two
 controllers in one process do not share counters. :class:`HealthServer` serves the
-three routes on a small stdlib ``ThreadingHTTPServer`` (no framework needed for three
-GET routes; it keeps answering while the reconcile loop is busy or on standby):
+three routes on a small bounded stdlib HTTP server (``bounded_http``: a connection cap,
+header deadline and size limits; no framework needed for three GET routes; it keeps
+answering while the reconcile loop is busy or on standby):
 
 - ``/metrics`` — the Prometheus text exposition format (``prometheus_client`` renders it);
 - ``/healthz`` — 200 while the loop thread is alive (liveness: restart me if not);
@@ -19,18 +20,85 @@ Metric names follow the Prometheus naming guide (prometheus.io/docs/practices/na
 from __future__ import annotations
 
 import threading
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass
 from typing import Any, Callable
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
-__all__ = ["Telemetry", "HealthServer", "PASS_BUCKETS"]
+from ratefit.controller.bounded_http import BoundedHandler, BoundedHTTPServer, HttpLimits
+
+__all__ = ["Telemetry", "HealthServer", "HttpLimits", "CpuSample", "PASS_BUCKETS", "RESIZE_BY"]
 
 #: pass-duration buckets (seconds): a pass over a few policies takes milliseconds,
 #: a pass over 10,000 workloads a few seconds (common practice, no source)
 PASS_BUCKETS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0)
+
+
+#: label values of ``ratefit_controller_changes_total{resize_by}`` (the CRD's resizeBy)
+RESIZE_BY = ("Rollout", "InPlace")
+#: labels of the per-container CPU gauges. Not ``namespace``/``container``: a Kubernetes
+#: scrape attaches those to every series for the controller's own pod
+CPU_LABELS = ("workload_namespace", "workload", "workload_container")
+
+
+@dataclass(frozen=True)
+class CpuSample:
+    """One sized container after a pass, per pod, in millicores (None: unknown)."""
+
+    namespace: str
+    workload: str  # Kind/name, e.g. Deployment/web
+    container: str
+    request_m: int | None
+    demand_m: int | None
+    demand_bound_m: int | None
+
+
+class CpuCollector:
+    """The per-container CPU gauges, replaced as one snapshot per pass:
+    ``ratefit_controller_cpu_request_cores`` (the request now),
+    ``ratefit_controller_cpu_demand_cores`` (the model's demand at the current rate) and
+    ``ratefit_controller_cpu_demand_bound_cores`` (its upper band), per pod."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._samples: tuple[CpuSample, ...] = ()
+
+    def replace(self, samples: Iterable[CpuSample]) -> None:
+        snap = tuple(samples)
+        with self._lock:
+            self._samples = snap
+
+    @staticmethod
+    def _families() -> tuple[tuple[str, GaugeMetricFamily], ...]:
+        """(CpuSample field, empty family) for each gauge."""
+        return (
+            ("request_m", GaugeMetricFamily(
+                "ratefit_controller_cpu_request_cores",
+                "CPU request of the container now, per pod (cores).", labels=CPU_LABELS)),
+            ("demand_m", GaugeMetricFamily(
+                "ratefit_controller_cpu_demand_cores",
+                "CPU the container's model says it needs at its current rate, per pod (cores).", labels=CPU_LABELS)),
+            ("demand_bound_m", GaugeMetricFamily(
+                "ratefit_controller_cpu_demand_bound_cores",
+                "Upper band of that demand (demandBound), per pod (cores).", labels=CPU_LABELS)),
+        )
+
+    def describe(self) -> Iterator[GaugeMetricFamily]:
+        for _, fam in self._families():
+            yield fam
+
+    def collect(self) -> Iterator[GaugeMetricFamily]:
+        with self._lock:
+            snap = self._samples
+        for field, fam in self._families():
+            for s in snap:
+                v = getattr(s, field)
+                if v is not None:
+                    fam.add_metric([s.namespace, s.workload, s.container], v / 1000.0)
+            yield fam
 
 
 class Telemetry:
@@ -50,16 +118,19 @@ class Telemetry:
         )
         self.decisions = Counter(
             "ratefit_controller_decisions",
-            "Container decisions, by verdict and reason (why).",
-            ["verdict", "why"],
+            "Container decisions, by verdict and reason.",
+            ["verdict", "reason"],
             registry=r,
         )
-        self.patches = Counter(
-            "ratefit_controller_patches",
-            "Changes applied to the cluster, by method (rollout: template patch; in-place: pod resize).",
-            ["method"],
+        self.changes = Counter(
+            "ratefit_controller_changes",
+            "Changes applied to the cluster, by the policy's resizeBy: Rollout (one template patch) "
+            "or InPlace (one pod resize).",
+            ["resize_by"],
             registry=r,
         )
+        for how in RESIZE_BY:  # both series exist from the start, so increase() sees the first change
+            self.changes.labels(resize_by=how)
         self.patch_errors = Counter(
             "ratefit_controller_patch_errors",
             "Patches or resizes that failed, by error kind.",
@@ -76,9 +147,11 @@ class Telemetry:
             "Concurrent rollouts still allowed at the end of the last pass.",
             registry=r,
         )
-        self.metrics_errors = Counter(
-            "ratefit_controller_metrics_errors",
-            "Failed rate queries to the metrics source, by error kind.",
+        self.rate_query_errors = Counter(
+            "ratefit_controller_rate_query_errors",
+            "Rate queries to the metrics source that failed, by kind: the error (e.g. "
+            "PrometheusUnavailable, PromQLError; one per failed query) or NoMetrics (one per "
+            "container left without a usable rate).",
             ["kind"],
             registry=r,
         )
@@ -110,6 +183,8 @@ class Telemetry:
             "Unix time the last pass finished.",
             registry=r,
         )
+        self.cpu = CpuCollector()
+        r.register(self.cpu)
         self._lock = threading.Lock()
         self._ready = False
         self._alive: Callable[[], bool] = lambda: True
@@ -155,6 +230,11 @@ class Telemetry:
             return bool(self._alive())
         except Exception:  # a broken probe means "not alive", never a crash of the server
             return False
+
+    def set_cpu(self, samples: Iterable[CpuSample]) -> None:
+        """Replace the per-container CPU gauges with this pass's view (the leader calls it
+        after every pass; containers no longer sized disappear from /metrics)."""
+        self.cpu.replace(samples)
 
     def render(self) -> bytes:
         """The registry in the Prometheus text exposition format."""
@@ -208,13 +288,16 @@ class HealthServer:
 
     ``port=0`` picks a free port (read it back from :attr:`port`). Binds 127.0.0.1
     unless told otherwise; in a cluster pass ``host="0.0.0.0"`` so probes reach it.
+    The server is bounded (:mod:`ratefit.controller.bounded_http`): a connection cap,
+    a header deadline, header size and count limits, one request per connection.
     """
 
-    def __init__(self, telemetry: Telemetry, *, host: str = "127.0.0.1", port: int = 0) -> None:
+    def __init__(self, telemetry: Telemetry, *, host: str = "127.0.0.1", port: int = 0,
+                 limits: HttpLimits | None = None) -> None:
         self.telemetry = telemetry
         tel = telemetry
 
-        class Handler(BaseHTTPRequestHandler):
+        class Handler(BoundedHandler):
             def do_GET(self) -> None:  # noqa: N802 - stdlib naming
                 path = self.path.split("?", 1)[0]
                 if path == "/metrics":
@@ -236,12 +319,22 @@ class HealthServer:
                 self.end_headers()
                 self.wfile.write(body)
 
-            def log_message(self, format: str, *args: object) -> None:  # noqa: A002
-                pass  # probes every few seconds would flood the controller's log
-
-        self._server = ThreadingHTTPServer((host, port), Handler)
-        self._server.daemon_threads = True
+        self._server = BoundedHTTPServer((host, port), Handler, limits=limits)
         self._thread: threading.Thread | None = None
+
+    @property
+    def limits(self) -> HttpLimits:
+        return self._server.limits
+
+    @property
+    def active_connections(self) -> int:
+        """Connections being served now (at most ``limits.max_connections``)."""
+        return self._server.active_connections
+
+    @property
+    def refused_connections(self) -> int:
+        """Connections answered 503 because the cap was reached, since start."""
+        return self._server.refused
 
     @property
     def port(self) -> int:

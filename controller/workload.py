@@ -11,6 +11,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
+from ratefit.controller import crd
 from ratefit.controller.quantity import format_cpu, parse_cpu
 from ratefit.models.errors import InputError
 
@@ -36,6 +37,9 @@ __all__ = [
 
 #: Annotation on the workload holding what ``ratefit revert`` restores (DESIGN.md naming sheet).
 PREVIOUS_REQUESTS_ANNOTATION = "ratefit.dev/previous-requests"
+#: Annotation written with a change: when ratefit last changed the workload (the cooldown
+#: survives a crash before the status write).
+LAST_CHANGE_ANNOTATION = "ratefit.dev/last-change"
 
 
 class WorkloadKind(str, enum.Enum):
@@ -232,7 +236,7 @@ class PolicyObject:
 
     @property
     def ref(self) -> ObjectRef:
-        return ObjectRef("ratefit.dev/v1alpha1", "SizingPolicy", self.namespace, self.name, self.uid or None)
+        return ObjectRef(crd.API_VERSION, crd.KIND, self.namespace, self.name, self.uid or None)
 
 
 @dataclass(frozen=True, slots=True)

@@ -45,9 +45,9 @@ log = logging.getLogger("ratefit.api")
 
 DESCRIPTION = """\
 Serves learned demand curves (request rate per pod → CPU millicores) from a ratefit
-model store. Answers are rounded up to whole millicores; `upper_m` is the upper band
-(demand + a split-conformal quantile at the model's coverage); `extrapolated` says the
-rate lies outside the trained range. With a token, send `Authorization: Bearer <token>`.
+model store. Answers are rounded up to whole millicores; `demand_bound_m` is the upper
+bound of the demand (demand + a split-conformal quantile at the model's coverage);
+`extrapolated` says the rate lies outside the trained range. With a token, send `Authorization: Bearer <token>`.
 """
 
 
@@ -115,7 +115,7 @@ def create_app(
     async def _http(request: Request, exc: StarletteHTTPException) -> FastJSON:
         detail = exc.detail if isinstance(exc.detail, str) else str(exc.detail)
         if exc.status_code == 404 and detail == "Not Found":
-            detail = f"no route {request.url.path!r}: see /docs for the routes"
+            detail = "no such route: see /docs for the routes"  # the path is not echoed
         return FastJSON(error_body(detail), status_code=exc.status_code, headers=getattr(exc, "headers", None))
 
     def openapi() -> dict[str, Any]:

@@ -9,6 +9,7 @@ telemetry middleware and answers the *plain success case* itself:
 - ``GET``, path ``/v1/models/<ns>/<wl>/<ct>/demand`` whose key is loaded (a loaded key
   passed the Kubernetes name checks when its artifact was read; the length limits of
   the path parameters are checked again here);
+- an answer within the physical bound (``models.sanity.MAX_CORES``);
 - query string exactly ``rate=<decimal number>`` (digits, '.', and an exponent
   ``e``/``e-``; no sign, no '+' — a space in a query string —, no NaN/inf spelling, no
   percent-encoding), finite and at most ``MAX_RATE``;
@@ -30,7 +31,7 @@ from types import SimpleNamespace
 from typing import Any
 
 from ratefit.models.api_metrics import ApiMetrics
-from ratefit.models.api_routes import DEMAND_ROUTE, _dumps, demand_answer
+from ratefit.models.api_routes import DEMAND_ROUTE, OutOfRange, _dumps, demand_answer
 from ratefit.models.api_schemas import MAX_RATE
 from ratefit.models.api_state import ApiState
 
@@ -95,4 +96,7 @@ class DemandFastPath:
         rate = float(match.group(1))
         if not (math.isfinite(rate) and rate <= MAX_RATE):
             return None
-        return _dumps(demand_answer(served, rate, self.metrics))
+        try:
+            return _dumps(demand_answer(served, rate, self.metrics))
+        except OutOfRange:  # the FastAPI route gives the documented 422
+            return None

@@ -29,6 +29,7 @@ from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram
 from prometheus_client.exposition import CONTENT_TYPE_LATEST, generate_latest
 
 from ratefit.models.api_state import ApiState
+from ratefit.models.store import REFUSAL_REASONS
 
 __all__ = ["ApiMetrics", "TelemetryMiddleware", "CONTENT_TYPE_LATEST"]
 
@@ -83,13 +84,23 @@ class ApiMetrics:
             self.reloads.labels(result)
         self.models_loaded = Gauge("ratefit_api_models_loaded", "Models being served.", registry=r)
         self.models_refused = Gauge(
-            "ratefit_api_artifacts_refused",
-            "Artifact files refused at the last successful load (corrupt, truncated, edited).",
+            "ratefit_api_models_refused",
+            "Store files refused at the last load, by reason (not_regular_file, too_large, unreadable, "
+            "corrupt, absurd_values, wrong_place); each refusal is also a log line.",
+            ["reason"],
             registry=r,
         )
-        self.store_age = Gauge(
-            "ratefit_api_store_age_seconds",
-            "Seconds since the store being served was loaded (-1 before the first load).",
+        self.invalid = Counter(
+            "ratefit_api_lookups_invalid",
+            "Batch items answered with an error for their own input (a bad model key or rate), by reason.",
+            ["reason"],
+            registry=r,
+        )
+        self.connections_refused = Counter(
+            "ratefit_api_connections_refused",
+            "Connections refused or closed by the server's limits, by reason (header_bytes, header_count, "
+            "request_timeout, max_connections).",
+            ["reason"],
             registry=r,
         )
         self.store_loaded = Gauge(
@@ -105,9 +116,12 @@ class ApiMetrics:
 
             return value
 
+        def _refused_for(reason: str) -> Callable[[Any], float]:
+            return lambda s: float(sum(1 for x in s.refused if x.reason == reason))
+
         self.models_loaded.set_function(_snap_value(lambda s: float(len(s)), 0.0))
-        self.models_refused.set_function(_snap_value(lambda s: float(len(s.refused)), 0.0))
-        self.store_age.set_function(_snap_value(lambda s: time.monotonic() - s.loaded_mono, -1.0))
+        for reason in REFUSAL_REASONS:
+            self.models_refused.labels(reason).set_function(_snap_value(_refused_for(reason), 0.0))
         self.store_loaded.set_function(_snap_value(lambda s: s.loaded_at, 0.0))
         self._children: dict[tuple[str, str, int], tuple[Any, Any]] = {}
 

@@ -16,19 +16,22 @@ import hmac
 from typing import Annotated, Any
 
 import numpy as np
+import pydantic_core
 from fastapi import APIRouter, Depends, HTTPException, Path, Query, Request
 from fastapi.concurrency import run_in_threadpool
 from fastapi.responses import HTMLResponse, JSONResponse, Response
-from pydantic import ValidationError
+from pydantic import TypeAdapter, ValidationError
 
 from ratefit.models.api_metrics import CONTENT_TYPE_LATEST, ApiMetrics
 from ratefit.models.api_schemas import (
     BYTES_PER_ITEM,
+    MAX_CORES,
     MAX_RATE,
     NAME_LABEL_PATTERN,
     NAME_SUBDOMAIN_PATTERN,
     ApiSettings,
     DemandBatchOut,
+    DemandItemIn,
     DemandOut,
     ErrorOut,
     HealthOut,
@@ -40,8 +43,8 @@ from ratefit.models.api_schemas import (
 )
 from ratefit.models.api_state import ApiState, ReloadReport, ServedModel, ServingSnapshot
 from ratefit.models.curve import to_millicores
-from ratefit.models.errors import InputError, UnknownModel
-from ratefit.models.keys import parse_key
+from ratefit.models.errors import InputError
+from ratefit.models.keys import is_key
 
 try:  # orjson is a dependency; the fallback keeps the app importable without it
     import orjson
@@ -116,7 +119,7 @@ def describe_errors(errors: list[dict[str, Any]], *, prefix: str | None = None) 
     The offending input is never echoed (it may be huge or not JSON-encodable)."""
     out = []
     for err in errors:
-        loc = [str(p) for p in err.get("loc", ())]
+        loc = [_loc_part(p) for p in err.get("loc", ())]
         where = ""
         if loc and loc[0] in ("query", "path", "header", "body"):
             where = loc.pop(0)
@@ -136,6 +139,28 @@ def describe_errors(errors: list[dict[str, Any]], *, prefix: str | None = None) 
     return out
 
 
+def _loc_part(part: object) -> str:
+    """A location part as shown in ``field``: a field name the client sent is cut to 64
+    printable characters (a hostile name is never echoed in full)."""
+    text = str(part)
+    if len(text) > 64 or not text.isprintable():
+        text = "".join(c if c.isprintable() else "?" for c in text[:64]) + ("…" if len(text) > 64 else "")
+    return text
+
+
+#: the message of every "no model" answer: it never repeats the key (the client has it)
+NO_MODEL = "no model is loaded for this key: train it (ratefit train) and reload the API (POST /v1/reload)"
+#: the message of a demand beyond the physical bound
+OUT_OF_RANGE = (
+    f"the curve, extrapolated to this rate, needs more than {MAX_CORES:g} cores: the rate lies far "
+    "beyond the trained range; retrain with data that covers it"
+)
+
+
+class OutOfRange(InputError):
+    """The demand at the asked rate exceeds ``MAX_CORES`` (an extrapolation gone far)."""
+
+
 def error_body(message: str, errors: list[dict[str, str]] | None = None, **extra: Any) -> dict[str, Any]:
     return {"error": message, "errors": errors or [], **extra}
 
@@ -147,41 +172,117 @@ def validation_response(errors: list[dict[str, str]]) -> FastJSON:
 
 
 # -- helpers -------------------------------------------------------------------------------
-def _refused(snap: ServingSnapshot) -> list[dict[str, Any]]:
-    return [{"file": r.file, "error": r.error, "kept_previous": r.kept_previous} for r in snap.refused]
-
-
 def demand_answer(served: ServedModel, rate: float, metrics: ApiMetrics) -> dict[str, Any]:
-    """The answer of ``GET …/demand`` (shared with ``api_fastpath``); counts the lookup."""
-    demand, upper, extrapolated = served.curve.lookup_one(rate)
+    """The answer of ``GET …/demand`` (shared with ``api_fastpath``); counts the lookup.
+    Raises OutOfRange when the demand bound exceeds ``MAX_CORES``."""
+    demand, bound, extrapolated = served.curve.lookup_one(rate)
+    if not bound <= MAX_CORES:
+        raise OutOfRange(OUT_OF_RANGE)
     metrics.lookups.inc()
     if extrapolated:
         metrics.extrapolated.inc()
     return {
         "model": served.key,
         "rate": rate,
-        "cpu_m": to_millicores(demand),
-        "upper_m": to_millicores(upper),
+        "demand_m": to_millicores(demand),
+        "demand_bound_m": to_millicores(bound),
         "extrapolated": extrapolated,
         "version": served.version,
     }
+
+
+def _refused_list(refused: Any) -> list[dict[str, Any]]:
+    return [{"file": r.file, "error": r.error, "reason": r.reason, "kept_previous": r.kept_previous} for r in refused]
 
 
 def reload_body(report: ReloadReport) -> dict[str, Any]:
     snap = report.snapshot
     return {
         "ok": report.ok,
-        "version": snap.version if snap is not None else None,
-        "previous_version": report.previous_version,
-        "models": len(snap) if snap is not None else 0,
+        "store_version": snap.version if snap is not None else None,
+        "previous_store_version": report.previous_version,
+        "model_count": len(snap) if snap is not None else 0,
         "added": report.added,
         "removed": report.removed,
         "changed": report.changed,
         "unchanged": report.unchanged,
-        "refused": [{"file": r.file, "error": r.error, "kept_previous": r.kept_previous} for r in report.refused],
+        "refused": _refused_list(report.refused),
         "seconds": round(report.seconds, 6),
         "error": report.error,
     }
+
+
+_ITEM = TypeAdapter(DemandItemIn)
+
+
+def _item_error(i: int, raw: object, field: str, reason: str, message: str) -> dict[str, Any]:
+    """A batch answer entry for an item that gets no demand. The request's model and rate
+    are repeated only when valid, so that a hostile value is never echoed."""
+    model = raw.get("model") if isinstance(raw, dict) else None
+    rate = raw.get("rate") if isinstance(raw, dict) else None
+    ok_rate = (
+        isinstance(rate, (int, float)) and not isinstance(rate, bool) and 0 <= rate <= MAX_RATE
+    )
+    return {
+        "model": model if is_key(model) else None,
+        "rate": float(rate) if ok_rate else None,  # type: ignore[arg-type]
+        "error": message,
+        "reason": reason,
+        "field": field,
+    }
+
+
+def _lenient_items(raw: bytes, max_items: int) -> tuple[list[Any], dict[int, dict[str, Any]]] | FastJSON:
+    """The slow path of ``POST /v1/demand``, taken only when the strict parse failed: the
+    body as a whole must be ``{"items": [...]}`` with at most ``max_items`` items (else
+    422), then each item is checked on its own. Returns the items (None where invalid)
+    and the error entries by index."""
+    try:
+        doc = pydantic_core.from_json(raw)
+    except ValueError:
+        return validation_response([{"field": "body", "message": "is not valid JSON", "type": "json_invalid"}])
+    if not isinstance(doc, dict):
+        return validation_response(
+            [{"field": "body", "message": 'must be a JSON object {"items": [...]}', "type": "model_type"}]
+        )
+    errors = [
+        {"field": _loc_part(k), "message": "is not a known field (check the spelling)", "type": "extra_forbidden"}
+        for k in doc
+        if k != "items"
+    ]
+    items = doc.get("items")
+    if "items" not in doc:
+        errors.append({"field": "items", "message": "is required", "type": "missing"})
+    elif not isinstance(items, list):
+        errors.append({"field": "items", "message": "must be a list of {model, rate}", "type": "list_type"})
+    elif len(items) > max_items:
+        errors.append(
+            {"field": "items", "message": f"at most {max_items} items per request: split the batch", "type": "too_long"}
+        )
+    if errors:
+        return validation_response(errors[:20])  # a body of a million unknown fields: 20 are enough
+    assert isinstance(items, list)
+    good: list[Any] = []
+    bad: dict[int, dict[str, Any]] = {}
+    for i, item in enumerate(items):
+        try:
+            good.append(_ITEM.validate_python(item, strict=True))
+        except ValidationError as exc:
+            first = describe_errors(
+                exc.errors(include_url=False, include_input=False, include_context=False), prefix=None
+            )[0]
+            loc = first["field"]
+            if not isinstance(item, dict):
+                reason, where = "invalid_item", f"items.{i}"
+            elif loc == "rate":
+                reason, where = "invalid_rate", f"items.{i}.rate"
+            elif loc == "model":
+                reason, where = "invalid_model", f"items.{i}.model"
+            else:
+                reason, where = "invalid_item", f"items.{i}.{loc}" if loc != "body" else f"items.{i}"
+            bad[i] = _item_error(i, item, where, reason, f"{where}: {first['message']}")
+            good.append(None)
+    return good, bad
 
 
 async def _read_body(request: Request, limit: int) -> bytes:
@@ -196,6 +297,19 @@ async def _read_body(request: Request, limit: int) -> bytes:
             raise HTTPException(status_code=413, detail=f"items: request body over {limit} bytes; split the batch")
         chunks.append(chunk)
     return b"".join(chunks)
+
+
+def _require_json(request: Request) -> None:
+    """415 unless the body is declared JSON (``application/json`` or ``application/*+json``,
+    parameters such as charset allowed): a text/plain or undeclared body is never parsed."""
+    declared = request.headers.get("content-type")
+    media = (declared or "").split(";", 1)[0].strip().lower()
+    if media == "application/json" or (media.startswith("application/") and media.endswith("+json")):
+        return
+    raise HTTPException(
+        status_code=415,
+        detail="body: send it as JSON with 'Content-Type: application/json'",
+    )
 
 
 DEMAND_ROUTE = "/v1/models/{namespace}/{workload}/{container}/demand"
@@ -236,8 +350,12 @@ def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
     async def readyz(state: Annotated[ApiState, Depends(get_state)]) -> Response:
         snap = state.snapshot
         if snap is None:
-            return FastJSON({"ready": False, "models": 0, "version": None, "refused": 0}, status_code=503)
-        return FastJSON({"ready": True, "models": len(snap), "version": snap.version, "refused": len(snap.refused)})
+            return FastJSON(
+                {"ready": False, "model_count": 0, "store_version": None, "refused_count": 0}, status_code=503
+            )
+        return FastJSON(
+            {"ready": True, "model_count": len(snap), "store_version": snap.version, "refused_count": len(snap.refused)}
+        )
 
     @protected.get("/metrics", tags=["probes"], summary="Prometheus exposition", response_class=Response)
     async def metrics(m: Annotated[ApiMetrics, Depends(get_metrics)]) -> Response:
@@ -247,14 +365,14 @@ def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
     async def list_models(state: Annotated[ApiState, Depends(get_state)]) -> Response:
         snap = _snapshot(state)
         # the summaries are pre-rendered JSON (see api_state.ServedModel): join, don't re-encode
-        head = _dumps({"version": snap.version, "loaded_at": snap.loaded_at})[:-1]
+        head = _dumps({"store_version": snap.version, "loaded_at": snap.loaded_at, "model_count": len(snap)})[:-1]
         body = b"".join(
             (
                 head,
                 b',"models":[',
                 b",".join(m.summary_json for m in snap.models.values()),
                 b'],"refused":',
-                _dumps(_refused(snap)),
+                _dumps(_refused_list(snap.refused)),
                 b"}",
             )
         )
@@ -274,7 +392,7 @@ def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
         key = f"{namespace}/{workload}/{container}"
         served = snap.models.get(key)
         if served is None:
-            return FastJSON(error_body(str(UnknownModel(key)), model=key), status_code=404)
+            return FastJSON(error_body(NO_MODEL, model=key), status_code=404)
         return Response(served.detail_json, media_type="application/json")
 
     @protected.get(
@@ -299,19 +417,26 @@ def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
         served = snap.models.get(key)
         if served is None:
             m.unknown.inc()
-            return FastJSON(error_body(str(UnknownModel(key)), model=key), status_code=404)
-        return FastJSON(demand_answer(served, rate, m))
+            return FastJSON(error_body(NO_MODEL, model=key), status_code=404)
+        try:
+            return FastJSON(demand_answer(served, rate, m))
+        except OutOfRange as exc:
+            return validation_response([{"field": "rate (query)", "message": str(exc), "type": "out_of_range"}])
 
     @protected.post(
         "/v1/demand",
         response_model=DemandBatchOut,
         tags=["demand"],
-        summary="CPU demand for a batch of (model, rate), answered in request order",
+        summary="CPU demand for a batch of (model, rate), answered item by item in request order",
         description=(
             f"At most {settings.max_batch} items. One vectorised lookup answers the whole batch. "
-            "An item whose key has no model gets an `error` field instead of the demand fields; "
-            "the other items are answered as usual. A malformed item (bad key syntax, a rate that "
-            "is not a finite number >= 0) fails the whole request with 422 naming `items.<i>.<field>`."
+            "Every item is answered on its own: an item with a problem of its own (no model for the "
+            "key, a key that is not 'namespace/workload/container' in Kubernetes name syntax, a rate "
+            "that is not a finite number >= 0, a demand beyond the physical bound) gets `error`, "
+            "`reason` and `field` instead of the demand fields, and the other items are answered as "
+            "usual. Only a body that is malformed as a whole (not JSON, not an object with an "
+            "`items` list, too many items) is refused with 422; a body that is not JSON-typed "
+            "(Content-Type other than application/json) with 415."
         ),
         openapi_extra={
             "requestBody": {
@@ -319,72 +444,108 @@ def build_routers(settings: ApiSettings) -> tuple[APIRouter, APIRouter]:
                 "content": {"application/json": {"schema": {"$ref": "#/components/schemas/DemandBatchIn"}}},
             }
         },
-        responses={413: {"model": ErrorOut, "description": "the body is too large for the batch cap"}},
+        responses={
+            413: {"model": ErrorOut, "description": "the body is too large for the batch cap"},
+            415: {"model": ErrorOut, "description": "the body is not declared as application/json"},
+        },
     )
     async def demand_batch(request: Request) -> Response:
         snap = _snapshot(request.app.state.api_state)
         m: ApiMetrics = request.app.state.metrics
+        _require_json(request)
         raw = await _read_body(request, body_limit)
+        bad: dict[int, dict[str, Any]] = {}
         try:
             parsed = batch_in.model_validate_json(raw)
-        except ValidationError as exc:
-            return validation_response(
-                describe_errors(exc.errors(include_url=False, include_input=False, include_context=False))
-            )
-        items: list[dict[str, Any]] = parsed.items  # type: ignore[attr-defined]
+            items: list[Any] = parsed.items  # type: ignore[attr-defined]
+        except ValidationError:
+            lenient = _lenient_items(raw, settings.max_batch)
+            if isinstance(lenient, Response):
+                return lenient
+            items, bad = lenient
         n = len(items)
-        keys = [it["model"] for it in items]
-        rates = [it["rate"] for it in items]
+        keys = [it["model"] if it is not None else "" for it in items]
+        rates = [it["rate"] if it is not None else 0.0 for it in items]
         bank = snap.bank
         get_row = bank.index.get
         rows_list = [get_row(k, -1) for k in keys]
         rows = np.array(rows_list, dtype=np.int64)
         versions = snap.row_versions
-        if n and min(rows_list) >= 0:  # the usual case: every key known, no index juggling
+        out: list[dict[str, Any] | None]
+        if n and not bad and min(rows_list) >= 0:  # the usual case: every key known, no index juggling
             known = np.arange(n)
             look = bank.lookup(rows, np.array(rates, dtype=float))
-            cpu_m, upper_m = look.millicores()
+            demand_m, bound_m = look.millicores()
             ext = look.extrapolated
-            out: list[dict[str, Any] | None] = [
-                {"model": k, "rate": r, "cpu_m": c, "upper_m": u, "extrapolated": e, "version": versions[row]}
-                for k, r, row, c, u, e in zip(keys, rates, rows_list, cpu_m.tolist(), upper_m.tolist(), ext.tolist())
+            over = look.upper > MAX_CORES
+            out = [
+                {"model": k, "rate": r, "demand_m": c, "demand_bound_m": u, "extrapolated": e, "version": versions[row]}
+                for k, r, row, c, u, e in zip(keys, rates, rows_list, demand_m.tolist(), bound_m.tolist(), ext.tolist())
             ]
         else:
             known = np.flatnonzero(rows >= 0)
             out = [None] * n
+            ext = np.zeros(0, dtype=bool)
+            over = np.zeros(0, dtype=bool)
             if known.size:
                 look = bank.lookup(rows[known], np.asarray(rates, dtype=float)[known])
-                cpu_m, upper_m = look.millicores()
+                demand_m, bound_m = look.millicores()
                 ext = look.extrapolated
+                over = look.upper > MAX_CORES
                 for i, row, c, u, e in zip(
-                    known.tolist(), rows[known].tolist(), cpu_m.tolist(), upper_m.tolist(), ext.tolist()
+                    known.tolist(), rows[known].tolist(), demand_m.tolist(), bound_m.tolist(), ext.tolist()
                 ):
                     out[i] = {
                         "model": keys[i],
                         "rate": rates[i],
-                        "cpu_m": c,
-                        "upper_m": u,
+                        "demand_m": c,
+                        "demand_bound_m": u,
                         "extrapolated": e,
                         "version": versions[row],
                     }
+        n_over = int(np.count_nonzero(over)) if known.size else 0
+        if n_over:
+            for j in np.flatnonzero(over).tolist():
+                i = int(known[j])
+                out[i] = {
+                    "model": keys[i],
+                    "rate": rates[i],
+                    "error": OUT_OF_RANGE,
+                    "reason": "out_of_range",
+                    "field": f"items.{i}.rate",
+                }
+            m.invalid.labels("out_of_range").inc(n_over)
         if known.size:
-            m.lookups.inc(int(known.size))
-            n_ext = int(np.count_nonzero(ext))
+            m.lookups.inc(int(known.size) - n_over)
+            n_ext = int(np.count_nonzero(ext & ~over))
             if n_ext:
                 m.extrapolated.inc(n_ext)
         if known.size != n:
-            bad: list[dict[str, str]] = []
+            unknown = 0
             for i in np.flatnonzero(rows < 0).tolist():
-                key = keys[i]
-                try:
-                    parse_key(key, field=f"items.{i}.model")  # the regex lets over-long parts through
-                except InputError as exc:
-                    bad.append({"field": f"items.{i}.model", "message": str(exc), "type": "key_syntax"})
+                if i in bad:
+                    out[i] = bad[i]
+                    m.invalid.labels(bad[i]["reason"]).inc()
                     continue
-                out[i] = {"model": key, "rate": rates[i], "error": str(UnknownModel(key))}
-            if bad:
-                return validation_response(bad)
-            m.unknown.inc(n - int(known.size))
+                key = keys[i]
+                if not is_key(key):  # the pattern lets an over-long workload part through
+                    out[i] = _item_error(
+                        i, items[i], f"items.{i}.model", "invalid_model",
+                        f"items.{i}.model: the workload part is longer than 253 characters "
+                        "(Kubernetes DNS subdomain)",
+                    )
+                    m.invalid.labels("invalid_model").inc()
+                    continue
+                out[i] = {
+                    "model": key,
+                    "rate": rates[i],
+                    "error": NO_MODEL,
+                    "reason": "unknown_model",
+                    "field": f"items.{i}.model",
+                }
+                unknown += 1
+            if unknown:
+                m.unknown.inc(unknown)
         return FastJSON({"items": out})
 
     @protected.post(

@@ -24,12 +24,15 @@ from typing import Annotated, Any
 from pydantic import BaseModel, ConfigDict, Field, SecretStr, create_model, with_config
 from typing_extensions import TypedDict
 
-from ratefit.models.keys import KEY_PATTERN
+from ratefit.models.keys import KEY_PATTERN, LABEL_PATTERN, MAX_KEY_LENGTH, SUBDOMAIN_PATTERN
+from ratefit.models.sanity import MAX_CORES, MAX_RATE
 
 __all__ = [
     "ApiSettings",
     "DEFAULT_MAX_BATCH",
     "MAX_RATE",
+    "MAX_CORES",
+    "ITEM_ERROR_REASONS",
     "NAME_LABEL_PATTERN",
     "NAME_SUBDOMAIN_PATTERN",
     "DemandItemIn",
@@ -51,23 +54,21 @@ __all__ = [
 
 #: default cap on the number of items in one ``POST /v1/demand``
 DEFAULT_MAX_BATCH = 50_000
-#: largest accepted rate, req/s per pod. A billion requests per second on one pod is
-#: far beyond any real server (common practice, no source); the cap keeps extrapolated
-#: answers inside int64 millicores.
-MAX_RATE = 1e9
 #: JSON bytes allowed per batch item when bounding the request body (a maximal key is
 #: 381 characters; common practice, no source)
 BYTES_PER_ITEM = 512
 
-_LABEL = r"[a-z0-9]([-a-z0-9]*[a-z0-9])?"
 #: RFC 1123 DNS label (namespace, container), Kubernetes docs "Object Names and IDs"
-NAME_LABEL_PATTERN = rf"^{_LABEL}$"
+NAME_LABEL_PATTERN = LABEL_PATTERN
 #: RFC 1123 DNS subdomain (workload name), same source
-NAME_SUBDOMAIN_PATTERN = rf"^{_LABEL}(\.{_LABEL})*$"
+NAME_SUBDOMAIN_PATTERN = SUBDOMAIN_PATTERN
 
 EXAMPLE_KEY = "shop/checkout/app"
-# A key is at most 63 + 1 + 253 + 1 + 63 characters (label / subdomain / label).
-KeyStr = Annotated[str, Field(pattern=KEY_PATTERN, min_length=5, max_length=381, examples=[EXAMPLE_KEY])]
+# The pattern has no look-ahead (pydantic's regex engine has none): the 253-character
+# cap of the workload is checked by ``models.keys.parse_key`` after it.
+KeyStr = Annotated[
+    str, Field(pattern=KEY_PATTERN, min_length=5, max_length=MAX_KEY_LENGTH, examples=[EXAMPLE_KEY])
+]
 Rate = Annotated[
     float,
     Field(
@@ -79,6 +80,9 @@ Rate = Annotated[
         examples=[120.0],
     ),
 ]
+
+#: why one batch item was answered with an error instead of a demand
+ITEM_ERROR_REASONS = ("unknown_model", "invalid_model", "invalid_rate", "invalid_item", "out_of_range")
 
 
 class ApiSettings(BaseModel):
@@ -144,8 +148,8 @@ class DemandOut(BaseModel):
                 {
                     "model": EXAMPLE_KEY,
                     "rate": 120.0,
-                    "cpu_m": 412,
-                    "upper_m": 468,
+                    "demand_m": 412,
+                    "demand_bound_m": 468,
                     "extrapolated": False,
                     "version": "3f9a0c41d2be",
                 }
@@ -153,32 +157,44 @@ class DemandOut(BaseModel):
         }
     )
 
-    model: str = Field(description="the key, namespace/workload/container")
+    model: str = Field(description="the model key, namespace/workload/container")
     rate: float = Field(description="the rate asked about, req/s per pod")
-    cpu_m: int = Field(description="expected CPU demand at that rate, millicores (rounded up)")
-    upper_m: int = Field(description="upper band at that rate (demand + conformal band), millicores")
+    demand_m: int = Field(description="expected CPU demand at that rate, millicores (rounded up)")
+    demand_bound_m: int = Field(
+        description="upper bound of the demand at that rate (demand + conformal band), millicores"
+    )
     extrapolated: bool = Field(description="the rate lies outside the trained range")
-    version: str = Field(description="content version of the artifact that answered")
+    version: str = Field(description="content version of the model (artifact) that answered")
 
 
 class DemandItemOut(BaseModel):
-    """One answer of a batch: the fields of ``DemandOut``, or ``error`` for an unknown key."""
+    """One answer of a batch: the fields of ``DemandOut``, or ``error`` (with ``reason``
+    and ``field``) for that item alone. ``model`` and ``rate`` repeat the request's
+    values only when they are valid (an invalid value is never echoed: null)."""
 
     model_config = ConfigDict(
         json_schema_extra={
             "examples": [
-                {"model": "shop/gone/app", "rate": 3.0, "error": "no model for 'shop/gone/app'"},
+                {
+                    "model": "shop/gone/app",
+                    "rate": 3.0,
+                    "error": "no model is loaded for this key: train it (ratefit train) and reload the API",
+                    "reason": "unknown_model",
+                    "field": "items.1.model",
+                },
             ]
         }
     )
 
-    model: str
-    rate: float
-    cpu_m: int | None = None
-    upper_m: int | None = None
+    model: str | None
+    rate: float | None
+    demand_m: int | None = None
+    demand_bound_m: int | None = None
     extrapolated: bool | None = None
     version: str | None = None
-    error: str | None = Field(None, description="set (and the demand fields absent) when the key has no model")
+    error: str | None = Field(None, description="set (and the demand fields absent) when this item has no answer")
+    reason: str | None = Field(None, description="why: " + ", ".join(ITEM_ERROR_REASONS))
+    field: str | None = Field(None, description="the request field at fault, e.g. items.3.rate")
 
 
 class DemandBatchOut(BaseModel):
@@ -186,11 +202,11 @@ class DemandBatchOut(BaseModel):
 
 
 class ModelSummary(BaseModel):
-    key: str = Field(examples=[EXAMPLE_KEY])
+    model: str = Field(description="the model key, namespace/workload/container", examples=[EXAMPLE_KEY])
     chosen: str = Field(description="the estimator the cross-validation chose", examples=["isotonic"])
     rate_range: tuple[float, float] = Field(description="trained rate range, req/s per pod")
     coverage: float = Field(description="coverage of the upper band on unseen data", examples=[0.95])
-    version: str = Field(examples=["3f9a0c41d2be"])
+    version: str = Field(description="content version of this model", examples=["3f9a0c41d2be"])
     trained_at: str
 
 
@@ -210,23 +226,30 @@ class ModelDetail(ModelSummary):
 class RefusedFile(BaseModel):
     file: str = Field(description="path inside the store", examples=["shop/checkout/app.json"])
     error: str
+    reason: str = Field(
+        description="not_regular_file, too_large, unreadable, corrupt, absurd_values or wrong_place",
+        examples=["corrupt"],
+    )
     kept_previous: bool = Field(
         False, description="the last good version of this key (from before the reload) is still served"
     )
 
 
 class ModelList(BaseModel):
-    version: str | None = Field(description="version of the loaded store (changes when any artifact changes)")
+    store_version: str | None = Field(
+        description="version of the loaded store (changes when any model changes)"
+    )
     loaded_at: float | None = Field(description="when the store was loaded, Unix seconds")
+    model_count: int = Field(description="number of models served")
     models: list[ModelSummary]
     refused: list[RefusedFile]
 
 
 class ReloadOut(BaseModel):
     ok: bool = Field(description="false when the store could not be read at all (the old set keeps serving)")
-    version: str | None
-    previous_version: str | None
-    models: int
+    store_version: str | None
+    previous_store_version: str | None
+    model_count: int
     added: int
     removed: int
     changed: int
@@ -242,9 +265,9 @@ class HealthOut(BaseModel):
 
 class ReadyOut(BaseModel):
     ready: bool
-    models: int
-    version: str | None
-    refused: int
+    model_count: int
+    store_version: str | None
+    refused_count: int
 
 
 class FieldError(BaseModel):

@@ -18,8 +18,11 @@ reload reads and verifies again only the files whose (inode, size, mtime) change
 since the last load: ``ModelStore.save`` replaces a file by rename, so any rewrite is a
 new inode; a restart verifies everything.
 
-Refusals. A file that does not load (corrupt, truncated, edited, wrong key) is never
-served. If the key was served before the reload, its last good artifact is kept (the
+Refusals. A file that does not load (corrupt, truncated, edited, wrong key, absurd
+numbers, not a regular file, too large: see ``models.store``) is never served, and
+never stops the others from being served — at start-up as on a reload. Each refusal
+carries its ``reason``; messages name the file by its place inside the store, never
+by an absolute path. If the key was served before the reload, its last good artifact is kept (the
 answer and the log say ``kept_previous``): a damaged file must not take a working
 model away from the controller — an SRE can fix or retrain it without an outage. A
 key whose file was removed is dropped.
@@ -42,7 +45,7 @@ from typing import Any
 
 from ratefit.models.curve import CurveBank, DemandCurve, to_millicores
 from ratefit.models.errors import ArtifactError, RatefitError
-from ratefit.models.store import Artifact, ModelStore, parse_artifact
+from ratefit.models.store import Artifact, ArtifactRefused, ModelStore
 
 __all__ = ["ServedModel", "ServingSnapshot", "ReloadReport", "Refusal", "ApiState", "StoreUnreadable", "build_snapshot"]
 
@@ -58,6 +61,8 @@ class Refusal:
     file: str
     error: str
     kept_previous: bool = False
+    #: one of ``models.store.REFUSAL_REASONS``
+    reason: str = "corrupt"
 
 
 @dataclass(frozen=True, slots=True)
@@ -76,10 +81,10 @@ class ServedModel:
     @classmethod
     def from_artifact(cls, art: Artifact, *, file_stat: tuple[int, int, int] = (0, 0, 0)) -> ServedModel:
         described = art.describe()
-        summary = {k: described[k] for k in ("key", "chosen", "rate_range", "coverage", "version", "trained_at")}
+        summary = {k: described[k] for k in ("model", "chosen", "rate_range", "coverage", "version", "trained_at")}
         detail = {
             **described,
-            "band_m": to_millicores(art.curve.band),
+            "band_m": to_millicores(art.curve.band),  # bounded by models.sanity: never huge
             "content_hash": art.content_hash,
         }
         return cls(
@@ -136,17 +141,14 @@ class ReloadReport:
         return "partial" if self.refused else "ok"
 
 
-def _expected_key(path: Path) -> str:
-    return f"{path.parent.parent.name}/{path.parent.name}/{path.stem}"
-
-
 def build_snapshot(
     store: ModelStore, *, previous: ServingSnapshot | None = None, generation: int = 0
 ) -> ServingSnapshot:
     """Load every artifact of ``store`` into a new snapshot (see the module docstring).
 
-    The checks are those of ``ModelStore.load_all`` (``parse_artifact``, and the key
-    inside the file must match its place), one file at a time."""
+    The checks are those of ``ModelStore.load_all`` (``ModelStore.load_entry``: only
+    regular files, size cap, hash, schema, sane values, the key inside the file must
+    match its place), one file at a time."""
     if not store.root.is_dir():
         raise StoreUnreadable(
             f"model store {str(store.root)!r} is not a directory: create it, or point --store at "
@@ -156,33 +158,31 @@ def build_snapshot(
     before = previous.models if previous is not None else {}
     models: dict[str, ServedModel] = {}
     refused: list[Refusal] = []
-    failed: list[tuple[str, str, str]] = []
-    for path in store.files():
-        rel = str(path.relative_to(store.root))
-        key = _expected_key(path)
-        old = before.get(key)
+    failed: list[tuple[str, str, str, str]] = []
+    for entry in store.entries():
+        key = entry.key
+        old = before.get(key) if key else None
+        if entry.refusal is None and old is not None and old.file_stat == entry.file_stat:
+            models[key] = old  # the very file read last time: nothing to verify again
+            continue
         try:
-            st = path.stat()
-            file_stat = (st.st_ino, st.st_size, st.st_mtime_ns)
-            if old is not None and old.file_stat == file_stat:
-                models[key] = old  # the very file read last time: nothing to verify again
-                continue
-            art = parse_artifact(path.read_bytes(), origin=str(path))
-            if art.key != key:
-                raise ArtifactError(f"{path}: holds key {art.key!r} but lies at the place of {key!r}")
-        except (ArtifactError, OSError) as exc:
-            failed.append((rel, key, str(exc)))
+            art, file_stat = store.load_entry(entry)
+        except ArtifactRefused as exc:
+            failed.append((entry.rel, key, str(exc), exc.reason))
+            continue
+        except (ArtifactError, OSError, ValueError, RecursionError) as exc:  # belt and braces: one file only
+            failed.append((entry.rel, key, f"{entry.rel}: cannot be loaded ({type(exc).__name__})", "unreadable"))
             continue
         if old is not None and old.version == art.version:
             models[key] = dataclasses.replace(old, file_stat=file_stat)  # same content, rewritten
         else:
             models[key] = ServedModel.from_artifact(art, file_stat=file_stat)
         del art
-    for rel, key, message in failed:
-        keep = key in before and key not in models
+    for rel, key, message, reason in failed:
+        keep = bool(key) and key in before and key not in models
         if keep:
             models[key] = before[key]
-        refused.append(Refusal(file=rel, error=message, kept_previous=keep))
+        refused.append(Refusal(file=rel, error=message, kept_previous=keep, reason=reason))
     keys = sorted(models)
     bank = CurveBank({k: models[k].curve for k in keys})
     versions = tuple(models[k].version for k in keys)
@@ -289,11 +289,11 @@ class ApiState:
             seconds = time.perf_counter() - started
         for r in new.refused:
             log.warning(
-                "artifact refused: %s: %s%s",
-                r.file,
+                "model refused (%s): %s%s",
+                r.reason,
                 r.error,
                 " (the previous version keeps serving)" if r.kept_previous else "",
-                extra={"event": "artifact_refused", "file": r.file, "kept_previous": r.kept_previous},
+                extra={"event": "model_refused", "file": r.file, "reason": r.reason, "kept_previous": r.kept_previous},
             )
         log.info(
             "store loaded: %d models, version %s, %d refused, %.3fs",

@@ -1,5 +1,8 @@
 """Candidate estimators for a demand curve (rate per pod → CPU cores) and their grids.
 
+Words: each candidate is an *estimator* (a family fitted to samples); the stored
+per-container result is a *model* (``models.store``).
+
 Each :class:`Candidate` names a scikit-learn estimator, a simplicity rank (lower is
 simpler and faster; ties in cross-validated error go to the lower rank) and a
 small hyperparameter grid used only with ``--tune``.
@@ -9,10 +12,12 @@ The candidates, simplest first:
 =========  ====  ================================================================
 name       rank  estimator
 =========  ====  ================================================================
-fixed      0     :class:`FixedAllocation`: a constant, the 0.95 quantile of the
-                 CPU seen in training — what a hand-set request sized to cover the
-                 busy hours does. The baseline to beat; reported, never chosen
-                 (a constant at a high quantile is biased as a *demand* estimate).
+fixed      0     scikit-learn's ``DummyRegressor(strategy="quantile",
+                 quantile=0.95)``: a constant, the 0.95 quantile of the CPU seen
+                 in training — what a hand-set request sized to cover the busy
+                 hours does (common practice, no source). The baseline to beat;
+                 reported, never chosen (a constant at a high quantile is biased
+                 as a *demand* estimate).
 linear     1     ordinary least squares (the Utilization Law's shape U = X·S + base)
 polynomial 2     scaled rate → degree-3 polynomial features → ridge (alpha 1e-3)
 isotonic   3     isotonic regression (non-decreasing step function)
@@ -27,6 +32,12 @@ mlp        7     one hidden layer of 16 tanh units, rate and CPU standardised, a
                  with early stopping
 =========  ====  ================================================================
 
+The project's own estimator classes (:class:`Subsampled` and the capped random
+forest) follow scikit-learn's estimator contract and are run through
+``sklearn.utils.estimator_checks.parametrize_with_checks`` in
+``tests/test_candidates_sklearn_checks.py`` (the checks skipped there, and why,
+are listed beside them).
+
 Sizes are picked to keep training 10,000 samples with every candidate and 5 folds
 well under 30 s on 2 cores (measured by ``tests/bench/bench_models.py``); all
 estimators run single-threaded (``n_jobs=1``) because the machine is shared.
@@ -39,8 +50,10 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from scipy.sparse import issparse
 from sklearn.base import BaseEstimator, RegressorMixin, clone
 from sklearn.compose import TransformedTargetRegressor
+from sklearn.dummy import DummyRegressor
 from sklearn.ensemble import HistGradientBoostingRegressor, RandomForestRegressor
 from sklearn.isotonic import IsotonicRegression
 from sklearn.linear_model import LinearRegression, Ridge
@@ -48,14 +61,14 @@ from sklearn.neural_network import MLPRegressor
 from sklearn.pipeline import Pipeline
 from sklearn.preprocessing import PolynomialFeatures, StandardScaler
 from sklearn.svm import SVR
-from sklearn.utils.validation import check_is_fitted
+from sklearn.utils.validation import check_array, check_is_fitted, check_X_y
 
 from ratefit.models.errors import InputError
 
 __all__ = [
     "Candidate",
-    "FixedAllocation",
     "Subsampled",
+    "CappedForest",
     "CANDIDATES",
     "BASELINE",
     "candidate_names",
@@ -66,30 +79,6 @@ __all__ = [
 BASELINE = "fixed"
 SVR_MAX_SAMPLES = 2000
 FOREST_MAX_SAMPLES = 20000
-
-
-class FixedAllocation(RegressorMixin, BaseEstimator):
-    """Predicts one constant: the ``quantile`` of the training CPU (default 0.95).
-
-    A hand-set CPU request is a constant chosen to cover the busy hours; the 0.95
-    quantile stands for that habit (common practice, no source). It ignores the rate.
-    """
-
-    def __init__(self, quantile: float = 0.95) -> None:
-        self.quantile = quantile
-
-    def fit(self, X: Any, y: Any) -> FixedAllocation:
-        y = np.asarray(y, dtype=float).reshape(-1)
-        if y.size == 0:
-            raise InputError("fixed allocation: no samples to fit")
-        self.value_ = float(np.quantile(y, self.quantile))
-        self.n_features_in_ = np.asarray(X).reshape(len(y), -1).shape[1]
-        return self
-
-    def predict(self, X: Any) -> np.ndarray:
-        check_is_fitted(self, "value_")
-        n = np.asarray(X).shape[0]
-        return np.full(n, self.value_)
 
 
 class Subsampled(RegressorMixin, BaseEstimator):
@@ -103,8 +92,12 @@ class Subsampled(RegressorMixin, BaseEstimator):
         self.random_state = random_state
 
     def fit(self, X: Any, y: Any) -> Subsampled:
-        X = np.asarray(X, dtype=float)
-        y = np.asarray(y, dtype=float).reshape(-1)
+        if self.estimator is None:
+            raise InputError("Subsampled: no estimator given (e.g. Subsampled(estimator=SVR()))")
+        if isinstance(self.max_samples, bool) or not isinstance(self.max_samples, (int, np.integer)) \
+                or self.max_samples < 1:
+            raise InputError(f"Subsampled: max_samples {self.max_samples!r} must be an integer >= 1")
+        X, y = check_X_y(X, y, dtype=float, y_numeric=True)
         if X.shape[0] > self.max_samples:
             rng = np.random.default_rng(self.random_state)
             pick = np.sort(rng.choice(X.shape[0], self.max_samples, replace=False))
@@ -115,7 +108,13 @@ class Subsampled(RegressorMixin, BaseEstimator):
 
     def predict(self, X: Any) -> np.ndarray:
         check_is_fitted(self, "estimator_")
-        return self.estimator_.predict(np.asarray(X, dtype=float))
+        X = check_array(X, dtype=float)
+        if X.shape[1] != self.n_features_in_:
+            raise ValueError(
+                f"X has {X.shape[1]} features, but {type(self).__name__} is expecting "
+                f"{self.n_features_in_} features as input"
+            )
+        return self.estimator_.predict(X)
 
 
 def _scaled_target(regressor: Any) -> TransformedTargetRegressor:
@@ -124,7 +123,7 @@ def _scaled_target(regressor: Any) -> TransformedTargetRegressor:
 
 @dataclass(frozen=True)
 class Candidate:
-    """One candidate model: ``build(seed)`` returns a fresh, unfitted estimator;
+    """One candidate estimator: ``build(seed)`` returns a fresh, unfitted estimator;
     ``grid`` is the ``GridSearchCV`` parameter grid for ``--tune`` (empty: nothing
     to tune); ``params`` names the estimator parameters worth recording."""
 
@@ -150,7 +149,7 @@ class Candidate:
 
 
 def _fixed(seed: int) -> Any:
-    return FixedAllocation(quantile=0.95)
+    return DummyRegressor(strategy="quantile", quantile=0.95)
 
 
 def _linear(seed: int) -> Any:
@@ -190,11 +189,13 @@ def _svr(seed: int) -> Any:
     return Subsampled(estimator=inner, max_samples=SVR_MAX_SAMPLES, random_state=seed)
 
 
-class _CappedForest(RandomForestRegressor):
+class CappedForest(RandomForestRegressor):
     """A random forest whose bootstrap draws at most FOREST_MAX_SAMPLES samples."""
 
-    def fit(self, X: Any, y: Any, sample_weight: Any = None) -> _CappedForest:
-        n = np.asarray(X).shape[0]
+    def fit(self, X: Any, y: Any, sample_weight: Any = None) -> CappedForest:
+        # len() of the rows without converting: np.asarray would turn a sparse matrix
+        # into a 0-d object array (found by scikit-learn's estimator checks)
+        n = X.shape[0] if issparse(X) else np.asarray(X).shape[0]
         saved = self.max_samples
         if n > FOREST_MAX_SAMPLES:  # cap the bootstrap for this fit, keep the parameter as set
             self.max_samples = FOREST_MAX_SAMPLES
@@ -205,7 +206,7 @@ class _CappedForest(RandomForestRegressor):
 
 
 def _forest(seed: int) -> Any:
-    return _CappedForest(n_estimators=40, min_samples_leaf=5, n_jobs=1, random_state=seed)
+    return CappedForest(n_estimators=40, min_samples_leaf=5, n_jobs=1, random_state=seed)
 
 
 def _mlp(seed: int) -> Any:

@@ -34,9 +34,18 @@ GRID_POINTS = 129
 TOP_SHARE = 0.25
 
 
+#: the largest millicore value converted (2**53: every integer up to it is exact in a
+#: float); conversions saturate there instead of wrapping (an int64 cast of 1e20
+#: would give -9223372036854775808)
+MAX_MILLICORES = 2**53
+
+
 def to_millicores(cores: float) -> int:
-    """Cores → integer millicores, rounded up (1m is Kubernetes' CPU precision)."""
-    return int(math.ceil(round(cores * 1000.0, 6)))
+    """Cores → integer millicores, rounded up (1m is Kubernetes' CPU precision);
+    saturates at ``MAX_MILLICORES``; InputError for a non-finite value."""
+    if not math.isfinite(cores):
+        raise InputError("demand: not a finite number of cores")
+    return int(math.ceil(round(min(max(cores, 0.0), MAX_MILLICORES / 1000.0) * 1000.0, 6)))
 
 
 @dataclass(frozen=True)
@@ -49,10 +58,12 @@ class CurveLookup:
 
     def millicores(self) -> tuple[np.ndarray, np.ndarray]:
         """Demand and upper in integer millicores, rounded up."""
-        return (
-            np.ceil(np.round(self.demand * 1000.0, 6)).astype(np.int64),
-            np.ceil(np.round(self.upper * 1000.0, 6)).astype(np.int64),
-        )
+        # clipped before the int64 cast so that an absurd value saturates, never wraps
+        with np.errstate(over="ignore"):  # 1e308 × 1000 is inf, then clipped
+            return (
+                np.ceil(np.round(np.clip(self.demand * 1000.0, 0.0, MAX_MILLICORES), 6)).astype(np.int64),
+                np.ceil(np.round(np.clip(self.upper * 1000.0, 0.0, MAX_MILLICORES), 6)).astype(np.int64),
+            )
 
 
 class DemandCurve:

@@ -48,6 +48,7 @@ from typing import Any
 import numpy as np
 
 from ratefit.models.errors import InputError, NotEnoughData, SampleFileError
+from ratefit.models.sanity import check_sample
 
 __all__ = [
     "Samples",
@@ -290,6 +291,7 @@ def _read(fh: Any, name: str) -> Samples:
             c = _number(row[idx["cpu"]], "cpu", allow_missing=True)
             if c < 0:
                 raise ValueError(f"cpu: negative value {row[idx['cpu']].strip()} (CPU usage is >= 0 cores)")
+            check_sample(r, c)  # absurd values (1e17 cores, 1e12 req/s): models/sanity.py
             if ts is not None:
                 cell = row[idx["timestamp"]]
                 if not cell.strip():

@@ -1,10 +1,13 @@
-"""Training one key end to end: samples → cleaning → cross-validated choice →
-DemandCurve → Artifact; and many keys from a directory of CSVs.
+"""Training one key end to end: samples → cleaning → cross-validated choice of an
+estimator → DemandCurve → Artifact (the stored model); and many keys from a
+directory of CSVs.
 
 This is the library face of ``ratefit train`` (the CLI only parses flags and
-prints) and what the demo calls for every scenario key.
+prints) and what the demo calls for every scenario key. Every function takes one
+:class:`~ratefit.models.options.TrainOptions`; keyword overrides (``coverage=0.9``)
+amend it, so the knobs are listed once (in ``models.options``).
 
-- :func:`train_key` ``(samples, *, key, …) -> Artifact`` — clean, select, tabulate.
+- :func:`train_key` ``(samples, *, key, options, …) -> Artifact`` — clean, select, tabulate.
 - :func:`train_key_detailed` — the same, also returning the cleaning report, the
   selection (scores, refitted estimator) and the clean samples (for the report).
 - :func:`train_many` ``(samples_by_key, …) -> dict[key, Artifact]``.
@@ -15,7 +18,10 @@ prints) and what the demo calls for every scenario key.
   ``fetch_samples`` over a window and train.
 
 The artifact's curve spans the clean samples' rate range; the band is the
-split-conformal upper band of the chosen model (see ``models.select``).
+split-conformal upper band of the chosen estimator (see ``models.select``). The
+samples' timestamps (when present) go to ``select``: cross-validation and the band
+are then blocked in time by default (``models.options``); the scheme used and the
+comparison with the other scheme are on ``TrainResult.selection``.
 """
 
 from __future__ import annotations
@@ -23,7 +29,7 @@ from __future__ import annotations
 import os
 import platform
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -31,22 +37,16 @@ from typing import Any
 
 import numpy as np
 
-from ratefit.models.candidates import Candidate, get_candidates
 from ratefit.models.curve import DemandCurve
 from ratefit.models.errors import InputError
 from ratefit.models.keys import parse_key
-from ratefit.models.samples import (
-    DEFAULT_THROTTLE_THRESHOLD,
-    DEFAULT_WARMUP_SECONDS,
-    CleanReport,
-    Samples,
-    clean,
-    load_csv,
-)
+from ratefit.models.options import CVScheme, TrainOptions
+from ratefit.models.samples import CleanReport, Samples, clean, load_csv
 from ratefit.models.select import Selection, select
 from ratefit.models.store import Artifact, CurveData, CVRow, DataWindow
 
 __all__ = [
+    "TrainOptions",
     "TrainResult",
     "train_key",
     "train_key_detailed",
@@ -65,8 +65,22 @@ class TrainResult:
     artifact: Artifact
     report: CleanReport
     selection: Selection
-    samples: Samples  # the clean samples the model was trained on
+    samples: Samples  # the clean samples the estimator was fitted on
     seconds: float
+
+    @property
+    def cv(self) -> CVScheme:
+        """The cross-validation scheme used (blocked in time or shuffled)."""
+        return self.selection.cv
+
+    def summary(self) -> str:
+        """One line: chosen estimator, its CV error(s), the band (for the CLI and logs)."""
+        a, sel = self.artifact, self.selection
+        errors = ", ".join(f"{k} {v:.4g}" for k, v in sel.rmse_by_scheme(sel.chosen.name).items())
+        return (
+            f"chosen estimator {a.chosen} ({a.folds}-fold CV RMSE {errors} cores; {sel.cv.value} used), "
+            f"band +{a.curve.band:.4g} cores at {a.coverage:g}"
+        )
 
 
 def rfc3339(t: float) -> str:
@@ -89,27 +103,21 @@ def train_key_detailed(
     samples: Samples,
     *,
     key: str,
-    folds: int = 5,
-    coverage: float = 0.95,
-    tune: bool = False,
-    seed: int = 0,
-    throttle_threshold: float = DEFAULT_THROTTLE_THRESHOLD,
-    warmup: float = DEFAULT_WARMUP_SECONDS,
-    candidates: Sequence[Candidate] | None = None,
+    options: TrainOptions | None = None,
     window: DataWindow | None = None,
     progress: Progress | None = None,
+    **overrides: Any,
 ) -> TrainResult:
-    """Clean ``samples``, choose a model by CV, and build the artifact for ``key``."""
+    """Clean ``samples``, choose an estimator by CV, and build the artifact for
+    ``key``. ``overrides`` amend ``options`` (e.g. ``coverage=0.9, warmup=0``)."""
     k = str(parse_key(key))
+    opts = TrainOptions.of(options, **overrides)
     t0 = time.perf_counter()
     say = (lambda m: progress(f"{k}: {m}")) if progress else None
-    cleaned, report = clean(samples, throttle_threshold=throttle_threshold, warmup=warmup)
+    cleaned, report = clean(samples, throttle_threshold=opts.throttle_threshold, warmup=opts.warmup)
     if say:
         say(report.summary())
-    cands = list(candidates) if candidates is not None else get_candidates()
-    sel = select(
-        cleaned.rate, cleaned.cpu, candidates=cands, folds=folds, seed=seed, tune=tune, coverage=coverage, progress=say
-    )
+    sel = select(cleaned.rate, cleaned.cpu, opts, timestamps=cleaned.timestamp, progress=say)
     lo, hi = float(np.min(cleaned.rate)), float(np.max(cleaned.rate))
     est = sel.estimator
     curve = DemandCurve.tabulate(lambda g: est.predict(g.reshape(-1, 1)), rate_lo=lo, rate_hi=hi, band=sel.band)
@@ -134,36 +142,38 @@ def train_key_detailed(
     art = Artifact(
         key=k,
         chosen=sel.chosen.name,
-        coverage=coverage,
+        coverage=opts.coverage,
         rate_range=(lo, hi),
         curve=CurveData(**curve.to_dict()),
         samples=report.used,
         samples_total=report.total,
         dropped=dict(report.dropped),
         cv=rows,
-        folds=folds,
-        seed=seed,
-        tuned=tune,
+        folds=opts.folds,
+        seed=opts.seed,
+        tuned=opts.tune,
         window=window,
         trained_at=rfc3339(time.time()),
         library=_library(),
     ).sealed()
     secs = time.perf_counter() - t0
     if say:
-        say(f"trained in {secs:.1f} s: {sel.chosen.name}, band {sel.band:.4g} cores at coverage {coverage:g}")
+        say(f"trained in {secs:.1f} s: chosen estimator {sel.chosen.name} ({sel.cv.value} CV), "
+            f"band {sel.band:.4g} cores at coverage {opts.coverage:g}")
     return TrainResult(artifact=art, report=report, selection=sel, samples=cleaned, seconds=secs)
 
 
-def train_key(samples: Samples, *, key: str, **options: Any) -> Artifact:
-    """Train one key and return its (sealed, unsaved) artifact. Options as
-    :func:`train_key_detailed`: folds, coverage, tune, seed, throttle_threshold,
-    warmup, candidates, window, progress."""
-    return train_key_detailed(samples, key=key, **options).artifact
+def train_key(samples: Samples, *, key: str, options: TrainOptions | None = None, **kwargs: Any) -> Artifact:
+    """Train one key and return its (sealed, unsaved) artifact; arguments as
+    :func:`train_key_detailed` (window, progress, and TrainOptions overrides)."""
+    return train_key_detailed(samples, key=key, options=options, **kwargs).artifact
 
 
-def train_many(samples_by_key: Mapping[str, Samples], **options: Any) -> dict[str, Artifact]:
+def train_many(
+    samples_by_key: Mapping[str, Samples], options: TrainOptions | None = None, **kwargs: Any
+) -> dict[str, Artifact]:
     """Train every key (in sorted order) with the same options; returns artifacts by key."""
-    return {k: train_key(samples_by_key[k], key=k, **options) for k in sorted(samples_by_key)}
+    return {k: train_key(samples_by_key[k], key=k, options=options, **kwargs) for k in sorted(samples_by_key)}
 
 
 def samples_dir_files(directory: str | os.PathLike[str]) -> dict[str, Path]:
@@ -203,7 +213,9 @@ def train_from_prometheus(
     step: float,
     source: str = "prometheus",
     step_text: str | None = None,
-    **options: Any,
+    options: TrainOptions | None = None,
+    progress: Progress | None = None,
+    **overrides: Any,
 ) -> TrainResult:
     """Fetch joined samples over [start, end] at ``step`` seconds and train ``key``."""
     from ratefit.models.prometheus_samples import fetch_samples
@@ -213,4 +225,4 @@ def train_from_prometheus(
     )
     samples = Samples.from_rows(rows, source=source)
     window = DataWindow(source=source, start=rfc3339(start), end=rfc3339(end), step=step_text or f"{step:g}s")
-    return train_key_detailed(samples, key=key, window=window, **options)
+    return train_key_detailed(samples, key=key, options=options, window=window, progress=progress, **overrides)

@@ -98,8 +98,8 @@ def expected(art: Artifact, rate: float) -> dict[str, object]:
     return {
         "model": art.key,
         "rate": float(rate),
-        "cpu_m": int(cpu_m[0]),
-        "upper_m": int(upper_m[0]),
+        "demand_m": int(cpu_m[0]),
+        "demand_bound_m": int(upper_m[0]),
         "extrapolated": bool(np.asarray(look.extrapolated)[0]),
         "version": art.version,
     }

@@ -47,7 +47,9 @@ def write_history(path: Path, rates: Mapping[tuple[str, str], Sequence[float]], 
     ts = [start + i * step_s for i in range(int(minutes * 60 / step_s) + 1)]
     for (ns, wl), pod_rates in sorted(rates.items()):
         for i, r in enumerate(pod_rates):
-            labels = f'namespace="{ns}",pod="{wl}-pod-{i}",workload="{wl}"'
+            # a Deployment's pod name (<name>-<pod-template-hash>-<5 random>): the controller maps
+            # pods to workloads by name (controller/pod_names); the alphabet is Kubernetes' own
+            labels = f'namespace="{ns}",pod="{wl}-5d4c7b9f8-{"bcdfghjklmnpqrstvwxz2456789"[i % 27] * 5}",workload="{wl}"'
             lines += [f"{metric}{{{labels}}} {r * (t - start):.6f} {t:.3f}" for t in ts]
     lines.append("# EOF")
     path.write_text("\n".join(lines) + "\n")

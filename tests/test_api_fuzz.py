@@ -18,6 +18,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from ratefit.models.api import ApiSettings, create_app
+from ratefit.models.api_schemas import ITEM_ERROR_REASONS
 
 KEYS = demo_keys(5)
 FUZZ = settings(
@@ -80,10 +81,23 @@ def test_batch_bodies_never_give_a_5xx(client: TestClient, body: object) -> None
         out = r.json()["items"]
         assert isinstance(body, dict) and len(out) == len(body["items"])
         for item, ans in zip(body["items"], out):
-            assert ans["model"] == item["model"]
-            assert ("error" in ans) != (ans["model"] in KEYS)
-            if "error" not in ans:
-                assert isinstance(ans["cpu_m"], int) and ans["upper_m"] >= ans["cpu_m"] >= 0
+            # issue 9: every item answered on its own; an invalid model is never echoed
+            good_item = (
+                isinstance(item, dict)
+                and set(item) == {"model", "rate"}
+                and item["model"] in KEYS
+                and type(item["rate"]) in (int, float)
+                and math.isfinite(item["rate"])
+                and 0 <= item["rate"] <= 1e9
+            )
+            if good_item and item["rate"] * 0.007 + 0.1 <= 1024:  # within the 1,024-core bound
+                assert "error" not in ans, ans
+            if "error" in ans:
+                assert ans["reason"] in ITEM_ERROR_REASONS and ans["field"].startswith("items.")
+                assert ans["model"] is None or ans["model"] == item["model"]
+            else:
+                assert ans["model"] == item["model"] and good_item
+                assert isinstance(ans["demand_m"], int) and ans["demand_bound_m"] >= ans["demand_m"] >= 0
                 assert math.isfinite(ans["rate"]) and ans["rate"] >= 0
     else:
         assert r.json()["error"]
@@ -92,8 +106,9 @@ def test_batch_bodies_never_give_a_5xx(client: TestClient, body: object) -> None
 @FUZZ
 @given(raw=st.binary(max_size=200))
 def test_raw_bytes_never_give_a_5xx(client: TestClient, raw: bytes) -> None:
-    r = client.post("/v1/demand", content=raw)
+    r = client.post("/v1/demand", content=raw, headers={"content-type": "application/json"})
     assert 400 <= r.status_code < 500 or (r.status_code == 200 and raw.strip().startswith(b"{")), r.text
+    assert client.post("/v1/demand", content=raw).status_code == 415  # undeclared body: never parsed
 
 
 path_part = st.one_of(st.sampled_from(["shop", "wl-00000", "app", "x.y", "A", "-a", "a" * 64]), st.text(max_size=12))

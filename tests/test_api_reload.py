@@ -159,7 +159,10 @@ def test_corrupt_artifact_is_refused_and_the_rest_keep_serving(tmp_path: Path) -
         assert refused[f"{keys[0]}.json"]["kept_previous"] is True
         assert "hash mismatch" in refused[f"{keys[0]}.json"]["error"]
         assert refused[f"{newcomer}.json"]["kept_previous"] is False
-        assert body["models"] == 5 and body["changed"] == 4
+        assert body["model_count"] == 5 and body["changed"] == 4
+        assert refused[f"{keys[0]}.json"]["reason"] == "corrupt" and refused[f"{newcomer}.json"]["reason"] == "corrupt"
+        # messages name the file inside the store, never the server's absolute path
+        assert str(root) not in r.text
 
         # the others serve their new version; the damaged key its last good one; the new key none
         for k in keys[1:]:
@@ -168,7 +171,7 @@ def test_corrupt_artifact_is_refused_and_the_rest_keep_serving(tmp_path: Path) -
         assert c.get(f"/v1/models/{newcomer}/demand", params={"rate": 10}).status_code == 404
         listed = c.get("/v1/models").json()
         assert {x["file"] for x in listed["refused"]} == set(refused)
-        assert c.get("/readyz").json()["refused"] == 2
+        assert c.get("/readyz").json()["refused_count"] == 2
 
         # the store vanishes entirely: reload answers 503 and the old set keeps serving
         moved = tmp_path / "moved"
@@ -182,7 +185,7 @@ def test_corrupt_artifact_is_refused_and_the_rest_keep_serving(tmp_path: Path) -
         log = srv.log_text()
 
     records = [json.loads(line) for line in log.splitlines() if line.startswith("{")]
-    refusals = [rec for rec in records if rec.get("event") == "artifact_refused"]
+    refusals = [rec for rec in records if rec.get("event") == "model_refused"]
     assert {rec["file"] for rec in refusals} == set(refused)
     assert any(rec.get("event") == "reload_failed" and rec["level"] == "error" for rec in records)
 

@@ -115,7 +115,7 @@ def test_readyz_reports_the_loaded_store(api: Api) -> None:
     r = api.client.get("/readyz")
     assert r.status_code == 200
     body = ReadyOut.model_validate(r.json())
-    assert body.ready and body.models == len(api.artifacts) and body.refused == 0
+    assert body.ready and body.model_count == len(api.artifacts) and body.refused_count == 0
 
 
 # -- models ---------------------------------------------------------------------------------
@@ -123,9 +123,10 @@ def test_list_models_lists_every_artifact(api: Api) -> None:
     r = api.client.get("/v1/models")
     assert r.status_code == 200
     body = ModelList.model_validate(r.json())
-    assert {m.key for m in body.models} == set(api.artifacts)
+    assert {m.model for m in body.models} == set(api.artifacts)
+    assert body.model_count == len(api.artifacts) and body.store_version
     for m in body.models:
-        art = api.artifacts[m.key]
+        art = api.artifacts[m.model]
         assert (m.version, m.chosen, m.coverage) == (art.version, art.chosen, art.coverage)
         assert tuple(m.rate_range) == tuple(art.rate_range)
     assert body.refused == []
@@ -147,7 +148,8 @@ def test_unknown_model_is_404_naming_the_key(api: Api, path: str) -> None:
     r = api.client.get(path)
     assert r.status_code == 404
     assert r.json()["model"] == "shop/nothing-here/app"
-    assert "shop/nothing-here/app" in r.json()["error"]
+    # the message says what to do and never repeats the key (API.md: values are never echoed)
+    assert "shop/nothing-here/app" not in r.json()["error"] and "train" in r.json()["error"]
 
 
 # -- single demand ----------------------------------------------------------------------------
@@ -161,8 +163,8 @@ def test_single_demand_matches_the_generating_curve(api: Api, rate: float) -> No
     # Kubernetes' CPU precision, Kubernetes docs "Resource units in Kubernetes"); the tabulated
     # curve of a straight line is exact up to floating-point error, hence ±1m
     true_m = (BASE + SLOPE * rate) * 1000.0
-    assert abs(body["cpu_m"] - math.ceil(true_m)) <= 1
-    assert abs(body["upper_m"] - math.ceil(true_m + 30.0)) <= 1
+    assert abs(body["demand_m"] - math.ceil(true_m)) <= 1
+    assert abs(body["demand_bound_m"] - math.ceil(true_m + 30.0)) <= 1
     assert body["extrapolated"] is False
 
 
@@ -170,11 +172,11 @@ def test_single_demand_flags_extrapolation_both_ways(api: Api) -> None:
     above = api.client.get(f"/v1/models/{LINEAR_KEY}/demand", params={"rate": 1000.0}).json()
     assert above["extrapolated"] is True
     # above the range the curve continues linearly with its top slope: still BASE + SLOPE·rate
-    assert abs(above["cpu_m"] - math.ceil((BASE + SLOPE * 1000.0) * 1000.0)) <= 1
+    assert abs(above["demand_m"] - math.ceil((BASE + SLOPE * 1000.0) * 1000.0)) <= 1
     below = api.client.get(f"/v1/models/{LOW_KEY}/demand", params={"rate": 2.0}).json()
     at_lo = api.client.get(f"/v1/models/{LOW_KEY}/demand", params={"rate": 10.0}).json()
     assert below["extrapolated"] is True and at_lo["extrapolated"] is False
-    assert below["cpu_m"] == at_lo["cpu_m"]  # held at the value at rate_lo, never extrapolated down
+    assert below["demand_m"] == at_lo["demand_m"]  # held at the value at rate_lo, never extrapolated down
 
 
 def test_single_answers_carry_server_timing(api: Api) -> None:
@@ -199,9 +201,10 @@ def test_batch_answers_in_request_order_with_per_item_errors(api: Api) -> None:
         assert ans.model == item["model"] and ans.rate == float(item["rate"])
         if item["model"] in api.artifacts:
             assert ans.error is None
-            assert ans.model_dump(exclude={"error"}) == expected(api.artifacts[item["model"]], item["rate"])
+            assert ans.model_dump(exclude={"error", "reason", "field"}) == expected(api.artifacts[item["model"]], item["rate"])
         else:
-            assert ans.cpu_m is None and item["model"] in (ans.error or "")
+            assert ans.demand_m is None and ans.error and ans.reason == "unknown_model"
+            assert item["model"] not in ans.error  # never echoed in a message
 
 
 def test_batch_equals_single_lookups(api: Api) -> None:
@@ -228,7 +231,9 @@ def test_batch_cap_names_the_field(api: Api) -> None:
 
 
 def test_oversized_body_is_413(api: Api) -> None:
-    r = api.client.post("/v1/demand", content=b'{"items": [' + b" " * (MAX_BATCH * 600) + b"]}")
+    r = api.client.post(
+        "/v1/demand", content=b'{"items": [' + b" " * (MAX_BATCH * 600) + b"]}", headers={"content-type": "application/json"}
+    )
     assert r.status_code == 413 and "items" in r.json()["error"]
 
 
@@ -273,23 +278,29 @@ def test_bad_key_in_path_is_422_naming_the_part(api: Api, path: str, field_name:
     assert r.json()["errors"][0]["field"] == field_name
 
 
+# Issue 9: a problem of one item is that item's own error (200, the other items answered);
+# only a body malformed as a whole is a 422.
+BAD_ITEMS: list[tuple[bytes, str, str]] = [
+    (b'{"items":[{"model":"shop/a/b","rate":NaN}]}', "items.0.rate", "invalid_rate"),
+    (b'{"items":[{"model":"shop/a/b","rate":Infinity}]}', "items.0.rate", "invalid_rate"),
+    (b'{"items":[{"model":"shop/a/b","rate":-Infinity}]}', "items.0.rate", "invalid_rate"),
+    (b'{"items":[{"model":"shop/a/b","rate":1e999}]}', "items.0.rate", "invalid_rate"),
+    (b'{"items":[{"model":"shop/a/b","rate":' + b"9" * 400 + b"}]}", "items.0.rate", "invalid_rate"),
+    (b'{"items":[{"model":"shop/a/b","rate":-0.5}]}', "items.0.rate", "invalid_rate"),
+    (b'{"items":[{"model":"shop/a/b","rate":"5"}]}', "items.0.rate", "invalid_rate"),
+    (b'{"items":[{"model":"shop/a/b","rate":true}]}', "items.0.rate", "invalid_rate"),
+    (b'{"items":[{"model":"shop/a/b","rate":null}]}', "items.0.rate", "invalid_rate"),
+    (b'{"items":[{"model":"shop/a/b"}]}', "items.0.rate", "invalid_rate"),
+    (b'{"items":[{"rate":1}]}', "items.0.model", "invalid_model"),
+    (b'{"items":[{"model":"' + LINEAR_KEY.encode() + b'","rate":1},{"model":"Shop/a/b","rate":1}]}', "items.1.model", "invalid_model"),
+    (b'{"items":[{"model":"shop/a","rate":1}]}', "items.0.model", "invalid_model"),
+    (b'{"items":[{"model":5,"rate":1}]}', "items.0.model", "invalid_model"),
+    (b'{"items":[{"model":"' + b"a" * 64 + b'/w/c","rate":1}]}', "items.0.model", "invalid_model"),
+    (b'{"items":[{"model":"a/' + b"w" * 254 + b'/c","rate":1}]}', "items.0.model", "invalid_model"),
+    (b'{"items":[{"model":"shop/a/b","rate":1,"rates":2}]}', "items.0.rates", "invalid_item"),
+    (b'{"items":[7]}', "items.0", "invalid_item"),
+]
 BAD_BODIES: list[tuple[bytes, str]] = [
-    (b'{"items":[{"model":"shop/a/b","rate":NaN}]}', "items.0.rate"),
-    (b'{"items":[{"model":"shop/a/b","rate":Infinity}]}', "items.0.rate"),
-    (b'{"items":[{"model":"shop/a/b","rate":-Infinity}]}', "items.0.rate"),
-    (b'{"items":[{"model":"shop/a/b","rate":1e999}]}', "items.0.rate"),
-    (b'{"items":[{"model":"shop/a/b","rate":' + b"9" * 400 + b"}]}", "items.0.rate"),
-    (b'{"items":[{"model":"shop/a/b","rate":-0.5}]}', "items.0.rate"),
-    (b'{"items":[{"model":"shop/a/b","rate":"5"}]}', "items.0.rate"),
-    (b'{"items":[{"model":"shop/a/b","rate":true}]}', "items.0.rate"),
-    (b'{"items":[{"model":"shop/a/b","rate":null}]}', "items.0.rate"),
-    (b'{"items":[{"model":"shop/a/b"}]}', "items.0.rate"),
-    (b'{"items":[{"rate":1}]}', "items.0.model"),
-    (b'{"items":[{"model":"shop/a/b","rate":1},{"model":"Shop/a/b","rate":1}]}', "items.1.model"),
-    (b'{"items":[{"model":"shop/a","rate":1}]}', "items.0.model"),
-    (b'{"items":[{"model":5,"rate":1}]}', "items.0.model"),
-    (b'{"items":[{"model":"' + b"a" * 64 + b'/w/c","rate":1}]}', "items.0.model"),
-    (b'{"items":[{"model":"shop/a/b","rate":1,"rates":2}]}', "items.0.rates"),
     (b'{"items":{"model":"shop/a/b","rate":1}}', "items"),
     (b'{"items":null}', "items"),
     (b'{"item":[]}', "items"),
@@ -301,13 +312,50 @@ BAD_BODIES: list[tuple[bytes, str]] = [
 ]
 
 
+@pytest.mark.parametrize("body,field_name,reason", BAD_ITEMS, ids=[f"i{i}" for i in range(len(BAD_ITEMS))])
+def test_bad_item_is_its_own_error_and_the_rest_are_answered(
+    api: Api, body: bytes, field_name: str, reason: str
+) -> None:
+    good = {"model": LINEAR_KEY, "rate": 10.0}
+    doc = body[: -2] + b"," + json.dumps(good).encode() + b"]}"  # one good item after the bad one(s)
+    r = api.client.post("/v1/demand", content=doc, headers={"content-type": "application/json"})
+    assert r.status_code == 200, r.text
+    items = DemandBatchOut.model_validate(r.json()).items
+    errs = [it for it in items if it.error]
+    assert [(e.field, e.reason) for e in errs] == [(field_name, reason)]
+    assert errs[0].demand_m is None and errs[0].demand_bound_m is None
+    assert items[-1].model_dump(exclude={"error", "reason", "field"}) == expected(api.artifacts[LINEAR_KEY], 10.0)
+    # an invalid value is never echoed: neither in the message nor in the entry
+    assert b"Shop/a/b" not in r.content and b"aaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaaa" not in r.content
+
+
 @pytest.mark.parametrize("body,field_name", BAD_BODIES, ids=[f"b{i}" for i in range(len(BAD_BODIES))])
-def test_bad_batch_is_422_naming_the_field(api: Api, body: bytes, field_name: str) -> None:
+def test_malformed_body_is_422_naming_the_field(api: Api, body: bytes, field_name: str) -> None:
     r = api.client.post("/v1/demand", content=body, headers={"content-type": "application/json"})
     assert r.status_code == 422, r.text
     fields = [e["field"] for e in r.json()["errors"]]
     assert field_name in fields, fields
     assert r.json()["error"]
+
+
+@pytest.mark.parametrize("content_type", [None, "text/plain", "application/x-www-form-urlencoded", "multipart/form-data"])
+def test_a_body_not_declared_json_is_415(api: Api, content_type: str | None) -> None:
+    key = sorted(api.artifacts)[0]
+    body = json.dumps({"items": [{"model": key, "rate": 1.0}]}).encode()
+    headers = {"content-type": content_type} if content_type else {}
+    r = api.client.post("/v1/demand", content=body, headers=headers)
+    assert r.status_code == 415, r.text  # RFC 9110 §15.5.16 Unsupported Media Type
+    assert "application/json" in r.json()["error"]
+    ok = api.client.post("/v1/demand", content=body, headers={"content-type": "application/json; charset=utf-8"})
+    assert ok.status_code == 200
+
+
+def test_out_of_range_item_is_its_own_error(api: Api) -> None:
+    # 1e9 req/s on a slope of 0.004 cores per req/s: 4,000,000 cores, beyond the 1,024-core bound
+    items = [{"model": LINEAR_KEY, "rate": 1e9}, {"model": LINEAR_KEY, "rate": 1.0}]
+    out = api.client.post("/v1/demand", json={"items": items}).json()["items"]
+    assert out[0]["reason"] == "out_of_range" and "demand_m" not in out[0]
+    assert out[1] == expected(api.artifacts[LINEAR_KEY], 1.0)
 
 
 def test_unknown_route_and_method_are_4xx(api: Api) -> None:
@@ -343,18 +391,11 @@ def test_openapi_documents_every_route_with_examples(api: Api) -> None:
 
 
 # -- against `ratefit predict` ---------------------------------------------------------------
-def _predict_cli_available() -> bool:
-    out = subprocess.run([str(RATEFIT), "predict", "--help"], capture_output=True, text=True, timeout=60)
-    return out.returncode == 0 and "--output" in out.stdout
-
-
 @pytest.mark.parametrize("rate", [0.0, 42.5, 180.0, 750.0])
 def test_answers_equal_ratefit_predict(api: Api, rate: float) -> None:
-    if not _predict_cli_available():
-        pytest.skip("`ratefit predict --output json` is not built yet (the curve lookup is compared in the other tests)")
     for key in (LINEAR_KEY, LOW_KEY):
         cli = subprocess.run(
-            [str(RATEFIT), "predict", "--store", str(api.store), "--key", key, "--rate", repr(rate), "--output", "json"],
+            [str(RATEFIT), "predict", key, "--store", str(api.store), "--rate", repr(rate), "--output", "json"],
             capture_output=True,
             text=True,
             timeout=60,
@@ -364,9 +405,9 @@ def test_answers_equal_ratefit_predict(api: Api, rate: float) -> None:
         single = api.client.get(f"/v1/models/{key}/demand", params={"rate": rate}).json()
         batch = api.client.post("/v1/demand", json={"items": [{"model": key, "rate": rate}]}).json()["items"][0]
         for got in (single, batch):
-            assert (got["cpu_m"], got["upper_m"], got["extrapolated"]) == (
-                want["cpu_m"],
-                want["upper_m"],
+            assert (got["demand_m"], got["demand_bound_m"], got["extrapolated"]) == (
+                want["demand_m"],
+                want["demand_bound_m"],
                 want["extrapolated"],
             )
 
@@ -432,7 +473,7 @@ def test_serve_stops_gracefully_on_sigterm_and_never_logs_the_token(store_dir: P
 
 
 # -- the fast path (models/api_fastpath.py) and FastAPI's route agree -------------------------
-@pytest.mark.parametrize("rate", ["0", "7", "12.5", "1.", ".25", "5.e2", "1E2", "25e-1", "999999999", "1000000000"])
+@pytest.mark.parametrize("rate", ["0", "7", "12.5", "1.", ".25", "5.e2", "1E2", "25e-1", "99999", "255000"])
 def test_fast_path_and_fastapi_route_give_the_same_answer(api: Api, rate: str) -> None:
     path = f"/v1/models/{LINEAR_KEY}/demand"
     fast = api.client.get(f"{path}?rate={rate}")  # the plain form: answered by the fast path
@@ -448,6 +489,9 @@ def test_fast_path_and_fastapi_route_give_the_same_answer(api: Api, rate: str) -
     [
         ("rate=1e400", None),
         ("rate=1000000001", None),
+        # within the rate cap, but the demand there is beyond 1,024 cores (models/sanity.py)
+        ("rate=1000000000", None),
+        ("rate=256500", None),
         ("rate=1E+2", None),  # '+' is a space in a query string (HTML form encoding): "1E 2"
         ("rate=-0", 0.0),
         ("rate=%2B3", 3.0),
@@ -483,3 +527,19 @@ def test_serve_cli_refuses_an_fd_that_is_not_a_socket(store_dir: Path, tmp_path:
             pass_fds=(fh.fileno(),),
         )
     assert out.returncode == 2 and "--fd" in out.stderr
+
+
+def test_predict_speaks_table_markdown_and_json_with_a_positional_key(store_dir: Path) -> None:
+    def run(*args: str) -> subprocess.CompletedProcess[str]:
+        return subprocess.run([str(RATEFIT), "predict", *args], capture_output=True, text=True, timeout=60)
+
+    js = json.loads(run(LINEAR_KEY, "--store", str(store_dir), "--rate", "10", "--output", "json").stdout)
+    assert set(js) == {"model", "rate", "demand_m", "demand_bound_m", "extrapolated", "version"}
+    table = run(LINEAR_KEY, "--store", str(store_dir), "--rate", "10").stdout
+    assert "DEMAND BOUND" in table and f"{js['demand_bound_m']}m" in table
+    md = run(LINEAR_KEY, "--store", str(store_dir), "--rate", "10", "--output", "markdown").stdout.splitlines()
+    assert md[0].startswith("| MODEL |") and md[1].startswith("| --- |") and LINEAR_KEY in md[2]
+    old = run("--key", LINEAR_KEY, "--store", str(store_dir), "--rate", "10", "--output", "json")  # hidden alias
+    assert json.loads(old.stdout) == js
+    bad = run("--store", str(store_dir), "--rate", "10", "--output", "text")
+    assert bad.returncode == 2 and "invalid choice: 'text'" in bad.stderr

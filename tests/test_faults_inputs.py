@@ -55,7 +55,7 @@ def test_prometheus_trouble_holds_everything_with_nometrics(tmp_path, shared_siz
         assert [(row.verdict, row.why) for row in r.rows] == [("held", ("NoMetrics",))] * 2
         assert r.patched == ()
         _assert_untouched(w)
-        assert tel.value("ratefit_controller_metrics_errors_total", {"kind": "NoMetrics"}) == 2
+        assert tel.value("ratefit_controller_rate_query_errors_total", {"kind": "NoMetrics"}) == 2
         # the status says so (proposals held NoMetrics), so an operator sees why nothing moves
         props = w.sizing_policy("shop", "web")["status"]["proposals"]
         assert {p["why"] for p in props} == {"NoMetrics"}

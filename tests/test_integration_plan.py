@@ -129,8 +129,8 @@ def expected_rows(prom_url: str, api_url: str, at: float) -> dict[tuple[str, str
             key = f"{svc.namespace}/{svc.workload}/{c.name}"
             ans = httpx.get(f"{api_url}/v1/models/{key}/demand", params={"rate": rate}, timeout=10).json()
             # the store holds the truth: the API's upper is truth + band (to the grid's precision)
-            assert ans["upper_m"] / 1000 == pytest.approx(float(c.truth(rate)) + BAND, rel=0.02, abs=0.002)
-            target = max(10, ceil5(ans["upper_m"] * (1 + HEADROOM)))
+            assert ans["demand_bound_m"] / 1000 == pytest.approx(float(c.truth(rate)) + BAND, rel=0.02, abs=0.002)
+            target = max(10, ceil5(ans["demand_bound_m"] * (1 + HEADROOM)))
             diff = abs(target - c.request_m)
             if not (diff > DEADBAND * c.request_m and diff >= 10):
                 verdict, why, proposed = "held", "InsideDeadband", c.request_m
@@ -139,7 +139,7 @@ def expected_rows(prom_url: str, api_url: str, at: float) -> dict[tuple[str, str
             else:
                 verdict, why, proposed = "proposed", "NewTarget", target
             out[(svc.namespace, svc.workload, c.name)] = {
-                "rate": rate, "upper_m": ans["upper_m"], "proposed_m": proposed, "verdict": verdict, "why": why,
+                "rate": rate, "upper_m": ans["demand_bound_m"], "proposed_m": proposed, "verdict": verdict, "why": why,
                 "limit_m": c.limit_m, "request_m": c.request_m}
     return out
 

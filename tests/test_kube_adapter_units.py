@@ -304,3 +304,25 @@ def test_template_patch_touches_only_cpu_and_our_annotation(changes) -> None:
     assert prev["app"] == PreviousRequest(250, None)
     if "sidecar" in changes:
         assert prev["sidecar"] == PreviousRequest(None, None)
+
+
+def test_every_workload_kind_has_its_own_apps_v1_calls() -> None:
+    """One row per kind, each naming that kind's own endpoints (Kubernetes API reference,
+    apps/v1: Deployment and StatefulSet each have read/list/patch); a kind without a
+    row is refused with a message, never sent to another kind's endpoint."""
+    from kubernetes import client as k8s
+
+    from ratefit.controller.kube import KubeAdapter
+
+    adapter = KubeAdapter(k8s.ApiClient(k8s.Configuration()))
+    words = {WorkloadKind.DEPLOYMENT: "deployment", WorkloadKind.STATEFULSET: "stateful_set"}
+    assert set(adapter._workload_api) == set(WorkloadKind)
+    for kind, word in words.items():
+        api = adapter._api_of(kind)
+        for fn in (api.read, api.list_namespaced, api.list_all, api.patch):
+            assert word in fn.__name__, (kind, fn.__name__)
+    del adapter._workload_api[WorkloadKind.STATEFULSET]
+    with pytest.raises(InputError, match="not supported; use one of Deployment"):
+        adapter._api_of(WorkloadKind.STATEFULSET)
+    with pytest.raises(InputError, match="not supported"):
+        adapter.read_workload("shop", "CronJob", "nightly")

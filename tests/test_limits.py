@@ -23,7 +23,6 @@ from ratefit.controller.limits import (
     ExponentialBackoff,
     RolloutSlots,
     TokenBucket,
-    max_delay,
     round_up,
     step_limit,
 )
@@ -149,7 +148,3 @@ def test_backoff_full_jitter_and_cap():
         bo2.failed("x")
     assert bo2.ceiling("x") == 4.0
 
-
-def test_max_delay_composes():
-    assert max_delay() == 0.0
-    assert max_delay(0.5, 3.0, 1.0) == 3.0

@@ -18,7 +18,7 @@ from ratefit.controller.telemetry import HealthServer, Telemetry
 def test_metrics_health_and_readiness_over_http() -> None:
     tel = Telemetry()
     tel.passes.labels(outcome="done").inc()
-    tel.decisions.labels(verdict="held", why="NoMetrics").inc(3)
+    tel.decisions.labels(verdict="held", reason="NoMetrics").inc(3)
     tel.pass_duration.observe(0.2)
     tel.leader.set(1)
     with HealthServer(tel) as srv:
@@ -35,7 +35,7 @@ def test_metrics_health_and_readiness_over_http() -> None:
     fams = {f.name: f for f in text_string_to_metric_families(text)}
     samples = {(s.name, tuple(sorted(s.labels.items()))): s.value for f in fams.values() for s in f.samples}
     assert samples[("ratefit_controller_passes_total", (("outcome", "done"),))] == 1.0
-    assert samples[("ratefit_controller_decisions_total", (("verdict", "held"), ("why", "NoMetrics")))] == 3.0
+    assert samples[("ratefit_controller_decisions_total", (("reason", "NoMetrics"), ("verdict", "held")))] == 3.0
     assert samples[("ratefit_controller_leader", ())] == 1.0
     assert samples[("ratefit_controller_pass_duration_seconds_count", ())] == 1.0
     assert fams["ratefit_controller_pass_duration_seconds"].type == "histogram"
@@ -47,6 +47,6 @@ def test_metrics_health_and_readiness_over_http() -> None:
 
 def test_two_telemetries_do_not_share_counters() -> None:
     a, b = Telemetry(), Telemetry()
-    a.patches.labels(method="rollout").inc()
-    assert a.value("ratefit_controller_patches_total", {"method": "rollout"}) == 1.0
-    assert b.value("ratefit_controller_patches_total", {"method": "rollout"}) == 0.0
+    a.changes.labels(resize_by="Rollout").inc()
+    assert a.value("ratefit_controller_changes_total", {"resize_by": "Rollout"}) == 1.0
+    assert b.value("ratefit_controller_changes_total", {"resize_by": "Rollout"}) == 0.0

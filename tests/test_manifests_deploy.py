@@ -56,10 +56,10 @@ def test_training_job_validates(path: Path) -> None:
 def test_dry_run_overlay_forces_dry_run_and_apply_keeps_budget_low() -> None:
     dry = by_kind(render("dry-run"), "ConfigMap")[0]["data"]
     app = by_kind(render("apply"), "ConfigMap")[0]["data"]
-    assert dry["DRY_RUN"] == "true"
-    assert app["DRY_RUN"] == "false"
+    assert dry["RATEFIT_DRY_RUN"] == "true"
+    assert app["RATEFIT_DRY_RUN"] == "false"
     # small budgets while trust is earned (common practice, no source)
-    assert int(app["BUDGET_PER_MINUTE"]) <= 5 and int(app["MAX_ROLLOUTS"]) <= 2
+    assert int(app["RATEFIT_BUDGET_PER_MINUTE"]) <= 5 and int(app["RATEFIT_MAX_ROLLOUTS"]) <= 2
 
 
 @needs_kubectl

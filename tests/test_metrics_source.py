@@ -14,6 +14,8 @@ import pytest
 
 from ratefit.controller.metrics_source import (
     NO_METRICS,
+    QUERY_FAILED,
+    QUERY_REFUSED,
     PrometheusRateSource,
     RateRequest,
     RateTemplate,
@@ -21,12 +23,14 @@ from ratefit.controller.metrics_source import (
     grouped_query,
     _groups,
 )
+from ratefit.controller.promql_guard import QueryGuard
 from ratefit.models.prometheus import PrometheusClient
 from ratefit.models.scenario import REQUEST_METRIC, SCENARIO
 
 pytestmark = pytest.mark.prometheus
 
-TEMPLATE = RateTemplate(metric=REQUEST_METRIC)
+TEMPLATE = RateTemplate(metric=REQUEST_METRIC)  # pods mapped to workloads by their names
+LEGACY = RateTemplate(metric=REQUEST_METRIC, workload_label="workload")
 
 
 def _default_requests(window: str = "1h", percentile: float = 95.0) -> list[RateRequest]:
@@ -46,11 +50,17 @@ def _as_custom(r: RateRequest) -> RateRequest:
 
 def test_grouped_query_text_is_documented_shape():
     reqs = _default_requests()
-    q = grouped_query(_groups(reqs), template=TEMPLATE, step="30s")
+    # a counter that carries a workload label (the template's workload_label): matched by that label
+    q = grouped_query(_groups(reqs), template=LEGACY, step="30s")
     assert q == ('quantile_over_time(0.95, sum by (namespace, workload, pod) '
                  f'(rate({REQUEST_METRIC}{{namespace=~"dispatch|parcels"}}[2m]))[1h:30s])')
     two = grouped_query(_groups(reqs[:2] + _default_requests("30m", 50)[2:4]), template=TEMPLATE, step="30s")
     assert two.count("quantile_over_time(") == 2 and " or " in two and '"ratefit_group", "1"' in two
+    # the default: only namespace and pod labels; the pods of the wanted workloads by name
+    one = [RateRequest("parcels", "p", "label-printer", "app", workload_kind="StatefulSet")]
+    assert grouped_query(_groups(one), template=TEMPLATE, step="30s") == (
+        'quantile_over_time(0.95, sum by (namespace, pod) (rate(kestrel_http_requests_total{namespace=~"parcels",'
+        'pod=~"^(?:label-printer)-(0|[1-9][0-9]*)$"}[2m]))[1h:30s])')
 
 
 def test_one_grouped_query_equals_per_policy_queries(scenario_prometheus):
@@ -141,17 +151,23 @@ def test_unknown_workload_and_bad_custom_query_are_no_metrics(scenario_prometheu
     reqs = [
         RateRequest("parcels", "ghost", "no-such-workload", "app"),
         RateRequest("parcels", "broken", "label-printer", "app", query="sum(rate(x[5m]"),
-        RateRequest("parcels", "empty", "label-printer", "app", query='rate(nothing_here_total{pod!=""}[5m])'),
+        RateRequest("parcels", "empty", "label-printer", "app", query='rate(nothing_here_total{namespace="parcels"}[5m])'),
         RateRequest("parcels", "badwin", "label-printer", "app", rate_window="ten minutes"),
         RateRequest("parcels", "fine", "label-printer", "app"),
     ]
     with PrometheusClient(h.url) as c:
         got = PrometheusRateSource(c, at=h.end, template=TEMPLATE).per_pod_rates(reqs)
     assert got["parcels/ghost/app"].why == NO_METRICS and "no-such-workload" in got["parcels/ghost/app"].message
-    assert got["parcels/broken/app"].why == NO_METRICS and "sum(rate(x[5m]" in got["parcels/broken/app"].message
+    # not PromQL: refused before anything is sent (issue 9: the error reaches the status message)
+    assert got["parcels/broken/app"].why == QUERY_REFUSED and "not valid PromQL" in got["parcels/broken/app"].message
     assert got["parcels/empty/app"].why == NO_METRICS and "no series" in got["parcels/empty/app"].message
     assert got["parcels/badwin/app"].why == NO_METRICS and "rateWindow" in got["parcels/badwin/app"].message
     assert not got["parcels/fine/app"].missing and got["parcels/fine/app"].rate > 0
+    # raw queries allowed: Prometheus judges the syntax; its error text is the message (QueryFailed)
+    with PrometheusClient(h.url) as c:
+        raw = PrometheusRateSource(c, at=h.end, template=TEMPLATE,
+                                   guard=QueryGuard(enforce_namespace=False)).per_pod_rates(reqs[1:2])
+    assert raw["parcels/broken/app"].why == QUERY_FAILED and "parse error" in raw["parcels/broken/app"].message
 
 
 def test_prometheus_down_is_no_metrics_for_everyone(closed_port_url):

@@ -194,9 +194,9 @@ def test_telemetry_counts_decisions_and_patches(tmp_path, shared_sizing_api) -> 
         rec = w.reconciler(telemetry=tel)
         rec.run_pass()
         rec.run_pass()
-        assert tel.value("ratefit_controller_patches_total", {"method": "rollout"}) == 1
-        assert tel.value("ratefit_controller_decisions_total", {"verdict": "changed", "why": "NewTarget"}) == 1
-        assert tel.value("ratefit_controller_decisions_total", {"verdict": "held", "why": "InsideDeadband"}) == 1
+        assert tel.value("ratefit_controller_changes_total", {"resize_by": "Rollout"}) == 1
+        assert tel.value("ratefit_controller_decisions_total", {"verdict": "changed", "reason": "NewTarget"}) == 1
+        assert tel.value("ratefit_controller_decisions_total", {"verdict": "held", "reason": "InsideDeadband"}) == 1
         assert tel.value("ratefit_controller_passes_total", {"outcome": "done"}) == 2
         assert tel.value("ratefit_controller_pass_duration_seconds_count") == 2
 

@@ -46,9 +46,33 @@ def test_batch_answers_in_order_with_per_item_errors(server: tuple[str, dict]) -
         if key in arts:
             assert isinstance(a, DemandAnswer)
             want = expected(arts[key], rate)
-            assert (a.key, a.rate, a.cpu_m, a.upper_m, a.extrapolated, a.version) == tuple(want.values())
+            assert (a.model, a.rate, a.demand_m, a.demand_bound_m, a.extrapolated, a.version) == tuple(want.values())
         else:
-            assert isinstance(a, DemandError) and a.key == key and key in a.error
+            assert isinstance(a, DemandError) and a.model == key and a.reason == "unknown_model"
+            assert key not in a.error  # the server's messages never echo the key
+
+
+def test_one_bad_item_is_answered_alone_and_the_rest_are_sized(server: tuple[str, dict]) -> None:
+    """Issue 9: a key outside the grammar, a non-finite rate, a demand beyond the physical
+    bound are each an error for their own item; every other item gets its demand."""
+    url, arts = server
+    keys = sorted(arts)
+    items = [
+        (keys[0], 10.0),
+        ("Shop/UPPER/app", 1.0),  # upper case: not a Kubernetes name
+        (keys[1], float("nan")),  # never sent
+        ("shop/" + "w" * 254 + "/app", 1.0),  # workload over 253 characters
+        (keys[2], 1e9),  # extrapolated far beyond 1,024 cores
+        (keys[3], 20.0),
+    ]
+    with SizingClient(url, token=TOKEN) as c:
+        answers = c.demand_batch(items)
+    reasons = [a.reason if isinstance(a, DemandError) else "ok" for a in answers]
+    assert reasons == ["ok", "invalid_model", "invalid_rate", "invalid_model", "out_of_range", "ok"]
+    assert [a.model for a in answers] == [k for k, _ in items]
+    for i in (0, 5):
+        want = expected(arts[items[i][0]], items[i][1])
+        assert answers[i].demand_m == want["demand_m"] and answers[i].demand_bound_m == want["demand_bound_m"]
 
 
 def test_batches_over_the_cap_are_split_and_joined_in_order(server: tuple[str, dict]) -> None:
@@ -63,12 +87,12 @@ def test_single_demand_models_health_and_reload(server: tuple[str, dict]) -> Non
     key = sorted(arts)[0]
     with SizingClient(url, token=TOKEN) as c:
         a = c.demand(key, 7.0)
-        assert a.cpu_m == expected(arts[key], 7.0)["cpu_m"]
+        assert a.demand_m == expected(arts[key], 7.0)["demand_m"]
         with pytest.raises(UnknownModel):
             c.demand("shop/absent/app", 1.0)
-        assert {m.key for m in c.models()} == set(arts)
+        assert {m.model for m in c.models()} == set(arts)
         h = c.health()
-        assert h == ApiHealth(ready=True, models=len(arts), version=h.version, refused=0)
+        assert h == ApiHealth(ready=True, model_count=len(arts), store_version=h.store_version, refused_count=0)
         rep = c.reload()
         assert rep["ok"] is True and rep["unchanged"] == len(arts)
 
@@ -84,12 +108,14 @@ def test_wrong_token_is_rejected_at_once(server: tuple[str, dict]) -> None:
     assert "not-the-token" not in str(info.value) and "not-the-token" not in repr(c)
 
 
-def test_bad_rates_are_refused_before_sending(server: tuple[str, dict]) -> None:
+def test_bad_rates_are_item_errors_not_sent(server: tuple[str, dict]) -> None:
     url, arts = server
     with SizingClient(url, token=TOKEN) as c:
         for bad in (float("nan"), float("inf"), -1.0):
+            (a,) = c.demand_batch([(sorted(arts)[0], bad)])
+            assert isinstance(a, DemandError) and a.reason == "invalid_rate" and "rate" in a.error
             with pytest.raises(InputError, match="rate"):
-                c.demand_batch([(sorted(arts)[0], bad)])
+                c.demand(sorted(arts)[0], bad)
 
 
 def test_down_server_raises_unavailable_after_the_retries() -> None:
@@ -157,7 +183,11 @@ def stand_in() -> Iterator[tuple[str, type[_StandIn]]]:
 
 
 GOOD = json.dumps(
-    {"items": [{"model": "shop/a/b", "rate": 1.0, "cpu_m": 9, "upper_m": 12, "extrapolated": False, "version": "v1"}]}
+    {
+        "items": [
+            {"model": "shop/a/b", "rate": 1.0, "demand_m": 9, "demand_bound_m": 12, "extrapolated": False, "version": "v1"}
+        ]
+    }
 ).encode()
 
 
@@ -181,7 +211,14 @@ def test_5xx_every_time_gives_unavailable_after_retries_plus_one_tries(stand_in:
 
 @pytest.mark.parametrize(
     "body",
-    [b"<html>proxy</html>", b'{"items": []}', b'{"items": [{"rate": 1}]}', b'{"nothing": 1}'],
+    [
+        b"<html>proxy</html>",
+        b'{"items": []}',
+        b'{"items": [{"rate": 1}]}',
+        b'{"nothing": 1}',
+        # an answer in the names before issue 10 is refused, not misread
+        b'{"items": [{"model": "shop/a/b", "rate": 1.0, "cpu_m": 9, "upper_m": 12, "extrapolated": false, "version": "v"}]}',
+    ],
 )
 def test_garbage_answers_are_errors_not_crashes(stand_in: tuple[str, type[_StandIn]], body: bytes) -> None:
     url, handler = stand_in

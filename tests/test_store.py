@@ -95,3 +95,24 @@ def test_atomic_write_leaves_no_temp_files(tmp_path: Path, artifact, monkeypatch
     assert sorted(p.name for p in d.iterdir()) == ["app.json"]
     assert (d / "app.json").read_bytes() == before
     assert parse_artifact(before).key == KEY
+
+
+def test_model_detail_shows_the_training_file_by_base_name(tmp_path: Path) -> None:
+    """Issue 9: the model detail never shows the absolute path of the machine that trained."""
+    from api_fixtures import make_artifact
+    from fastapi.testclient import TestClient
+
+    from ratefit.models.api import ApiSettings, create_app
+    from ratefit.models.store import DataWindow
+
+    art = make_artifact("shop/web/app").model_copy(
+        update={"window": DataWindow(source="csv:/home/alice/private/kestrel-post/web.csv"), "content_hash": ""}
+    )
+    ModelStore(tmp_path / "store").save(art)
+    assert art.describe()["window"]["source"] == "csv:web.csv"
+    with TestClient(create_app(ApiSettings(store=tmp_path / "store"))) as c:
+        r = c.get("/v1/models/shop/web/app")
+        assert r.status_code == 200 and r.json()["window"]["source"] == "csv:web.csv"
+        assert "/home/alice" not in r.text
+        missing = c.get("/v1/nothing/here/secret-part")
+        assert missing.status_code == 404 and "secret-part" not in missing.text

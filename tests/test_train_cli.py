@@ -54,8 +54,8 @@ def test_train_show_json_fields(trained, capsys) -> None:
     rc, out, _ = _run(capsys, "models", "show", KEY, "--store", str(store), "--output", "json")
     assert rc == 0
     d = json.loads(out)
-    assert {"key", "chosen", "cv", "rate_range", "coverage", "samples", "dropped"} <= d.keys()
-    assert d["key"] == KEY and d["coverage"] == 0.95
+    assert {"model", "chosen", "cv", "rate_range", "coverage", "samples", "dropped"} <= d.keys()
+    assert d["model"] == KEY and d["coverage"] == 0.95
     assert all({"model", "rmse", "mae"} <= row.keys() for row in d["cv"])
     assert {row["model"] for row in d["cv"]} >= {"fixed", "linear", "isotonic", "mlp"}
     assert d["chosen"] in {row["model"] for row in d["cv"]}
@@ -72,7 +72,7 @@ def test_train_show_json_fields(trained, capsys) -> None:
 def test_report_written(trained) -> None:
     _, tmp = trained
     md = (tmp / "rep" / "shop__web__app.md").read_text()
-    assert "| model | RMSE | MAE | p95 abs error |" in md and "![demand curve" in md
+    assert "| estimator | RMSE | MAE | p95 abs error |" in md and "![demand curve" in md
     png = (tmp / "rep" / "shop__web__app.png").read_bytes()
     assert png[:8] == b"\x89PNG\r\n\x1a\n" and len(png) > 20_000
 
@@ -82,7 +82,7 @@ def test_models_list(trained, capsys) -> None:
     rc, out, _ = _run(capsys, "models", "list", "--store", str(store), "--output", "json")
     assert rc == 0
     d = json.loads(out)
-    assert [m["key"] for m in d["models"]] == [KEY] and d["refused"] == {}
+    assert [m["model"] for m in d["models"]] == [KEY] and d["refused"] == {}
     rc, out, _ = _run(capsys, "models", "list", "--store", str(store))
     assert KEY in out and "CHOSEN" in out
 
@@ -96,10 +96,10 @@ def test_predict_equals_curve_lookup_rounded_up(trained, capsys) -> None:
         d = json.loads(out)
         ref = curve.lookup(np.array([rate]))
         # millicores rounded up: 1m is Kubernetes' CPU precision (Kubernetes docs, "Resource units")
-        assert d["cpu_m"] == math.ceil(round(float(ref.demand[0]) * 1000, 6))
-        assert d["upper_m"] == math.ceil(round(float(ref.upper[0]) * 1000, 6))
+        assert d["demand_m"] == math.ceil(round(float(ref.demand[0]) * 1000, 6))
+        assert d["demand_bound_m"] == math.ceil(round(float(ref.upper[0]) * 1000, 6))
         assert d["extrapolated"] is bool(ref.extrapolated[0])
-        assert isinstance(d["cpu_m"], int) and d["upper_m"] >= d["cpu_m"]
+        assert isinstance(d["demand_m"], int) and d["demand_bound_m"] >= d["demand_m"]
     assert d["extrapolated"] is True  # 80 req/s lies above the trained range
 
 

@@ -20,6 +20,12 @@ print both reviews, and stop everything it started (also on Ctrl-C or an error).
 
 Writes into --out: review.md, reports/ (one training report + plot per model),
 samples/ (the invented CSVs), kubeconfig, run/ (history, model store, logs).
+The next demo with the same --out deletes run/ only if a demo created it (it holds
+the marker file .ratefit-demo-run); any other run/ is refused with an error, and so is
+an existing --out/kubeconfig that is not a sandbox kubeconfig.
+
+Without Prometheus (or with --replay) the rates are replayed from the history file;
+the output says so in one line. Neither root nor Prometheus is needed.
 """
 
 

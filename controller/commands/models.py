@@ -1,8 +1,8 @@
 """`ratefit models` — list the stored demand curves, or show one in full.
 
-``ratefit models list --store DIR [--output table|json]`` and
-``ratefit models show KEY --store DIR [--output table|json]``. JSON fields of
-``show`` (cores and req/s throughout): key, chosen, cv (list of {model, rmse, mae,
+``ratefit models list --store DIR [--output table|json|markdown]`` and
+``ratefit models show NAMESPACE/WORKLOAD/CONTAINER --store DIR [--output table|json|markdown]``.
+JSON fields of ``show`` (cores and req/s throughout): model, chosen, cv (list of {model, rmse, mae,
 p95, fit_seconds, params}), rate_range [lo, hi], coverage, band, samples (used),
 samples_total, dropped (by reason), folds, seed, tuned, window, trained_at,
 version, library, demand_at_range ([cores at lo, cores at hi]).
@@ -22,12 +22,14 @@ def register(sub: argparse._SubParsersAction) -> None:
     msub = p.add_subparsers(dest="models_command", metavar="ACTION", required=True)
     ls = msub.add_parser("list", help="one line per stored key (refused files are reported on stderr)")
     ls.add_argument("--store", required=True, metavar="DIR", help="model store directory")
-    ls.add_argument("--output", choices=("table", "json"), default="table", help="output format (default table)")
+    ls.add_argument("--output", choices=("table", "json", "markdown"), default="table",
+                    help="output format (default table)")
     ls.set_defaults(handler=_list)
     sh = msub.add_parser("show", help="everything stored for one key: CV table, range, band, drops")
-    sh.add_argument("key", metavar="NS/WORKLOAD/CONTAINER")
+    sh.add_argument("key", metavar="NAMESPACE/WORKLOAD/CONTAINER", help="the model key")
     sh.add_argument("--store", required=True, metavar="DIR", help="model store directory")
-    sh.add_argument("--output", choices=("table", "json"), default="table", help="output format (default table)")
+    sh.add_argument("--output", choices=("table", "json", "markdown"), default="table",
+                    help="output format (default table)")
     sh.set_defaults(handler=_show)
 
 
@@ -52,7 +54,7 @@ def _list(args: argparse.Namespace) -> int:
     if args.output == "json":
         rows = [
             {
-                "key": a.key,
+                "model": a.key,
                 "chosen": a.chosen,
                 "rate_range": list(a.rate_range),
                 "coverage": a.coverage,
@@ -64,12 +66,12 @@ def _list(args: argparse.Namespace) -> int:
         ]
         print(json.dumps({"models": rows, "refused": loaded.errors}, indent=2))
         return 0
-    head = ("KEY", "CHOSEN", "RATE RANGE (req/s)", "SAMPLES", "TRAINED", "VERSION")
+    head = ("MODEL", "CHOSEN", "RATE RANGE (req/s)", "SAMPLES", "TRAINED", "VERSION")
     table = [
         (a.key, a.chosen, f"{a.rate_range[0]:.4g}-{a.rate_range[1]:.4g}", str(a.samples), a.trained_at, a.version)
         for a in arts
     ]
-    _print_table(head, table)
+    (_print_markdown if args.output == "markdown" else _print_table)(head, table)
     return 1 if loaded.errors and not arts else 0
 
 
@@ -77,13 +79,16 @@ def _show(args: argparse.Namespace) -> int:
     from ratefit.models.keys import parse_key
     from ratefit.models.store import ModelStore
 
-    key = str(parse_key(args.key))
+    key = str(parse_key(args.key, field="model"))
     art = ModelStore(args.store).load(key)
     d = show_dict(art)
     if args.output == "json":
         print(json.dumps(d, indent=2))
         return 0
-    print(f"key          {d['key']}")
+    if args.output == "markdown":
+        _show_markdown(d)
+        return 0
+    print(f"model        {d['model']}")
     print(f"chosen       {d['chosen']}")
     print(f"rate range   {d['rate_range'][0]:.4g} - {d['rate_range'][1]:.4g} req/s per pod")
     print(f"demand       {d['demand_at_range'][0]:.4g} - {d['demand_at_range'][1]:.4g} cores over that range")
@@ -97,7 +102,7 @@ def _show(args: argparse.Namespace) -> int:
           f"version {d['version']}")
     print()
     _print_table(
-        ("MODEL", "RMSE", "MAE", "P95", "FIT S", ""),
+        ("ESTIMATOR", "RMSE", "MAE", "P95", "FIT S", ""),
         [
             (r["model"], f"{r['rmse']:.4g}", f"{r['mae']:.4g}", f"{r['p95']:.4g}", f"{r['fit_seconds']:.3f}",
              "chosen" if r["model"] == d["chosen"] else "")
@@ -112,3 +117,36 @@ def _print_table(head: tuple[str, ...], rows: list[tuple[str, ...]]) -> None:
     widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(head)]
     for r in (head, *rows):
         print("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip())
+
+
+def _print_markdown(head: tuple[str, ...], rows: list[tuple[str, ...]]) -> None:
+    print("| " + " | ".join(head) + " |")
+    print("|" + "|".join(" --- " for _ in head) + "|")
+    for r in rows:
+        print("| " + " | ".join(c.replace("|", "\\|") for c in r) + " |")
+
+
+def _show_markdown(d: dict[str, Any]) -> None:
+    print(f"### Model `{d['model']}`\n")
+    _print_markdown(
+        ("field", "value"),
+        [
+            ("chosen estimator", d["chosen"]),
+            ("rate range (req/s per pod)", f"{d['rate_range'][0]:.4g} - {d['rate_range'][1]:.4g}"),
+            ("demand over that range (cores)", f"{d['demand_at_range'][0]:.4g} - {d['demand_at_range'][1]:.4g}"),
+            ("upper band (cores)", f"+{d['band']:.4g} (coverage {d['coverage']:g})"),
+            ("samples", f"{d['samples']} used of {d['samples_total']}"),
+            ("data", str(d["window"].get("source", ""))),
+            ("trained", f"{d['trained_at']} (folds {d['folds']}, seed {d['seed']})"),
+            ("version", d["version"]),
+        ],
+    )
+    print()
+    _print_markdown(
+        ("estimator", "RMSE", "MAE", "P95", "fit s", ""),
+        [
+            (r["model"], f"{r['rmse']:.4g}", f"{r['mae']:.4g}", f"{r['p95']:.4g}", f"{r['fit_seconds']:.3f}",
+             "chosen" if r["model"] == d["chosen"] else "")
+            for r in sorted(d["cv"], key=lambda r: r["rmse"])
+        ],
+    )

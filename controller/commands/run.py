@@ -78,8 +78,8 @@ def _truthy(text: str | None) -> bool:
     return (text or "").strip().lower() in ("1", "true", "yes", "on")
 
 
-def add_connection_flags(p: argparse.ArgumentParser) -> None:
-    """The flags `run` and `plan` share: where the cluster, the rates and the sizing API are."""
+def add_connection_flags(p: argparse.ArgumentParser, *, sizing_required: bool = True) -> None:
+    """The flags `run`, `plan` and `check` share: where the cluster, the rates and the sizing API are."""
     g = p.add_argument_group("connections")
     g.add_argument("--kubeconfig", metavar="FILE",
                    help="kubeconfig of the cluster (default: $KUBECONFIG, else in-cluster service account, else ~/.kube/config)")
@@ -87,18 +87,34 @@ def add_connection_flags(p: argparse.ArgumentParser) -> None:
     g.add_argument("--prometheus", metavar="URL", help="Prometheus base URL, e.g. http://127.0.0.1:9090")
     g.add_argument("--replay", metavar="FILE",
                    help="instead of --prometheus: compute the rates offline from an OpenMetrics history file")
-    g.add_argument("--sizing-api", metavar="URL", required=True, help="sizing API base URL (`ratefit serve`), e.g. http://127.0.0.1:8470")
+    g.add_argument("--sizing-api", metavar="URL", required=sizing_required, help="sizing API base URL (`ratefit serve`), e.g. http://127.0.0.1:8470")
     g.add_argument("--sizing-token-file", metavar="FILE", help="file holding the sizing API's bearer token")
     g.add_argument("--namespace", "-n", action="append", default=[], metavar="NS",
                    help="only SizingPolicies in this namespace (repeat for several; default: all namespaces)")
     r = p.add_argument_group("rates")
-    r.add_argument("--rate-metric", default=os.environ.get("RATEFIT_RATE_METRIC", "http_requests_total"),
-                   help="request counter of the default rate template (labels namespace, workload, pod); default %(default)s")
+    r.add_argument("--rate-preset", default=os.environ.get("RATEFIT_RATE_PRESET") or "http-requests-total",
+                   metavar="NAME",
+                   help="request-counter convention of the default rate query (see the table below; "
+                        "default $RATEFIT_RATE_PRESET, else http-requests-total; now %(default)s)")
+    r.add_argument("--rate-metric", default=os.environ.get("RATEFIT_RATE_METRIC") or None,
+                   help="replace the preset's request counter (labels namespace and pod), e.g. orders_http_requests_total "
+                        "(default $RATEFIT_RATE_METRIC, else the preset's)")
+    r.add_argument("--allow-raw-rate-queries", action="store_true",
+                   help="let policies' rateQuery read any namespace's series (admin's choice; by default every "
+                        'selector of a rateQuery must carry namespace="<the policy\'s namespace>")')
+    r.add_argument("--max-rate-series", type=int, default=500, metavar="N",
+                   help="hold a container (TooManySeries) whose rate query answers more than N series "
+                        "(0: no cap; default %(default)s)")
     r.add_argument("--rate-interval", default="2m", help="rate() interval of the default template (default %(default)s)")
     r.add_argument("--rate-step", default="30s", help="subquery step for the percentile over rateWindow (default %(default)s)")
     r.add_argument("--rate-at", type=float, metavar="UNIX_SECONDS",
                    help="evaluate the rates at this time instead of now (replays, reproducible reviews)")
     r.add_argument("--timeout", type=float, default=10.0, help="seconds for each Prometheus and sizing API call (default %(default)s)")
+    if p.epilog is None:
+        from ratefit.controller.rate_presets import preset_table
+
+        p.epilog = ("rate presets (--rate-preset) and the PromQL each produces for the Deployment api in "
+                    "namespace shop:\n" + preset_table())
 
 
 @dataclass
@@ -121,16 +137,21 @@ class Connections:
 def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connections:
     """Build the Kubernetes adapter, the rate source and the sizing client from the flags."""
     from ratefit.controller.kube import KubeAdapter
-    from ratefit.controller.metrics_source import PrometheusRateSource, RateTemplate, ReplayRateSource
+    from ratefit.controller.metrics_source import PrometheusRateSource, ReplayRateSource
+    from ratefit.controller.promql_guard import QueryGuard
+    from ratefit.controller.rate_presets import template_for
     from ratefit.controller.sizing_client import SizingClient
     from ratefit.models.prometheus import PrometheusClient
 
     if bool(args.prometheus) == bool(args.replay):
         raise InputError("give exactly one of --prometheus URL or --replay FILE")
-    template = RateTemplate(metric=args.rate_metric, interval=args.rate_interval)
+    template = template_for(args.rate_preset, metric=args.rate_metric, interval=args.rate_interval)
+    if args.max_rate_series < 0:
+        raise InputError("--max-rate-series must be 0 (no cap) or positive")
+    guard = QueryGuard(enforce_namespace=not args.allow_raw_rate_queries, max_series=args.max_rate_series)
     if args.prometheus:
         rates = PrometheusRateSource(PrometheusClient(args.prometheus, timeout=args.timeout), at=args.rate_at,
-                                     template=template, step=args.rate_step)
+                                     template=template, step=args.rate_step, guard=guard)
         source = f"Prometheus at {args.prometheus}"
     else:
         if not os.path.exists(args.replay):

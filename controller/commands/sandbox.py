@@ -8,8 +8,10 @@ import sys
 
 HELP = """\
 Serve a local STAND-IN for a Kubernetes API server on 127.0.0.1 (plain HTTP) and
-write a kubeconfig (context `ratefit-sandbox`) that kubectl and the official
-`kubernetes` Python client accept. It is a stand-in, not a cluster: there is no
+write a kubeconfig (context ratefit-sandbox) that kubectl and the official
+kubernetes Python client accept. An existing --kubeconfig file is replaced only if
+the sandbox wrote it (it opens with a "# ratefit sandbox kubeconfig" line and names
+only the ratefit-sandbox context); anything else is refused unless --force. It is a stand-in, not a cluster: there is no
 scheduler and no kubelet — pods become Running at once on `sandbox-node`, an in-place
 resize (pods/resize) is applied at once and shown in status.containerStatuses[].resources
 (a resize beyond the pretend node's 16 CPU / 64Gi is left PodResizePending/Infeasible;
@@ -30,6 +32,13 @@ Fault injection over HTTP (for tests driving a sandbox in another process):
   curl -X DELETE $URL/_sandbox/faults
 Fields: method ("*"), path (regex searched in the URL path), status, count (null = until
 cleared), latency (seconds), retryAfter, conflict (409), dropWatch (cut watch streams).
+Access reviews: POST /apis/authorization.k8s.io/v1/selfsubjectaccessreviews answers
+allowed (no RBAC here) unless a deny rule matches (--deny, or over HTTP:
+  curl -X POST $URL/_sandbox/access -d '{"verb":"patch","group":"apps","resource":"deployments"}'
+  curl -X DELETE $URL/_sandbox/access
+fields verb, group, resource, subresource, namespace; "*" matches any); a denied
+request gets 403 Forbidden. GET $URL/_sandbox/requests lists the last requests with
+their authorization attributes (verb, group, resource, subresource, namespace).
 POST $URL/_sandbox/compact forgets the watch history (next watches from an old
 resourceVersion get 410 Gone).
 """
@@ -48,7 +57,10 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="address to bind (default 127.0.0.1; the sandbox has no authentication)")
     p.add_argument("--kubeconfig", default="sandbox.kubeconfig", metavar="FILE",
                    help="where to write the kubeconfig (default ./sandbox.kubeconfig); use it "
-                        "with `KUBECONFIG=FILE kubectl …`")
+                        "with KUBECONFIG=FILE kubectl ... An existing file is replaced only if "
+                        "the sandbox wrote it (see --force)")
+    p.add_argument("--force", action="store_true",
+                   help="replace an existing --kubeconfig file even if the sandbox did not write it")
     p.add_argument("--load", nargs="+", default=[], metavar="PATH",
                    help="YAML/JSON manifests (files or directories, multi-document) to create "
                         "at start; CRDs and namespaces first, missing namespaces are created")
@@ -61,14 +73,29 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="pods start Pending and turn Running/Ready after this delay; rollouts "
                         "then surge and wait (Deployments) or go one pod at a time, highest "
                         "ordinal first (StatefulSets). Default 0: everything at once")
+    p.add_argument("--deny", action="append", default=[], metavar="VERB:RESOURCE",
+                   help="fault mode: deny VERB on RESOURCE[.GROUP][/SUBRESOURCE] (e.g. "
+                        "patch:deployments.apps, patch:pods/resize, '*:leases.coordination.k8s.io'); "
+                        "SelfSubjectAccessReviews (kubectl auth can-i) answer no and such requests "
+                        "get 403 Forbidden. Repeatable. Default: everything is allowed")
     p.add_argument("--access-log", action="store_true",
                    help="print one line per request on stderr (method, path, status, time)")
     p.set_defaults(handler=_run)
 
 
 def _run(args: argparse.Namespace) -> int:
-    from ratefit.controller.sandbox.server import SandboxServer
+    from ratefit.controller.sandbox import kubeconfig
+    from ratefit.controller.sandbox.server import CONTEXT, SandboxServer
 
+    from ratefit.controller.sandbox.access import parse_deny
+    from ratefit.models.errors import InputError
+
+    # refuse a user's own kubeconfig and bad flags before anything starts
+    kubeconfig.check_target(args.kubeconfig, CONTEXT, force=args.force)
+    try:
+        deny = [parse_deny(d) for d in args.deny]
+    except ValueError as exc:
+        raise InputError(str(exc)) from exc
     if args.host not in ("127.0.0.1", "localhost", "::1"):
         print("ratefit sandbox: warning: binding a non-loopback address; the sandbox accepts "
               "any client without authentication", file=sys.stderr)
@@ -76,10 +103,12 @@ def _run(args: argparse.Namespace) -> int:
                        bookmark_interval=args.bookmark_interval,
                        access_log=sys.stderr if args.access_log else None,
                        startup_seconds=args.startup_seconds)
+    for rule in deny:
+        sb.access.deny_json(rule)
     if args.load:
         print(f"ratefit sandbox: loading {len(args.load)} path(s)…", file=sys.stderr)
     sb.start()
-    path = sb.write_kubeconfig(args.kubeconfig)
+    path = sb.write_kubeconfig(args.kubeconfig, force=args.force)
     print(f"ratefit sandbox: serving {sb.url} (a stand-in, not a cluster)", file=sys.stderr)
     print(f"ratefit sandbox: kubeconfig written to {path}  (context ratefit-sandbox)",
           file=sys.stderr)

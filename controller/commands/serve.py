@@ -9,6 +9,7 @@ lifespan's exit), after which the command returns 0.
 from __future__ import annotations
 
 import argparse
+import ipaddress
 import os
 import socket
 import stat
@@ -28,6 +29,14 @@ Routes: GET /v1/models, GET /v1/models/NS/WORKLOAD/CONTAINER[/demand?rate=R],
 POST /v1/demand (batch), POST /v1/reload, /healthz, /readyz, /metrics, /docs.
 Binds 127.0.0.1 unless --host says otherwise. With --token-file every route but
 /healthz needs 'Authorization: Bearer <token>'.
+
+Limits (each refusal is logged and counted in ratefit_api_connections_refused_total):
+a request head (request line and headers) over 64 KiB or with more than 100 header
+fields gets 431 and the connection is closed; a request that has not fully arrived
+--request-timeout after the connection opened or the request began is closed (408 if
+its head is incomplete); an idle keep-alive connection is closed after --idle-timeout;
+connections above --max-connections are closed at once. Store files: only regular
+files inside --store are read (no symbolic links, FIFOs or devices), at most 16 MiB each.
 """
 
 
@@ -73,6 +82,25 @@ def register(sub: argparse._SubParsersAction) -> None:
         "verified again. Default: only on POST /v1/reload",
     )
     p.add_argument(
+        "--max-connections",
+        type=int,
+        default=256,
+        metavar="N",
+        help="most open connections; more are closed at once (default 256)",
+    )
+    p.add_argument(
+        "--request-timeout",
+        metavar="DURATION",
+        default="10s",
+        help="time a request may take to arrive, head and body (default 10s)",
+    )
+    p.add_argument(
+        "--idle-timeout",
+        metavar="DURATION",
+        default="5s",
+        help="close a keep-alive connection idle this long between requests (default 5s)",
+    )
+    p.add_argument(
         "--log-level",
         default="info",
         choices=["debug", "info", "warning", "error"],
@@ -94,6 +122,22 @@ def read_token(path: str) -> str:
             "(e.g. the output of `openssl rand -hex 32`)"
         )
     return token
+
+
+def exposure_warning(bound: str, token: str | None, *, fd: int | None = None) -> str | None:
+    """The warning for serving beyond loopback without a token (``--host`` or ``--fd``
+    alike), or None."""
+    if token is not None:
+        return None
+    if bound == "localhost":
+        return None
+    try:
+        if ipaddress.ip_address(bound).is_loopback:
+            return None
+    except ValueError:
+        pass  # a host name: may resolve to anything
+    how = f"--fd {fd} (bound to {bound})" if fd is not None else bound
+    return f"binding {how} without --token-file: anyone who can reach the port can read the models"
 
 
 def _inherited_socket(fd: int) -> socket.socket:
@@ -130,33 +174,49 @@ def _run(args: argparse.Namespace) -> int:
         mode = os.stat(args.token_file).st_mode
         if mode & (stat.S_IRGRP | stat.S_IROTH):
             log.warning("token file %s is readable by other users: chmod 600 it", args.token_file)
-    if args.host not in ("127.0.0.1", "localhost", "::1") and token is None:
-        log.warning("binding %s without --token-file: anyone who can reach the port can read the models", args.host)
+    from ratefit.models.durations import parse_duration
+
+    if args.max_connections < 1:
+        raise InputError(f"--max-connections {args.max_connections}: must be at least 1")
+    request_timeout = parse_duration(args.request_timeout, field="--request-timeout")
+    idle_timeout = parse_duration(args.idle_timeout, field="--idle-timeout")
+    sockets = [_inherited_socket(args.fd)] if args.fd is not None else None
+    bound = args.host if sockets is None else str(sockets[0].getsockname()[0])
+    warning = exposure_warning(bound, token, fd=args.fd)
+    if warning:
+        log.warning("%s", warning)
     settings_kw: dict[str, object] = {"store": store, "token": token}
     if args.max_batch is not None:
         settings_kw["max_batch"] = args.max_batch
     if args.reload_interval is not None:
-        from ratefit.models.durations import parse_duration
-
         settings_kw["reload_interval"] = parse_duration(args.reload_interval, field="--reload-interval")
     try:
         settings = ApiSettings(**settings_kw)  # type: ignore[arg-type]
     except ValueError as exc:
         raise InputError(f"invalid option: {exc}") from exc
     app = create_app(settings)
+    from ratefit.models.api_limits import ConnectionLimits, limited_protocol
+
+    metrics = app.state.metrics
+    protocol = limited_protocol(
+        ConnectionLimits(request_timeout=request_timeout, max_connections=args.max_connections),
+        on_refused=lambda reason: metrics.connections_refused.labels(reason).inc(),
+    )
     config = uvicorn.Config(
         app,
         host=args.host,
         port=args.port,
+        http=protocol,
         log_config=None,  # keep our JSON-lines handlers
         log_level=args.log_level,
         access_log=False,  # the app writes its own structured access log
         lifespan="on",
         timeout_graceful_shutdown=10,
+        timeout_keep_alive=idle_timeout,  # type: ignore[arg-type]  # call_later takes a float
+        backlog=min(2048, max(16, args.max_connections)),
         server_header=False,
     )
     server = uvicorn.Server(config)
-    sockets = [_inherited_socket(args.fd)] if args.fd is not None else None
     server.run(sockets=sockets)
     if not server.started:
         raise InputError(f"could not start the server on {args.host}:{args.port} (see the log above: port in use?)")

@@ -18,10 +18,20 @@ HELP = "learn a demand curve (rate per pod -> CPU cores) from a CSV or Prometheu
 DESCRIPTION = """\
 Learn, for one container key NAMESPACE/WORKLOAD/CONTAINER, how much CPU a pod uses
 at a given request rate. Samples are cleaned (NaN/stale, duplicate, throttled and
-warm-up samples are dropped and counted), every candidate model is scored by
-shuffled k-fold cross-validation (RMSE; ties within 2% go to the simpler model),
-the chosen model is tabulated into a non-decreasing curve with a one-sided
-split-conformal upper band, and the artifact is written to the store atomically.
+warm-up samples are dropped and counted), every candidate estimator is scored by
+k-fold cross-validation (RMSE; ties within 2% go to the simpler estimator), the
+chosen estimator is tabulated into a non-decreasing curve with a one-sided
+split-conformal upper band, and the model (one artifact per key) is written to
+the store atomically.
+
+Cross-validation (--cv): "blocked" holds out contiguous time blocks, so
+neighbouring minutes of a time series never sit on both sides of a split; it is
+the default when the samples have timestamps. "shuffled" draws samples into
+random folds; it is the default without timestamps, and on a time series it
+flatters (the errors and the band come out too small). The band is computed from
+the held-out errors of the scheme used. With timestamps the chosen estimator and
+the baseline are also scored with the other scheme, and the output and the
+report show both errors side by side.
 
 CSV columns: rate,cpu (req/s per pod, cores); optional timestamp (unix seconds or
 RFC 3339), pod, throttled (share of throttled CFS periods, 0..1).
@@ -58,6 +68,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--tune", action="store_true",
                    help="hyperparameter grid search, nested inside the cross-validation (slower)")
     p.add_argument("--folds", type=int, default=5, help="cross-validation folds (default 5)")
+    p.add_argument("--cv", choices=("blocked", "shuffled"), default=None,
+                   help="cross-validation scheme: blocked (contiguous time blocks) or shuffled "
+                        "(default: blocked when the samples have timestamps, shuffled otherwise)")
     p.add_argument("--coverage", type=float, default=0.95, help="upper band coverage, 0 < C < 1 (default 0.95)")
     p.add_argument("--seed", type=int, default=0, help="seed for folds and estimators (default 0)")
     p.add_argument("--throttle-threshold", type=float, default=0.05,
@@ -101,6 +114,7 @@ def _end_time(text: str | None) -> float:
 
 
 def _run(args: argparse.Namespace) -> int:
+    from ratefit.models.options import TrainOptions
     from ratefit.models.samples import load_csv
     from ratefit.models.store import ModelStore
     from ratefit.models.train import samples_dir_files, train_key_detailed
@@ -112,45 +126,41 @@ def _run(args: argparse.Namespace) -> int:
         raise InputError("--key NAMESPACE/WORKLOAD/CONTAINER is required with --samples and --prometheus")
     if args.samples_dir and args.key:
         raise InputError("--key does not go with --samples-dir: the file names give the keys")
-    options = dict(
+    options = TrainOptions(
         folds=args.folds,
         coverage=args.coverage,
         tune=args.tune,
         seed=args.seed,
+        cv=args.cv,
         throttle_threshold=args.throttle_threshold,
         warmup=_warmup_seconds(args.warmup),
-        progress=_progress(args),
     )
+    progress = _progress(args)
     store = ModelStore(args.store)
     results = []
     if args.samples:
-        results.append(train_key_detailed(load_csv(args.samples), key=args.key, **options))
+        results.append(train_key_detailed(load_csv(args.samples), key=args.key, options=options, progress=progress))
     elif args.samples_dir:
         files = samples_dir_files(args.samples_dir)
         for i, (key, path) in enumerate(files.items(), start=1):
-            if options["progress"]:
-                options["progress"](f"[{i}/{len(files)}] {key} from {path}")
-            results.append(train_key_detailed(load_csv(path), key=key, **options))
+            if progress:
+                progress(f"[{i}/{len(files)}] {key} from {path}")
+            results.append(train_key_detailed(load_csv(path), key=key, options=options, progress=progress))
     else:
-        results.append(_from_prometheus(args, options))
+        results.append(_from_prometheus(args, options, progress))
     for res in results:
         path = store.save(res.artifact)
         a = res.artifact
-        print(
-            f"{a.key}: {a.chosen} (cv rmse {next(r.rmse for r in a.cv if r.model == a.chosen):.4g} cores), "
-            f"band +{a.curve.band:.4g} cores at {a.coverage:g}, {res.report.summary()} -> {path}"
-        )
+        print(f"{a.key}: {res.summary()}, {res.report.summary()} -> {path}")
         if args.report:
-            from ratefit.models.report import fit_all_for_report, write_report
+            from ratefit.models.report import write_train_report
 
-            ests = fit_all_for_report(res.samples, seed=args.seed)
-            ests[a.chosen] = res.selection.estimator
-            md, _ = write_report(a, args.report, samples=res.samples, estimators=ests)
+            md, _ = write_train_report(res, args.report, seed=options.seed)
             print(f"{a.key}: report {md}")
     return 0
 
 
-def _from_prometheus(args: argparse.Namespace, options: dict):
+def _from_prometheus(args: argparse.Namespace, options, progress):
     from ratefit.models.durations import parse_duration
     from ratefit.models.prometheus import PrometheusClient
     from ratefit.models.train import train_from_prometheus
@@ -172,5 +182,6 @@ def _from_prometheus(args: argparse.Namespace, options: dict):
             step=step,
             step_text=args.step,
             source=f"prometheus:{args.prometheus}",
-            **options,
+            options=options,
+            progress=progress,
         )

@@ -92,6 +92,9 @@ BUILTINS: tuple[ResourceType, ...] = (
        short_names=("hpa",), subresources=("status",), categories=("all",)),
     _r("events.k8s.io", "v1", "events", "Event", short_names=("ev",), storage_group=""),
     _r("coordination.k8s.io", "v1", "leases", "Lease"),
+    # answered by access.py (allow-all, deny rules as a fault mode); nothing is stored
+    _r("authorization.k8s.io", "v1", "selfsubjectaccessreviews", "SelfSubjectAccessReview",
+       namespaced=False, verbs=("create",)),
     _r("apiextensions.k8s.io", "v1", "customresourcedefinitions", "CustomResourceDefinition",
        namespaced=False, short_names=("crd", "crds"), subresources=("status",)),
     # stored and served, not acted upon (so that whole manifest sets load)
@@ -114,7 +117,8 @@ BUILTINS: tuple[ResourceType, ...] = (
 
 #: preferred versions of the built-in groups
 GROUP_ORDER = ("", "apps", "autoscaling", "batch", "policy", "rbac.authorization.k8s.io",
-               "events.k8s.io", "coordination.k8s.io", "apiextensions.k8s.io")
+               "events.k8s.io", "coordination.k8s.io", "apiextensions.k8s.io",
+               "authorization.k8s.io")
 
 
 def from_crd(crd: dict[str, Any]) -> list[ResourceType]:

@@ -3,9 +3,11 @@
 `SandboxServer` serves the REST subset in `api.py` over plain HTTP on 127.0.0.1 with
 a `ThreadingHTTPServer` (one thread per connection, chunked streaming for watches),
 plus discovery, minimal OpenAPI v3, `/healthz`, fault injection
-(`/_sandbox/faults`) and `/_sandbox/compact` (forget the watch history). It is not a
-cluster: no scheduler, no kubelet, no admission webhooks, no authentication (any
-bearer token is accepted), no RBAC.
+(`/_sandbox/faults`), `/_sandbox/compact` (forget the watch history), the request log
+(`/_sandbox/requests`, with each request's authorization attributes), and
+SelfSubjectAccessReview with deny rules as a fault mode (`/_sandbox/access`, access.py).
+It is not a cluster: no scheduler, no kubelet, no admission webhooks, no authentication
+(any bearer token is accepted), no RBAC (allow-all unless a deny rule says otherwise).
 
     with SandboxServer(load=["manifests/crd"]) as sb:
         sb.write_kubeconfig(tmp / "kubeconfig")
@@ -28,7 +30,7 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 from typing import Any, TextIO
 
-from ratefit.controller.sandbox import discovery
+from ratefit.controller.sandbox import access, discovery, protobuf
 from ratefit.controller.sandbox import errors as E
 from ratefit.controller.sandbox.api import Api, Request, Response
 from ratefit.controller.sandbox.faults import Faults
@@ -142,10 +144,14 @@ class _Handler(BaseHTTPRequestHandler):
         body = self.rfile.read(length) if length else b""
         headers = {k.lower(): v for k, v in self.headers.items()}
         req = Request(self.command, path, query, headers, body)
-        sb.log_request({"method": self.command, "path": path,
-                        "query": {k: v[-1] for k, v in query.items()},
-                        "contentType": headers.get("content-type", ""),
-                        "time": time.time()})
+        attrs = access.request_attributes(self.command, path, query)
+        entry = {"method": self.command, "path": path,
+                 "query": {k: v[-1] for k, v in query.items()},
+                 "contentType": headers.get("content-type", ""),
+                 "time": time.time()}
+        if not path.startswith("/_sandbox/"):
+            entry["attributes"] = attrs.to_json()
+        sb.log_request(entry)
         if path.startswith("/_sandbox/"):
             return self._private(req)
         watch = req.flag("watch")
@@ -181,10 +187,36 @@ class _Handler(BaseHTTPRequestHandler):
                 self.end_headers()
                 self.wfile.write(data)
                 return
+        if path == access.SSAR_PATH:
+            return self._access_review(req)
+        if attrs.is_resource:
+            try:
+                sb.access.check(attrs)
+            except E.ApiError as err:
+                return self._send_error(err)
         resp = sb.api.handle(req)
         if resp.stream is not None:
             return self._stream(resp, drop=drop)
         self._send_json(resp.code, resp.body, resp.headers)
+
+    def _access_review(self, req: Request) -> None:
+        """POST a SelfSubjectAccessReview: allowed unless a deny rule matches (access.py)."""
+        sb = self.server.sandbox
+        if req.method != "POST":
+            return self._send_error(E.method_not_allowed(req.method, req.path))
+        try:
+            ctype = req.headers.get("content-type", "").split(";")[0].strip()
+            if ctype == "application/vnd.kubernetes.protobuf":  # what kubectl auth can-i sends
+                try:
+                    body = protobuf.decode_ssar(req.body)
+                except (ValueError, UnicodeDecodeError) as exc:
+                    raise E.bad_request(f"the protobuf body is not a SelfSubjectAccessReview: {exc}") from exc
+            else:
+                body = sb.api._load_body(req)
+            answer = access.review(body, sb.access)
+        except E.ApiError as err:
+            return self._send_error(err)
+        self._send_json(201, answer)
 
     def _discovery(self, path: str) -> dict | None:
         sb = self.server.sandbox
@@ -275,6 +307,20 @@ class _Handler(BaseHTTPRequestHandler):
         if req.path == "/_sandbox/compact" and req.method == "POST":
             sb.store.compact()
             return self._send_json(200, {"compacted": sb.store.compacted})
+        if req.path == "/_sandbox/access":
+            if req.method == "GET":
+                return self._send_json(200, {"deny": [r.to_json() for r in sb.access.rules]})
+            if req.method == "DELETE":
+                sb.access.clear()
+                return self._send_json(200, {"deny": []})
+            if req.method == "POST":
+                try:
+                    spec = json.loads(req.body or b"{}")
+                    specs = spec if isinstance(spec, list) else [spec]
+                    rules = [sb.access.deny_json(s) for s in specs]
+                except (ValueError, TypeError) as exc:
+                    return self._send_error(E.bad_request(f"bad deny rule: {exc}"))
+                return self._send_json(201, {"deny": [r.to_json() for r in rules]})
         if req.path == "/_sandbox/requests" and req.method == "GET":
             return self._send_json(200, {"requests": list(sb.requests)})
         return self._send_error(E.ApiError(404, "NotFound", f"no sandbox endpoint {req.path}"))
@@ -296,6 +342,8 @@ class SandboxServer:
         self._load = list(load)
         self.store = Store(history=history)
         self.faults = Faults()
+        #: deny rules (fault mode): SelfSubjectAccessReviews answer "no", requests get 403
+        self.access = access.AccessRules()
         self._requests: deque[dict[str, Any]] = deque(maxlen=2000)
         self._requests_lock = threading.Lock()
         self._stopping = threading.Event()
@@ -333,7 +381,10 @@ class SandboxServer:
     @property
     def requests(self) -> list[dict[str, Any]]:
         """A snapshot of the last 2000 requests served, oldest first: dicts with method,
-        path, query (last value of each parameter), contentType, time — for assertions."""
+        path, query (last value of each parameter), contentType, time and — except for
+        ``/_sandbox/`` endpoints — ``attributes``, the authorization attributes an
+        authorizer would see (verb, group, resource, subresource, namespace, name, or
+        nonResourceURL; see access.py) — for assertions."""
         with self._requests_lock:
             return list(self._requests)
 
@@ -454,14 +505,14 @@ class SandboxServer:
             "preferences": {},
         }
 
-    def write_kubeconfig(self, path: str | Path, *, namespace: str = "default") -> Path:
-        """Write a kubeconfig (context `ratefit-sandbox`) for kubectl and the Python client."""
-        import yaml
+    def write_kubeconfig(self, path: str | Path, *, namespace: str = "default",
+                         force: bool = False) -> Path:
+        """Write a kubeconfig (context `ratefit-sandbox`) for kubectl and the Python client.
+        An existing file is replaced only when the sandbox wrote it (or ``force``);
+        otherwise `kubeconfig.KubeconfigExists` says so."""
+        from ratefit.controller.sandbox import kubeconfig
 
-        path = Path(path)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        path.write_text(yaml.safe_dump(self.kubeconfig(namespace=namespace), sort_keys=False))
-        return path
+        return kubeconfig.write(path, self.kubeconfig(namespace=namespace), CONTEXT, force=force)
 
     def api_client(self) -> Any:
         """A `kubernetes.client.ApiClient` configured for this sandbox."""

@@ -28,6 +28,8 @@ BENCHES: dict[str, tuple[str, list[str], list[str]]] = {
     "kube": ("tests.bench.bench_kube", [], ["--workloads", "300", "--patches", "20"]),
     "reconcile": ("tests.bench.bench_reconcile", [], ["--workloads", "1000"]),
     "cache": ("tests.bench.bench_cache", [], ["--workloads", "1000", "--no-writes"]),
+    "health": ("tests.bench.bench_health", [], ["--idle", "300", "--header-mib", "10"]),
+    "profile": ("tests.bench.bench_profile", [], ["--duration", "3", "--rates", "100,300"]),
 }
 
 

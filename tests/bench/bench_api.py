@@ -280,7 +280,7 @@ def main(argv: list[str] | None = None) -> int:
                 t4 = time.perf_counter()
                 rep = c.post("/v1/reload").json()
                 same_s = time.perf_counter() - t4
-                print(f"\nPOST /v1/reload of {rep['models']} models, nothing changed: {same_s:.2f} s")
+                print(f"\nPOST /v1/reload of {rep['model_count']} models, nothing changed: {same_s:.2f} s")
                 print("rewriting every artifact …", file=sys.stderr)
                 build_store(root, args.models, seed=time.time_ns())
                 t5 = time.perf_counter()

@@ -1,0 +1,390 @@
+"""Observe: one frozen snapshot of the world for a pass (all reads first, batched).
+
+List the policies (one LIST per namespace, or one cluster-wide), parse each (an
+invalid one is kept with its :class:`~ratefit.controller.policy.PolicyInvalid`); LIST
+the Deployments, StatefulSets and HorizontalPodAutoscalers once per namespace that
+has policies (never a GET per policy); for ``method: in-place`` the workload's pods;
+ask the rate source for every container's per-pod rate in one grouped query (in a
+thread, while the workloads are listed) and the sizing API for every (model, rate)
+in one batch call. The result, :class:`Snapshot`, is what the decide stage reads.
+
+A LIST that fails (429/5xx after the adapter's retries, 403 …) does not make its
+workloads "not found": their policies are marked ``unavailable`` (held
+``ApiUnavailable``, status left as it was) — a partial observation never rewrites
+status.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import threading
+import time
+import zlib
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime
+
+from ratefit.controller.crd import API_VERSION, KIND
+from ratefit.controller.decide import ContainerInput, Sizing
+from ratefit.controller.errors import KubeError
+from ratefit.controller.metrics_source import RateRequest, RateResult
+from ratefit.controller.policy import Method, Policy, PolicyInvalid, format_duration, parse_policy
+from ratefit.controller.stages.ports import KubeReader, RateSource, SizingSource
+from ratefit.controller.telemetry import Telemetry
+from ratefit.controller.workload import Pod, PolicyObject, Workload
+from ratefit.models.errors import RatefitError
+
+__all__ = ["Observed", "Observer", "Snapshot", "policy_object_dict", "shard_of"]
+
+log = logging.getLogger("ratefit.controller.reconcile")
+
+#: up to this many namespaces with policies, workloads are listed per namespace
+LIST_PER_NAMESPACE_UP_TO = 3
+
+
+@dataclass(frozen=True)
+class Observed:
+    """One SizingPolicy as observed this pass."""
+
+    obj: PolicyObject
+    policy: Policy | None = None
+    invalid: PolicyInvalid | None = None
+    workload: Workload | None = None
+    hpa_on_cpu: bool = False
+    inputs: tuple[ContainerInput, ...] = ()
+    #: why nothing can be decided (the workload is missing, or its LIST failed)
+    problem: str | None = None
+    #: True: the workload could not be observed (the API failed), not "not found"
+    unavailable: bool = False
+    #: ``method: in-place``: the workload's pods, as listed this pass
+    pods: tuple[Pod, ...] | None = None
+
+
+@dataclass(frozen=True)
+class Snapshot:
+    """What one pass saw, in the fixed order (namespace, name)."""
+
+    now: datetime
+    entries: tuple[Observed, ...]
+    #: workload keys whose rollout is in progress (the rollout slots follow them)
+    rolling: tuple[str, ...] = ()
+    #: inputs that failed (the pass is DEGRADED); the affected containers are held
+    errors: tuple[str, ...] = ()
+    #: wall seconds of the observe stage's parts (for the benchmark)
+    split: Mapping[str, float] = field(default_factory=dict)
+
+
+def shard_of(namespace: str, count: int) -> int:
+    """The shard (0 … count−1) of a namespace: CRC-32 of its name (stable across
+    processes and versions, unlike Python's ``hash``) modulo ``count``."""
+    return zlib.crc32(namespace.encode("utf-8")) % count
+
+
+def policy_object_dict(obj: PolicyObject) -> dict[str, object]:
+    """A stored SizingPolicy (``workload.PolicyObject``) as the object ``parse_policy`` reads."""
+    return {
+        "apiVersion": API_VERSION,
+        "kind": KIND,
+        "metadata": {"namespace": obj.namespace, "name": obj.name, "generation": obj.generation},
+        "spec": dict(obj.spec or {}),
+    }
+
+
+def _kind_value(kind: object) -> str:
+    return str(getattr(kind, "value", kind))
+
+
+def sizing_of(answer: object) -> Sizing | None:
+    """One item of the sizing API's batch answer → Sizing (cores), or None."""
+    if answer is None:
+        return None
+    if isinstance(answer, Sizing):
+        return answer
+    get = answer.get if isinstance(answer, Mapping) else (lambda k, d=None: getattr(answer, k, d))
+    if get("error"):
+        return None
+    demand_m, bound_m = get("demand_m"), get("demand_bound_m")
+    if demand_m is None or bound_m is None:
+        return None
+    return Sizing(demand=float(demand_m) / 1000.0, upper=float(bound_m) / 1000.0,
+                  extrapolated=bool(get("extrapolated", False)))
+
+
+#: the sizing API's per-item error reasons (models/api_routes) → the held reason
+_SIZING_REASONS = {"unknown_model": "NoModel", "invalid_model": "InvalidModelKey",
+                   "out_of_range": "DemandOutOfRange", "invalid_rate": "NoMetrics", "invalid_item": "NoModel"}
+
+
+def sizing_problem(answer: object) -> tuple[str, str] | None:
+    """The held reason and message of one item the sizing API answered with an error."""
+    if answer is None or isinstance(answer, Sizing):
+        return None
+    get = answer.get if isinstance(answer, Mapping) else (lambda k, d=None: getattr(answer, k, d))
+    error = get("error")
+    if not error:
+        return None
+    return _SIZING_REASONS.get(str(get("reason") or ""), "NoModel"), str(error)
+
+
+class Observer:
+    """Builds a :class:`Snapshot` per pass. Keeps only the parsed policies across
+    passes (the spec changes only with the generation: each is parsed once)."""
+
+    def __init__(
+        self, *, reader: KubeReader, rates: RateSource, sizing: SizingSource, telemetry: Telemetry,
+        namespaces: tuple[str, ...] = (), shard: tuple[int, int] | None = None,
+    ) -> None:
+        self.reader = reader
+        self.rates = rates
+        self.sizing = sizing
+        self.telemetry = telemetry
+        self.namespaces = namespaces
+        self.shard = shard
+        self._parsed: dict[tuple[str, str, str, int], Policy | PolicyInvalid] = {}
+
+    def observe(self, now: datetime) -> Snapshot:
+        """One snapshot. Raises KubeError when the policies cannot be listed."""
+        errors: list[str] = []
+        #: "namespace/policy/container" → (reason, message) of an input that failed for it alone
+        problems: dict[str, tuple[str, str]] = {}
+        t_g0 = time.perf_counter()
+        objs = list(self.reader.list_policies(list(self.namespaces) or None).items)
+        if self.shard is not None:
+            index, count = self.shard
+            objs = [o for o in objs if shard_of(o.namespace, count) == index]
+        objs.sort(key=lambda o: (o.namespace, o.name))
+        parsed = self._parse(objs)
+        valid = [(o, p) for o, p in zip(objs, parsed) if isinstance(p, Policy)]
+        self.telemetry.policies.labels(state="valid").set(len(valid))
+        self.telemetry.policies.labels(state="invalid").set(len(objs) - len(valid))
+
+        # the rates depend only on the policies: ask Prometheus while the workloads are listed
+        window_texts: dict[float, str] = {}
+        requests: list[RateRequest] = []
+        models: dict[tuple[str, str, str], str] = {}
+        for _, p in valid:
+            if p.rate_window_s not in window_texts:
+                window_texts[p.rate_window_s] = format_duration(p.rate_window_s)
+            for c in p.containers:
+                requests.append(RateRequest(
+                    namespace=p.namespace, policy=p.name, workload=p.workload_name, container=c.name,
+                    workload_kind=p.workload_kind, query=c.rate_query, rate_window=window_texts[p.rate_window_s], percentile=p.rate_percentile,
+                ))
+                models[(p.namespace, p.name, c.name)] = c.model
+        rate_box: dict[str, object] = {}
+
+        def ask_rates() -> None:
+            t = time.perf_counter()
+            try:
+                rate_box["rates"] = self._query_rates(requests, errors, problems)
+            except BaseException as exc:  # handed to the pass's thread below
+                rate_box["error"] = exc
+            rate_box["seconds"] = time.perf_counter() - t
+
+        rate_thread = threading.Thread(target=ask_rates, name="ratefit-rates", daemon=True)
+        rate_thread.start()
+        try:
+            workloads, hpa_cpu, rolling, failed = self._list_workloads([p for _, p in valid], errors)
+            t_lists = time.perf_counter()
+        finally:
+            rate_thread.join()
+        t_rates = time.perf_counter()
+        if "error" in rate_box:
+            raise rate_box["error"]  # type: ignore[misc]
+        rates: dict[str, float | None] = rate_box["rates"]  # type: ignore[assignment]
+
+        found: set[tuple[str, str]] = set()
+        for _, p in valid:
+            if (p.namespace, p.workload_kind, p.workload_name) in workloads:
+                found.add((p.namespace, p.name))
+        asked = [r for r in requests if (r.namespace, r.policy) in found]
+        sizing = self._query_sizing(asked, models, rates, errors, problems)
+        t_sizing = time.perf_counter()
+
+        entries = []
+        for o, got in zip(objs, parsed):
+            if isinstance(got, PolicyInvalid):
+                entries.append(Observed(obj=o, invalid=got))
+                continue
+            entries.append(self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors, problems))
+        split = {"gather_kube": t_lists - t_g0, "gather_rates": float(rate_box.get("seconds", 0.0)),  # type: ignore[arg-type]
+                 "gather_rates_wait": t_rates - t_lists, "gather_sizing": t_sizing - t_rates}
+        return Snapshot(now=now, entries=tuple(entries), rolling=tuple(rolling), errors=tuple(errors), split=split)
+
+    # -- parts ---------------------------------------------------------------------
+    def _parse(self, objs: Sequence[PolicyObject]) -> list[Policy | PolicyInvalid]:
+        cache: dict[tuple[str, str, str, int], Policy | PolicyInvalid] = {}
+        out: list[Policy | PolicyInvalid] = []
+        for o in objs:
+            ck = (o.namespace, o.name, o.uid, o.generation)
+            got = self._parsed.get(ck)
+            if got is None:
+                try:
+                    got = parse_policy(policy_object_dict(o))
+                except PolicyInvalid as exc:
+                    got = exc
+            cache[ck] = got
+            out.append(got)
+        self._parsed = cache  # forget policies that are gone
+        return out
+
+    def _list_workloads(
+        self, policies: Sequence[Policy], errors: list[str],
+    ) -> tuple[dict[tuple[str, str, str], Workload], set[tuple[str, str, str]], list[str], dict[tuple[str, str], str]]:
+        """One LIST of workloads and of HPAs per namespace that has policies. Returns the
+        workloads by (namespace, kind, name), the HPA-on-CPU targets, the rolling
+        workload keys and the (namespace or "*", kind or "HPA") scopes whose LIST failed."""
+        workloads: dict[tuple[str, str, str], Workload] = {}
+        hpa_cpu: set[tuple[str, str, str]] = set()
+        rolling: list[str] = []
+        failed: dict[tuple[str, str], str] = {}
+        policy_ns = sorted({p.namespace for p in policies})
+        kinds = sorted({p.workload_kind for p in policies})
+        # many namespaces: one paged cluster-wide LIST per kind beats one LIST per namespace
+        many = len(policy_ns) > LIST_PER_NAMESPACE_UP_TO and not self.namespaces
+        scopes: list[str | None] = [None] if many else list(policy_ns)
+        wanted = set(policy_ns)
+        for ns in scopes:
+            where = ns or "all namespaces"
+            for kind in kinds:
+                try:
+                    for w in self.reader.list_workloads(kind, namespace=ns):
+                        if w.namespace not in wanted:
+                            continue
+                        workloads[(w.namespace, _kind_value(w.kind), w.name)] = w
+                        if w.rollout_in_progress:
+                            rolling.append(w.key)
+                except KubeError as exc:
+                    self.telemetry.kube_errors.labels(kind=type(exc).__name__).inc()
+                    errors.append(f"list {kind}s in {where}: {exc}")
+                    failed[(ns or "*", kind)] = f"listing {kind}s in {where} failed: {exc}"
+            try:
+                for h in self.reader.list_hpas(ns):
+                    if h.scales_on_cpu_utilization:
+                        hpa_cpu.add((h.namespace, h.target_kind, h.target_name))
+            except KubeError as exc:
+                self.telemetry.kube_errors.labels(kind=type(exc).__name__).inc()
+                errors.append(f"list horizontal autoscalers in {where}: {exc}")
+                failed[(ns or "*", "HPA")] = f"listing horizontal autoscalers in {where} failed: {exc}"
+        return workloads, hpa_cpu, rolling, failed
+
+    def _one(
+        self, o: PolicyObject, p: Policy, workloads: Mapping[tuple[str, str, str], Workload],
+        hpa_cpu: set[tuple[str, str, str]], failed: Mapping[tuple[str, str], str],
+        rates: Mapping[str, float | None], sizing: Mapping[str, Sizing | None], errors: list[str],
+        problems: Mapping[str, tuple[str, str]] | None = None,
+    ) -> Observed:
+        problems = problems or {}
+        # a failed LIST (workloads of this kind, or HPAs) means "unknown", never "not found"
+        why_unknown = next((failed[s] for s in ((p.namespace, p.workload_kind), ("*", p.workload_kind),
+                                                (p.namespace, "HPA"), ("*", "HPA")) if s in failed), None)
+        if why_unknown is not None:
+            return Observed(obj=o, policy=p, problem=why_unknown + "; the last status is kept", unavailable=True)
+        w = workloads.get((p.namespace, p.workload_kind, p.workload_name))
+        if w is None:
+            return Observed(obj=o, policy=p, problem=f"{p.workload_key} not found")
+        pods: tuple[Pod, ...] | None = None
+        running: dict[str, tuple[int | None, int | None]] = {}
+        if p.method is Method.IN_PLACE:
+            pods, running = self._running_values(p, w, errors)
+        by_name = {c.name: c for c in w.containers}
+        inputs = []
+        for c in p.containers:
+            wc = by_name.get(c.name)
+            if wc is None:
+                continue  # decide holds it NoMetrics with a message naming the container
+            current_req, current_lim = running.get(c.name, (wc.cpu_request_m, wc.cpu_limit_m))
+            inputs.append(ContainerInput(
+                name=c.name, request_m=current_req, limit_m=current_lim,
+                rate=rates.get(f"{p.key}/{c.name}"), sizing=sizing.get(f"{p.key}/{c.name}"),
+                rate_problem=problems.get(f"rate:{p.key}/{c.name}"),
+                sizing_problem=problems.get(f"sizing:{p.key}/{c.name}"),
+            ))
+        return Observed(obj=o, policy=p, workload=w, inputs=tuple(inputs), pods=pods,
+                        hpa_on_cpu=(p.namespace, p.workload_kind, p.workload_name) in hpa_cpu)
+
+    def _running_values(
+        self, p: Policy, w: Workload, errors: list[str],
+    ) -> tuple[tuple[Pod, ...], dict[str, tuple[int | None, int | None]]]:
+        """``method: in-place``: what the pods run (their spec after resizes), per container —
+        the value most pods agree on. The template keeps the old value, so deciding from it
+        would propose the same resize every pass."""
+        try:
+            pods = tuple(self.reader.list_pods(w))
+        except KubeError as exc:
+            self.telemetry.kube_errors.labels(kind=type(exc).__name__).inc()
+            errors.append(f"list pods of {p.workload_key}: {exc}")
+            return (), {}
+        out: dict[str, tuple[int | None, int | None]] = {}
+        for c in p.containers:
+            seen: dict[tuple[int | None, int | None], int] = {}
+            for pod in pods:
+                for pc in pod.containers:
+                    if pc.name == c.name:
+                        v = (pc.spec_cpu_request_m, pc.spec_cpu_limit_m)
+                        seen[v] = seen.get(v, 0) + 1
+            if seen:
+                out[c.name] = max(sorted(seen, key=lambda v: (v[0] or 0, v[1] or 0)), key=lambda v: seen[v])
+        return pods, out
+
+    def _query_rates(
+        self, requests: Sequence[RateRequest], errors: list[str], problems: dict[str, tuple[str, str]] | None = None,
+    ) -> dict[str, float | None]:
+        """key ``namespace/policy/container`` → the rate (req/s per pod), None: NoMetrics."""
+        if not requests:
+            return {}
+        try:
+            got: Mapping[str, RateResult] = self.rates.per_pod_rates(requests)
+        except RatefitError as exc:  # a source that raises instead of answering NoMetrics
+            got = {}
+            self.telemetry.rate_query_errors.labels(kind=type(exc).__name__).inc()
+            errors.append(f"rates: {exc}")
+        out: dict[str, float | None] = {}
+        missing = 0
+        first_message = ""
+        for r in requests:
+            res = got.get(r.key)
+            v = None if res is None else res.rate
+            ok = v is not None and math.isfinite(v) and v >= 0
+            out[r.key] = float(v) if ok else None  # type: ignore[arg-type]
+            if not ok:
+                missing += 1
+                if res is not None and problems is not None:
+                    problems[f"rate:{r.key}"] = (res.why or "NoMetrics", res.status_message())
+                first_message = first_message or (res.message if res is not None else "no answer")
+        if missing:
+            self.telemetry.rate_query_errors.labels(kind="NoMetrics").inc(missing)
+            errors.append(f"rates: {missing} of {len(requests)} containers without a usable rate ({first_message})")
+            log.warning("%d containers without a usable rate; held with NoMetrics: %s", missing, first_message)
+        return out
+
+    def _query_sizing(
+        self, requests: Sequence[RateRequest], models: Mapping[tuple[str, str, str], str],
+        rates: Mapping[str, float | None], errors: list[str], problems: dict[str, tuple[str, str]] | None = None,
+    ) -> dict[str, Sizing | None]:
+        asked = [r for r in requests if rates.get(r.key) is not None]
+        if not asked:
+            return {}
+        items = [(models[(r.namespace, r.policy, r.container)], float(rates[r.key])) for r in asked]  # type: ignore[arg-type]
+        try:
+            answers = self.sizing.demand_batch(items)
+        except RatefitError as exc:  # sizing API down: every container NoModel
+            self.telemetry.api_errors.labels(kind=type(exc).__name__).inc()
+            errors.append(f"sizing API: {exc}")
+            log.warning("sizing API failed; holding every container with NoModel: %s", exc)
+            return {}
+        if len(answers) != len(asked):
+            errors.append(f"sizing API answered {len(answers)} items for {len(asked)} asked")
+            self.telemetry.api_errors.labels(kind="ShortAnswer").inc()
+            return {}
+        out = {r.key: sizing_of(a) for r, a in zip(asked, answers)}
+        if problems is not None:
+            for r, a in zip(asked, answers):
+                problem = sizing_problem(a)
+                if problem is not None:
+                    problems[f"sizing:{r.key}"] = problem
+        unknown = sum(1 for v in out.values() if v is None)
+        if unknown:
+            self.telemetry.api_errors.labels(kind="NoModel").inc(unknown)
+        return out

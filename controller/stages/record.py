@@ -1,0 +1,272 @@
+"""Record (pure): what a pass has to say about each policy, built from its observation
+and final decision — the new status, the Kubernetes Events, the decision log records
+and the review rows. No I/O here: ``stages/write.py`` writes what this builds.
+
+- :func:`new_status` — conditions merged by type, proposals, lastChange, settling.
+  None when the observation was partial (the API failed): the last status is kept.
+- :func:`validate_status` — the CRD's status model (``policy.SizingPolicyStatus``)
+  checks a status before it is written (only then: most passes write nothing).
+- :func:`status_is_current` — level-based: a status that says nothing new is not written.
+- :func:`events_for` — one Event per workload and kind of news (never the same twice).
+- :func:`decision_records` — one JSON log record per container, flagged when it changed.
+- :func:`review_rows` — the review (``ratefit plan``, the Markdown review).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+from datetime import datetime
+from typing import TYPE_CHECKING
+
+from pydantic import ValidationError
+
+from ratefit.controller.cgroup import cgroup_figures
+from ratefit.controller.decide import Verdict, WorkloadDecision, Why
+from ratefit.controller.policy import (
+    CONDITION_READY,
+    Mode,
+    SizingPolicyStatus,
+    history_to_status,
+    invalid_condition,
+    make_condition,
+    set_condition,
+)
+from ratefit.controller.review import ReviewRow
+from ratefit.controller.workload import EventType, ObjectRef, Workload
+from ratefit.models.errors import RatefitError
+
+if TYPE_CHECKING:  # the observation's type only; no runtime import of the observe stage
+    from ratefit.controller.stages.observe import Observed
+
+__all__ = [
+    "EventNote",
+    "StatusInvalid",
+    "decision_records",
+    "events_for",
+    "new_status",
+    "review_rows",
+    "status_is_current",
+]
+
+#: the Ready reason of a policy whose workload does not exist
+WORKLOAD_NOT_FOUND = "WorkloadNotFound"
+
+
+class StatusInvalid(RatefitError):
+    """The status built for a policy does not fit the CRD's status schema (a bug: report it)."""
+
+
+@dataclass(frozen=True)
+class EventNote:
+    """One Kubernetes Event to emit."""
+
+    regarding: ObjectRef
+    related: ObjectRef
+    reason: str
+    type: EventType
+    action: str
+    note: str
+
+
+def _keep_history(old: Mapping[str, object], status: dict[str, object]) -> None:
+    for k in ("lastChange", "settling"):
+        if old.get(k) is not None:
+            status[k] = old[k]
+
+
+def new_status(o: Observed, wd: WorkloadDecision | None, now: datetime) -> dict[str, object] | None:
+    """The policy's new status (None: keep the stored one — the workload could not be
+    observed, so nothing is known that the stored status does not already say)."""
+    if o.unavailable:
+        return None
+    old = dict(o.obj.status or {})
+    gen = o.obj.generation
+    conditions = old.get("conditions") or []
+    status: dict[str, object] = {"observedGeneration": gen}
+    if o.invalid is not None:
+        status["conditions"] = set_condition(conditions, invalid_condition(o.invalid, observed_generation=gen, now=now))
+        status["proposals"] = []
+        _keep_history(old, status)
+    elif wd is None:
+        cond = make_condition(
+            type=CONDITION_READY, status=False, reason=WORKLOAD_NOT_FOUND,
+            message=(o.problem or "the workload could not be read") + "; nothing is changed until it exists",
+            observed_generation=gen, now=now,
+        )
+        status["conditions"] = set_condition(conditions, cond)
+        status["proposals"] = []
+        _keep_history(old, status)
+    else:
+        counts: dict[str, int] = {}
+        for d in wd.decisions:
+            counts[d.verdict.value] = counts.get(d.verdict.value, 0) + 1
+        summary = ", ".join(f"{n} {v}" for v, n in sorted(counts.items()))
+        cond = make_condition(
+            type=CONDITION_READY, status=True, reason="Decided",
+            message=f"{len(wd.decisions)} containers decided: {summary}", observed_generation=gen, now=now,
+        )
+        status["conditions"] = set_condition(conditions, cond)
+        # the CRD's schema has no nullable fields: leave unknown values out
+        status["proposals"] = [{k: v for k, v in d.to_status().items() if v is not None} for d in wd.decisions]
+        status.update(history_to_status(wd.history))
+    return status
+
+
+def validate_status(status: dict[str, object], *, where: str) -> dict[str, object]:
+    """``status`` checked against the CRD's status model; returned unchanged."""
+    try:
+        SizingPolicyStatus.model_validate(status)
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        loc = ".".join(str(x) for x in first.get("loc", ()))
+        raise StatusInvalid(f"status built for {where} does not fit the CRD at {loc}: {first.get('msg')}") from None
+    return status
+
+
+def comparable(status: Mapping[str, object]) -> dict[str, object]:
+    """Status as comparable plain data: None values dropped (the server prunes them, and
+    the merge patch deletes them), and without what only ages — the proposals' free-text
+    messages such as "1234s of 7200s settle" — so a pass with only newer wording writes
+    nothing. The status is shallow (lists of flat objects), so one level of lists is enough."""
+    out: dict[str, object] = {}
+    for k, v in status.items():
+        if v is None:
+            continue
+        if isinstance(v, list):
+            drop = "message" if k == "proposals" else None
+            v = [{kk: vv for kk, vv in item.items() if vv is not None and kk != drop} if isinstance(item, Mapping)
+                 else item for item in v]
+        out[k] = v
+    return out
+
+
+def status_is_current(new: Mapping[str, object], old: Mapping[str, object]) -> bool:
+    """True when the stored status already says everything ``new`` says."""
+    return comparable(new) == comparable({k: old.get(k) for k in new})
+
+
+def _same(before: Mapping[str, object] | None, now_p: Mapping[str, object]) -> bool:
+    return before is not None and all(before.get(k) == now_p.get(k) for k in ("verdict", "why", "proposed", "current"))
+
+
+def _old_ready(old_status: Mapping[str, object]) -> Mapping[str, object]:
+    conds = old_status.get("conditions") or []
+    return {c.get("type"): c for c in conds if isinstance(c, Mapping)}.get(CONDITION_READY, {})  # type: ignore[union-attr]
+
+
+def events_for(
+    o: Observed, wd: WorkloadDecision | None, workload: Workload | None, old_status: Mapping[str, object], now: datetime,
+) -> list[EventNote]:
+    """The Events of a policy whose status changed: one per workload and kind of news,
+    naming every container it concerns; a proposal already in the status is not news."""
+    if o.unavailable:
+        return []
+    regarding = workload.ref if workload is not None else o.obj.ref
+
+    def note(reason: str, type_: EventType, action: str, text: str) -> EventNote:
+        return EventNote(regarding=regarding, related=o.obj.ref, reason=reason, type=type_, action=action, note=text)
+
+    if o.invalid is not None:
+        ready = _old_ready(old_status)
+        message = invalid_condition(o.invalid, observed_generation=None, now=now)["message"]
+        if ready.get("reason") != "PolicyInvalid" or ready.get("message") != message:
+            return [note("PolicyInvalid", EventType.WARNING, "Validate", f"{o.invalid.field}: {o.invalid.problem}")]
+        return []
+    if wd is None:
+        if _old_ready(old_status).get("reason") != WORKLOAD_NOT_FOUND:
+            return [note(WORKLOAD_NOT_FOUND, EventType.WARNING, "Read",
+                         (o.problem or "the workload could not be read") + "; nothing is changed")]
+        return []
+    old_props = _old_proposals(old_status)
+    news: dict[str, list[str]] = {}
+    for d in wd.decisions:
+        if _same(old_props.get(d.container), d.to_status()):
+            continue
+        if d.verdict is Verdict.CHANGED:
+            news.setdefault("CpuRequestChanged", []).append(f"{d.container}: {d.message}")
+        elif d.verdict is Verdict.PROPOSED:
+            news.setdefault("CpuRequestProposed", []).append(f"{d.container}: {d.message}")
+        elif d.why is Why.REJECTED:
+            news.setdefault("CpuChangeRejected", []).append(f"{d.container}: {d.message}")
+    out = []
+    for reason, notes in news.items():
+        text = "; ".join(notes)
+        if reason == "CpuRequestProposed":
+            out.append(note(reason, EventType.NORMAL, "Propose", text + " (dry-run: nothing changed)"))
+        elif reason == "CpuRequestChanged":
+            out.append(note(reason, EventType.NORMAL, "Resize", text))
+        else:
+            out.append(note(reason, EventType.WARNING, "Resize", text))
+    return out
+
+
+def _old_proposals(old_status: Mapping[str, object]) -> dict[object, Mapping[str, object]]:
+    props = old_status.get("proposals") or []
+    return {p.get("container"): p for p in props if isinstance(p, Mapping)}  # type: ignore[union-attr]
+
+
+def decision_records(
+    o: Observed, wd: WorkloadDecision | None, old_status: Mapping[str, object], *, dry_run: bool,
+) -> list[tuple[bool, dict[str, object]]]:
+    """One decision log record per container: (changed since the stored status, record)."""
+    if wd is None or o.policy is None or o.invalid is not None:
+        return []
+    old_props = _old_proposals(old_status)
+    mode = "dry-run" if dry_run else o.policy.mode.value
+    out = []
+    for d in wd.decisions:
+        now_p = d.to_status()
+        record = {"msg": "decision", "policy": o.policy.key, "workload": o.policy.workload_key, **now_p, "mode": mode}
+        out.append((not _same(old_props.get(d.container), now_p), record))
+    return out
+
+
+def _m(cores: float | None) -> int | None:
+    return None if cores is None else int(math.ceil(round(cores * 1000.0, 6)))
+
+
+def review_rows(o: Observed, wd: WorkloadDecision | None, *, dry_run: bool) -> list[ReviewRow]:
+    """The policy's rows of the review: one per container."""
+    obj = o.obj
+    spec_workload = obj.spec.get("workload") or {}
+    kind = o.policy.workload_kind if o.policy else str(spec_workload.get("kind", "?"))
+    wname = o.policy.workload_name if o.policy else str(spec_workload.get("name", "?"))
+    if o.invalid is not None or wd is None or o.policy is None:
+        names = [c.name for c in o.policy.containers] if o.policy else [
+            str(c.get("name", "?")) for c in (obj.spec.get("containers") or []) if isinstance(c, Mapping)] or ["-"]
+        if o.invalid is not None:
+            why, note = ("PolicyInvalid",), f"{o.invalid.field}: {o.invalid.problem}"
+        elif o.unavailable:
+            why, note = (Why.API_UNAVAILABLE.value,), o.problem or ""
+        else:
+            why, note = (WORKLOAD_NOT_FOUND,), o.problem or ""
+        return [ReviewRow(namespace=obj.namespace, policy=obj.name, kind=kind, workload=wname, container=n,
+                          verdict="held", why=why, note=note) for n in names]
+    method = o.policy.method.value
+    mode = "dry-run" if (dry_run or o.policy.mode is Mode.DRY_RUN) else "apply"
+    rows = []
+    for d in wd.decisions:
+        moving = d.verdict is not Verdict.HELD or d.moves
+        rows.append(ReviewRow(
+            namespace=obj.namespace, policy=obj.name, kind=kind, workload=wname, container=d.container,
+            verdict=d.verdict.value, why=(d.why.value,), current_m=d.current_m,
+            proposed_m=d.proposed_m if moving else d.current_m,
+            demand_m=_m(d.demand), upper_m=_m(d.upper), rate=d.rate, limit_m=d.limit_m,
+            proposed_limit_m=d.proposed_limit_m, mode=mode, method=method, extrapolated=d.extrapolated,
+            note=d.message, cgroup=_cgroup(d.proposed_m, d.proposed_limit_m),
+        ))
+    return rows
+
+
+def _cgroup(request_m: int | None, limit_m: int | None) -> dict[str, object] | None:
+    """What the kernel gets for a request/limit (controller/cgroup)."""
+    if request_m is None:
+        return None
+    try:
+        f = cgroup_figures(request_m, limit_m)
+    except (ValueError, TypeError):  # a review extra must never break a pass
+        return None
+    return {"shares": f.shares, "weight_linear": f.weight_linear, "weight_log": f.weight_log,
+            "quota_us": f.quota_us, "period_us": f.period_us, "cpu_max": f.cpu_max}
