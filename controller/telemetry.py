@@ -258,6 +258,13 @@ _CACHE_COUNTERS = {
 }
 
 
+#: the cache's gauges (registered only by ``watch_cache``: ``ratefit run`` with the cache)
+_CACHE_GAUGES = {
+    "objects": ("ratefit_controller_cache_objects", "Objects held by the watch-fed cache."),
+    "synced": ("ratefit_controller_cache_synced", "1 once the watch-fed cache has listed everything it follows."),
+}
+
+
 class _CacheCollector:
     """Reads the cache's counters at scrape time (no second copy of them to keep in step)."""
 
@@ -270,17 +277,14 @@ class _CacheCollector:
     def collect(self) -> Any:
         snap = self._stats()
         families = {k: CounterMetricFamily(name, text, labels=["resource"]) for k, (name, text) in _CACHE_COUNTERS.items()}
-        objects = GaugeMetricFamily("ratefit_controller_cache_objects", "Objects held by the watch-fed cache.",
-                                    labels=["resource"])
+        objects = GaugeMetricFamily(*_CACHE_GAUGES["objects"], labels=["resource"])
         for resource, st in sorted(snap.per_resource.items()):
             for key, fam in families.items():
                 fam.add_metric([resource], float(getattr(st, key)))
             objects.add_metric([resource], float(st.objects))
         yield from families.values()
         yield objects
-        yield GaugeMetricFamily("ratefit_controller_cache_synced",
-                                "1 once the watch-fed cache has listed everything it follows.",
-                                value=1.0 if snap.synced else 0.0)
+        yield GaugeMetricFamily(*_CACHE_GAUGES["synced"], value=1.0 if snap.synced else 0.0)
 
 
 class HealthServer:
