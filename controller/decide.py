@@ -24,7 +24,9 @@ The steps, in order (the first that stops a change names the ``why``):
 4. Increases go at once. Decreases wait until the target has stayed below the
    current request for ``settle`` (status ``settling[].belowSince``): held
    **Settling** meanwhile. A decrease then goes to the *highest* target seen while
-   settling (``settling[].peak``), never to one low reading.
+   settling (``settling[].peak``), never to one low reading. If that highest target is
+   still inside the deadband, the settle window starts afresh at this pass (held
+   InsideDeadband), so a slowly falling load is followed down one settle period at a time.
 5. Step limit: at most ×up, at least ×down per change. A cut-short change is still
    a change: verdict changed (proposed in dry-run), why **StepLimited**. A
    step-limited decrease keeps its settling record, so the next step waits only
@@ -457,9 +459,15 @@ def decide_container(
             message=f"target below {_mc(current)} for {int(waited)}s of {int(policy.settle_s)}s settle",
         )
     if _inside_deadband(current, goal, policy.deadband):
+        # a full settle period has passed without a decrease worth making: start a fresh
+        # settle window here, so the next decrease goes to the highest target of the last
+        # settle period — a slowly falling load is followed down (found by the replay)
+        fresh = ContainerHistory(below_since=now, peak_m=target)
         return out(
             why=Why.INSIDE_DEADBAND,
             message=f"highest target while settling {_mc(goal)} is within the deadband of {_mc(current)}",
+            settle=fresh,
+            settle_if_held=fresh,
         )
     after = settling if limited else ContainerHistory()
     return change(new_m, limited, after, settling)

@@ -20,7 +20,10 @@ INVENTED DATA: Kestrel Post is a fictional parcel company (``models/scenario``).
    time past the longest ``settle`` (as if the rates stayed the same) so the review also
    shows where the decreases now "Settling" will go; both reviews are returned and
    written as Markdown;
-7. stops everything it started — on success, on error and on Ctrl-C. With
+7. replays the whole history pass by pass (``controller/replay``): what the example
+   policies would have done, in CPU-hours, shortfall, rollouts and nodes; the summary is
+   printed and the plots go to ``replay/``;
+8. stops everything it started — on success, on error and on Ctrl-C. With
    ``keep=True`` it first waits (Ctrl-C) so the sandbox can be explored with the
    kubeconfig it wrote.
 """
@@ -160,7 +163,7 @@ def run_demo(
     *,
     out: Path,
     keep: bool = False,
-    hours: float = 24.0,
+    hours: float = 168.0,
     step_s: float = 60.0,
     use_prometheus: bool | None = None,
     progress: Progress = _say,
@@ -192,7 +195,9 @@ def run_demo(
     progress(f"scenario: {ORGANISATION} — INVENTED data; output in {out}")
     end = float(int(time.time() // step_s) * step_s - 5 * step_s)
     info = write_openmetrics(work / "history.om", end=end, hours=hours, step_s=step_s, seed=0)
-    csv_paths = write_csv(out / "samples", seed=0, hours=hours, step_s=step_s, end=end)
+    # a week of training samples at 5-minute steps (at 60 s the training would take minutes; longer
+    # steps than the 5-minute warm-up span would all be cleaned away as warm-up)
+    csv_paths = write_csv(out / "samples", seed=0, hours=hours, step_s=step_s if hours <= 24 else 300.0, end=end)
     progress(f"history: {info.series} series, {info.samples} samples over {hours:g}h at {step_s:g}s steps")
     if use_prometheus is None:
         use_prometheus = prometheus_binaries() is not None
@@ -279,6 +284,14 @@ def run_demo(
             "Training reports: reports/*.md\n",
             encoding="utf-8",
         )
+        from ratefit.controller.replay.demo_step import replay_demo
+
+        progress("replay: what the example policies would have done over the whole history, pass every 5 min "
+                 f"(as if in apply mode); plots in {out / 'replay'} …")
+        progress("replay summary:\n" + replay_demo(
+            history=info.path, store=work / "store", manifests=(scenario_dir, manifests / "examples"),
+            out=out / "replay", request_metric=REQUEST_METRIC,
+            prometheus_url=getattr(getattr(rates, "client", None), "base_url", None)))
         if keep:
             progress(f"--keep: everything keeps running; try  kubectl --kubeconfig {kubeconfig} get sizingpolicies -A ; "
                      "Ctrl-C stops it all")

@@ -94,6 +94,10 @@ __all__ = [
     "POLICY_PLURAL",
     "REPORTING_CONTROLLER",
     "FIELD_MANAGER",
+    "workload_from_json",
+    "pod_from_json",
+    "hpa_from_json",
+    "policy_from_json",
 ]
 
 log = logging.getLogger(__name__)
@@ -890,3 +894,12 @@ def _policy(obj: Mapping[str, Any]) -> PolicyObject:
         spec=obj.get("spec") or {},
         status=obj.get("status") or {},
     )
+
+
+#: The JSON → value converters under public names, for the watch-fed cache
+#: (``controller/kube_cache.py``), which stores exactly what the reads above return.
+workload_from_json = _workload
+pod_from_json = _pod
+hpa_from_json = _hpa
+policy_from_json = _policy
+selector_text = _selector
