@@ -76,7 +76,7 @@ def test_crash_after_a_step_limited_patch_keeps_the_cooldown(tmp_path, shared_si
     """The status write is lost with the process, but the change time travelled in the
     same patch (annotation ratefit.dev/last-change): the next run does not take a
     second step inside the cooldown."""
-    objects = _objects(stepLimit={"up": 2.0, "down": 0.5}, cooldown="30m")
+    objects = _objects(stepLimit={"maxIncreasePercent": 100, "maxDecreasePercent": 50}, cooldown="30m")
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates=RATES) as w:
         p = run_controller(w, crash_at="after-patch:1")
         assert p.returncode == -signal.SIGKILL, p.stderr
@@ -110,7 +110,7 @@ def test_crash_after_in_place_resizes_then_converges(tmp_path, shared_sizing_api
     """method in-place: killed after the pods were resized (before the status write), the
     next run decides from what the pods run and resizes nothing again."""
     objects = [deployment("shop", "a", [("app", "100m", "200m")], replicas=2),
-               policy("shop", "a", workload="a", method="in-place", containers=[{"name": "app", "model": "shop/a/app"}])]
+               policy("shop", "a", workload="a", resizeBy="InPlace", containers=[{"name": "app", "model": "shop/a/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "a"): [50.0]}) as w:
         def pods() -> list[int]:
             items = w.get("/api/v1/namespaces/shop/pods?labelSelector=app%3Da")["items"]

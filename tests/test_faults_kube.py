@@ -99,7 +99,7 @@ def test_503_on_the_workload_list_holds_apiunavailable_and_keeps_the_status(tmp_
     and no Event, so the stored proposals and Ready condition stay as they were
     (Kubernetes API conventions: 503 is a temporary failure; clients retry)."""
     objects = [deployment("shop", "web", [("app", "100m", None)]),
-               policy("shop", "web", workload="web", mode="dry-run",
+               policy("shop", "web", workload="web", mode="DryRun",
                       containers=[{"name": "app", "model": "shop/web/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates=RATES) as w:
         first = w.reconciler().run_pass()

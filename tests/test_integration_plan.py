@@ -53,7 +53,7 @@ def scenario_policies(mode: str) -> list[dict]:
         out.append(policy(svc.namespace, svc.workload, workload=svc.workload, kind=svc.kind, mode=mode,
                           containers=[{"name": c.name, "model": f"{svc.namespace}/{svc.workload}/{c.name}",
                                        "floor": "10m"} for c in svc.containers],
-                          headroom=HEADROOM, deadband=DEADBAND))
+                          headroomPercent=round(HEADROOM * 100), deadbandPercent=round(DEADBAND * 100)))
     return out
 
 

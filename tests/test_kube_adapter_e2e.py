@@ -240,7 +240,7 @@ def policy(ns: str, name: str = "web") -> dict:
     return {
         "apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
         "metadata": {"name": name, "namespace": ns},
-        "spec": {"workload": {"kind": "Deployment", "name": "web"}, "mode": "dry-run",
+        "spec": {"workload": {"kind": "Deployment", "name": "web"}, "mode": "DryRun",
                  "containers": [{"name": "app", "model": f"{ns}/web/app"}]},
     }
 
@@ -562,7 +562,7 @@ def test_watch_sees_added_and_modified(target: Target, adapter: KubeAdapter, ns:
         added = events.get(timeout=10)
         assert added.type == "ADDED" and added.policy.name == "web"
         k8s.CustomObjectsApi(raw).patch_namespaced_custom_object(
-            "ratefit.dev", "v1alpha1", ns, "sizingpolicies", "web", {"spec": {"mode": "apply"}})
+            "ratefit.dev", "v1alpha1", ns, "sizingpolicies", "web", {"spec": {"mode": "Apply"}})
         modified = events.get(timeout=10)
         assert modified.type == "MODIFIED" and modified.policy.spec["mode"] == "apply"
     finally:

@@ -21,7 +21,7 @@ RATEFIT = Path(sys.executable).with_name("ratefit")
 
 def test_a_spec_change_wakes_the_loop_and_logs_are_json(tmp_path, shared_sizing_api) -> None:
     objects = [deployment("shop", "web", [("app", "1000m", None)]),
-               policy("shop", "web", workload="web", mode="dry-run", containers=[{"name": "app", "model": "shop/web/app"}])]
+               policy("shop", "web", workload="web", mode="DryRun", containers=[{"name": "app", "model": "shop/web/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         log = open(tmp_path / "run.log", "w")
         proc = subprocess.Popen([str(RATEFIT), "run", "--kubeconfig", str(w.kubeconfig), "--replay", str(w.history),
@@ -37,7 +37,7 @@ def test_a_spec_change_wakes_the_loop_and_logs_are_json(tmp_path, shared_sizing_
                 time.sleep(0.2)
             assert parse_cpu(status()["proposals"][0]["proposed"]) == 315  # headroom 0.15: ceil5(270 × 1.15)
             r = httpx.patch(w.sandbox.url + "/apis/ratefit.dev/v1alpha1/namespaces/shop/sizingpolicies/web",
-                            json={"spec": {"headroom": 0.5}}, headers={"Content-Type": "application/merge-patch+json"},
+                            json={"spec": {"headroomPercent": 50}}, headers={"Content-Type": "application/merge-patch+json"},
                             timeout=10)
             r.raise_for_status()
             changed_at = time.monotonic()

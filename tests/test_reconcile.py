@@ -87,7 +87,7 @@ def test_apply_patches_the_changed_container_and_a_second_pass_does_nothing(tmp_
 def test_dry_run_proposes_writes_status_once_and_never_patches(tmp_path, shared_sizing_api) -> None:
     objects = [
         deployment("shop", "api", [("app", "1000m", "2000m")]),
-        policy("shop", "api", workload="api", mode="dry-run", containers=[{"name": "app", "model": "shop/api/app"}]),
+        policy("shop", "api", workload="api", mode="DryRun", containers=[{"name": "app", "model": "shop/api/app"}]),
     ]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "api"): [25.0]}) as w:
         rec = w.reconciler()
@@ -203,7 +203,7 @@ def test_telemetry_counts_decisions_and_patches(tmp_path, shared_sizing_api) -> 
 
 def test_in_place_resizes_pods_keeps_the_template_and_reapplies_to_new_pods(tmp_path, shared_sizing_api) -> None:
     objects = [deployment("shop", "web", [("app", "100m", "200m")], replicas=2),
-               policy("shop", "web", workload="web", method="in-place",
+               policy("shop", "web", workload="web", resizeBy="InPlace",
                       containers=[{"name": "app", "model": "shop/web/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         def pod_cpu() -> dict[str, tuple[int, int]]:
@@ -308,7 +308,7 @@ def test_shards_split_the_policies_by_namespace(tmp_path, shared_sizing_api) -> 
     from ratefit.controller.reconcile import shard_of
 
     objects = [deployment("shop", "web", [("app", "100m", None)]),
-               policy("shop", "web", workload="web", mode="dry-run", containers=[{"name": "app", "model": "shop/web/app"}])]
+               policy("shop", "web", workload="web", mode="DryRun", containers=[{"name": "app", "model": "shop/web/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         mine = shard_of("shop", 3)
         seen = [len(w.reconciler(write=False, shard=(i, 3)).run_pass().rows) for i in range(3)]

@@ -34,7 +34,7 @@ OLD_STATUS = {"observedGeneration": 1, "proposals": [{"container": "app", "verdi
 
 
 def _observed(**kw: object) -> Observed:
-    body = policy("shop", "web", workload="web", mode="dry-run", containers=[{"name": "app", "model": "shop/web/app"}])
+    body = policy("shop", "web", workload="web", mode="DryRun", containers=[{"name": "app", "model": "shop/web/app"}])
     obj = PolicyObject(namespace="shop", name="web", uid="u1", generation=1, resource_version="7",
                        spec=body["spec"], status=OLD_STATUS)
     body["metadata"]["generation"] = 1
