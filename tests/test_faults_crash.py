@@ -62,7 +62,7 @@ def test_crash_between_two_workloads_then_converges_without_a_duplicate(tmp_path
         # one workload fully changed, the other not at all: never half a workload
         assert (_req(w, "a"), _req(w, "b")) == (315, 100)
         assert parse_cpu(w.cpu("shop", "a", "app")[1]) == 630  # its limit moved in the same patch
-        assert "status" not in w.sizing_policy("shop", "a") or not w.sizing_policy("shop", "a")["status"].get("proposals")
+        assert "status" not in w.sizing_policy("shop", "a") or not w.sizing_policy("shop", "a")["status"].get("containers")
         p2 = run_controller(w)
         assert p2.returncode == 0, p2.stderr
         assert (_req(w, "a"), _req(w, "b")) == (315, 315)
@@ -86,8 +86,8 @@ def test_crash_after_a_step_limited_patch_keeps_the_cooldown(tmp_path, shared_si
         assert p2.returncode == 0, p2.stderr
         assert _req(w, "a") == 200  # CoolingDown: no duplicate step
         assert _req(w, "b") == 200
-        props = {x["container"]: x for x in w.sizing_policy("shop", "a")["status"]["proposals"]}
-        assert props["app"]["verdict"] == "held" and props["app"]["why"] == "CoolingDown"
+        props = {x["name"]: x for x in w.sizing_policy("shop", "a")["status"]["containers"]}
+        assert props["app"]["verdict"] == "Held" and props["app"]["reason"] == "CoolingDown"
         assert len(w.patches("shop", "a")) == 1
 
 
@@ -107,7 +107,7 @@ def test_crash_after_a_status_write_then_converges(tmp_path, shared_sizing_api) 
 
 
 def test_crash_after_in_place_resizes_then_converges(tmp_path, shared_sizing_api) -> None:
-    """method in-place: killed after the pods were resized (before the status write), the
+    """resizeBy InPlace: killed after the pods were resized (before the status write), the
     next run decides from what the pods run and resizes nothing again."""
     objects = [deployment("shop", "a", [("app", "100m", "200m")], replicas=2),
                policy("shop", "a", workload="a", resizeBy="InPlace", containers=[{"name": "app", "model": "shop/a/app"}])]
@@ -134,5 +134,5 @@ def test_crash_after_in_place_resizes_then_converges(tmp_path, shared_sizing_api
         assert pods() == [315, 315]
         assert len(resizes()) == 2 and len(set(resizes())) == 2  # each pod resized exactly once
         assert w.cpu("shop", "a", "app") == ("100m", "200m")  # the template is left as it was
-        (prop,) = w.sizing_policy("shop", "a")["status"]["proposals"]
-        assert (prop["verdict"], prop["why"]) == ("held", "InsideDeadband")
+        (prop,) = w.sizing_policy("shop", "a")["status"]["containers"]
+        assert (prop["verdict"], prop["reason"]) == ("Held", "InsideDeadband")

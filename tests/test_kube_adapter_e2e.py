@@ -524,10 +524,10 @@ def test_status_written_through_subresource_without_moving_generation(
     status = {"observedGeneration": before.generation, "conditions": [{
         "type": "Ready", "status": "True", "reason": "Sized", "message": "ok",
         "lastTransitionTime": "2026-01-01T00:00:00Z", "observedGeneration": before.generation}],
-        "proposals": [{"container": "app", "current": "500m", "proposed": "300m", "verdict": "proposed",
-                       "why": "NewTarget"}]}
+        "containers": [{"name": "app", "current": "500m", "newRequest": "300m", "verdict": "Proposed",
+                        "reason": "NewTarget"}]}
     after = adapter.write_policy_status(ns, "web", status, resource_version=before.resource_version)
-    assert after.status["proposals"][0]["proposed"] == "300m"
+    assert after.status["containers"][0]["newRequest"] == "300m"
     assert after.generation == before.generation  # status writes never bump generation
     assert after.spec == before.spec
     assert adapter.read_policy(ns, "web").status["conditions"][0]["reason"] == "Sized"
@@ -564,7 +564,7 @@ def test_watch_sees_added_and_modified(target: Target, adapter: KubeAdapter, ns:
         k8s.CustomObjectsApi(raw).patch_namespaced_custom_object(
             "ratefit.dev", "v1alpha1", ns, "sizingpolicies", "web", {"spec": {"mode": "Apply"}})
         modified = events.get(timeout=10)
-        assert modified.type == "MODIFIED" and modified.policy.spec["mode"] == "apply"
+        assert modified.type == "MODIFIED" and modified.policy.spec["mode"] == "Apply"
     finally:
         stop.set()
         t.join(timeout=15)

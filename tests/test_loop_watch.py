@@ -53,5 +53,5 @@ def test_a_spec_change_wakes_the_loop_and_logs_are_json(tmp_path, shared_sizing_
         lines = [ln for ln in (tmp_path / "run.log").read_text().splitlines() if ln.startswith("{")]
         docs = [json.loads(ln) for ln in lines]
         assert any(d.get("msg") == "pass" and d.get("outcome") == "done" for d in docs)
-        assert any(d.get("msg") == "decision" and d.get("verdict") == "proposed" for d in docs)
+        assert any(d.get("msg") == "decision" and d.get("verdict") == "Proposed" for d in docs)
         assert all({"time", "level", "logger"} <= set(d) for d in docs)

@@ -196,3 +196,19 @@ def test_an_invalid_policy_keeps_the_settle_history() -> None:
         "Held", "PolicyInvalid", "2026-03-01T11:00:00Z", "400m")
     assert "newRequest" not in row and status["lastChangeTime"] == "2026-03-01T10:00:00Z"
     assert status["summary"] == "policy invalid" and "effectiveMode" not in status
+
+
+def test_conflicts_pick_the_older_by_creation_time_then_name() -> None:
+    from ratefit.controller.stages.observe import conflicts
+
+    def one(name: str, created: str, workload: str = "web") -> tuple[PolicyObject, object]:
+        body = policy("shop", name, workload=workload, containers=[{"name": "app", "model": "shop/web/app"}])
+        obj = PolicyObject(namespace="shop", name=name, uid=name, generation=1, resource_version="1",
+                           spec=body["spec"], status={}, created=created)
+        return obj, parse_policy(body)
+
+    got = conflicts([one("a", "2026-03-01T12:00:05Z"), one("z", "2026-03-01T12:00:00Z"),
+                     one("m", "2026-03-01T12:00:05Z"), one("alone", "2026-03-01T11:00:00Z", workload="api")])
+    # z is the oldest; a and m have the same time: the name decides the order, both are held
+    assert got == {("shop", "a"): "shop/z", ("shop", "m"): "shop/z"}
+    assert conflicts([one("a", "2026-03-01T12:00:05Z")]) == {}
