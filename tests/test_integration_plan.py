@@ -180,7 +180,7 @@ def test_apply_patches_exactly_the_changed_containers_and_a_second_pass_changes_
             c = {x["name"]: x for x in obj["spec"]["template"]["spec"]["containers"]}[cname]
             req = parse_cpu(c["resources"]["requests"]["cpu"])
             lim = c["resources"].get("limits", {}).get("cpu")
-            if exp["verdict"] == "proposed":  # apply mode: changed, with the proposed value
+            if exp["verdict"] == "Proposed":  # apply mode: changed, with the proposed value
                 assert req == exp["proposed_m"], (ns, wl, cname)
                 if exp["limit_m"] is not None:  # keep-ratio (DESIGN.md step 8), never below the request
                     assert parse_cpu(lim) == max(math.ceil(exp["limit_m"] * req / exp["request_m"] - 1e-9), req)

@@ -35,7 +35,7 @@ def test_a_spec_change_wakes_the_loop_and_logs_are_json(tmp_path, shared_sizing_
             while status().get("observedGeneration") != 1:
                 assert time.monotonic() < deadline, (tmp_path / "run.log").read_text()[-2000:]
                 time.sleep(0.2)
-            assert parse_cpu(status()["proposals"][0]["proposed"]) == 315  # headroom 0.15: ceil5(270 × 1.15)
+            assert parse_cpu(status()["containers"][0]["newRequest"]) == 315  # headroomPercent 15: ceil5(270 × 1.15)
             r = httpx.patch(w.sandbox.url + "/apis/ratefit.dev/v1alpha1/namespaces/shop/sizingpolicies/web",
                             json={"spec": {"headroomPercent": 50}}, headers={"Content-Type": "application/merge-patch+json"},
                             timeout=10)
@@ -44,7 +44,7 @@ def test_a_spec_change_wakes_the_loop_and_logs_are_json(tmp_path, shared_sizing_
             while status().get("observedGeneration") != 2:
                 assert time.monotonic() - changed_at < 30, "the loop did not wake up on the spec change"
                 time.sleep(0.2)
-            assert parse_cpu(status()["proposals"][0]["proposed"]) == 405  # ceil5(270 × 1.5)
+            assert parse_cpu(status()["containers"][0]["newRequest"]) == 405  # ceil5(270 × 1.5)
         finally:
             proc.send_signal(signal.SIGTERM)
             code = proc.wait(timeout=30)
