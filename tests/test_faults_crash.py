@@ -123,7 +123,7 @@ def test_crash_after_in_place_resizes_then_converges(tmp_path, shared_sizing_api
         p = run_controller(w, crash_at="after-patch:1")
         assert p.returncode == -signal.SIGKILL, p.stderr
         assert pods() == [315, 315] and len(resizes()) == 2
-        assert not (w.sizing_policy("shop", "a").get("status") or {}).get("proposals")  # the status was lost
+        assert not (w.sizing_policy("shop", "a").get("status") or {}).get("containers")  # the status was lost
         # ... but the change time is on the workload (metadata only: no new generation, no rollout),
         # so the cooldown survives the crash
         wl = w.workload("shop", "a")
