@@ -129,14 +129,25 @@ class Why(StrEnum):
     IN_PLACE_UNSUPPORTED = "InPlaceUnsupported"  # a resize cannot make this change
     REJECTED = "Rejected"  # the API server refused the change (set by reconcile)
     API_UNAVAILABLE = "ApiUnavailable"  # the workload's LIST failed (429/5xx …): not observed this pass
+    # inputs of one container that failed on their own (the others are decided as usual)
+    QUERY_REFUSED = "QueryRefused"  # the policy's rateQuery leaves its namespace (never sent)
+    QUERY_FAILED = "QueryFailed"  # Prometheus refused the rate query (its error in the message)
+    TOO_MANY_SERIES = "TooManySeries"  # the rate query answered more series than allowed
+    INVALID_MODEL_KEY = "InvalidModelKey"  # the sizing API refused the model key of this item
+    DEMAND_OUT_OF_RANGE = "DemandOutOfRange"  # the demand at this rate is beyond any physical bound
+    CONTAINER_MISSING = "ContainerMissing"  # spec.containers names a container the workload lacks
     # set by the stages around the decision, never by decide_container
     POLICY_CONFLICT = "PolicyConflict"  # an older SizingPolicy names the same workload
     POLICY_INVALID = "PolicyInvalid"  # the spec cannot be acted on (status condition says why)
     WORKLOAD_NOT_FOUND = "WorkloadNotFound"  # the workload the policy names does not exist
 
 
-#: reasons that mean an input was missing (the InputsAvailable condition is False for them)
-INPUT_REASONS = frozenset({Why.NO_METRICS, Why.NO_MODEL, Why.API_UNAVAILABLE})
+#: reasons that mean an input was missing or unusable (the InputsAvailable condition is
+#: False for them; Ready is False when every container has one)
+INPUT_REASONS = frozenset({
+    Why.NO_METRICS, Why.NO_MODEL, Why.API_UNAVAILABLE, Why.QUERY_REFUSED, Why.QUERY_FAILED, Why.TOO_MANY_SERIES,
+    Why.INVALID_MODEL_KEY, Why.DEMAND_OUT_OF_RANGE, Why.CONTAINER_MISSING,
+})
 
 
 @dataclass(frozen=True)
@@ -157,6 +168,12 @@ class ContainerInput:
     limit_m: int | None  # the pod template's CPU limit (None: unset)
     rate: float | None  # per-pod request rate at the policy's percentile (None: no metrics)
     sizing: Sizing | None  # None: no model / sizing API unavailable
+    #: why ``rate`` is None when it is this container's own problem: (reason, message);
+    #: reason is a :class:`Why` value (QueryRefused, QueryFailed, TooManySeries, NoMetrics)
+    rate_problem: tuple[str, str] | None = None
+    #: why ``sizing`` is None for this item alone: (reason, message) — NoModel,
+    #: InvalidModelKey, DemandOutOfRange
+    sizing_problem: tuple[str, str] | None = None
 
 
 @dataclass(frozen=True)
@@ -311,6 +328,14 @@ def _inside_deadband(current_m: int, target_m: int, deadband: float) -> bool:
     return not (diff > deadband * current_m and diff >= MIN_CHANGE_M)
 
 
+def _why_or(value: str, default: Why) -> Why:
+    """A reason named by an input adapter, as a :class:`Why` (an unknown name → ``default``)."""
+    try:
+        return Why(value)
+    except ValueError:
+        return default
+
+
 def _no_metrics(
     name: str, history: ContainerHistory, message: str, *, current_m: int | None = None, limit_m: int | None = None,
 ) -> Decision:
@@ -348,10 +373,17 @@ def decide_container(
 
     rate = observed.rate
     if rate is None or not math.isfinite(rate) or rate < 0:
+        if observed.rate_problem is not None:
+            why, message = observed.rate_problem
+            return replace(_no_metrics(container.name, history, message, current_m=current, limit_m=limit),
+                           why=_why_or(why, Why.NO_METRICS))
         return _no_metrics(container.name, history, "no usable per-pod request rate this pass; nothing changes",
                            current_m=current, limit_m=limit)
     s = observed.sizing
     if s is None:
+        if observed.sizing_problem is not None:
+            why, message = observed.sizing_problem
+            return out(why=_why_or(why, Why.NO_MODEL), message=f"model {container.model!r}: {message}")
         return out(why=Why.NO_MODEL, message=f"the sizing API has no answer for model {container.model!r}")
     if not (math.isfinite(s.demand) and math.isfinite(s.upper) and s.demand >= 0 and s.upper >= 0):
         return out(why=Why.NO_MODEL, message=f"the sizing API answered an unusable demand for {container.model!r}")
@@ -464,8 +496,9 @@ def decide_workload(
         h = history.container(c.name)
         o = by_name.get(c.name)
         if o is None:
-            decisions.append(_no_metrics(c.name, h, f"container {c.name!r} is not in {policy.workload_key}; "
-                                         "fix spec.containers"))
+            decisions.append(replace(
+                _no_metrics(c.name, h, f"container {c.name!r} is not in {policy.workload_key}; fix spec.containers"),
+                why=Why.CONTAINER_MISSING))
             continue
         decisions.append(decide_container(policy, c, o, history=h, now=now))
 

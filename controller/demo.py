@@ -9,8 +9,9 @@ INVENTED DATA: Kestrel Post is a fictional parcel company (``models/scenario``).
    fresh TSDB (``promtool tsdb create-blocks-from openmetrics``) and starts the real
    Prometheus on a free loopback port; otherwise the rates are replayed from the file
    (the output says which);
-3. trains a model for every scenario key (cross-validated candidates, conformal band)
-   into a model store, with a Markdown report + plot per key;
+3. trains every model the example policies name as ``ratefit train --from-policies``
+   does (worker processes; cross-validated candidates, conformal band): from the real
+   Prometheus when it runs, else from the scenario's CSVs; a Markdown report + plot per key;
 4. starts the sizing API (a ``ratefit serve`` subprocess on a free loopback port);
 5. starts the sandbox API server loaded with the SizingPolicy CRD, the scenario's
    workloads and HPA, and the example policies (``manifests/``);
@@ -126,31 +127,33 @@ def start_serve(store: Path, work: Path, *, timeout: float = 60.0) -> Iterator[s
 
 
 def train_scenario(samples_dir: Path, store_dir: Path, reports_dir: Path, *, progress: Progress,
-                   csv_paths: dict[str, Path]) -> list[str]:
-    """Train every key of the scenario from its CSV; save artifacts and reports."""
-    from ratefit.models.report import fit_all_for_report, write_report
-    from ratefit.models.samples import load_csv
-    from ratefit.models.store import ModelStore
-    from ratefit.models.train import train_key_detailed
+                   csv_paths: dict[str, Path], policies: Path | None = None, prometheus: Any = None) -> list[str]:
+    """Train every model the example policies name, the way ``ratefit train --from-policies``
+    does (``controller/train_policies``): from the real Prometheus when ``prometheus`` is a
+    ``PromSource``, else from the scenario's per-key CSVs in ``samples_dir``; worker
+    processes; artifacts and reports written. Returns the keys trained."""
+    from ratefit.controller.rate_template import RateTemplate
+    from ratefit.controller.train_policies import (CsvSource, Result, default_jobs, read_policy_files,
+                                                   train_from_policies)
+    from ratefit.models.scenario.services import REQUEST_METRIC
 
-    store = ModelStore(store_dir)
-    keys = sorted(csv_paths)
-    for i, key in enumerate(keys, 1):
-        t0 = time.perf_counter()
-        res = train_key_detailed(load_csv(csv_paths[key]), key=key)
-        store.save(res.artifact)
-        try:
-            # every candidate and the fixed baseline on the plot, not only the chosen curve
-            write_report(res.artifact, reports_dir, samples=res.samples,
-                         estimators=fit_all_for_report(res.samples))
-        except Exception as exc:  # a plot problem must not stop the demo
-            progress(f"  report for {key} not written: {exc}")
-        chosen = next(r for r in res.artifact.cv if r.model == res.artifact.chosen)
-        fixed = next((r for r in res.artifact.cv if r.model == "fixed"), None)
-        vs = f", fixed allocation {fixed.rmse * 1000:.1f}m" if fixed else ""
-        progress(f"[{i}/{len(keys)}] trained {key}: chose {res.artifact.chosen} "
-                 f"(CV RMSE {chosen.rmse * 1000:.1f}m{vs}) in {time.perf_counter() - t0:.1f}s")
-    return keys
+    summary = train_from_policies(
+        read_policy_files([policies or repo_manifests() / "examples"]),
+        source=prometheus if prometheus is not None else CsvSource(str(samples_dir)),
+        store_dir=store_dir, max_age_s=0.0, jobs=min(default_jobs(), len(csv_paths)),
+        template=RateTemplate(metric=REQUEST_METRIC), report_dir=reports_dir)
+    for i, o in enumerate(summary.outcomes, 1):
+        if o.result is Result.FAILED:
+            progress(f"[{i}/{len(summary.outcomes)}] {o.model} FAILED: {o.detail}")
+            continue
+        vs = f", fixed allocation {o.baseline_rmse * 1000:.1f}m" if o.baseline_rmse is not None else ""
+        progress(f"[{i}/{len(summary.outcomes)}] trained {o.model}: chose {o.estimator} "
+                 f"(CV RMSE {o.cv_rmse * 1000:.1f}m{vs}) in {o.seconds:.1f}s")
+    if not summary.ok:
+        bad = [f"{o.model}: {o.detail}" for o in summary.outcomes if o.result is Result.FAILED]
+        bad += [f"policy {p.policy}: {p.message}" for p in summary.problems]
+        raise DemoError("training failed: " + "; ".join(bad))
+    return [o.model for o in summary.outcomes]
 
 
 def run_demo(
@@ -212,8 +215,14 @@ def run_demo(
             else:
                 progress(f"rates: Prometheus is not installed (no prometheus/promtool), so the demo replays "
                          f"the history file {info.path} instead (same numbers as a Prometheus holding it)")
-        progress(f"training {len(csv_paths)} models (k-fold CV over every candidate; ~5 s each) …")
-        train_scenario(out / "samples", work / "store", out / "reports", progress=progress, csv_paths=csv_paths)
+        progress(f"training the {len(csv_paths)} models the policies name, as `ratefit train --from-policies` does, "
+                 f"from {'Prometheus' if use_prometheus else 'the CSV samples'} (k-fold CV over every candidate) …")
+        from ratefit.controller.train_policies import PromSource
+
+        train_source = PromSource(prom_url, start=info.end - hours * 3600, end=info.end, step=step_s,
+                                  step_text=f"{step_s:g}s") if use_prometheus else None
+        train_scenario(out / "samples", work / "store", out / "reports", progress=progress, csv_paths=csv_paths,
+                       policies=manifests / "examples", prometheus=train_source)
         api_url = stack.enter_context(start_serve(work / "store", work))
         progress(f"sizing API: ratefit serve at {api_url}")
         scenario_dir = work / "scenario-manifests"
