@@ -523,7 +523,7 @@ class KubeAdapter:
         start at the template's value. Limits cannot be removed by a resize (Kubernetes
         docs, "Resize CPU and Memory Resources assigned to Containers")."""
         if any(c.drop_limit for c in changes.values()):
-            raise InputError("an in-place resize cannot remove a CPU limit; use method rollout for limits: drop")
+            raise InputError("an in-place resize cannot remove a CPU limit; use resizeBy Rollout for cpuLimit: Drop")
         pods = list(pods)
         body = {"spec": {"containers": [
             {"name": n, "resources": _resources_patch(ch)} for n, ch in changes.items()]}}
@@ -893,6 +893,7 @@ def _policy(obj: Mapping[str, Any]) -> PolicyObject:
         resource_version=str(meta.get("resourceVersion") or ""),
         spec=obj.get("spec") or {},
         status=obj.get("status") or {},
+        created=str(meta.get("creationTimestamp") or ""),
     )
 
 

@@ -261,6 +261,9 @@ class PolicyObject:
     resource_version: str
     spec: Mapping[str, Any]
     status: Mapping[str, Any]
+    #: ``metadata.creationTimestamp`` (RFC 3339; "" when unknown) — the older of two
+    #: policies naming one workload keeps acting
+    created: str = ""
 
     @property
     def ref(self) -> ObjectRef:

@@ -54,7 +54,7 @@ def truncated(src: Path, dst: Path, at: float) -> Path:
 
 
 def rollout_policies() -> list[dict]:
-    pols = default_policies(mode="apply")
+    pols = default_policies(mode="Apply")
     for p in pols:
         p["spec"]["method"] = "rollout"
     return pols

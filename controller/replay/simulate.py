@@ -37,7 +37,7 @@ import numpy as np
 
 from ratefit.controller.decide import ContainerInput, Sizing, WorkloadDecision
 from ratefit.controller.limits import Budget, RolloutSlots, TokenBucket
-from ratefit.controller.policy import Method, Mode, Policy, WorkloadHistory, history_to_status
+from ratefit.controller.policy import Mode, Policy, ResizeBy, WorkloadHistory, history_to_status
 from ratefit.controller.stages.decide import Decider
 from ratefit.controller.stages.observe import Observed
 from ratefit.controller.workload import PolicyObject
@@ -80,7 +80,7 @@ class Change:
     workload: str
     decided_at: float  # unix s (the pass)
     effective_at: float  # unix s (at once for in-place, after the rollout delay otherwise)
-    method: Method
+    method: ResizeBy
     #: container → (old request, new request, old limit, new limit), millicores
     containers: Mapping[str, tuple[int | None, int | None, int | None, int | None]]
     why: str
@@ -190,7 +190,7 @@ def simulate(
             wd = decider.decide_one(obs, None, obs.inputs, now, now_s)
             history_before = history[w]
             history[w] = wd.history
-            status[w] = history_to_status(wd.history)
+            status[w] = history_to_status(wd.history, [{"name": n} for n in wd.history.containers])
             if i in keep_set:
                 kept.append(wd)
                 res.states.setdefault(i, {})[p.key] = (history_before, tuple(inputs))
@@ -199,7 +199,7 @@ def simulate(
                 continue
             new = {d.container: (d.proposed_m, d.proposed_limit_m) for d in changed}
             old = {d.container: (d.current_m, d.limit_m) for d in changed}
-            in_place = p.method is Method.IN_PLACE
+            in_place = p.resize_by is ResizeBy.IN_PLACE
             eff = now_s if in_place else now_s + rollout_s
             # the next pass reads the patched template (rollout) or the resized pods (in-place);
             # the pods run the new request from ``eff`` on
@@ -207,7 +207,7 @@ def simulate(
             if not in_place:
                 pending.append((eff, w))
             res.changes.append(Change(
-                workload=p.workload_key, decided_at=now_s, effective_at=eff, method=p.method,
+                workload=p.workload_key, decided_at=now_s, effective_at=eff, method=p.resize_by,
                 containers={c: (old[c][0], new[c][0], old[c][1], new[c][1]) for c in new},
                 why=",".join(sorted({d.why.value for d in changed})),
             ))

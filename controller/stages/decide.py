@@ -7,6 +7,9 @@ The budget is seeded once after a start from the policies' status (changes of th
 last minute count against the token bucket, so a crash loop cannot exceed it) and
 taken once per changed workload. The rollout slots follow what the cluster says is
 rolling (level-based).
+
+A policy the observe stage marked ``conflict_with`` an older one is held
+**PolicyConflict** (``decide.held_by_conflict``): it draws nothing from the budget.
 """
 
 from __future__ import annotations
@@ -15,7 +18,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import replace
 from datetime import datetime
 
-from ratefit.controller.decide import ContainerInput, WorkloadDecision, decide_workload
+from ratefit.controller.decide import ContainerInput, WorkloadDecision, decide_workload, held_by_conflict
 from ratefit.controller.limits import Budget, BudgetView
 from ratefit.controller.policy import Mode, WorkloadHistory, history_from_status, parse_time
 from ratefit.controller.stages.observe import Observed, Snapshot
@@ -63,6 +66,8 @@ class Decider:
         already taken for this workload this pass (a recompute after a conflict)."""
         p = o.policy
         assert p is not None
+        if o.conflict_with is not None:
+            return held_by_conflict(p, inputs, history=history_of(o, workload), older=o.conflict_with)
         apply = self.applies(o)
         view = self.budget.view(mono) if apply and not spent else BudgetView()
         history = history_of(o, workload)

@@ -3,7 +3,7 @@
 List the policies (one LIST per namespace, or one cluster-wide), parse each (an
 invalid one is kept with its :class:`~ratefit.controller.policy.PolicyInvalid`); LIST
 the Deployments, StatefulSets and HorizontalPodAutoscalers once per namespace that
-has policies (never a GET per policy); for ``method: in-place`` the workload's pods;
+has policies (never a GET per policy); for ``resizeBy: InPlace`` the workload's pods;
 ask the rate source for every container's per-pod rate in one grouped query (in a
 thread, while the workloads are listed) and the sizing API for every (model, rate)
 in one batch call. The result, :class:`Snapshot`, is what the decide stage reads.
@@ -19,6 +19,10 @@ A LIST that fails (429/5xx after the adapter's retries, 403 …) does not make i
 workloads "not found": their policies are marked ``unavailable`` (held
 ``ApiUnavailable``, status left as it was) — a partial observation never rewrites
 status.
+
+Two valid policies naming the same workload (:func:`conflicts`, a pure function of the
+listed policies): the older one (``creationTimestamp``, then name) keeps acting; each
+newer one is marked ``conflict_with`` the older and is held **PolicyConflict**.
 """
 
 from __future__ import annotations
@@ -29,7 +33,7 @@ import threading
 import time
 import zlib
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime
 
 from ratefit.controller.crd import API_VERSION, KIND
@@ -37,13 +41,13 @@ from ratefit.controller.decide import ContainerInput, Sizing
 from ratefit.controller.errors import KubeError
 from ratefit.controller.hpa_sizing import AutoscalerView, ModelFacts, autoscaler_view, curve_grid, sizing_rate
 from ratefit.controller.metrics_source import RateRequest, RateResult
-from ratefit.controller.policy import Method, Policy, PolicyInvalid, format_duration, parse_policy
+from ratefit.controller.policy import Policy, ResizeBy, PolicyInvalid, format_duration, parse_policy
 from ratefit.controller.stages.ports import KubeReader, RateSource, SizingSource
 from ratefit.controller.telemetry import Telemetry
 from ratefit.controller.workload import HorizontalScaler, Pod, PolicyObject, Workload
 from ratefit.models.errors import RatefitError, UnknownModel
 
-__all__ = ["Observed", "Observer", "Snapshot", "policy_object_dict", "shard_of"]
+__all__ = ["Observed", "Observer", "Snapshot", "conflicts", "policy_object_dict", "shard_of"]
 
 log = logging.getLogger("ratefit.controller.reconcile")
 
@@ -67,10 +71,12 @@ class Observed:
     problem: str | None = None
     #: True: the workload could not be observed (the API failed), not "not found"
     unavailable: bool = False
-    #: ``method: in-place``: the workload's pods, as listed this pass
+    #: ``resizeBy: InPlace``: the workload's pods, as listed this pass
     pods: tuple[Pod, ...] | None = None
     #: the workload's horizontal autoscaler, as sizing sees it (None: none)
     autoscaler: AutoscalerView | None = None
+    #: ``namespace/name`` of the older SizingPolicy naming the same workload (this one is held)
+    conflict_with: str | None = None
 
 
 @dataclass(frozen=True)
@@ -91,6 +97,25 @@ def shard_of(namespace: str, count: int) -> int:
     """The shard (0 … count−1) of a namespace: CRC-32 of its name (stable across
     processes and versions, unlike Python's ``hash``) modulo ``count``."""
     return zlib.crc32(namespace.encode("utf-8")) % count
+
+
+def conflicts(valid: Sequence[tuple[PolicyObject, Policy]]) -> dict[tuple[str, str], str]:
+    """(namespace, name) of every policy that names a workload an older policy already
+    names → ``namespace/name`` of that older policy. Older: the earlier
+    ``creationTimestamp`` (RFC 3339 in UTC, so text order is time order), then the name —
+    a total order, so every pass and every replica picks the same one."""
+    by_workload: dict[str, list[tuple[str, str, PolicyObject]]] = {}
+    for o, p in valid:
+        by_workload.setdefault(p.workload_key, []).append((o.created or "~", o.name, o))
+    out: dict[tuple[str, str], str] = {}
+    for group in by_workload.values():
+        if len(group) < 2:
+            continue
+        group.sort(key=lambda t: (t[0], t[1]))
+        oldest = group[0][2]
+        for _, _, o in group[1:]:
+            out[(o.namespace, o.name)] = f"{oldest.namespace}/{oldest.name}"
+    return out
 
 
 def policy_object_dict(obj: PolicyObject) -> dict[str, object]:
@@ -227,13 +252,16 @@ class Observer:
         facts = self._curve_points(asked, models, views, facts, errors)
         t_sizing = time.perf_counter()
 
+        clashes = conflicts(valid)
         entries = []
         for o, got in zip(objs, parsed):
             if isinstance(got, PolicyInvalid):
                 entries.append(Observed(obj=o, invalid=got))
                 continue
-            entries.append(self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors, problems,
-                                     views=views, facts=facts))
+            one = self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors, problems,
+                            views=views, facts=facts)
+            older = clashes.get((o.namespace, o.name))
+            entries.append(one if older is None else replace(one, conflict_with=older))
         split = {"gather_kube": t_lists - t_g0, "gather_rates": float(rate_box.get("seconds", 0.0)),  # type: ignore[arg-type]
                  "gather_rates_wait": t_rates - t_lists, "gather_sizing": t_sizing - t_rates}
         return Snapshot(now=now, entries=tuple(entries), rolling=tuple(rolling), errors=tuple(errors), split=split)
@@ -316,7 +344,7 @@ class Observer:
             return Observed(obj=o, policy=p, problem=f"{p.workload_key} not found")
         pods: tuple[Pod, ...] | None = None
         running: dict[str, tuple[int | None, int | None]] = {}
-        if p.method is Method.IN_PLACE:
+        if p.resize_by is ResizeBy.IN_PLACE:
             pods, running = self._running_values(p, w, errors)
         by_name = {c.name: c for c in w.containers}
         inputs = []
@@ -339,7 +367,7 @@ class Observer:
     def _running_values(
         self, p: Policy, w: Workload, errors: list[str],
     ) -> tuple[tuple[Pod, ...], dict[str, tuple[int | None, int | None]]]:
-        """``method: in-place``: what the pods run (their spec after resizes), per container —
+        """``resizeBy: InPlace``: what the pods run (their spec after resizes), per container —
         the value most pods agree on. The template keeps the old value, so deciding from it
         would propose the same resize every pass."""
         try:
