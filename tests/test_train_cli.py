@@ -142,7 +142,7 @@ def test_train_from_real_prometheus(scenario_prometheus, tmp_path: Path, capsys)
     rc, out, err = _run(
         capsys, "train", "--prometheus", h.url, "--rate-query", q.rate, "--cpu-query", q.cpu,
         "--throttle-query", q.throttle, "--key", key, "--store", str(store),
-        "--window", format_duration(h.end - h.start), "--step", "30s", "--end", str(h.end),
+        "--lookback", format_duration(h.end - h.start), "--step", "30s", "--end", str(h.end),
     )
     assert rc == 0, err
     art = ModelStore(store).load(key)

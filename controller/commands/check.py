@@ -66,7 +66,7 @@ def build_parts(args: argparse.Namespace):
         raise InputError("give --sizing-api URL or --store DIR, not both")
     if args.max_rate_series < 0:
         raise InputError("--max-rate-series must be 0 (no cap) or positive")
-    template = template_for(args.rate_preset, metric=args.rate_metric, interval=args.rate_interval)
+    template = template_for(args.rate_preset, metric=args.rate_metric, interval=args.rate_range)
     parts = CheckParts(namespaces=tuple(args.namespace), lease_namespace=args.lease_namespace, at=args.rate_at)
     try:
         # one quick try per call: a doctor reports, it does not wait out an outage

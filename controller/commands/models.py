@@ -47,7 +47,9 @@ def show_dict(art: Any) -> dict[str, Any]:
 def _list(args: argparse.Namespace) -> int:
     from ratefit.models.store import ModelStore
 
-    loaded = ModelStore(args.store).load_all()
+    from ratefit.controller.commands.store_dir import existing_store
+
+    loaded = ModelStore(existing_store(args.store)).load_all()
     for rel, err in loaded.errors.items():
         print(f"ratefit models list: refused {rel}: {err}", file=sys.stderr)
     arts = [loaded.artifacts[k] for k in sorted(loaded.artifacts)]
@@ -79,8 +81,10 @@ def _show(args: argparse.Namespace) -> int:
     from ratefit.models.keys import parse_key
     from ratefit.models.store import ModelStore
 
+    from ratefit.controller.commands.store_dir import existing_store
+
     key = str(parse_key(args.key, field="model"))
-    art = ModelStore(args.store).load(key)
+    art = ModelStore(existing_store(args.store)).load(key)
     d = show_dict(art)
     if args.output == "json":
         print(json.dumps(d, indent=2))

@@ -12,9 +12,9 @@ import argparse
 
 
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("report", help="write a Markdown page + PNG plot for a stored key",
+    p = sub.add_parser("report", help="write a Markdown page + PNG plot for a stored model",
                        description=__doc__.split("\n\n", 1)[1], formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("key", metavar="NS/WORKLOAD/CONTAINER")
+    p.add_argument("key", metavar="NAMESPACE/WORKLOAD/CONTAINER", help="the model key (as in the SizingPolicy's model field)")
     p.add_argument("--store", required=True, metavar="DIR", help="model store directory")
     p.add_argument("--out", required=True, metavar="DIR", help="where to write KEY.md and KEY.png")
     p.add_argument("--samples", metavar="FILE.csv", help="the samples the key was trained on (adds the scatter)")
@@ -27,7 +27,9 @@ def _run(args: argparse.Namespace) -> int:
     from ratefit.models.samples import clean, load_csv
     from ratefit.models.store import ModelStore
 
-    art = ModelStore(args.store).load(str(parse_key(args.key)))
+    from ratefit.controller.commands.store_dir import existing_store
+
+    art = ModelStore(existing_store(args.store)).load(str(parse_key(args.key, field="model")))
     samples = ests = None
     if args.samples:
         samples, _ = clean(load_csv(args.samples))

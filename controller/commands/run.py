@@ -14,6 +14,7 @@ import sys
 from dataclasses import dataclass
 from typing import Any
 
+from ratefit.controller.exit_status import EXIT_CODES_HELP
 from ratefit.models.errors import InputError
 
 HELP = """\
@@ -21,7 +22,7 @@ Run the reconcile loop against a cluster: every --interval (and at once when a
 SizingPolicy changes) read every container's per-pod request rate from Prometheus
 (one grouped query), ask the sizing API what that rate costs (one batch call),
 decide within each policy's bounds, and act: status, Event, log line and metric;
-in apply mode (a policy's `mode: apply`, and no --dry-run) a server-side dry run,
+in apply mode (a policy's mode Apply, and no --dry-run) a server-side dry run,
 then one strategic-merge patch per workload (or in-place pod resizes), within the
 cluster-wide budget of --budget-per-minute changes and --max-rollouts rollouts.
 
@@ -30,8 +31,14 @@ stand by and keep answering /healthz and /readyz on --metrics-port.
 SIGTERM/SIGINT: finish the workload being patched, abandon the rest of the pass,
 release the Lease, exit 0.
 
-Start with --dry-run (or `ratefit plan`) and review every proposal first.
+Start with --dry-run (or ratefit plan) and review every proposal first.
 The environment variable RATEFIT_DRY_RUN=true|false sets the default of --dry-run.
+
+--once runs one pass and exits: from a laptop add --no-leader-election (or make
+sure the Lease namespace exists; --once checks it first and stops with one line).
+The exit status of --once is that of ratefit plan:
+
+""" + EXIT_CODES_HELP + """Without --once the loop runs until SIGTERM/SIGINT and exits 0.
 """
 
 
@@ -82,7 +89,7 @@ def add_connection_flags(p: argparse.ArgumentParser, *, sizing_required: bool = 
     g.add_argument("--prometheus", metavar="URL", help="Prometheus base URL, e.g. http://127.0.0.1:9090")
     g.add_argument("--replay", metavar="FILE",
                    help="instead of --prometheus: compute the rates offline from an OpenMetrics history file")
-    g.add_argument("--sizing-api", metavar="URL", required=sizing_required, help="sizing API base URL (`ratefit serve`), e.g. http://127.0.0.1:8470")
+    g.add_argument("--sizing-api", metavar="URL", required=sizing_required, help="sizing API base URL (ratefit serve), e.g. http://127.0.0.1:8470")
     g.add_argument("--sizing-token-file", metavar="FILE", help="file holding the sizing API's bearer token")
     g.add_argument("--namespace", "-n", action="append", default=[], metavar="NS",
                    help="only SizingPolicies in this namespace (repeat for several; default: all namespaces)")
@@ -100,8 +107,11 @@ def add_connection_flags(p: argparse.ArgumentParser, *, sizing_required: bool = 
     r.add_argument("--max-rate-series", type=int, default=500, metavar="N",
                    help="hold a container (TooManySeries) whose rate query answers more than N series "
                         "(0: no cap; default %(default)s)")
-    r.add_argument("--rate-interval", default="2m", help="rate() interval of the default template (default %(default)s)")
-    r.add_argument("--rate-step", default="30s", help="subquery step for the percentile over rateWindow (default %(default)s)")
+    r.add_argument("--rate-range", default="2m", metavar="DURATION",
+                   help="the range of rate() in the default query, e.g. 1m, 2m (default %(default)s)")
+    r.add_argument("--rate-interval", dest="rate_range", help=argparse.SUPPRESS)  # the spelling before --rate-range
+    r.add_argument("--rate-step", default="30s", metavar="DURATION",
+                   help="subquery step for the percentile over the policy's rateWindow (default %(default)s)")
     r.add_argument("--rate-at", type=float, metavar="UNIX_SECONDS",
                    help="evaluate the rates at this time instead of now (replays, reproducible reviews)")
     r.add_argument("--timeout", type=float, default=10.0, help="seconds for each Prometheus and sizing API call (default %(default)s)")
@@ -131,7 +141,6 @@ class Connections:
 
 def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connections:
     """Build the Kubernetes adapter, the rate source and the sizing client from the flags."""
-    from ratefit.controller.kube import KubeAdapter
     from ratefit.controller.metrics_source import PrometheusRateSource, ReplayRateSource
     from ratefit.controller.promql_guard import QueryGuard
     from ratefit.controller.rate_presets import template_for
@@ -140,7 +149,7 @@ def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connect
 
     if bool(args.prometheus) == bool(args.replay):
         raise InputError("give exactly one of --prometheus URL or --replay FILE")
-    template = template_for(args.rate_preset, metric=args.rate_metric, interval=args.rate_interval)
+    template = template_for(args.rate_preset, metric=args.rate_metric, interval=args.rate_range)
     if args.max_rate_series < 0:
         raise InputError("--max-rate-series must be 0 (no cap) or positive")
     guard = QueryGuard(enforce_namespace=not args.allow_raw_rate_queries, max_series=args.max_rate_series)
@@ -160,10 +169,30 @@ def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connect
                 token = fh.read().strip()
         except OSError as exc:
             raise InputError(f"--sizing-token-file {args.sizing_token_file}: {exc}") from exc
-    sizing = SizingClient(args.sizing_api, timeout=args.timeout, token=token)
     kwargs = {"identity": identity} if identity else {}
-    kube = KubeAdapter.from_environment(args.kubeconfig, context=args.context, **kwargs)
+    kube = kube_from_args(args, **kwargs)
+    sizing = SizingClient(args.sizing_api, timeout=args.timeout, token=token)
     return Connections(kube=kube, rates=rates, sizing=sizing, rate_source=source)
+
+
+def kube_from_args(args: argparse.Namespace, **kwargs: Any) -> Any:
+    """The Kubernetes adapter from --kubeconfig/--context; a kubeconfig that cannot be
+    read or parsed is one line naming the file (never a YAML traceback)."""
+    import yaml
+
+    from ratefit.controller.kube import KubeAdapter
+
+    if args.kubeconfig and not os.path.exists(args.kubeconfig):
+        raise InputError(f"--kubeconfig {args.kubeconfig}: no such file")
+    try:
+        return KubeAdapter.from_environment(args.kubeconfig, context=args.context, **kwargs)
+    except (yaml.YAMLError, ValueError, KeyError, AttributeError, TypeError) as exc:
+        if isinstance(exc, InputError):
+            raise
+        where = args.kubeconfig or os.environ.get("KUBECONFIG") or "~/.kube/config"
+        first = " ".join(str(exc).split())[:200]
+        raise InputError(f"kubeconfig {where} is not a valid kubeconfig ({type(exc).__name__}: {first}); "
+                         "fix the file or pass --kubeconfig FILE") from exc
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -209,11 +238,21 @@ def _run(args: argparse.Namespace) -> int:
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(JsonLines())
     logging.basicConfig(level=getattr(logging, str(args.log_level).upper(), logging.INFO), handlers=[handler])
+    # the client library's retry chatter is not ours to print: the adapter reports what failed
+    logging.getLogger("urllib3").setLevel(logging.ERROR)
     interval = parse_duration(args.interval, field="--interval")
     if interval <= 0:
         raise InputError("--interval must be longer than 0s")
+    check_limits(args)
     shard = parse_shard(args.shard)
     conns = connect(args, identity=args.identity)
+    lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
+    if args.once and not args.no_leader_election:
+        try:
+            check_lease_namespace(conns.kube, args.lease_namespace)
+        except BaseException:
+            conns.close()
+            raise
     telemetry = Telemetry()
     mono = time.monotonic
     budget = Budget(
@@ -227,11 +266,17 @@ def _run(args: argparse.Namespace) -> int:
         budget=budget, backoff=ExponentialBackoff(base=5.0, cap=300.0, rng=random.Random()),
         telemetry=telemetry, crash_hook=crash_hook_from_env(os.environ.get("RATEFIT_CRASH_AT")),
     )
-    lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
     elector = None if args.no_leader_election else conns.kube.leader_elector(
         namespace=args.lease_namespace, name=lease_name)
+    last: list[Any] = []
+
+    def run_pass(control: Any) -> Any:
+        result = reconciler.run_pass(control)
+        last[:] = [result]
+        return result
+
     loop = ControllerLoop(
-        run_pass=reconciler.run_pass, elector=elector, interval_s=interval,
+        run_pass=run_pass, elector=elector, interval_s=interval,
         retry_period_s=getattr(elector, "retry_period", 2.0), renew_deadline_s=getattr(elector, "renew_deadline", 10.0),
         telemetry=telemetry, max_passes=1 if args.once else None,
     )
@@ -261,13 +306,56 @@ def _run(args: argparse.Namespace) -> int:
     print(f"ratefit run: identity {conns.kube.identity}; rates from {conns.rate_source}; sizing API {args.sizing_api}; "
           f"mode {mode}; interval {args.interval}", file=sys.stderr, flush=True)
     try:
-        return loop.run()
+        code = loop.run()
+        if args.once:
+            code = _once_exit(loop, last, conns)
+        return code
     finally:
         stop_watch.set()
         if health is not None:
             health.stop()
         conns.close()
         print("ratefit run: stopped", file=sys.stderr, flush=True)
+
+
+def _once_exit(loop: Any, last: list[Any], conns: Connections) -> int:
+    """The exit code of ``run --once`` (see ``controller/exit_status``), summary on stderr."""
+    from ratefit.controller.exit_status import ExitCode, pass_exit, prometheus_probe, sizing_probe
+
+    if not last:
+        if loop.stopping:
+            return 0  # stopped by a signal before the pass
+        print("ratefit run: error: the pass failed (see the log above)", file=sys.stderr, flush=True)
+        return int(ExitCode.FAILED)
+    verdict = pass_exit(last[0], prometheus=prometheus_probe(conns.rates), sizing=sizing_probe(conns.sizing))
+    if verdict.code is not ExitCode.OK:
+        print(f"ratefit run: error: {verdict.summary}", file=sys.stderr, flush=True)
+    return int(verdict.code)
+
+
+def check_limits(args: argparse.Namespace) -> None:
+    """Negative budgets are refused (0 is the documented 'unlimited')."""
+    if args.budget_per_minute < 0:
+        raise InputError(f"--budget-per-minute {args.budget_per_minute:g}: must be 0 (unlimited) or positive")
+    if args.max_rollouts < 0:
+        raise InputError(f"--max-rollouts {args.max_rollouts}: must be 0 (unlimited) or positive")
+
+
+def check_lease_namespace(kube: Any, namespace: str) -> None:
+    """``run --once`` must not wait forever for a Lease it can never create: the Lease
+    namespace must exist. A namespace that cannot be read (403) is given the benefit of
+    the doubt; an API server that does not answer is said so in one line."""
+    from ratefit.controller.errors import KubeUnavailable
+    from ratefit.controller.kube_probe import probe
+
+    code, body = probe(kube.api_client, f"namespace:{namespace}")
+    if code == 404:
+        raise InputError(f"--once: the Lease namespace {namespace} does not exist; pass --no-leader-election "
+                         f"for a one-off run (or --lease-namespace NS, or kubectl create namespace {namespace})")
+    if code == 0:
+        first = " ".join(str(body).split())[:200]
+        raise KubeUnavailable(f"the API server could not be reached ({first}); check --kubeconfig/--context",
+                              what="read the Lease namespace")
 
 
 def parse_shard(text: str | None) -> tuple[int, int] | None:
