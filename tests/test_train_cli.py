@@ -84,7 +84,7 @@ def test_models_list(trained, capsys) -> None:
     d = json.loads(out)
     assert [m["model"] for m in d["models"]] == [KEY] and d["refused"] == {}
     rc, out, _ = _run(capsys, "models", "list", "--store", str(store))
-    assert KEY in out and "CHOSEN" in out
+    assert KEY in out and "ESTIMATOR" in out
 
 
 def test_predict_equals_curve_lookup_rounded_up(trained, capsys) -> None:
