@@ -96,6 +96,12 @@ def test_plan_exit_codes_say_which_input_could_not_be_reached(tmp_path, shared_s
         errors = [ln for ln in down.stderr.splitlines() if ln.startswith("ratefit plan: error:")]
         assert len(errors) == 1 and "sizing API" in errors[0] and "--sizing-api" in errors[0]
         assert "Traceback" not in down.stderr
+        no_prom = _cli("plan", "--kubeconfig", str(w.kubeconfig), "--prometheus", "http://127.0.0.1:1",
+                       "--sizing-api", w.api_url, "-o", "json", "--timeout", "2")
+        assert no_prom.returncode == 4, no_prom.stderr
+        assert [r["why"] for r in json.loads(no_prom.stdout)] == ["NoMetrics"]
+        (line,) = [ln for ln in no_prom.stderr.splitlines() if ln.startswith("ratefit plan: error:")]
+        assert "Prometheus could not be reached" in line and "--prometheus" in line
     kc = tmp_path / "gone.kubeconfig"
     kc.write_text("apiVersion: v1\nkind: Config\nclusters: [{name: c, cluster: {server: 'http://127.0.0.1:1'}}]\n"
                   "contexts: [{name: c, context: {cluster: c, user: u}}]\ncurrent-context: c\n"

@@ -202,7 +202,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--dry-run", action=argparse.BooleanOptionalAction, default=_truthy(os.environ.get("RATEFIT_DRY_RUN")),
                    help="force every policy to dry-run: decide, write status and Events, never patch "
                         "(default from RATEFIT_DRY_RUN, else off)")
-    p.add_argument("--interval", default="60s", help="time between passes, e.g. 60s, 5m (default %(default)s)")
+    p.add_argument("--interval", default="60s", metavar="DURATION", help="time between passes, e.g. 60s, 5m (default %(default)s)")
     p.add_argument("--budget-per-minute", type=float, default=2.0, metavar="N",
                    help="cluster-wide changes per minute (0: unlimited; default %(default)s)")
     p.add_argument("--max-rollouts", type=int, default=1, metavar="N",
