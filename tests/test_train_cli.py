@@ -108,10 +108,13 @@ def test_errors_exit_2_with_message(tmp_path: Path, capsys) -> None:
     bad.write_text("rate,cpu\n1,0.1\nfast,0.2\n")
     rc, _, err = _run(capsys, "train", "--samples", str(bad), "--key", KEY, "--store", str(tmp_path / "s"))
     assert rc == 2 and f"{bad}:3: rate: 'fast' is not a number" in err
+    rc, _, err = _run(capsys, "predict", "--store", str(tmp_path / "s"), KEY, "--rate", "1")
+    assert rc == 2 and "no such directory" in err  # the store is missing, not the model
+    (tmp_path / "s").mkdir()
     rc, _, err = _run(capsys, "predict", "--store", str(tmp_path / "s"), "--key", KEY, "--rate", "1")
     assert rc == 2 and "no model for" in err
     rc, _, err = _run(capsys, "train", "--samples", str(bad), "--store", str(tmp_path / "s"))
-    assert rc == 2 and "--key" in err
+    assert rc == 2 and "model key NAMESPACE/WORKLOAD/CONTAINER is required" in err
     rc, _, err = _run(capsys, "train", "--samples", str(_csv(tmp_path / "ok.csv", 100)), "--key", "Bad/Key",
                       "--store", str(tmp_path / "s"))
     assert rc == 2 and "namespace/workload/container" in err
