@@ -12,6 +12,7 @@ held NoMetrics, NoModel or ApiUnavailable); scripts must not take that for a suc
     5  the sizing API could not be reached or refused the calls (containers held NoModel)
     6  every container is held for missing inputs (NoMetrics/NoModel) although the
        services answered: e.g. a rate metric that has no series, no model trained
+    7  (run --once) the leader Lease stayed held by another replica: no pass ran
 
 When several apply, the first in the order 3, 4, 5 wins (the others are named in the
 summary). Pure apart from the two probes passed in (each answers None when the service
@@ -36,6 +37,7 @@ class ExitCode(IntEnum):
     PROMETHEUS_UNREACHABLE = 4
     SIZING_API_UNREACHABLE = 5
     NO_INPUTS = 6
+    LEASE_HELD = 7
 
 
 #: the exit codes as the --help of plan and run --once print them (plain text)
@@ -49,6 +51,7 @@ Exit status (for scripts; a one-line summary goes to stderr when it is not 0):
   5  the sizing API could not be reached or refused the calls (held NoModel)
   6  every container is held for missing inputs (NoMetrics or NoModel)
      although every service answered
+  7  (run --once) the leader Lease stayed held by another replica: no pass ran
 """
 
 Probe = Callable[[], "str | None"]

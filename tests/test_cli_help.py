@@ -47,7 +47,8 @@ def test_plan_and_run_document_their_exit_codes() -> None:
     for cmd in ("ratefit plan", "ratefit run"):
         text = helps[cmd]
         assert "Exit status" in text
-        for code in ("3  the Kubernetes API server", "4  Prometheus", "5  the sizing API", "6  every container"):
+        for code in ("3  the Kubernetes API server", "4  Prometheus", "5  the sizing API", "6  every container",
+                     "7  (run --once) the leader Lease"):
             assert code in text, (cmd, code)
 
 

@@ -139,3 +139,23 @@ def test_negative_budgets_and_malformed_kubeconfigs_are_refused_in_one_line(tmp_
         assert len(r.stderr.strip().splitlines()) == 1 and "not a valid kubeconfig" in r.stderr
     r = _cli("revert", "deploy/web", "--kubeconfig", str(tmp_path / "missing"))
     assert r.returncode == 2 and "no such file" in r.stderr
+
+
+def test_run_once_gives_up_when_another_replica_holds_the_lease(tmp_path, shared_sizing_api) -> None:
+    """--once as a standby would wait forever: it stops after two Lease durations (15 s
+    each, client-go's default) with exit 7, naming the holder, and changes nothing."""
+    from datetime import datetime, timezone
+
+    now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    lease = {"apiVersion": "coordination.k8s.io/v1", "kind": "Lease",
+             "metadata": {"namespace": "ratefit-system", "name": "ratefit-controller"},
+             "spec": {"holderIdentity": "the-other-replica", "leaseDurationSeconds": 3600,
+                      "acquireTime": now, "renewTime": now}}
+    ns = {"apiVersion": "v1", "kind": "Namespace", "metadata": {"name": "ratefit-system"}}
+    with world(tmp_path, objects=[ns, lease, *OBJECTS], api_url=shared_sizing_api, rates=RATES) as w:
+        r = subprocess.run([str(RATEFIT), "run", "--once", "--metrics-port", "-1", *_common(w),
+                            "--sizing-api", w.api_url], capture_output=True, text=True, timeout=120)
+        assert r.returncode == 7, r.stderr[-2000:]
+        (line,) = [ln for ln in r.stderr.splitlines() if ln.startswith("ratefit run: error:")]
+        assert "the-other-replica" in line and "--no-leader-election" in line
+        assert w.patches("shop", "web") == []

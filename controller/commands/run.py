@@ -269,8 +269,10 @@ def _run(args: argparse.Namespace) -> int:
     elector = None if args.no_leader_election else conns.kube.leader_elector(
         namespace=args.lease_namespace, name=lease_name)
     last: list[Any] = []
+    started = threading.Event()
 
     def run_pass(control: Any) -> Any:
+        started.set()
         result = reconciler.run_pass(control)
         last[:] = [result]
         return result
@@ -290,6 +292,7 @@ def _run(args: argparse.Namespace) -> int:
                              "pick another port (0: any free one, -1: off)") from exc
         print(f"ratefit run: /metrics /healthz /readyz on {health.url}", file=sys.stderr, flush=True)
     stop_watch = threading.Event()
+    gave_up: list[str] = []
 
     def on_signal(signum: int, frame: Any) -> None:
         print(f"ratefit run: {signal.Signals(signum).name}: stopping after the current workload", file=sys.stderr, flush=True)
@@ -302,12 +305,30 @@ def _run(args: argparse.Namespace) -> int:
                                name="ratefit-watch", daemon=True)
     if not args.once:
         watcher.start()
+    elif elector is not None:
+        # --once as a standby would wait forever: give up after two Lease durations
+        patience = 2 * float(getattr(elector, "lease_duration", 15.0)) + float(getattr(elector, "retry_period", 2.0))
+
+        def give_up() -> None:
+            if not started.wait(patience) and not stop_watch.is_set():
+                holder = getattr(elector, "holder", None)
+                gave_up.append(f"the Lease {args.lease_namespace}/{lease_name} stayed held by "
+                               f"{holder or 'another replica'} for {patience:.0f}s, so no pass ran; another "
+                               "controller is running: use ratefit plan, or --no-leader-election")
+                loop.stop()
+
+        threading.Thread(target=give_up, name="ratefit-once-lease", daemon=True).start()
     mode = "dry-run (forced)" if args.dry_run else "per policy (dry-run or apply)"
     print(f"ratefit run: identity {conns.kube.identity}; rates from {conns.rate_source}; sizing API {args.sizing_api}; "
           f"mode {mode}; interval {args.interval}", file=sys.stderr, flush=True)
     try:
         code = loop.run()
-        if args.once:
+        if args.once and gave_up:
+            from ratefit.controller.exit_status import ExitCode
+
+            print(f"ratefit run: error: {gave_up[0]}", file=sys.stderr, flush=True)
+            code = int(ExitCode.LEASE_HELD)
+        elif args.once:
             code = _once_exit(loop, last, conns)
         return code
     finally:
