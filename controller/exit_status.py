@@ -10,8 +10,8 @@ held NoMetrics, NoModel or ApiUnavailable); scripts must not take that for a suc
     3  the Kubernetes API server could not be reached (policies or workloads not listed)
     4  Prometheus could not be reached (containers held NoMetrics)
     5  the sizing API could not be reached or refused the calls (containers held NoModel)
-    6  every container is held for missing inputs (NoMetrics/NoModel) although the
-       services answered: e.g. a rate metric that has no series, no model trained
+    6  every container is held for missing inputs (NoMetrics, QueryFailed, NoModel …)
+       although the services answered: e.g. a rate metric that has no series, no model trained
     7  (run --once) the leader Lease stayed held by another replica: no pass ran
 
 When several apply, the first in the order 3, 4, 5 wins (the others are named in the
@@ -55,6 +55,10 @@ Exit status (for scripts; a one-line summary goes to stderr when it is not 0):
 """
 
 Probe = Callable[[], "str | None"]
+
+#: held reasons that mean "this container's rate is missing" / "its model answer is missing"
+RATE_MISSING = frozenset({"NoMetrics", "QueryFailed", "QueryRefused", "TooManySeries"})
+MODEL_MISSING = frozenset({"NoModel", "InvalidModelKey", "DemandOutOfRange"})
 
 
 @dataclass(frozen=True)
@@ -106,10 +110,12 @@ def pass_exit(result: Any, *, prometheus: Probe | None = None, sizing: Probe | N
         code, text = found[0]
         others = "; ".join(t for _, t in found[1:])
         return PassExit(code, text + (f"; also: {others}" if others else ""))
-    if rows and all(w & {"NoMetrics", "NoModel"} for w in whys):
+    if rows and all(w & (RATE_MISSING | MODEL_MISSING) for w in whys):
+        no_rate = sum(1 for w in whys if w & RATE_MISSING)
         return PassExit(ExitCode.NO_INPUTS,
-                        f"every container ({len(rows)}) is held for missing inputs ({no_metrics} NoMetrics, "
-                        f"{no_model} NoModel): check the rate query (ratefit check) and the models (ratefit models list)")
+                        f"every container ({len(rows)}) is held for missing inputs ({no_rate} without a rate, "
+                        f"{len(rows) - no_rate} without a model answer): check the rate queries (ratefit check) "
+                        "and the models (ratefit models list)")
     return PassExit(ExitCode.OK, "")
 
 

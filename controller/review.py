@@ -90,6 +90,12 @@ HINTS = {
     "WorkloadNotFound": "the workload named by the policy does not exist: fix spec.workload",
     "PolicyInvalid": "the policy does not validate: fix the field named",
     "Rejected": "the API server refused the change: see the Event for its message",
+    "QueryRefused": "the policy's rateQuery reads outside its namespace: fix spec rateQuery",
+    "QueryFailed": "Prometheus refused the rate query: fix the query (ratefit check prints it)",
+    "TooManySeries": "the rate query answered too many series: narrow it to the workload's pods",
+    "InvalidModelKey": "the model key is not NAMESPACE/WORKLOAD/CONTAINER: fix the container's model",
+    "DemandOutOfRange": "the sizing API answered a demand beyond any bound: retrain the model",
+    "ContainerMissing": "the workload has no such container: fix spec.containers",
 }
 
 _MOVING = ("changed", "proposed")

@@ -68,6 +68,8 @@ def test_an_all_no_metrics_review_is_never_a_silent_success() -> None:
     result = PassResult(outcome=PassOutcome.DEGRADED, rows=(_row("NoMetrics"), _row("NoModel")))
     ex = pass_exit(result, prometheus=up("prom"), sizing=up("sizing"))
     assert ex.code is ExitCode.NO_INPUTS == 6 and "ratefit check" in ex.summary
+    other = PassResult(outcome=PassOutcome.DONE, rows=(_row("QueryFailed"), _row("InvalidModelKey")))
+    assert pass_exit(other).code == 6  # a failed query or a refused model key is a missing input too
     # one container without a model among decided ones is a per-row matter: 0
     mixed = PassResult(outcome=PassOutcome.DEGRADED, rows=(_row("NoModel"), _row("NewTarget", "proposed")))
     assert pass_exit(mixed, prometheus=up("prom"), sizing=up("sizing")).code is ExitCode.OK
