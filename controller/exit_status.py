@@ -49,8 +49,8 @@ Exit status (for scripts; a one-line summary goes to stderr when it is not 0):
   3  the Kubernetes API server could not be reached
   4  Prometheus could not be reached (containers held NoMetrics)
   5  the sizing API could not be reached or refused the calls (held NoModel)
-  6  every container is held for missing inputs (NoMetrics or NoModel)
-     although every service answered
+  6  every container is held for missing inputs (no rate or no model
+     answer: NoMetrics, QueryFailed, NoModel ...) although every service answered
   7  (run --once) the leader Lease stayed held by another replica: no pass ran
 """
 
