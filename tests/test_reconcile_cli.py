@@ -114,7 +114,12 @@ def test_plan_exit_codes_say_which_input_could_not_be_reached(tmp_path, shared_s
 
 
 def test_run_once_checks_the_lease_namespace_first(tmp_path, shared_sizing_api) -> None:
+    """A Lease cannot be created in a namespace that does not exist: the API server answers
+    404 (its NamespaceLifecycle admission; from memory). The sandbox does not check
+    namespaces on create, so a fault rule answers that 404; after the first miss --once
+    reads the namespace and stops in one line instead of waiting as a standby forever."""
     with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
+        w.sandbox.faults.add("*", "/namespaces/no-such-ns/leases", status=404, count=None)
         r = subprocess.run([str(RATEFIT), "run", "--once", "--metrics-port", "-1", *_common(w),
                             "--sizing-api", w.api_url, "--lease-namespace", "no-such-ns"],
                            capture_output=True, text=True, timeout=60)

@@ -53,16 +53,20 @@ def parse_workload(text: str, namespace: str | None = None) -> tuple[str | None,
 
 def _context_namespace(args: argparse.Namespace) -> str:
     """The namespace of the kubeconfig's context (as kubectl does), else ``default``."""
-    try:
-        from kubernetes import config as k8s_config
+    import os
 
-        _, active = k8s_config.list_kube_config_contexts(config_file=args.kubeconfig)
-        if args.context:
-            contexts, _ = k8s_config.list_kube_config_contexts(config_file=args.kubeconfig)
-            active = next((c for c in contexts if c.get("name") == args.context), active)
-        ns = (active or {}).get("context", {}).get("namespace")
+    import yaml
+
+    path = args.kubeconfig or (os.environ.get("KUBECONFIG") or "").split(os.pathsep)[0] \
+        or os.path.expanduser("~/.kube/config")
+    try:
+        with open(path, encoding="utf-8") as fh:
+            doc = yaml.safe_load(fh) or {}
+        name = args.context or doc.get("current-context")
+        ctx = next((c for c in doc.get("contexts") or [] if isinstance(c, dict) and c.get("name") == name), {})
+        ns = (ctx.get("context") or {}).get("namespace")
         return str(ns) if ns else "default"
-    except Exception:  # in-cluster or unreadable: the adapter reports a bad kubeconfig itself
+    except Exception:  # in-cluster or unreadable: the adapter has reported a bad kubeconfig already
         return "default"
 
 

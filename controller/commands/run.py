@@ -247,12 +247,6 @@ def _run(args: argparse.Namespace) -> int:
     shard = parse_shard(args.shard)
     conns = connect(args, identity=args.identity)
     lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
-    if args.once and not args.no_leader_election:
-        try:
-            check_lease_namespace(conns.kube, args.lease_namespace)
-        except BaseException:
-            conns.close()
-            raise
     telemetry = Telemetry()
     mono = time.monotonic
     budget = Budget(
@@ -268,6 +262,17 @@ def _run(args: argparse.Namespace) -> int:
     )
     elector = None if args.no_leader_election else conns.kube.leader_elector(
         namespace=args.lease_namespace, name=lease_name)
+    gave_up: list[tuple[int, str]] = []
+    if args.once and elector is not None:
+        # the first Lease attempt that fails checks the Lease namespace: a missing one would
+        # make --once wait forever (only then: a controller that gets its Lease reads no namespace)
+        def first_miss() -> None:
+            problem = lease_namespace_problem(conns.kube, args.lease_namespace)
+            if problem is not None:
+                gave_up.append(problem)
+                loop.stop()
+
+        elector = OnceElector(elector, first_miss)
     last: list[Any] = []
     started = threading.Event()
 
@@ -292,7 +297,6 @@ def _run(args: argparse.Namespace) -> int:
                              "pick another port (0: any free one, -1: off)") from exc
         print(f"ratefit run: /metrics /healthz /readyz on {health.url}", file=sys.stderr, flush=True)
     stop_watch = threading.Event()
-    gave_up: list[str] = []
 
     def on_signal(signum: int, frame: Any) -> None:
         print(f"ratefit run: {signal.Signals(signum).name}: stopping after the current workload", file=sys.stderr, flush=True)
@@ -312,9 +316,9 @@ def _run(args: argparse.Namespace) -> int:
         def give_up() -> None:
             if not started.wait(patience) and not stop_watch.is_set():
                 holder = getattr(elector, "holder", None)
-                gave_up.append(f"the Lease {args.lease_namespace}/{lease_name} stayed held by "
-                               f"{holder or 'another replica'} for {patience:.0f}s, so no pass ran; another "
-                               "controller is running: use ratefit plan, or --no-leader-election")
+                gave_up.append((7, f"the Lease {args.lease_namespace}/{lease_name} stayed held by "
+                                   f"{holder or 'another replica'} for {patience:.0f}s, so no pass ran; another "
+                                   "controller is running: use ratefit plan, or --no-leader-election"))
                 loop.stop()
 
         threading.Thread(target=give_up, name="ratefit-once-lease", daemon=True).start()
@@ -324,10 +328,8 @@ def _run(args: argparse.Namespace) -> int:
     try:
         code = loop.run()
         if args.once and gave_up:
-            from ratefit.controller.exit_status import ExitCode
-
-            print(f"ratefit run: error: {gave_up[0]}", file=sys.stderr, flush=True)
-            code = int(ExitCode.LEASE_HELD)
+            print(f"ratefit run: error: {gave_up[0][1]}", file=sys.stderr, flush=True)
+            code = gave_up[0][0]
         elif args.once:
             code = _once_exit(loop, last, conns)
         return code
@@ -362,21 +364,51 @@ def check_limits(args: argparse.Namespace) -> None:
         raise InputError(f"--max-rollouts {args.max_rollouts}: must be 0 (unlimited) or positive")
 
 
-def check_lease_namespace(kube: Any, namespace: str) -> None:
-    """``run --once`` must not wait forever for a Lease it can never create: the Lease
-    namespace must exist. A namespace that cannot be read (403) is given the benefit of
-    the doubt; an API server that does not answer is said so in one line."""
-    from ratefit.controller.errors import KubeUnavailable
+class OnceElector:
+    """The Lease elector of ``run --once``: calls ``on_first_miss`` once, after the first
+    attempt that did not get the Lease; everything else is the wrapped elector's."""
+
+    def __init__(self, inner: Any, on_first_miss: Any) -> None:
+        self._inner = inner
+        self._on_first_miss = on_first_miss
+        self._checked = False
+
+    def try_acquire_or_renew(self) -> bool:
+        try:
+            held = bool(self._inner.try_acquire_or_renew())
+        except Exception:
+            self._miss()
+            raise
+        if not held:
+            self._miss()
+        return held
+
+    def _miss(self) -> None:
+        if not self._checked:
+            self._checked = True
+            self._on_first_miss()
+
+    def release(self) -> None:
+        self._inner.release()
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._inner, name)
+
+
+def lease_namespace_problem(kube: Any, namespace: str) -> tuple[int, str] | None:
+    """(exit code, one line) when the Lease namespace does not exist (2) or the API server
+    does not answer (3); None when it exists or cannot be read (403: benefit of the doubt)."""
     from ratefit.controller.kube_probe import probe
 
     code, body = probe(kube.api_client, f"namespace:{namespace}")
     if code == 404:
-        raise InputError(f"--once: the Lease namespace {namespace} does not exist; pass --no-leader-election "
-                         f"for a one-off run (or --lease-namespace NS, or kubectl create namespace {namespace})")
+        return 2, (f"--once: the Lease namespace {namespace} does not exist; pass --no-leader-election "
+                   f"for a one-off run (or --lease-namespace NS, or kubectl create namespace {namespace})")
     if code == 0:
         first = " ".join(str(body).split())[:200]
-        raise KubeUnavailable(f"the API server could not be reached ({first}); check --kubeconfig/--context",
-                              what="read the Lease namespace")
+        return 3, (f"the Kubernetes API server could not be reached ({first}); check --kubeconfig/--context "
+                   "and that the cluster is up")
+    return None
 
 
 def parse_shard(text: str | None) -> tuple[int, int] | None:
