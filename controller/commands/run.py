@@ -34,8 +34,10 @@ release the Lease, exit 0.
 Start with --dry-run (or ratefit plan) and review every proposal first.
 The environment variable RATEFIT_DRY_RUN=true|false sets the default of --dry-run.
 
---once runs one pass and exits: from a laptop add --no-leader-election (or make
-sure the Lease namespace exists; --once checks it first and stops with one line).
+--once runs one pass and exits: from a laptop add --no-leader-election. With a
+Lease, --once checks the Lease namespace as soon as the Lease cannot be had and
+stops with one line when it does not exist; it gives up with exit 7 when another
+replica keeps the Lease.
 The exit status of --once is that of ratefit plan:
 
 """ + EXIT_CODES_HELP + """Without --once the loop runs until SIGTERM/SIGINT and exits 0.
