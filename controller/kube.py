@@ -61,6 +61,7 @@ from ratefit.controller.kube_lease import LeaderElector, micro_time
 from ratefit.controller.kube_retry import RetryPolicy, call_with_retry, retry_on_conflict, translate
 from ratefit.controller.quantity import format_cpu, parse_cpu
 from ratefit.controller.workload import (
+    LAST_CHANGE_ANNOTATION,
     PREVIOUS_REQUESTS_ANNOTATION,
     ContainerResources,
     CpuChange,
@@ -74,6 +75,7 @@ from ratefit.controller.workload import (
     PolicyObject,
     PreviousRequest,
     ResizeOutcome,
+    ScalerMetric,
     Workload,
     WorkloadKind,
     encode_previous_requests,
@@ -92,6 +94,10 @@ __all__ = [
     "POLICY_PLURAL",
     "REPORTING_CONTROLLER",
     "FIELD_MANAGER",
+    "workload_from_json",
+    "pod_from_json",
+    "hpa_from_json",
+    "policy_from_json",
 ]
 
 log = logging.getLogger(__name__)
@@ -472,24 +478,30 @@ class KubeAdapter:
         Returns the stored workload, or None when there is nothing to revert. Containers
         that no longer exist are skipped. Conflicts are re-read and retried."""
 
+        kind = kind if isinstance(kind, WorkloadKind) else WorkloadKind.parse(kind)
+
         def once() -> Workload | None:
-            wl = self.read_workload(namespace, kind, name)
+            raw = self._call(f"read {kind.value} {namespace}/{name}", self._api_of(kind).read, name, namespace)
+            wl = _workload(raw, kind)
             previous = wl.previous_requests
             if not previous:
                 return None
-            names = {c.name for c in wl.containers}
+            raw_containers = {c.get("name"): c for c in (((raw.get("spec") or {}).get("template") or {})
+                                                         .get("spec") or {}).get("containers") or []}
             containers = []
             for cname, prev in sorted(previous.items()):
-                if cname not in names:
+                if cname not in raw_containers:
                     log.warning("%s: container %s is gone; not reverted", wl.key, cname)
                     continue
+                res = raw_containers[cname].get("resources") or {}
                 containers.append({"name": cname, "resources": {
-                    "requests": {"cpu": None if prev.cpu_request_m is None else format_cpu(prev.cpu_request_m)},
-                    "limits": {"cpu": None if prev.cpu_limit_m is None else format_cpu(prev.cpu_limit_m)},
+                    "requests": _revert_map(res.get("requests"), prev.cpu_request_m),
+                    "limits": _revert_map(res.get("limits"), prev.cpu_limit_m),
                 }})
+            # the revert leaves no trace of ratefit: both of its annotations go
             body = {
                 "metadata": {"resourceVersion": wl.resource_version,
-                             "annotations": {PREVIOUS_REQUESTS_ANNOTATION: None}},
+                             "annotations": {PREVIOUS_REQUESTS_ANNOTATION: None, LAST_CHANGE_ANNOTATION: None}},
                 "spec": {"template": {"spec": {"containers": containers}}},
             }
             return self._dry_run_then_patch(wl, body)
@@ -511,7 +523,7 @@ class KubeAdapter:
         start at the template's value. Limits cannot be removed by a resize (Kubernetes
         docs, "Resize CPU and Memory Resources assigned to Containers")."""
         if any(c.drop_limit for c in changes.values()):
-            raise InputError("an in-place resize cannot remove a CPU limit; use method rollout for limits: drop")
+            raise InputError("an in-place resize cannot remove a CPU limit; use resizeBy Rollout for cpuLimit: Drop")
         pods = list(pods)
         body = {"spec": {"containers": [
             {"name": n, "resources": _resources_patch(ch)} for n, ch in changes.items()]}}
@@ -650,6 +662,17 @@ def cpu_patch_body(
 
 
 # -------------------------------------------------------------------- JSON → values
+def _revert_map(current: Mapping[str, Any] | None, previous_m: int | None) -> dict[str, Any] | None:
+    """The strategic-merge value that puts one ``requests``/``limits`` map back: the CPU
+    set to its previous value, or removed — and the whole map removed (None) when CPU was
+    its only key, so a revert never leaves an empty ``requests: {}``/``limits: {}``."""
+    if previous_m is not None:
+        return {"cpu": format_cpu(previous_m)}
+    if not set(current or {}) - {"cpu"}:
+        return None
+    return {"cpu": None}
+
+
 def _ref(ref: ObjectRef) -> dict[str, str]:
     out = {"apiVersion": ref.api_version, "kind": ref.kind, "namespace": ref.namespace, "name": ref.name}
     if ref.uid:
@@ -771,28 +794,92 @@ def _scales_on_cpu_utilization(spec: Mapping[str, Any]) -> bool:
         # autoscaling/v2 API reference, HorizontalPodAutoscalerSpec.metrics: "If not set,
         # the default metric will be set to 80% average CPU utilization."
         return True
-    for m in metrics:
+    for m in metrics if isinstance(metrics, list) else ():
+        if not isinstance(m, Mapping):
+            continue
         if m.get("type") == "Resource":
             src = m.get("resource") or {}
         elif m.get("type") == "ContainerResource":
             src = m.get("containerResource") or {}
         else:
             continue
-        if src.get("name") == "cpu" and (src.get("target") or {}).get("type") == "Utilization":
+        if isinstance(src, Mapping) and src.get("name") == "cpu" and isinstance(src.get("target"), Mapping) \
+                and src["target"].get("type") == "Utilization":
             return True
     return False
+
+
+#: spec.metrics[].type → the field holding that metric's source (autoscaling/v2 API reference)
+_METRIC_FIELDS = {"Resource": "resource", "ContainerResource": "containerResource", "Pods": "pods",
+                  "Object": "object", "External": "external"}
+
+
+def _number(v: Any) -> float | None:
+    """A quantity (``"100"``, ``"500m"``, ``1.5``) as a float; None when absent or malformed
+    (one odd metric never hides the autoscaler's other fields)."""
+    if v is None:
+        return None
+    try:
+        return parse_cpu(v, field="metric target") / 1000.0
+    except InputError:
+        return None
+
+
+def _whole(v: Any) -> int | None:
+    return v if isinstance(v, int) and not isinstance(v, bool) and v >= 0 else None
+
+
+def _scaler_metrics(spec: Mapping[str, Any]) -> tuple[ScalerMetric, ...]:
+    metrics = spec.get("metrics")
+    if not metrics:
+        # the API's default (see _scales_on_cpu_utilization): 80 % average CPU utilisation
+        return (ScalerMetric("Resource", "cpu", "Utilization", utilization=80.0),)
+    out = []
+    for m in metrics if isinstance(metrics, list) else ():
+        if not isinstance(m, Mapping) or m.get("type") not in _METRIC_FIELDS:
+            continue
+        src = m.get(_METRIC_FIELDS[m["type"]]) or {}
+        if not isinstance(src, Mapping):
+            continue
+        target = src.get("target") or {}
+        if m["type"] in ("Resource", "ContainerResource"):
+            name = src.get("name")
+        else:  # Pods/Object/External name their metric in .metric.name
+            name = (src.get("metric") or {}).get("name") if isinstance(src.get("metric"), Mapping) else None
+        if not isinstance(name, str) or not isinstance(target, Mapping):
+            continue
+        util = target.get("averageUtilization")
+        out.append(ScalerMetric(
+            source=m["type"], name=name, target_type=str(target.get("type") or ""),
+            average_value=_number(target.get("averageValue")), value=_number(target.get("value")),
+            utilization=float(util) if _whole(util) is not None else None,
+            container=src.get("container") if isinstance(src.get("container"), str) else None,
+        ))
+    return tuple(out)
+
+
+def _scale_up_tolerance(spec: Mapping[str, Any]) -> float:
+    up = ((spec.get("behavior") or {}).get("scaleUp") or {}) if isinstance(spec.get("behavior"), Mapping) else {}
+    tol = _number(up.get("tolerance")) if isinstance(up, Mapping) else None
+    return tol if tol is not None else 0.1  # Kubernetes docs: the default tolerance 0.1
 
 
 def _hpa(obj: Mapping[str, Any]) -> HorizontalScaler:
     meta = obj.get("metadata") or {}
     spec = obj.get("spec") or {}
     target = spec.get("scaleTargetRef") or {}
+    status = obj.get("status") or {}
     return HorizontalScaler(
         namespace=meta.get("namespace") or "",
         name=meta.get("name") or "",
         target_kind=target.get("kind") or "",
         target_name=target.get("name") or "",
         scales_on_cpu_utilization=_scales_on_cpu_utilization(spec),
+        metrics=_scaler_metrics(spec),
+        min_replicas=_whole(spec.get("minReplicas")),
+        max_replicas=_whole(spec.get("maxReplicas")),
+        current_replicas=_whole(status.get("currentReplicas")) if isinstance(status, Mapping) else None,
+        tolerance=_scale_up_tolerance(spec),
     )
 
 
@@ -806,4 +893,14 @@ def _policy(obj: Mapping[str, Any]) -> PolicyObject:
         resource_version=str(meta.get("resourceVersion") or ""),
         spec=obj.get("spec") or {},
         status=obj.get("status") or {},
+        created=str(meta.get("creationTimestamp") or ""),
     )
+
+
+#: The JSON → value converters under public names, for the watch-fed cache
+#: (``controller/kube_cache.py``), which stores exactly what the reads above return.
+workload_from_json = _workload
+pod_from_json = _pod
+hpa_from_json = _hpa
+policy_from_json = _policy
+selector_text = _selector

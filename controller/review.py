@@ -67,6 +67,8 @@ EXTRA_KEYS = (
     "proposed_limit",
     "extrapolated",
     "cgroup",
+    "cores_per_100_rps",
+    "cores_per_100_rps_suggested",
 )
 FORMATS = ("table", "json", "markdown")
 
@@ -145,14 +147,17 @@ class ReviewRow:
     rate: float | None = None
     limit_m: int | None = None
     proposed_limit_m: int | None = None
-    mode: str = "dry-run"
-    method: str = "rollout"
+    mode: str = "DryRun"
+    method: str = "Rollout"
     extrapolated: bool = False
     note: str = ""
     #: what the kernel gets for the proposed request (controller/cgroup figures), if known
     cgroup: dict[str, Any] | None = field(default=None, compare=False)
     #: the workload's replicas (spec.replicas) as observed this pass; None: not observed
     replicas: int | None = None
+    #: reserved cores per 100 req/s of the workload's load, now and at the suggested size
+    cores_per_100: float | None = None
+    cores_per_100_suggested: float | None = None
 
     @property
     def why_text(self) -> str:
@@ -224,6 +229,9 @@ class ReviewRow:
             "proposed_limit": None if self.proposed_limit_m is None else fmt_m(self.proposed_limit_m),
             "extrapolated": bool(self.extrapolated),
             "cgroup": self.cgroup,
+            "cores_per_100_rps": None if self.cores_per_100 is None else round(self.cores_per_100, 4),
+            "cores_per_100_rps_suggested": (
+                None if self.cores_per_100_suggested is None else round(self.cores_per_100_suggested, 4)),
         }
 
 

@@ -55,7 +55,7 @@ def test_plan_and_run_document_their_exit_codes() -> None:
 def test_old_spellings_still_parse_as_hidden_aliases() -> None:
     p = build_parser()
     a = p.parse_args(["train", "--key", "a/b/c", "--window", "2h", "--samples", "x.csv", "--store", "s"])
-    assert (a.key_option, a.lookback) == ("a/b/c", "2h")
+    assert (a.key_option, a.window) == ("a/b/c", "2h")
     a = p.parse_args(["plan", "--sizing-api", "http://127.0.0.1:1", "--rate-interval", "5m"])
     assert a.rate_range == "5m"
     a = p.parse_args(["plan", "--sizing-api", "http://127.0.0.1:1"])

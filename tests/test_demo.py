@@ -36,7 +36,7 @@ def test_demo_prints_the_review_and_stops_everything(tmp_path, source) -> None:
     want = {(s.namespace, s.workload, c.name) for s in SCENARIO for c in s.containers}
     for rs in (rows, later):
         assert {(r["namespace"], r["workload"].split("/", 1)[1], r["container"]) for r in rs} == want
-        assert all(r["verdict"] in ("held", "proposed") for r in rs)  # dry-run passes: nothing "changed"
+        assert all(r["verdict"] in ("Held", "Proposed") for r in rs)  # DryRun passes: nothing "Changed"
     # past the settle period nothing is still Settling (the rates are the same)
     assert not any(r["why"] == "Settling" for r in later)
     assert f"rates from {source}" in err
@@ -54,7 +54,7 @@ def test_demo_prints_the_review_and_stops_everything(tmp_path, source) -> None:
         now_m = change_m = 0
         for r in rs:
             n = replicas[(r["namespace"], r["workload"].split("/", 1)[1])]
-            per_pod = r["proposed_m"] - r["current_m"] if r["verdict"] == "proposed" else 0
+            per_pod = r["proposed_m"] - r["current_m"] if r["verdict"] == "Proposed" else 0
             assert (r["replicas"], r["change_per_pod_m"], r["change_m"]) == (n, per_pod, n * per_pod), r
             now_m += n * r["current_m"]
             change_m += n * per_pod

@@ -240,7 +240,7 @@ def policy(ns: str, name: str = "web") -> dict:
     return {
         "apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
         "metadata": {"name": name, "namespace": ns},
-        "spec": {"workload": {"kind": "Deployment", "name": "web"}, "mode": "dry-run",
+        "spec": {"workload": {"kind": "Deployment", "name": "web"}, "mode": "DryRun",
                  "containers": [{"name": "app", "model": f"{ns}/web/app"}]},
     }
 
@@ -408,6 +408,23 @@ def test_revert_removes_a_request_that_was_not_set(target: Target, adapter: Kube
     adapter.revert(ns, "Deployment", "web")
     res = container(read_raw(raw, ns), "app")["resources"]
     assert "cpu" not in res.get("requests", {}) and "cpu" not in res.get("limits", {})
+    # issue 9: a revert leaves no empty map behind (memory stays where it was set)
+    assert res.get("requests") != {} and res.get("limits") != {}
+
+
+def test_revert_leaves_no_empty_maps_and_no_ratefit_annotations(target: Target, adapter: KubeAdapter, ns: str,
+                                                                raw: k8s.ApiClient) -> None:
+    dep = deployment(ns, limit=None)
+    container(dep, "app")["resources"] = {}
+    target.create(dep)
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    adapter.patch_cpu(wl, {"app": CpuChange(250)}, annotations={"ratefit.dev/last-change": "2026-12-01T00:00:00Z"})
+    adapter.revert(ns, "Deployment", "web")
+    after = read_raw(raw, ns)
+    res = container(after, "app").get("resources") or {}
+    assert "requests" not in res and "limits" not in res, res
+    annotations = after["metadata"].get("annotations") or {}
+    assert "ratefit.dev/last-change" not in annotations and "ratefit.dev/previous-requests" not in annotations
 
 
 def test_statefulset_read_and_patch(target: Target, adapter: KubeAdapter, ns: str) -> None:
@@ -524,10 +541,10 @@ def test_status_written_through_subresource_without_moving_generation(
     status = {"observedGeneration": before.generation, "conditions": [{
         "type": "Ready", "status": "True", "reason": "Sized", "message": "ok",
         "lastTransitionTime": "2026-01-01T00:00:00Z", "observedGeneration": before.generation}],
-        "proposals": [{"container": "app", "current": "500m", "proposed": "300m", "verdict": "proposed",
-                       "why": "NewTarget"}]}
+        "containers": [{"name": "app", "current": "500m", "newRequest": "300m", "verdict": "Proposed",
+                        "reason": "NewTarget"}]}
     after = adapter.write_policy_status(ns, "web", status, resource_version=before.resource_version)
-    assert after.status["proposals"][0]["proposed"] == "300m"
+    assert after.status["containers"][0]["newRequest"] == "300m"
     assert after.generation == before.generation  # status writes never bump generation
     assert after.spec == before.spec
     assert adapter.read_policy(ns, "web").status["conditions"][0]["reason"] == "Sized"
@@ -562,9 +579,9 @@ def test_watch_sees_added_and_modified(target: Target, adapter: KubeAdapter, ns:
         added = events.get(timeout=10)
         assert added.type == "ADDED" and added.policy.name == "web"
         k8s.CustomObjectsApi(raw).patch_namespaced_custom_object(
-            "ratefit.dev", "v1alpha1", ns, "sizingpolicies", "web", {"spec": {"mode": "apply"}})
+            "ratefit.dev", "v1alpha1", ns, "sizingpolicies", "web", {"spec": {"mode": "Apply"}})
         modified = events.get(timeout=10)
-        assert modified.type == "MODIFIED" and modified.policy.spec["mode"] == "apply"
+        assert modified.type == "MODIFIED" and modified.policy.spec["mode"] == "Apply"
     finally:
         stop.set()
         t.join(timeout=15)

@@ -22,12 +22,12 @@ from ratefit.models.scenario.services import SCENARIO
 def _rows() -> list[ReviewRow]:
     return [
         ReviewRow(namespace="parcels", policy="label-printer", kind="Deployment", workload="label-printer",
-                  container="app", verdict="proposed", why=(), current_m=1000, proposed_m=500, demand_m=390,
-                  upper_m=430, rate=95.25, limit_m=2000, proposed_limit_m=1000, method="rollout", replicas=3,
+                  container="app", verdict="Proposed", why=(), current_m=1000, proposed_m=500, demand_m=390,
+                  upper_m=430, rate=95.25, limit_m=2000, proposed_limit_m=1000, method="Rollout", replicas=3,
                   note="lower to 500m (target 500m)"),
         ReviewRow(namespace="dispatch", policy="tracking-api", kind="Deployment", workload="tracking-api",
-                  container="api", verdict="held", why=("HorizontalConflict",), current_m=2000, rate=300.0,
-                  method="in-place", replicas=4),
+                  container="api", verdict="Held", why=("HorizontalConflict",), current_m=2000, rate=300.0,
+                  method="InPlace", replicas=4),
     ]
 
 
@@ -84,20 +84,20 @@ def _scenario_rows() -> list[ReviewRow]:
     """A review of the demo scenario (Kestrel Post, INVENTED): its workloads, replicas and
     current requests as models/scenario/services.py defines them; the proposals fixed here."""
     proposed = {  # (workload, container) -> (verdict, proposed millicores)
-        ("label-printer", "app"): ("proposed", 500),
-        ("label-printer", "log-shipper"): ("held", 200),
-        ("route-planner", "planner"): ("proposed", 1000),
-        ("tracking-api", "api"): ("held", 2000),
-        ("tracking-api", "cache-warmer"): ("held", 250),
-        ("address-lookup", "lookup"): ("proposed", 750),
-        ("customs-gateway", "gateway"): ("proposed", 505),
+        ("label-printer", "app"): ("Proposed", 1500),
+        ("label-printer", "log-shipper"): ("Held", 200),
+        ("route-planner", "planner"): ("Proposed", 1000),
+        ("tracking-api", "api"): ("Held", 1100),
+        ("tracking-api", "cache-warmer"): ("Held", 60),
+        ("address-lookup", "lookup"): ("Proposed", 1500),
+        ("customs-gateway", "gateway"): ("Proposed", 505),
     }
     rows = []
     for s in SCENARIO:
         for c in s.containers:
             verdict, prop = proposed[(s.workload, c.name)]
             rows.append(ReviewRow(namespace=s.namespace, policy=s.workload, kind=s.kind, workload=s.workload,
-                                  container=c.name, verdict=verdict, why=("NewTarget",) if verdict == "proposed"
+                                  container=c.name, verdict=verdict, why=("NewTarget",) if verdict == "Proposed"
                                   else ("InsideDeadband",), current_m=c.request_m, proposed_m=prop,
                                   replicas=s.replicas))
     return rows
@@ -105,28 +105,28 @@ def _scenario_rows() -> list[ReviewRow]:
 
 def test_totals_match_a_hand_computation_on_the_demo_scenario() -> None:
     """Hand computation (replicas × per-pod change), from the scenario's table in
-    models/scenario/__init__.py: label-printer 3 × (1000+200)m, route-planner 2 × 500m,
-    tracking-api 4 × (2000+250)m, address-lookup 2 × 1500m, customs-gateway 3 × 250m."""
+    models/scenario/__init__.py: label-printer 3 × (6000+200)m, route-planner 2 × 500m,
+    tracking-api 2 × (1100+60)m, address-lookup 2 × 6000m, customs-gateway 3 × 250m."""
     t = totals(_scenario_rows())
     by = {w.workload: w for w in t.workloads}
-    # label-printer: 3 replicas, app 1000m -> 500m: per pod -500m, all pods -1500m
-    assert (by["label-printer"].now_m, by["label-printer"].after_m) == (3 * 1200, 3 * 700)
-    assert (by["label-printer"].change_per_pod_m, by["label-printer"].change_m) == (-500, -1500)
+    # label-printer: 3 replicas, app 6000m -> 1500m: per pod -4500m, all pods -13500m
+    assert (by["label-printer"].now_m, by["label-printer"].after_m) == (3 * 6200, 3 * 1700)
+    assert (by["label-printer"].change_per_pod_m, by["label-printer"].change_m) == (-4500, -13500)
     # route-planner: 2 replicas, 500m -> 1000m: +500m per pod, +1000m in all
     assert (by["route-planner"].change_per_pod_m, by["route-planner"].change_m) == (500, 1000)
-    # tracking-api: held, 4 × 2250m stays
-    assert (by["tracking-api"].now_m, by["tracking-api"].after_m) == (9000, 9000)
-    # address-lookup: 2 × (1500m -> 750m) = -1500m; customs-gateway: 3 × (250m -> 505m) = +765m
-    assert by["address-lookup"].change_m == -1500 and by["customs-gateway"].change_m == 765
-    # in total: now 3600 + 1000 + 9000 + 3000 + 750 = 17350m; change -1500 + 1000 + 0 - 1500 + 765 = -1235m
-    assert (t.now_m, t.change_m, t.after_m) == (17350, -1235, 16115)
+    # tracking-api: held, 2 × 1160m stays
+    assert (by["tracking-api"].now_m, by["tracking-api"].after_m) == (2320, 2320)
+    # address-lookup: 2 × (6000m -> 1500m) = -9000m; customs-gateway: 3 × (250m -> 505m) = +765m
+    assert by["address-lookup"].change_m == -9000 and by["customs-gateway"].change_m == 765
+    # in total: now 18600 + 1000 + 2320 + 12000 + 750 = 34670m;
+    # change -13500 + 1000 + 0 - 9000 + 765 = -20735m; after 13935m
+    assert (t.now_m, t.change_m, t.after_m) == (34670, -20735, 13935)
     table = to_table(_scenario_rows())
-    assert "17.350" in table and "16.115" in table and "-1.235" in table
-    assert "17.350 -> 16.115 cores (-1.235)" in table  # the summary line
+    assert "34.670 -> 13.935 cores (-20.735)" in table  # the summary line
     total_line = next(ln for ln in table.splitlines() if ln.startswith("total"))
-    assert total_line.split()[1:5] == ["14", "17.350", "16.115", "-1.235"]  # 3+2+4+2+3 replicas
+    assert total_line.split()[1:5] == ["12", "34.670", "13.935", "-20.735"]  # 3+2+2+2+3 replicas
     md = to_markdown(_scenario_rows())
-    assert "| parcels/Deployment/label-printer | 3 | 3.600 | 2.100 | -1.500 | -500m |" in md
+    assert "| parcels/Deployment/label-printer | 3 | 18.600 | 5.100 | -13.500 | -4500m |" in md
 
 
 def test_rows_without_replicas_are_left_out_of_the_totals_and_said_so() -> None:

@@ -4,6 +4,8 @@ Three sources: one CSV (``ratefit train KEY --samples FILE``), a directory with 
 per key (``--samples-dir DIR``, files named ``namespace__workload__container.csv``),
 or Prometheus range queries (``ratefit train KEY --prometheus URL --rate-query Q --cpu-query Q``).
 The work is ``ratefit.models.train``; this module parses flags and prints.
+``--from-policies`` (every model the SizingPolicies name) is handled by
+``controller/commands/train_from_policies``.
 """
 
 from __future__ import annotations
@@ -43,6 +45,7 @@ Examples:
       --rate-query 'sum by (pod) (rate(http_requests_total{pod=~"web-.*"}[2m]))' \\
       --cpu-query 'sum by (pod) (rate(container_cpu_usage_seconds_total{container="app"}[2m]))' \\
       --lookback 7d --step 30s
+  ratefit train --from-policies --prometheus http://127.0.0.1:9090 --store ./models
 """
 
 
@@ -61,9 +64,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     prom.add_argument("--cpu-query", metavar="PROMQL", help="per-pod CPU usage (cores), one series per pod")
     prom.add_argument("--throttle-query", metavar="PROMQL",
                       help="per-pod share of throttled CFS periods (0..1); optional")
-    prom.add_argument("--lookback", default="7d",
+    prom.add_argument("--lookback", dest="window", default="7d",
                       help="history to learn from: how far back from --end to read (duration, e.g. 2h, 7d; default 7d)")
-    prom.add_argument("--window", dest="lookback", help=argparse.SUPPRESS)  # the spelling before --lookback
+    prom.add_argument("--window", dest="window", help=argparse.SUPPRESS)  # the spelling before --lookback
     prom.add_argument("--step", default="30s", help="query resolution (Prometheus duration; default 30s)")
     prom.add_argument("--end", metavar="TIME", help="end of the lookback: unix seconds or RFC 3339 (default now)")
     prom.add_argument("--timeout", type=float, default=30.0, help="HTTP timeout per query in seconds (default 30)")
@@ -84,7 +87,15 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="drop this span after each pod's first sample (Prometheus duration or 0; default 5m)")
     p.add_argument("--report", metavar="DIR", help="also write a Markdown page and PNG plot per key here")
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
-    p.set_defaults(handler=_run)
+    cap = p.add_argument_group("per-pod capacity (optional; recorded in the model, one of)")
+    cap.add_argument("--capacity", type=float, metavar="R",
+                     help="the highest rate one pod carries within its latency SLO, req/s")
+    cap.add_argument("--profile", metavar="FILE.json",
+                     help="read the capacity from the saved output of ratefit profile --output json")
+    from ratefit.controller.commands.train_from_policies import add_from_policies_flags, from_policies_or
+
+    add_from_policies_flags(p)  # ratefit train --from-policies
+    p.set_defaults(handler=from_policies_or(_run))
 
 
 def _progress(args: argparse.Namespace):
@@ -157,9 +168,10 @@ def _run(args: argparse.Namespace) -> int:
             results.append(train_key_detailed(load_csv(path), key=key, options=options, progress=progress))
     else:
         results.append(_from_prometheus(args, options, progress))
+    capacity = _capacity(args)
     for res in results:
-        path = store.save(res.artifact)
-        a = res.artifact
+        a = res.artifact if capacity is None else res.artifact.with_capacity(capacity)
+        path = store.save(a)
         print(f"{a.key}: {res.summary()}, {res.report.summary()} -> {path}")
         if args.report:
             from ratefit.models.report import write_train_report
@@ -169,6 +181,25 @@ def _run(args: argparse.Namespace) -> int:
     return 0
 
 
+def _capacity(args: argparse.Namespace) -> float | None:
+    """--capacity R or --profile FILE.json (the knee ratefit profile found), or None."""
+    import math
+
+    if args.capacity is not None and args.profile:
+        raise InputError("give --capacity R or --profile FILE.json, not both")
+    if (args.capacity is not None or args.profile) and args.samples_dir:
+        raise InputError("--capacity/--profile describe one key: use them with --samples or --prometheus and --key")
+    if args.profile:
+        from ratefit.controller.profile.output import read_capacity
+
+        return read_capacity(args.profile)
+    if args.capacity is None:
+        return None
+    if not math.isfinite(args.capacity) or not 0 < args.capacity <= 1e9:
+        raise InputError(f"--capacity {args.capacity:g}: must be a positive number of req/s (at most 1e9)")
+    return float(args.capacity)
+
+
 def _from_prometheus(args: argparse.Namespace, options, progress):
     from ratefit.models.durations import parse_duration
     from ratefit.models.prometheus import PrometheusClient
@@ -176,7 +207,7 @@ def _from_prometheus(args: argparse.Namespace, options, progress):
 
     if not (args.rate_query and args.cpu_query):
         raise InputError("--rate-query and --cpu-query are required with --prometheus")
-    window = parse_duration(args.lookback, field="--lookback")
+    window = parse_duration(args.window, field="--lookback")
     step = parse_duration(args.step, field="--step")
     end = _end_time(args.end)
     with PrometheusClient(args.prometheus, timeout=args.timeout) as client:
