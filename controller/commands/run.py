@@ -235,6 +235,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 def _run(args: argparse.Namespace) -> int:
     import random
     import signal
+    import threading
     import time
 
     from ratefit.controller.limits import Budget, ExponentialBackoff, RolloutSlots, TokenBucket
@@ -293,6 +294,7 @@ def _run(args: argparse.Namespace) -> int:
         elector = OnceElector(elector, first_miss)
     last: list[Any] = []
     started = threading.Event()
+    stop_watch = threading.Event()  # set when the command ends
 
     def run_pass(control: Any) -> Any:
         started.set()
@@ -355,6 +357,7 @@ def _run(args: argparse.Namespace) -> int:
             code = _once_exit(loop, last, conns)
         return code
     finally:
+        stop_watch.set()
         if cache is not None:
             cache.stop()
         if health is not None:
