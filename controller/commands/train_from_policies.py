@@ -130,7 +130,7 @@ def build_source(args: argparse.Namespace):
     if args.samples:
         raise InputError("--samples FILE does not go with --from-policies (the policies name the keys)")
     if getattr(args, "model", None) or getattr(args, "key_option", None):
-        raise InputError("a model key does not go with --from-policies (the policies name the keys)")
+        raise InputError("a model key (positional or --key) does not go with --from-policies (the policies name the keys)")
     if args.samples_dir:
         if not os.path.isdir(args.samples_dir):
             raise InputError(f"--samples-dir {args.samples_dir}: not a directory")
