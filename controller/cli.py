@@ -40,8 +40,8 @@ from Prometheus history or a CSV, serves the curves over a local HTTP sizing
 API, and runs a reconcile loop that proposes (dry-run) or applies bounded,
 rate-limited CPU request changes.
 
-Start with `ratefit demo`, then `ratefit plan` against your own cluster:
-review every proposal before you let `ratefit run` apply anything.
+Start with ratefit demo, then ratefit plan against your own cluster:
+review every proposal before you let ratefit run apply anything.
 """
 
 
@@ -75,10 +75,18 @@ def main(argv: Sequence[str] | None = None) -> int:
         return int(args.handler(args) or 0)
     except RatefitError as exc:
         print(f"ratefit {args.command}: error: {exc}", file=sys.stderr)
-        return 2
+        return _exit_code(exc)
     except KeyboardInterrupt:
         print(f"ratefit {args.command}: interrupted", file=sys.stderr)
         return 130
+
+
+def _exit_code(exc: RatefitError) -> int:
+    """2 for bad input; 3 when the Kubernetes API server could not be reached (the codes
+    of ``controller/exit_status``)."""
+    from ratefit.controller.errors import KubeUnavailable
+
+    return 3 if isinstance(exc, KubeUnavailable) else 2
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -449,7 +449,7 @@ def test_serve_cli_refuses_a_missing_store(tmp_path: Path) -> None:
         [str(RATEFIT), "serve", "--store", str(tmp_path / "nope")], capture_output=True, text=True, timeout=60
     )
     assert out.returncode == 2
-    assert "is not a directory" in out.stderr and "--store" in out.stderr
+    assert "no such directory" in out.stderr and "--store" in out.stderr  # issue 10: not "train it"
 
 
 def test_serve_stops_gracefully_on_sigterm_and_never_logs_the_token(store_dir: Path, tmp_path: Path) -> None:

@@ -45,6 +45,24 @@ def test_demo_prints_the_review_and_stops_everything(tmp_path, source) -> None:
     md = (outdir / "review.md").read_text()
     assert "INVENTED" in md and md.count("\n| ") >= len(want) + 1
     assert len(list((outdir / "reports").glob("*.md"))) == len(want)
+    # the totals a person pays for, by hand on the demo scenario: replicas (the scenario's
+    # spec.replicas) × per-pod change, summed over the workloads — for both passes
+    replicas = {(s.namespace, s.workload): s.replicas for s in SCENARIO}
+    sections = md.split("## Pass 2")
+    assert len(sections) == 2
+    for rs, section in ((rows, sections[0]), (later, sections[1])):
+        now_m = change_m = 0
+        for r in rs:
+            n = replicas[(r["namespace"], r["workload"].split("/", 1)[1])]
+            per_pod = r["proposed_m"] - r["current_m"] if r["verdict"] == "Proposed" else 0
+            assert (r["replicas"], r["change_per_pod_m"], r["change_m"]) == (n, per_pod, n * per_pod), r
+            now_m += n * r["current_m"]
+            change_m += n * per_pod
+        total = next(ln for ln in section.splitlines() if ln.startswith("| total |"))
+        cells = [c.strip() for c in total.strip("|").split("|")]
+        assert cells[1] == str(sum(replicas.values()))
+        assert cells[2:5] == [f"{now_m / 1000:.3f}", f"{(now_m + change_m) / 1000:.3f}", f"{change_m / 1000:+.3f}"]
+    assert any(r["change_m"] for r in later)  # past the settle period the decreases are proposed
     # everything it started is stopped: the sandbox and the sizing API no longer answer
     server = yaml.safe_load((outdir / "kubeconfig").read_text())["clusters"][0]["cluster"]["server"]
     with pytest.raises(httpx.HTTPError):

@@ -140,7 +140,7 @@ def expected_rows(prom_url: str, api_url: str, at: float) -> dict[tuple[str, str
                 verdict, why, proposed = "Proposed", "NewTarget", target
             out[(svc.namespace, svc.workload, c.name)] = {
                 "rate": rate, "upper_m": ans["demand_bound_m"], "proposed_m": proposed, "verdict": verdict, "why": why,
-                "limit_m": c.limit_m, "request_m": c.request_m}
+                "limit_m": c.limit_m, "request_m": c.request_m, "replicas": svc.replicas}
     return out
 
 
@@ -159,13 +159,28 @@ def test_plan_prints_the_expected_proposals_and_changes_nothing(parts) -> None:
     for k, exp in want.items():
         row = got[k]
         assert row["rate"] == pytest.approx(exp["rate"], rel=1e-3), k
-        assert row["upper_m"] == exp["upper_m"], k
+        assert row["demand_bound_m"] == exp["upper_m"], k
         assert (row["verdict"], row["why"]) == (exp["verdict"], exp["why"]), k
         assert row["proposed_m"] == exp["proposed_m"], k
         assert parse_cpu(row["current"]) == exp["request_m"]
     # the invented scenario has both directions: over-provisioned ones come down, throttled ones go up
     assert any(r["verdict"] == "Proposed" and r["proposed_m"] < r["current_m"] for r in rows)
     assert any(r["why"] == "HorizontalConflict" for r in rows)
+    # what a person pays for, by hand: replicas (the scenario's spec.replicas) × the per-pod change
+    total_change = 0
+    for k, exp in want.items():
+        per_pod = exp["proposed_m"] - exp["request_m"] if exp["verdict"] == "Proposed" else 0
+        assert got[k]["replicas"] == exp["replicas"], k
+        assert (got[k]["change_per_pod_m"], got[k]["change_m"]) == (per_pod, exp["replicas"] * per_pod), k
+        total_change += exp["replicas"] * per_pod
+    assert total_change != 0
+    from ratefit.controller.review import ReviewRow, totals
+
+    t = totals([ReviewRow(namespace=r["namespace"], policy=r["policy"], kind=r["kind"],
+                          workload=r["workload"].split("/", 1)[1], container=r["container"], verdict=r["verdict"],
+                          current_m=r["current_m"], proposed_m=r["proposed_m"], replicas=r["replicas"]) for r in rows])
+    assert t.change_m == total_change
+    assert t.now_m == sum(e["replicas"] * e["request_m"] for e in want.values())
 
 
 def test_apply_patches_exactly_the_changed_containers_and_a_second_pass_changes_nothing(parts) -> None:

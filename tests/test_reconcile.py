@@ -223,7 +223,7 @@ def test_in_place_resizes_pods_keeps_the_template_and_reapplies_to_new_pods(tmp_
         assert r1.patched == ("shop/Deployment/web",)
         assert set(pod_cpu().values()) == {(315, 630)}  # every running pod resized (keep-ratio limit)
         assert w.cpu("shop", "web", "app") == ("100m", "200m")  # the template is left as it was
-        assert "new pods start at the template value" in r1.rows[0].as_dict()["note"]
+        assert "new pods start at the template value" in r1.rows[0].as_dict()["message"]
         r2 = rec.run_pass()
         assert r2.patched == () and r2.rows[0].why == ("InsideDeadband",)  # decided from what the pods run
         # a new pod starts at the template value (no scheduler in the sandbox: create it by hand)

@@ -84,7 +84,7 @@ def test_models_list(trained, capsys) -> None:
     d = json.loads(out)
     assert [m["model"] for m in d["models"]] == [KEY] and d["refused"] == {}
     rc, out, _ = _run(capsys, "models", "list", "--store", str(store))
-    assert KEY in out and "CHOSEN" in out
+    assert KEY in out and "ESTIMATOR" in out
 
 
 def test_predict_equals_curve_lookup_rounded_up(trained, capsys) -> None:
@@ -108,10 +108,13 @@ def test_errors_exit_2_with_message(tmp_path: Path, capsys) -> None:
     bad.write_text("rate,cpu\n1,0.1\nfast,0.2\n")
     rc, _, err = _run(capsys, "train", "--samples", str(bad), "--key", KEY, "--store", str(tmp_path / "s"))
     assert rc == 2 and f"{bad}:3: rate: 'fast' is not a number" in err
+    rc, _, err = _run(capsys, "predict", "--store", str(tmp_path / "s"), KEY, "--rate", "1")
+    assert rc == 2 and "no such directory" in err  # the store is missing, not the model
+    (tmp_path / "s").mkdir()
     rc, _, err = _run(capsys, "predict", "--store", str(tmp_path / "s"), "--key", KEY, "--rate", "1")
     assert rc == 2 and "no model for" in err
     rc, _, err = _run(capsys, "train", "--samples", str(bad), "--store", str(tmp_path / "s"))
-    assert rc == 2 and "--key" in err
+    assert rc == 2 and "model key NAMESPACE/WORKLOAD/CONTAINER is required" in err
     rc, _, err = _run(capsys, "train", "--samples", str(_csv(tmp_path / "ok.csv", 100)), "--key", "Bad/Key",
                       "--store", str(tmp_path / "s"))
     assert rc == 2 and "namespace/workload/container" in err
@@ -142,7 +145,7 @@ def test_train_from_real_prometheus(scenario_prometheus, tmp_path: Path, capsys)
     rc, out, err = _run(
         capsys, "train", "--prometheus", h.url, "--rate-query", q.rate, "--cpu-query", q.cpu,
         "--throttle-query", q.throttle, "--key", key, "--store", str(store),
-        "--window", format_duration(h.end - h.start), "--step", "30s", "--end", str(h.end),
+        "--lookback", format_duration(h.end - h.start), "--step", "30s", "--end", str(h.end),
     )
     assert rc == 0, err
     art = ModelStore(store).load(key)

@@ -8,7 +8,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from ratefit.controller.commands.run import add_connection_flags
+from ratefit.controller.commands.run import add_connection_flags, kube_from_args
 from ratefit.models.errors import InputError
 
 HELP = """\
@@ -43,14 +43,15 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--store", metavar="DIR", help="read the model store directly instead of asking --sizing-api")
     p.add_argument("--lease-namespace", default="ratefit-system",
                    help="namespace of the leader Lease (default %(default)s)")
-    p.add_argument("--output", "-o", choices=("text", "json"), default="text", help="format (default %(default)s)")
+    p.add_argument("--output", "-o", choices=("table", "json", "markdown"), default="table",
+                   type=lambda v: "table" if v == "text" else v,  # "text": the spelling before "table"
+                   help="format (default %(default)s)")
     p.set_defaults(handler=_run)
 
 
 def build_parts(args: argparse.Namespace):
     """The parts the checks talk to; a part that cannot be built is recorded, not raised."""
     from ratefit.controller.check import CheckParts
-    from ratefit.controller.kube import KubeAdapter
     from ratefit.controller.kube_retry import RetryPolicy
     from ratefit.controller.metrics_source import PrometheusRateSource
     from ratefit.controller.promql_guard import QueryGuard
@@ -66,12 +67,11 @@ def build_parts(args: argparse.Namespace):
         raise InputError("give --sizing-api URL or --store DIR, not both")
     if args.max_rate_series < 0:
         raise InputError("--max-rate-series must be 0 (no cap) or positive")
-    template = template_for(args.rate_preset, metric=args.rate_metric, interval=args.rate_interval)
+    template = template_for(args.rate_preset, metric=args.rate_metric, interval=args.rate_range)
     parts = CheckParts(namespaces=tuple(args.namespace), lease_namespace=args.lease_namespace, at=args.rate_at)
     try:
         # one quick try per call: a doctor reports, it does not wait out an outage
-        parts.kube = KubeAdapter.from_environment(args.kubeconfig, context=args.context,
-                                                  retry=RetryPolicy(max_attempts=1), request_timeout=args.timeout)
+        parts.kube = kube_from_args(args, retry=RetryPolicy(max_attempts=1), request_timeout=args.timeout)
     except RatefitError as exc:
         parts.errors["kube"] = str(exc)
     if args.prometheus:
@@ -105,7 +105,7 @@ def _run(args: argparse.Namespace) -> int:
 
     parts = build_parts(args)
     try:
-        progress = None if args.output == "json" else (lambda line: sys.stdout.write(render_text(line)))
+        progress = None if args.output != "table" else (lambda line: sys.stdout.write(render_text(line)))
         lines = run_checks(parts, progress=progress)
     finally:
         for obj in (parts.sizing, parts.prometheus, parts.kube):
@@ -117,7 +117,21 @@ def _run(args: argparse.Namespace) -> int:
     if args.output == "json":
         sys.stdout.write(render_json(lines))
     else:
+        if args.output == "markdown":
+            sys.stdout.write(render_markdown(lines))
         fails = sum(1 for x in lines if x.status.value == "FAIL")
         warns = sum(1 for x in lines if x.status.value == "WARN")
         print(f"ratefit check: {len(lines)} checks, {fails} FAIL, {warns} WARN", file=sys.stderr)
     return exit_code(lines)
+
+
+def render_markdown(lines) -> str:
+    """The checklist as a Markdown table (pipes escaped)."""
+
+    def cell(text: str) -> str:
+        return " ".join(str(text).split()).replace("|", "\\|") or "-"
+
+    out = ["| check | status | subject | detail | fix |", "|---|---|---|---|---|"]
+    out += [f"| {cell(x.check)} | {cell(x.status.value)} | {cell(x.subject)} | {cell(x.detail)} | {cell(x.fix)} |"
+            for x in lines]
+    return "\n".join(out) + "\n"

@@ -10,9 +10,9 @@ from pathlib import Path
 HELP = """\
 Run ratefit end to end on this machine with an INVENTED demo scenario (Kestrel Post,
 a fictional parcel company): write its 7-day request/CPU history, backfill it into
-the real Prometheus (if `prometheus` and `promtool` are installed; else replay the
+the real Prometheus (if prometheus and promtool are installed; else replay the
 history file — the output says which), train a demand model for every container,
-start the sizing API (`ratefit serve`) and the sandbox API server (a local stand-in
+start the sizing API (ratefit serve) and the sandbox API server (a local stand-in
 for Kubernetes) loaded with the scenario's workloads, the SizingPolicy CRD and the
 example policies, run one reconcile pass in dry-run, then a read-only pass at a
 simulated time past the longest settle period (as if the rates stayed the same),

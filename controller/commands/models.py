@@ -47,7 +47,9 @@ def show_dict(art: Any) -> dict[str, Any]:
 def _list(args: argparse.Namespace) -> int:
     from ratefit.models.store import ModelStore
 
-    loaded = ModelStore(args.store).load_all()
+    from ratefit.controller.commands.store_dir import existing_store
+
+    loaded = ModelStore(existing_store(args.store)).load_all()
     for rel, err in loaded.errors.items():
         print(f"ratefit models list: refused {rel}: {err}", file=sys.stderr)
     arts = [loaded.artifacts[k] for k in sorted(loaded.artifacts)]
@@ -66,7 +68,7 @@ def _list(args: argparse.Namespace) -> int:
         ]
         print(json.dumps({"models": rows, "refused": loaded.errors}, indent=2))
         return 0
-    head = ("MODEL", "CHOSEN", "RATE RANGE (req/s)", "SAMPLES", "TRAINED", "VERSION")
+    head = ("MODEL", "ESTIMATOR", "RATE RANGE (req/s)", "SAMPLES", "TRAINED", "VERSION")
     table = [
         (a.key, a.chosen, f"{a.rate_range[0]:.4g}-{a.rate_range[1]:.4g}", str(a.samples), a.trained_at, a.version)
         for a in arts
@@ -79,8 +81,10 @@ def _show(args: argparse.Namespace) -> int:
     from ratefit.models.keys import parse_key
     from ratefit.models.store import ModelStore
 
+    from ratefit.controller.commands.store_dir import existing_store
+
     key = str(parse_key(args.key, field="model"))
-    art = ModelStore(args.store).load(key)
+    art = ModelStore(existing_store(args.store)).load(key)
     d = show_dict(art)
     if args.output == "json":
         print(json.dumps(d, indent=2))
@@ -89,10 +93,10 @@ def _show(args: argparse.Namespace) -> int:
         _show_markdown(d)
         return 0
     print(f"model        {d['model']}")
-    print(f"chosen       {d['chosen']}")
+    print(f"estimator    {d['chosen']} (chosen by cross-validation)")
     print(f"rate range   {d['rate_range'][0]:.4g} - {d['rate_range'][1]:.4g} req/s per pod")
     print(f"demand       {d['demand_at_range'][0]:.4g} - {d['demand_at_range'][1]:.4g} cores over that range")
-    print(f"upper band   +{d['band']:.4g} cores (coverage {d['coverage']:g})")
+    print(f"band         +{d['band']:.4g} cores above the demand (coverage {d['coverage']:g})")
     dropped = ", ".join(f"{n} {r}" for r, n in d["dropped"].items() if n) or "none"
     print(f"samples      {d['samples']} used of {d['samples_total']} (dropped: {dropped})")
     w = d["window"]
@@ -134,7 +138,7 @@ def _show_markdown(d: dict[str, Any]) -> None:
             ("chosen estimator", d["chosen"]),
             ("rate range (req/s per pod)", f"{d['rate_range'][0]:.4g} - {d['rate_range'][1]:.4g}"),
             ("demand over that range (cores)", f"{d['demand_at_range'][0]:.4g} - {d['demand_at_range'][1]:.4g}"),
-            ("upper band (cores)", f"+{d['band']:.4g} (coverage {d['coverage']:g})"),
+            ("band above the demand (cores)", f"+{d['band']:.4g} (coverage {d['coverage']:g})"),
             ("samples", f"{d['samples']} used of {d['samples_total']}"),
             ("data", str(d["window"].get("source", ""))),
             ("trained", f"{d['trained_at']} (folds {d['folds']}, seed {d['seed']})"),

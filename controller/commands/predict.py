@@ -55,7 +55,9 @@ def _run(args: argparse.Namespace) -> int:
         raise InputError("predict: give the model key NAMESPACE/WORKLOAD/CONTAINER (e.g. shop/checkout/app)")
     if args.model and args.key_option and args.model != args.key_option:
         raise InputError("predict: give the model key once (positional), not also with --key")
-    art = ModelStore(args.store).load(str(parse_key(given, field="model")))
+    from ratefit.controller.commands.store_dir import existing_store
+
+    art = ModelStore(existing_store(args.store)).load(str(parse_key(given, field="model")))
     d = predict_dict(art, args.rate)
     if args.output == "json":
         print(json.dumps(d))

@@ -64,7 +64,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     h.add_argument("--to", dest="end", metavar="TIME", help="end of the window (default with --history: its last sample)")
     h.add_argument("--rate-metric", default=os.environ.get("RATEFIT_RATE_METRIC", "http_requests_total"),
                    help="request counter of the rate template (labels namespace, workload, pod); default %(default)s")
-    h.add_argument("--rate-interval", default="2m", help="rate() interval, as `ratefit plan` (default %(default)s)")
+    h.add_argument("--rate-range", dest="rate_interval", default="2m", metavar="DURATION",
+                   help="the range of rate(), as ratefit plan (default %(default)s)")
+    h.add_argument("--rate-interval", dest="rate_interval", help=argparse.SUPPRESS)  # the spelling before --rate-range
     h.add_argument("--rate-step", default="30s", help="subquery step of the percentile over rateWindow (default %(default)s)")
     w = p.add_argument_group("policies and workloads")
     w.add_argument("-f", "--filename", dest="files", action="append", nargs="+", default=[], metavar="PATH",
@@ -74,7 +76,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     w.add_argument("--namespace", "-n", action="append", default=[], metavar="NS", help="only these namespaces")
     m = p.add_argument_group("models")
     m.add_argument("--store", metavar="DIR", help="model store folder (read directly)")
-    m.add_argument("--sizing-api", metavar="URL", help="sizing API base URL (`ratefit serve`)")
+    m.add_argument("--sizing-api", metavar="URL", help="sizing API base URL (ratefit serve)")
     m.add_argument("--sizing-token-file", metavar="FILE", help="file holding the sizing API's bearer token")
     s = p.add_argument_group("simulation")
     s.add_argument("--step", default="5m", help="simulated time between passes (default %(default)s)")
@@ -84,9 +86,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     s.add_argument("--rollout-seconds", type=float, default=120.0,
                    help="seconds from a template patch until the pods run the new request (default %(default)s)")
     s.add_argument("--budget-per-minute", type=float, default=2.0, metavar="N",
-                   help="cluster-wide changes per minute, as `ratefit run` (0: unlimited; default %(default)s)")
+                   help="cluster-wide changes per minute, as ratefit run (0: unlimited; default %(default)s)")
     s.add_argument("--max-rollouts", type=int, default=1, metavar="N",
-                   help="workloads rolling out at once, as `ratefit run` (0: unlimited; default %(default)s)")
+                   help="workloads rolling out at once, as ratefit run (0: unlimited; default %(default)s)")
     s.add_argument("--timeout", type=float, default=30.0, help="seconds per Prometheus / sizing API call (default %(default)s)")
     o = p.add_argument_group("output")
     o.add_argument("--output", "-o", choices=("table", "json", "markdown"), default="table", help="format (default %(default)s)")
@@ -125,7 +127,7 @@ def _run(args: argparse.Namespace) -> int:
     step = parse_duration(args.step, field="--step")
     options = ReplayOptions(
         step_s=step, node_cpu=args.node_cpu, as_written=args.as_written, rollout_s=args.rollout_seconds,
-        rate_interval_s=parse_duration(args.rate_interval, field="--rate-interval"),
+        rate_interval_s=parse_duration(args.rate_interval, field="--rate-range"),
         rate_step_s=parse_duration(args.rate_step, field="--rate-step"),
         budget=BudgetConfig(per_minute=args.budget_per_minute, max_rollouts=args.max_rollouts),
     )

@@ -11,13 +11,22 @@ from __future__ import annotations
 import argparse
 
 
+HELP = """\
+Write the Markdown page and PNG plot of a stored model into --out
+(NAMESPACE__WORKLOAD__CONTAINER.md and .png). From the model alone the plot shows the chosen curve and its band;
+with --samples FILE.csv it also draws the (cleaned) samples, every candidate
+estimator's curve refitted on them, and the fixed allocation baseline.
+ratefit train --report DIR writes the full report straight after training.
+"""
+
+
 def register(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("report", help="write a Markdown page + PNG plot for a stored key",
-                       description=__doc__.split("\n\n", 1)[1], formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("key", metavar="NS/WORKLOAD/CONTAINER")
+    p = sub.add_parser("report", help="write a Markdown page + PNG plot for a stored model",
+                       description=HELP, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("key", metavar="NAMESPACE/WORKLOAD/CONTAINER", help="the model key (as in the SizingPolicy's model field)")
     p.add_argument("--store", required=True, metavar="DIR", help="model store directory")
-    p.add_argument("--out", required=True, metavar="DIR", help="where to write KEY.md and KEY.png")
-    p.add_argument("--samples", metavar="FILE.csv", help="the samples the key was trained on (adds the scatter)")
+    p.add_argument("--out", required=True, metavar="DIR", help="where to write NAMESPACE__WORKLOAD__CONTAINER.md and .png")
+    p.add_argument("--samples", metavar="FILE.csv", help="the samples the model was trained on (adds the scatter)")
     p.set_defaults(handler=_run)
 
 
@@ -27,7 +36,9 @@ def _run(args: argparse.Namespace) -> int:
     from ratefit.models.samples import clean, load_csv
     from ratefit.models.store import ModelStore
 
-    art = ModelStore(args.store).load(str(parse_key(args.key)))
+    from ratefit.controller.commands.store_dir import existing_store
+
+    art = ModelStore(existing_store(args.store)).load(str(parse_key(args.key, field="model")))
     samples = ests = None
     if args.samples:
         samples, _ = clean(load_csv(args.samples))

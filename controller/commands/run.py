@@ -14,6 +14,7 @@ import sys
 from dataclasses import dataclass
 from typing import Any
 
+from ratefit.controller.exit_status import EXIT_CODES_HELP
 from ratefit.models.errors import InputError
 
 HELP = """\
@@ -21,7 +22,7 @@ Run the reconcile loop against a cluster: every --interval (and at once when a
 SizingPolicy changes) read every container's per-pod request rate from Prometheus
 (one grouped query), ask the sizing API what that rate costs (one batch call),
 decide within each policy's bounds, and act: status, Event, log line and metric;
-in apply mode (a policy's `mode: Apply`, and no --dry-run) a server-side dry run,
+in apply mode (a policy's mode Apply, and no --dry-run) a server-side dry run,
 then one strategic-merge patch per workload (or in-place pod resizes), within the
 cluster-wide budget of --budget-per-minute changes and --max-rollouts rollouts.
 
@@ -35,8 +36,16 @@ stand by and keep answering /healthz and /readyz on --metrics-port.
 SIGTERM/SIGINT: finish the workload being patched, abandon the rest of the pass,
 release the Lease, exit 0.
 
-Start with --dry-run (or `ratefit plan`) and review every proposal first.
+Start with --dry-run (or ratefit plan) and review every proposal first.
 The environment variable RATEFIT_DRY_RUN=true|false sets the default of --dry-run.
+
+--once runs one pass and exits: from a laptop add --no-leader-election. With a
+Lease, --once checks the Lease namespace as soon as the Lease cannot be had and
+stops with one line when it does not exist; it gives up with exit 7 when another
+replica keeps the Lease.
+The exit status of --once is that of ratefit plan:
+
+""" + EXIT_CODES_HELP + """Without --once the loop runs until SIGTERM/SIGINT and exits 0.
 """
 
 
@@ -87,7 +96,7 @@ def add_connection_flags(p: argparse.ArgumentParser, *, sizing_required: bool = 
     g.add_argument("--prometheus", metavar="URL", help="Prometheus base URL, e.g. http://127.0.0.1:9090")
     g.add_argument("--replay", metavar="FILE",
                    help="instead of --prometheus: compute the rates offline from an OpenMetrics history file")
-    g.add_argument("--sizing-api", metavar="URL", required=sizing_required, help="sizing API base URL (`ratefit serve`), e.g. http://127.0.0.1:8470")
+    g.add_argument("--sizing-api", metavar="URL", required=sizing_required, help="sizing API base URL (ratefit serve), e.g. http://127.0.0.1:8470")
     g.add_argument("--sizing-token-file", metavar="FILE", help="file holding the sizing API's bearer token")
     g.add_argument("--namespace", "-n", action="append", default=[], metavar="NS",
                    help="only SizingPolicies in this namespace (repeat for several; default: all namespaces)")
@@ -105,8 +114,11 @@ def add_connection_flags(p: argparse.ArgumentParser, *, sizing_required: bool = 
     r.add_argument("--max-rate-series", type=int, default=500, metavar="N",
                    help="hold a container (TooManySeries) whose rate query answers more than N series "
                         "(0: no cap; default %(default)s)")
-    r.add_argument("--rate-interval", default="2m", help="rate() interval of the default template (default %(default)s)")
-    r.add_argument("--rate-step", default="30s", help="subquery step for the percentile over rateWindow (default %(default)s)")
+    r.add_argument("--rate-range", default="2m", metavar="DURATION",
+                   help="the range of rate() in the default query, e.g. 1m, 2m (default %(default)s)")
+    r.add_argument("--rate-interval", dest="rate_range", help=argparse.SUPPRESS)  # the spelling before --rate-range
+    r.add_argument("--rate-step", default="30s", metavar="DURATION",
+                   help="subquery step for the percentile over the policy's rateWindow (default %(default)s)")
     r.add_argument("--rate-at", type=float, metavar="UNIX_SECONDS",
                    help="evaluate the rates at this time instead of now (replays, reproducible reviews)")
     r.add_argument("--timeout", type=float, default=10.0, help="seconds for each Prometheus and sizing API call (default %(default)s)")
@@ -136,7 +148,6 @@ class Connections:
 
 def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connections:
     """Build the Kubernetes adapter, the rate source and the sizing client from the flags."""
-    from ratefit.controller.kube import KubeAdapter
     from ratefit.controller.metrics_source import PrometheusRateSource, ReplayRateSource
     from ratefit.controller.promql_guard import QueryGuard
     from ratefit.controller.rate_presets import template_for
@@ -145,7 +156,7 @@ def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connect
 
     if bool(args.prometheus) == bool(args.replay):
         raise InputError("give exactly one of --prometheus URL or --replay FILE")
-    template = template_for(args.rate_preset, metric=args.rate_metric, interval=args.rate_interval)
+    template = template_for(args.rate_preset, metric=args.rate_metric, interval=args.rate_range)
     if args.max_rate_series < 0:
         raise InputError("--max-rate-series must be 0 (no cap) or positive")
     guard = QueryGuard(enforce_namespace=not args.allow_raw_rate_queries, max_series=args.max_rate_series)
@@ -165,10 +176,30 @@ def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connect
                 token = fh.read().strip()
         except OSError as exc:
             raise InputError(f"--sizing-token-file {args.sizing_token_file}: {exc}") from exc
-    sizing = SizingClient(args.sizing_api, timeout=args.timeout, token=token)
     kwargs = {"identity": identity} if identity else {}
-    kube = KubeAdapter.from_environment(args.kubeconfig, context=args.context, **kwargs)
+    kube = kube_from_args(args, **kwargs)
+    sizing = SizingClient(args.sizing_api, timeout=args.timeout, token=token)
     return Connections(kube=kube, rates=rates, sizing=sizing, rate_source=source)
+
+
+def kube_from_args(args: argparse.Namespace, **kwargs: Any) -> Any:
+    """The Kubernetes adapter from --kubeconfig/--context; a kubeconfig that cannot be
+    read or parsed is one line naming the file (never a YAML traceback)."""
+    import yaml
+
+    from ratefit.controller.kube import KubeAdapter
+
+    if args.kubeconfig and not os.path.exists(args.kubeconfig):
+        raise InputError(f"--kubeconfig {args.kubeconfig}: no such file")
+    try:
+        return KubeAdapter.from_environment(args.kubeconfig, context=args.context, **kwargs)
+    except (yaml.YAMLError, ValueError, KeyError, AttributeError, TypeError) as exc:
+        if isinstance(exc, InputError):
+            raise
+        where = args.kubeconfig or os.environ.get("KUBECONFIG") or "~/.kube/config"
+        first = " ".join(str(exc).split())[:200]
+        raise InputError(f"kubeconfig {where} is not a valid kubeconfig ({type(exc).__name__}: {first}); "
+                         "fix the file or pass --kubeconfig FILE") from exc
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -178,7 +209,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--dry-run", action=argparse.BooleanOptionalAction, default=_truthy(os.environ.get("RATEFIT_DRY_RUN")),
                    help="force every policy to dry-run: decide, write status and Events, never patch "
                         "(default from RATEFIT_DRY_RUN, else off)")
-    p.add_argument("--interval", default="60s", help="time between passes, e.g. 60s, 5m (default %(default)s)")
+    p.add_argument("--interval", default="60s", metavar="DURATION", help="time between passes, e.g. 60s, 5m (default %(default)s)")
     p.add_argument("--budget-per-minute", type=float, default=2.0, metavar="N",
                    help="cluster-wide changes per minute (0: unlimited; default %(default)s)")
     p.add_argument("--max-rollouts", type=int, default=1, metavar="N",
@@ -204,6 +235,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 def _run(args: argparse.Namespace) -> int:
     import random
     import signal
+    import threading
     import time
 
     from ratefit.controller.limits import Budget, ExponentialBackoff, RolloutSlots, TokenBucket
@@ -215,14 +247,18 @@ def _run(args: argparse.Namespace) -> int:
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(JsonLines())
     logging.basicConfig(level=getattr(logging, str(args.log_level).upper(), logging.INFO), handlers=[handler])
+    # the client library's retry chatter is not ours to print: the adapter reports what failed
+    logging.getLogger("urllib3").setLevel(logging.ERROR)
     interval = parse_duration(args.interval, field="--interval")
     if interval <= 0:
         raise InputError("--interval must be longer than 0s")
+    check_limits(args)
     shard = parse_shard(args.shard)
     resync = parse_duration(args.cache_resync, field="--cache-resync")
     if resync < 0:
         raise InputError("--cache-resync must be 0s (never) or longer")
     conns = connect(args, identity=args.identity)
+    lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
     cache = None
     kube: Any = conns.kube
     if not args.once:  # one pass needs no cache: it LISTs, like `ratefit plan`
@@ -243,11 +279,31 @@ def _run(args: argparse.Namespace) -> int:
         budget=budget, backoff=ExponentialBackoff(base=5.0, cap=300.0, rng=random.Random()),
         telemetry=telemetry, crash_hook=crash_hook_from_env(os.environ.get("RATEFIT_CRASH_AT")),
     )
-    lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
     elector = None if args.no_leader_election else conns.kube.leader_elector(
         namespace=args.lease_namespace, name=lease_name)
+    gave_up: list[tuple[int, str]] = []
+    if args.once and elector is not None:
+        # the first Lease attempt that fails checks the Lease namespace: a missing one would
+        # make --once wait forever (only then: a controller that gets its Lease reads no namespace)
+        def first_miss() -> None:
+            problem = lease_namespace_problem(conns.kube, args.lease_namespace)
+            if problem is not None:
+                gave_up.append(problem)
+                loop.stop()
+
+        elector = OnceElector(elector, first_miss)
+    last: list[Any] = []
+    started = threading.Event()
+    stop_watch = threading.Event()  # set when the command ends
+
+    def run_pass(control: Any) -> Any:
+        started.set()
+        result = reconciler.run_pass(control)
+        last[:] = [result]
+        return result
+
     loop = ControllerLoop(
-        run_pass=reconciler.run_pass if cache is None else _after_sync(cache, reconciler.run_pass),
+        run_pass=run_pass if cache is None else _after_sync(cache, run_pass),
         elector=elector, interval_s=interval,
         retry_period_s=getattr(elector, "retry_period", 2.0), renew_deadline_s=getattr(elector, "renew_deadline", 10.0),
         telemetry=telemetry, max_passes=1 if args.once else None,
@@ -276,18 +332,108 @@ def _run(args: argparse.Namespace) -> int:
     signal.signal(signal.SIGINT, on_signal)
     if cache is not None:
         cache.start()
+    if args.once and elector is not None:
+        # --once as a standby would wait forever: give up after two Lease durations
+        patience = 2 * float(getattr(elector, "lease_duration", 15.0)) + float(getattr(elector, "retry_period", 2.0))
+
+        def give_up() -> None:
+            if not started.wait(patience) and not stop_watch.is_set():
+                holder = getattr(elector, "holder", None)
+                gave_up.append((7, f"the Lease {args.lease_namespace}/{lease_name} stayed held by "
+                                   f"{holder or 'another replica'} for {patience:.0f}s, so no pass ran; another "
+                                   "controller is running: use ratefit plan, or --no-leader-election"))
+                loop.stop()
+
+        threading.Thread(target=give_up, name="ratefit-once-lease", daemon=True).start()
     mode = "dry-run (forced)" if args.dry_run else "per policy (dry-run or apply)"
     print(f"ratefit run: identity {conns.kube.identity}; rates from {conns.rate_source}; sizing API {args.sizing_api}; "
           f"mode {mode}; interval {args.interval}", file=sys.stderr, flush=True)
     try:
-        return loop.run()
+        code = loop.run()
+        if args.once and gave_up:
+            print(f"ratefit run: error: {gave_up[0][1]}", file=sys.stderr, flush=True)
+            code = gave_up[0][0]
+        elif args.once:
+            code = _once_exit(loop, last, conns)
+        return code
     finally:
+        stop_watch.set()
         if cache is not None:
             cache.stop()
         if health is not None:
             health.stop()
         conns.close()
         print("ratefit run: stopped", file=sys.stderr, flush=True)
+
+
+def _once_exit(loop: Any, last: list[Any], conns: Connections) -> int:
+    """The exit code of ``run --once`` (see ``controller/exit_status``), summary on stderr."""
+    from ratefit.controller.exit_status import ExitCode, pass_exit, prometheus_probe, sizing_probe
+
+    if not last:
+        if loop.stopping:
+            return 0  # stopped by a signal before the pass
+        print("ratefit run: error: the pass failed (see the log above)", file=sys.stderr, flush=True)
+        return int(ExitCode.FAILED)
+    verdict = pass_exit(last[0], prometheus=prometheus_probe(conns.rates), sizing=sizing_probe(conns.sizing))
+    if verdict.code is not ExitCode.OK:
+        print(f"ratefit run: error: {verdict.summary}", file=sys.stderr, flush=True)
+    return int(verdict.code)
+
+
+def check_limits(args: argparse.Namespace) -> None:
+    """Negative budgets are refused (0 is the documented 'unlimited')."""
+    if args.budget_per_minute < 0:
+        raise InputError(f"--budget-per-minute {args.budget_per_minute:g}: must be 0 (unlimited) or positive")
+    if args.max_rollouts < 0:
+        raise InputError(f"--max-rollouts {args.max_rollouts}: must be 0 (unlimited) or positive")
+
+
+class OnceElector:
+    """The Lease elector of ``run --once``: calls ``on_first_miss`` once, after the first
+    attempt that did not get the Lease; everything else is the wrapped elector's."""
+
+    def __init__(self, inner: Any, on_first_miss: Any) -> None:
+        self._inner = inner
+        self._on_first_miss = on_first_miss
+        self._checked = False
+
+    def try_acquire_or_renew(self) -> bool:
+        try:
+            held = bool(self._inner.try_acquire_or_renew())
+        except Exception:
+            self._miss()
+            raise
+        if not held:
+            self._miss()
+        return held
+
+    def _miss(self) -> None:
+        if not self._checked:
+            self._checked = True
+            self._on_first_miss()
+
+    def release(self) -> None:
+        self._inner.release()
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._inner, name)
+
+
+def lease_namespace_problem(kube: Any, namespace: str) -> tuple[int, str] | None:
+    """(exit code, one line) when the Lease namespace does not exist (2) or the API server
+    does not answer (3); None when it exists or cannot be read (403: benefit of the doubt)."""
+    from ratefit.controller.kube_probe import probe
+
+    code, body = probe(kube.api_client, f"namespace:{namespace}")
+    if code == 404:
+        return 2, (f"--once: the Lease namespace {namespace} does not exist; pass --no-leader-election "
+                   f"for a one-off run (or --lease-namespace NS, or kubectl create namespace {namespace})")
+    if code == 0:
+        first = " ".join(str(body).split())[:200]
+        return 3, (f"the Kubernetes API server could not be reached ({first}); check --kubeconfig/--context "
+                   "and that the cluster is up")
+    return None
 
 
 def parse_shard(text: str | None) -> tuple[int, int] | None:

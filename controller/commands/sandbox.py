@@ -12,7 +12,7 @@ write a kubeconfig (context ratefit-sandbox) that kubectl and the official
 kubernetes Python client accept. An existing --kubeconfig file is replaced only if
 the sandbox wrote it (it opens with a "# ratefit sandbox kubeconfig" line and names
 only the ratefit-sandbox context); anything else is refused unless --force. It is a stand-in, not a cluster: there is no
-scheduler and no kubelet — pods become Running at once on `sandbox-node`, an in-place
+scheduler and no kubelet — pods become Running at once on sandbox-node, an in-place
 resize (pods/resize) is applied at once and shown in status.containerStatuses[].resources
 (a resize beyond the pretend node's 16 CPU / 64Gi is left PodResizePending/Infeasible;
 with --startup-seconds a resize is PodResizeInProgress for that long; Deferred is not

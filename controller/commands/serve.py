@@ -9,6 +9,7 @@ lifespan's exit), after which the command returns 0.
 from __future__ import annotations
 
 import argparse
+import errno
 import ipaddress
 import os
 import socket
@@ -47,7 +48,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         description=HELP,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    p.add_argument("--store", required=True, metavar="DIR", help="model store directory (what `ratefit train` writes)")
+    p.add_argument("--store", required=True, metavar="DIR", help="model store directory (what ratefit train writes)")
     p.add_argument(
         "--host",
         default=DEFAULT_HOST,
@@ -150,13 +151,29 @@ def _inherited_socket(fd: int) -> socket.socket:
     return sock
 
 
+def bind_socket(host: str, port: int) -> socket.socket:
+    """A TCP socket bound to ``host:port`` before the server starts, so a taken port is
+    one line naming it (not a server log that starts and stops)."""
+    try:
+        family, kind, proto, _, addr = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)[0]
+    except socket.gaierror as exc:
+        raise InputError(f"--host {host}: cannot resolve it ({exc.strerror or exc})") from exc
+    sock = socket.socket(family, kind, proto)
+    try:
+        sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        sock.bind(addr)
+    except OSError as exc:
+        sock.close()
+        what = "is already in use" if exc.errno == errno.EADDRINUSE else f"cannot be bound ({exc.strerror or exc})"
+        raise InputError(f"--port {port} on {host} {what}: stop the other server or pick another --port "
+                         "(0: any free port)") from exc
+    return sock
+
+
 def _run(args: argparse.Namespace) -> int:
-    store = Path(args.store)
-    if not store.is_dir():
-        raise InputError(
-            f"--store {args.store!r} is not a directory: create it with `ratefit train --store {args.store} …` "
-            "or point --store at an existing model store"
-        )
+    from ratefit.controller.commands.store_dir import existing_store
+
+    store = existing_store(args.store)
     if not 0 <= args.port <= 65535:
         raise InputError(f"--port {args.port}: must be between 0 and 65535")
     token = read_token(args.token_file) if args.token_file else None
@@ -180,8 +197,8 @@ def _run(args: argparse.Namespace) -> int:
         raise InputError(f"--max-connections {args.max_connections}: must be at least 1")
     request_timeout = parse_duration(args.request_timeout, field="--request-timeout")
     idle_timeout = parse_duration(args.idle_timeout, field="--idle-timeout")
-    sockets = [_inherited_socket(args.fd)] if args.fd is not None else None
-    bound = args.host if sockets is None else str(sockets[0].getsockname()[0])
+    sockets = [_inherited_socket(args.fd) if args.fd is not None else bind_socket(args.host, args.port)]
+    bound = args.host if args.fd is None else str(sockets[0].getsockname()[0])
     warning = exposure_warning(bound, token, fd=args.fd)
     if warning:
         log.warning("%s", warning)

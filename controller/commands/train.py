@@ -1,8 +1,8 @@
 """`ratefit train` — learn a demand curve per container and store it as an artifact.
 
-Three sources: one CSV (``--samples FILE --key KEY``), a directory with one CSV per
-key (``--samples-dir DIR``, files named ``namespace__workload__container.csv``),
-or Prometheus range queries (``--prometheus URL --rate-query Q --cpu-query Q``).
+Three sources: one CSV (``ratefit train KEY --samples FILE``), a directory with one CSV
+per key (``--samples-dir DIR``, files named ``namespace__workload__container.csv``),
+or Prometheus range queries (``ratefit train KEY --prometheus URL --rate-query Q --cpu-query Q``).
 The work is ``ratefit.models.train``; this module parses flags and prints.
 ``--from-policies`` (every model the SizingPolicies name) is handled by
 ``controller/commands/train_from_policies``.
@@ -18,7 +18,7 @@ from ratefit.models.errors import InputError
 HELP = "learn a demand curve (rate per pod -> CPU cores) from a CSV or Prometheus and store it"
 
 DESCRIPTION = """\
-Learn, for one container key NAMESPACE/WORKLOAD/CONTAINER, how much CPU a pod uses
+Learn, for one model NAMESPACE/WORKLOAD/CONTAINER, how much CPU a pod uses
 at a given request rate. Samples are cleaned (NaN/stale, duplicate, throttled and
 warm-up samples are dropped and counted), every candidate estimator is scored by
 k-fold cross-validation (RMSE; ties within 2% go to the simpler estimator), the
@@ -39,12 +39,12 @@ CSV columns: rate,cpu (req/s per pod, cores); optional timestamp (unix seconds o
 RFC 3339), pod, throttled (share of throttled CFS periods, 0..1).
 
 Examples:
-  ratefit train --samples app.csv --key shop/web/app --store ./models --report ./reports
+  ratefit train shop/web/app --samples app.csv --store ./models --report ./reports
   ratefit train --samples-dir ./samples --store ./models
-  ratefit train --prometheus http://127.0.0.1:9090 --key shop/web/app --store ./models \\
+  ratefit train shop/web/app --prometheus http://127.0.0.1:9090 --store ./models \\
       --rate-query 'sum by (pod) (rate(http_requests_total{pod=~"web-.*"}[2m]))' \\
       --cpu-query 'sum by (pod) (rate(container_cpu_usage_seconds_total{container="app"}[2m]))' \\
-      --window 7d --step 30s
+      --lookback 7d --step 30s
   ratefit train --from-policies --prometheus http://127.0.0.1:9090 --store ./models
 """
 
@@ -54,7 +54,9 @@ def register(sub: argparse._SubParsersAction) -> None:
         "train", help=HELP, description=DESCRIPTION, formatter_class=argparse.RawDescriptionHelpFormatter
     )
     src = p.add_argument_group("samples source (one of)")
-    src.add_argument("--samples", metavar="FILE.csv", help="one CSV of samples for --key")
+    p.add_argument("model", nargs="?", metavar="NAMESPACE/WORKLOAD/CONTAINER",
+                   help="the model key (as in the SizingPolicy's model field); with --samples or --prometheus")
+    src.add_argument("--samples", metavar="FILE.csv", help="one CSV of samples for the model")
     src.add_argument("--samples-dir", metavar="DIR", help="one CSV per key, named NS__WORKLOAD__CONTAINER.csv")
     src.add_argument("--prometheus", metavar="URL", help="Prometheus base URL, e.g. http://127.0.0.1:9090")
     prom = p.add_argument_group("Prometheus options")
@@ -62,12 +64,14 @@ def register(sub: argparse._SubParsersAction) -> None:
     prom.add_argument("--cpu-query", metavar="PROMQL", help="per-pod CPU usage (cores), one series per pod")
     prom.add_argument("--throttle-query", metavar="PROMQL",
                       help="per-pod share of throttled CFS periods (0..1); optional")
-    prom.add_argument("--window", "--lookback", dest="window", default="7d",
-                      help="history to learn from: how far back to read (Prometheus duration; default 7d)")
+    prom.add_argument("--lookback", dest="window", default="7d",
+                      help="history to learn from: how far back from --end to read (duration, e.g. 2h, 7d; default 7d)")
+    prom.add_argument("--window", dest="window", help=argparse.SUPPRESS)  # the spelling before --lookback
     prom.add_argument("--step", default="30s", help="query resolution (Prometheus duration; default 30s)")
-    prom.add_argument("--end", metavar="TIME", help="end of the window: unix seconds or RFC 3339 (default now)")
+    prom.add_argument("--end", metavar="TIME", help="end of the lookback: unix seconds or RFC 3339 (default now)")
     prom.add_argument("--timeout", type=float, default=30.0, help="HTTP timeout per query in seconds (default 30)")
-    p.add_argument("--key", metavar="NS/WORKLOAD/CONTAINER", help="the container key (with --samples/--prometheus)")
+    # the spelling before the positional model key; hidden, kept for old scripts
+    p.add_argument("--key", dest="key_option", metavar="NS/WORKLOAD/CONTAINER", help=argparse.SUPPRESS)
     p.add_argument("--store", required=True, metavar="DIR", help="model store directory (created if missing)")
     p.add_argument("--tune", action="store_true",
                    help="hyperparameter grid search, nested inside the cross-validation (slower)")
@@ -131,13 +135,17 @@ def _run(args: argparse.Namespace) -> int:
     from ratefit.models.store import ModelStore
     from ratefit.models.train import samples_dir_files, train_key_detailed
 
+    if args.model and args.key_option and args.model != args.key_option:
+        raise InputError("give the model key once (positional), not also with --key")
+    args.key = args.model or args.key_option
     sources = [s for s in (args.samples, args.samples_dir, args.prometheus) if s]
     if len(sources) != 1:
         raise InputError("give exactly one of --samples FILE.csv, --samples-dir DIR or --prometheus URL")
     if (args.samples or args.prometheus) and not args.key:
-        raise InputError("--key NAMESPACE/WORKLOAD/CONTAINER is required with --samples and --prometheus")
+        raise InputError("the model key NAMESPACE/WORKLOAD/CONTAINER is required with --samples and --prometheus, "
+                         "e.g. ratefit train shop/web/app --samples app.csv --store ./models")
     if args.samples_dir and args.key:
-        raise InputError("--key does not go with --samples-dir: the file names give the keys")
+        raise InputError("a model key does not go with --samples-dir: the file names give the keys")
     options = TrainOptions(
         folds=args.folds,
         coverage=args.coverage,
@@ -199,7 +207,7 @@ def _from_prometheus(args: argparse.Namespace, options, progress):
 
     if not (args.rate_query and args.cpu_query):
         raise InputError("--rate-query and --cpu-query are required with --prometheus")
-    window = parse_duration(args.window, field="--window")
+    window = parse_duration(args.window, field="--lookback")
     step = parse_duration(args.step, field="--step")
     end = _end_time(args.end)
     with PrometheusClient(args.prometheus, timeout=args.timeout) as client:

@@ -129,8 +129,8 @@ def build_source(args: argparse.Namespace):
         raise InputError("--from-policies needs exactly one of --prometheus URL or --samples-dir DIR")
     if args.samples:
         raise InputError("--samples FILE does not go with --from-policies (the policies name the keys)")
-    if args.key:
-        raise InputError("--key does not go with --from-policies (the policies name the keys)")
+    if getattr(args, "model", None) or getattr(args, "key_option", None):
+        raise InputError("a model key (positional or --key) does not go with --from-policies (the policies name the keys)")
     if args.samples_dir:
         if not os.path.isdir(args.samples_dir):
             raise InputError(f"--samples-dir {args.samples_dir}: not a directory")

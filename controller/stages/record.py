@@ -359,6 +359,7 @@ def review_rows(o: Observed, wd: WorkloadDecision | None, *, dry_run: bool) -> l
             demand_m=_m(d.demand), upper_m=_m(d.upper), rate=d.rate, limit_m=d.limit_m,
             proposed_limit_m=d.proposed_limit_m, mode=mode, method=method, extrapolated=d.extrapolated,
             note=d.message, cgroup=_cgroup(d.proposed_m, d.proposed_limit_m),
+            replicas=o.workload.replicas if o.workload is not None else None,
             cores_per_100=d.cores_per_100_now, cores_per_100_suggested=d.cores_per_100_suggested,
         ))
     return rows
