@@ -4,7 +4,7 @@
 which the Deployment passes as that environment variable) picks the default rate template
 (``metrics_source.RateTemplate``) for every policy without its own ``rateQuery``.
 ``--rate-metric`` still replaces the preset's counter name (e.g. an application whose
-counter is ``orders_http_requests_total``), and ``--rate-interval`` its rate interval.
+counter is ``orders_http_requests_total``), and ``--rate-range`` the range of its rate().
 
 Every preset maps pods to workloads by the pods' names (``controller/pod_names``), so the
 counter needs only a namespace label and a pod label — the labels a pod or service

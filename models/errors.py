@@ -54,7 +54,7 @@ class UnknownModel(RatefitError, KeyError):
         super().__init__(key)
 
     def __str__(self) -> str:
-        return f"no model for {self.key!r}: train it with `ratefit train --key {self.key} …`"
+        return f"no model for {self.key!r}: train it with 'ratefit train {self.key} …' (or 'ratefit train --from-policies')"
 
 
 class PrometheusError(RatefitError):
