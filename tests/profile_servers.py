@@ -30,9 +30,7 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
-import httpx
-
-from ratefit.controller.local_servers import free_port, stop_process
+from ratefit.controller.local_servers import free_port, stop_process, wait_http
 
 NGINX = shutil.which("nginx") or "/usr/sbin/nginx"
 
@@ -83,17 +81,8 @@ def parcels_json(n: int = 400, seed: int = 7) -> bytes:
 
 
 def _wait_ready(url: str, proc: subprocess.Popen, log: Path, timeout: float = 20.0) -> None:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if proc.poll() is not None:
-            raise RuntimeError(f"server exited with {proc.returncode}: {log.read_text(errors='replace')[-1500:]}")
-        try:
-            if httpx.get(url, timeout=1.0).status_code == 200:
-                return
-        except httpx.HTTPError:
-            pass
-        time.sleep(0.05)
-    raise RuntimeError(f"server not ready at {url}: {log.read_text(errors='replace')[-1500:]}")
+    """Until ``url`` answers 200 (the one readiness wait of controller/local_servers)."""
+    wait_http(url, proc, timeout=timeout, log=log, what="server")
 
 
 def _children(pid: int) -> tuple[int, ...]:
