@@ -72,6 +72,7 @@ from ratefit.controller.policy import (
     WorkloadHistory,
 )
 from ratefit.controller.quantity import format_cpu
+from ratefit.controller.staleness import Staleness
 
 
 def _mc(m: int) -> str:
@@ -126,6 +127,7 @@ class Why(StrEnum):
     IN_PLACE_UNSUPPORTED = "InPlaceUnsupported"  # a resize cannot make this change
     REJECTED = "Rejected"  # the API server refused the change (set by reconcile)
     API_UNAVAILABLE = "ApiUnavailable"  # the workload's LIST failed (429/5xx …): not observed this pass
+    MODEL_STALE = "ModelStale"  # recent usage exceeds the model's band (controller/staleness): decreases held
 
 
 @dataclass(frozen=True)
@@ -146,6 +148,8 @@ class ContainerInput:
     limit_m: int | None  # the pod template's CPU limit (None: unset)
     rate: float | None  # per-pod request rate at the policy's percentile (None: no metrics)
     sizing: Sizing | None  # None: no model / sizing API unavailable
+    #: this pass's staleness verdict on the container's model (None: not checked)
+    stale: Staleness | None = None
 
 
 @dataclass(frozen=True)
@@ -353,6 +357,20 @@ def decide_container(
             "retrain the model or set allowExtrapolation",
         )
     note = " (extrapolated beyond the trained range)" if s.extrapolated else ""
+    stale = observed.stale if observed.stale is not None and observed.stale.stale else None
+    if stale is not None:
+        # a stale model (controller/staleness): observed usage may raise the target (the curve
+        # under-predicts), nothing lowers it — decreases and holds say ModelStale, and no
+        # settling record builds up on the stale curve's word
+        p95 = stale.usage_p95
+        if p95 is not None and math.isfinite(p95) and p95 > s.upper:
+            target, bound = target_millicores(p95, headroom=policy.headroom, floor_m=container.floor_m,
+                                              ceiling_m=container.ceiling_m, limit_m=keep_limit)
+            base.update(target_m=target)
+        base.update(settle=ContainerHistory(), settle_if_held=ContainerHistory())
+        if current is not None and (target <= current or _inside_deadband(current, target, policy.deadband)):
+            return out(why=Why.MODEL_STALE, message=stale.message())
+        note += f" ({stale.message()})"
 
     def change(new_m: int, limited: bool, settle_after: ContainerHistory, settle_held: ContainerHistory) -> Decision:
         new_limit = limit_for(current, limit, new_m, policy.limits)

@@ -163,7 +163,8 @@ def test_every_verdict_and_why_is_reached():
     seen_verdicts = {c.verdict for c in CASES}
     # Rejected: test_rejected_* above; ApiUnavailable: set by the observe stage when a LIST
     # fails (tests/test_faults_kube.py), never by the rules
-    seen_whys = {c.why for c in CASES} | {Why.REJECTED, Why.API_UNAVAILABLE}
+    # ModelStale: tests/test_stale_decide.py (a staleness verdict on the input)
+    seen_whys = {c.why for c in CASES} | {Why.REJECTED, Why.API_UNAVAILABLE, Why.MODEL_STALE}
     assert seen_verdicts == set(Verdict)
     assert seen_whys == set(Why), set(Why) - seen_whys
 

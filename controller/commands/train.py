@@ -78,6 +78,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--warmup", default="5m",
                    help="drop this span after each pod's first sample (Prometheus duration or 0; default 5m)")
     p.add_argument("--report", metavar="DIR", help="also write a Markdown page and PNG plot per key here")
+    p.add_argument("--image", metavar="IMAGE",
+                   help="the container image the samples came from, recorded in the model; the controller "
+                        "marks the model stale when the container runs another image")
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
     p.set_defaults(handler=_run)
 
@@ -149,6 +152,10 @@ def _run(args: argparse.Namespace) -> int:
     else:
         results.append(_from_prometheus(args, options, progress))
     for res in results:
+        if getattr(args, "image", None):
+            from dataclasses import replace
+
+            res = replace(res, artifact=with_image(res.artifact, args.image))
         path = store.save(res.artifact)
         a = res.artifact
         print(f"{a.key}: {res.summary()}, {res.report.summary()} -> {path}")
@@ -158,6 +165,14 @@ def _run(args: argparse.Namespace) -> int:
             md, _ = write_train_report(res, args.report, seed=options.seed)
             print(f"{a.key}: report {md}")
     return 0
+
+
+def with_image(artifact, image: str):
+    """The artifact recording ``image`` (re-sealed: the image is part of the content)."""
+    image = image.strip()
+    if not image or len(image) > 512 or any(ch.isspace() for ch in image):
+        raise InputError(f"--image {image!r}: give one image reference (no spaces, at most 512 characters)")
+    return artifact.model_copy(update={"image": image, "content_hash": ""}).sealed()
 
 
 def _from_prometheus(args: argparse.Namespace, options, progress):

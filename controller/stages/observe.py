@@ -33,6 +33,7 @@ from ratefit.controller.policy import Method, Policy, PolicyInvalid, format_dura
 from ratefit.controller.stages.ports import KubeReader, RateSource, SizingSource
 from ratefit.controller.telemetry import Telemetry
 from ratefit.controller.workload import Pod, PolicyObject, Workload
+from ratefit.controller.staleness import ALPHA, DEFAULT_COVERAGE, Staleness, band_rates, judge
 from ratefit.models.errors import RatefitError
 
 __all__ = ["Observed", "Observer", "Snapshot", "policy_object_dict", "shard_of"]
@@ -73,6 +74,8 @@ class Snapshot:
     errors: tuple[str, ...] = ()
     #: wall seconds of the observe stage's parts (for the benchmark)
     split: Mapping[str, float] = field(default_factory=dict)
+    #: ``namespace/policy/container`` → this pass's staleness verdict (only containers checked)
+    staleness: Mapping[str, Staleness] = field(default_factory=dict)
 
 
 def shard_of(namespace: str, count: int) -> int:
@@ -117,7 +120,12 @@ class Observer:
     def __init__(
         self, *, reader: KubeReader, rates: RateSource, sizing: SizingSource, telemetry: Telemetry,
         namespaces: tuple[str, ...] = (), shard: tuple[int, int] | None = None,
+        usage: object | None = None, coverage: float = DEFAULT_COVERAGE, alpha: float = ALPHA,
     ) -> None:
+        #: recent (rate, CPU) samples per container (``controller/usage_source``); None: no staleness check
+        self.usage = usage
+        self.coverage = coverage
+        self.alpha = alpha
         self.reader = reader
         self.rates = rates
         self.sizing = sizing
@@ -182,16 +190,23 @@ class Observer:
         asked = [r for r in requests if (r.namespace, r.policy) in found]
         sizing = self._query_sizing(asked, models, rates, errors)
         t_sizing = time.perf_counter()
+        staleness: dict[str, Staleness] = {}
+        if self.usage is not None:
+            kinds = {(p.namespace, p.name): p.workload_kind for _, p in valid}
+            staleness = self._staleness([r for r in asked if sizing.get(r.key) is not None], kinds, models, errors)
 
         entries = []
         for o, got in zip(objs, parsed):
             if isinstance(got, PolicyInvalid):
                 entries.append(Observed(obj=o, invalid=got))
                 continue
-            entries.append(self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors))
+            entries.append(self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors, staleness))
         split = {"gather_kube": t_lists - t_g0, "gather_rates": float(rate_box.get("seconds", 0.0)),  # type: ignore[arg-type]
                  "gather_rates_wait": t_rates - t_lists, "gather_sizing": t_sizing - t_rates}
-        return Snapshot(now=now, entries=tuple(entries), rolling=tuple(rolling), errors=tuple(errors), split=split)
+        if self.usage is not None:
+            split["gather_usage"] = time.perf_counter() - t_sizing
+        return Snapshot(now=now, entries=tuple(entries), rolling=tuple(rolling), errors=tuple(errors), split=split,
+                        staleness=staleness)
 
     # -- parts ---------------------------------------------------------------------
     def _parse(self, objs: Sequence[PolicyObject]) -> list[Policy | PolicyInvalid]:
@@ -254,6 +269,7 @@ class Observer:
         self, o: PolicyObject, p: Policy, workloads: Mapping[tuple[str, str, str], Workload],
         hpa_cpu: set[tuple[str, str, str]], failed: Mapping[tuple[str, str], str],
         rates: Mapping[str, float | None], sizing: Mapping[str, Sizing | None], errors: list[str],
+        staleness: Mapping[str, Staleness] | None = None,
     ) -> Observed:
         # a failed LIST (workloads of this kind, or HPAs) means "unknown", never "not found"
         why_unknown = next((failed[s] for s in ((p.namespace, p.workload_kind), ("*", p.workload_kind),
@@ -277,6 +293,7 @@ class Observer:
             inputs.append(ContainerInput(
                 name=c.name, request_m=current_req, limit_m=current_lim,
                 rate=rates.get(f"{p.key}/{c.name}"), sizing=sizing.get(f"{p.key}/{c.name}"),
+                stale=(staleness or {}).get(f"{p.key}/{c.name}"),
             ))
         return Observed(obj=o, policy=p, workload=w, inputs=tuple(inputs), pods=pods,
                         hpa_on_cpu=(p.namespace, p.workload_kind, p.workload_name) in hpa_cpu)
@@ -355,4 +372,60 @@ class Observer:
         unknown = sum(1 for v in out.values() if v is None)
         if unknown:
             self.telemetry.api_errors.labels(kind="NoModel").inc(unknown)
+        return out
+
+    def _staleness(
+        self, asked: Sequence[RateRequest], kinds: Mapping[tuple[str, str], str],
+        models: Mapping[tuple[str, str, str], str], errors: list[str],
+    ) -> dict[str, Staleness]:
+        """Each container's recent (rate, CPU) samples against its model's band at those
+        rates (``controller/staleness``). The band comes from ONE sizing batch for all
+        containers, at most ``staleness.MAX_BAND_POINTS`` rates each. Trouble here never
+        holds a container: it is simply not judged this pass."""
+        from ratefit.controller.usage_source import UsageRequest
+
+        if not asked:
+            return {}
+        reqs = [UsageRequest(namespace=r.namespace, policy=r.policy, workload_kind=kinds[(r.namespace, r.policy)],
+                             workload=r.workload, container=r.container, rate_query=r.query) for r in asked]
+        try:
+            got = self.usage.usage(reqs)  # type: ignore[union-attr]
+        except RatefitError as exc:
+            errors.append(f"recent usage: {exc}")
+            return {}
+        items: list[tuple[str, float]] = []
+        spans: list[tuple[RateRequest, object, object, int, int]] = []
+        for r in asked:
+            res = got.get(r.key)
+            if res is None or not getattr(res, "count", 0):
+                continue
+            grid = band_rates(res.rates)
+            model = models[(r.namespace, r.policy, r.container)]
+            spans.append((r, res, grid, len(items), len(items) + len(grid)))
+            items.extend((model, float(g)) for g in grid)
+        if not items:
+            return {}
+        try:
+            answers = self.sizing.demand_batch(items)
+        except RatefitError as exc:
+            errors.append(f"sizing API (band for the staleness check): {exc}")
+            return {}
+        if len(answers) != len(items):
+            return {}
+        out: dict[str, Staleness] = {}
+        self.telemetry.band_exceedance.clear()
+        for r, res, grid, a, b in spans:
+            bounds = [sizing_of(x) for x in answers[a:b]]
+            if any(v is None for v in bounds):
+                continue
+            st = judge(res.rates, res.cpu, grid, [v.upper for v in bounds],  # type: ignore[union-attr]
+                       coverage=self.coverage, alpha=self.alpha)
+            out[r.key] = st
+            self.telemetry.band_exceedance.labels(
+                workload_namespace=r.namespace, workload=f"{kinds[(r.namespace, r.policy)]}/{r.workload}",
+                workload_container=r.container).set(st.ratio)
+        stale = sum(1 for v in out.values() if v.stale)
+        self.telemetry.models_stale.set(stale)
+        if stale:
+            log.warning("%d containers with a stale model (recent usage above the band); decreases held", stale)
         return out
