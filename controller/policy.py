@@ -165,6 +165,13 @@ class ContainerSpec(_Camel):
         return v
 
 
+class Retrain(StrEnum):
+    """What happens when a container's model is marked stale (issue 13)."""
+
+    MANUAL = "Manual"  # flag it (condition, Event, metric); a person retrains
+    AUTO = "Auto"  # the controller retrains it from recent samples (controller/retrain)
+
+
 class SizingPolicySpec(_Camel):
     workload: WorkloadRefSpec
     mode: Mode = Mode.DRY_RUN
@@ -180,6 +187,7 @@ class SizingPolicySpec(_Camel):
     limits: LimitsMode = LimitsMode.KEEP_RATIO
     allow_horizontal_conflict: bool = False
     allow_extrapolation: bool = False
+    retrain: Retrain = Retrain.MANUAL
 
 
 class ConditionModel(_Camel):
@@ -263,6 +271,7 @@ class Policy:
     limits: LimitsMode = LimitsMode.KEEP_RATIO
     allow_horizontal_conflict: bool = False
     allow_extrapolation: bool = False
+    retrain: Retrain = Retrain.MANUAL
 
     @property
     def key(self) -> str:
@@ -395,6 +404,7 @@ def _to_policy(spec: SizingPolicySpec, *, namespace: str, name: str, generation:
         limits=spec.limits,
         allow_horizontal_conflict=spec.allow_horizontal_conflict,
         allow_extrapolation=spec.allow_extrapolation,
+        retrain=spec.retrain,
     )
 
 
