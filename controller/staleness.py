@@ -101,6 +101,8 @@ class Staleness:
     usage_p95: float | None = None
     #: the model was trained on another image than the container runs now
     image_changed: str | None = None
+    #: unix time the excess began (change-point estimate, :func:`change_point`; None: unknown)
+    change_at: float | None = None
 
     @property
     def ratio(self) -> float:
@@ -166,6 +168,7 @@ def judge(
     rates: Sequence[float] | np.ndarray, cpu: Sequence[float] | np.ndarray,
     grid: Sequence[float] | np.ndarray, bound: Sequence[float] | np.ndarray, *,
     coverage: float = DEFAULT_COVERAGE, alpha: float = ALPHA, image_changed: str | None = None,
+    timestamps: Sequence[float] | np.ndarray | None = None,
 ) -> Staleness:
     """The staleness verdict for one container (see the module docstring)."""
     if not 0.0 < coverage < 1.0:
@@ -177,8 +180,44 @@ def judge(
     c = np.asarray(cpu, dtype=float)
     c = c[np.isfinite(c)]
     p95 = float(np.percentile(c, 95.0)) if c.size else None
+    change_at = None
+    if timestamps is not None and k:
+        change_at = change_point(timestamps, rates, cpu, grid, bound, nominal=p0)
     return Staleness(samples=n, above=k, nominal=p0, p_value=binomial_sf(k, n, p0), alpha=alpha,
-                     usage_p95=p95, image_changed=image_changed)
+                     usage_p95=p95, image_changed=image_changed, change_at=change_at)
+
+
+def change_point(
+    timestamps: Sequence[float] | np.ndarray, rates: Sequence[float] | np.ndarray, cpu: Sequence[float] | np.ndarray,
+    grid: Sequence[float] | np.ndarray, bound: Sequence[float] | np.ndarray, *, nominal: float,
+) -> float | None:
+    """When the excess began: the maximum-likelihood single change point of the
+    exceedance indicators x_i ∈ {0, 1} in time order, with the rate p0 before the change
+    (the model held) and an unknown rate p1 > p0 after it. For each candidate start τ the
+    log-likelihood ratio of "from τ on, rate p̂ = k_τ/n_τ" against "rate p0 throughout" is
+    k_τ·log(p̂/p0) + (n_τ − k_τ)·log((1 − p̂)/(1 − p0)) (k_τ, n_τ: exceedances and
+    samples from τ on); the estimate is its argmax (the likelihood-ratio form of Page's
+    CUSUM, Page 1954). Samples of several pods at one time are pooled per time. None
+    without samples."""
+    t, r, c = (np.asarray(a, dtype=float) for a in (timestamps, rates, cpu))
+    g, b = np.asarray(grid, dtype=float), np.asarray(bound, dtype=float)
+    ok = np.isfinite(t) & np.isfinite(r) & np.isfinite(c) & (r >= 0)
+    if not ok.any() or g.size == 0:
+        return None
+    t, r, c = t[ok], r[ok], c[ok]
+    order = np.argsort(g)
+    above = (c > np.interp(r, g[order], b[order])).astype(float)
+    times, inv = np.unique(t, return_inverse=True)
+    k_at = np.bincount(inv, weights=above)
+    n_at = np.bincount(inv).astype(float)
+    k = np.cumsum(k_at[::-1])[::-1]  # exceedances from each time on
+    n = np.cumsum(n_at[::-1])[::-1]
+    p = k / n
+    with np.errstate(divide="ignore", invalid="ignore"):
+        llr = (np.where(k > 0, k * np.log(p / nominal), 0.0)
+               + np.where(n - k > 0, (n - k) * np.log((1.0 - p) / (1.0 - nominal)), 0.0))
+    llr = np.where(p > nominal, llr, 0.0)
+    return float(times[int(np.argmax(llr))])
 
 
 def usage_target_m(usage_p95_cores: float, *, headroom: float) -> int:

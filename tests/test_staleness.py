@@ -141,3 +141,20 @@ def test_no_false_alarm_on_a_stationary_scenario_over_a_simulated_week() -> None
     assert passes > 900  # a week every 10 minutes, after the first 6 h window
     print(f"stationary week: {alarms} stale marks in {passes} container-passes")
     assert alarms / passes < 0.01, (alarms, passes)
+
+
+def test_change_point_finds_the_release() -> None:
+    """INVENTED: 12 h at 5-minute steps, 3 pods; at hour 6 the CPU per request rises 40 %.
+    The likelihood-ratio change point (Page 1954) must land within 30 minutes of the release."""
+    rng = np.random.default_rng(3)
+    step, hours, pods = 300.0, 12, 3
+    t = np.repeat(np.arange(int(hours * 3600 / step)) * step, pods)
+    rates = rng.uniform(5.0, 15.0, t.size)
+    release = 6 * 3600.0
+    factor = np.where(t >= release, 1.4, 1.0)
+    cpu = factor * (0.05 + 0.02 * rates) + rng.normal(0.0, 0.01, t.size)
+    grid = np.linspace(0.0, 20.0, 60)
+    bound = 0.05 + 0.02 * grid + 1.645 * 0.01
+    s = judge(rates, cpu, grid, bound, timestamps=t)
+    assert s.stale and s.change_at is not None
+    assert abs(s.change_at - release) <= 1800.0, s.change_at

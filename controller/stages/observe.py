@@ -419,7 +419,7 @@ class Observer:
             if any(v is None for v in bounds):
                 continue
             st = judge(res.rates, res.cpu, grid, [v.upper for v in bounds],  # type: ignore[union-attr]
-                       coverage=self.coverage, alpha=self.alpha)
+                       coverage=self.coverage, alpha=self.alpha, timestamps=res.timestamps)
             out[r.key] = st
             self.telemetry.band_exceedance.labels(
                 workload_namespace=r.namespace, workload=f"{kinds[(r.namespace, r.policy)]}/{r.workload}",
