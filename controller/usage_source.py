@@ -98,6 +98,8 @@ class PrometheusUsageSource:
         self.client = client
         self.step = step
         self.at = at
+        #: the template as given (its own rate interval), for retraining with the same counter
+        self.rate_template = template
         self.guard = guard
         self.max_containers = max_containers
         # the rate interval equals the step: disjoint windows (see the module docstring)
