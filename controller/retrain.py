@@ -78,13 +78,16 @@ def jobs_for(snapshot: object, *, now: float, window_s: float, min_span_s: float
              retrain_all: bool = False) -> list[RetrainJob]:
     """The retrain jobs a pass's snapshot calls for: every container whose model is stale,
     of a policy with ``retrain: Auto`` (or every policy with ``retrain_all``), whose samples
-    since the change point span at least ``min_span_s``."""
+    since the change point span at least ``min_span_s``. The job records the image the
+    container runs now (the new model is trained on its samples)."""
     out = []
     for o in getattr(snapshot, "entries", ()):
         p = o.policy
         if p is None or not (retrain_all or p.retrain is Retrain.AUTO):
             continue
         rules = {c.name: c for c in p.containers}
+        w = getattr(o, "workload", None)
+        images = {c.name: c.image for c in (w.containers if w is not None else ())}
         for i in o.inputs:
             st = i.stale
             if st is None or not st.stale or i.name not in rules:
@@ -96,7 +99,7 @@ def jobs_for(snapshot: object, *, now: float, window_s: float, min_span_s: float
                 continue
             out.append(RetrainJob(model=rules[i.name].model, namespace=p.namespace, workload_kind=p.workload_kind,
                                   workload=p.workload_name, container=i.name, start=start, end=now,
-                                  rate_query=rules[i.name].rate_query))
+                                  rate_query=rules[i.name].rate_query, image=images.get(i.name)))
     return out
 
 

@@ -87,8 +87,10 @@ class PrometheusUsageSource:
     def __init__(
         self, client: PrometheusClient, *, template: RateTemplate = RateTemplate(), window: str = DEFAULT_WINDOW,
         step: str = DEFAULT_STEP, at: float | None = None, guard: QueryGuard = QueryGuard(),
-        max_containers: int = 200,
+        max_containers: int = 200, facts: ModelFacts | None = None,
     ) -> None:
+        #: what the models say about themselves (coverage, training image); None: defaults, no image check
+        self.facts = facts
         self.window_s = parse_duration(window, field="staleness window")
         self.step_s = parse_duration(step, field="staleness step")
         if self.window_s < 2 * self.step_s:
@@ -152,3 +154,45 @@ class PrometheusUsageSource:
 def usage_by_key(results: Mapping[str, UsageResult]) -> dict[str, UsageResult]:
     """Only the results that carry samples."""
     return {k: v for k, v in results.items() if v.count}
+
+
+class ModelFacts:
+    """What each model says about itself that the staleness check needs — its band's
+    coverage and the image it was trained on — read from the sizing API's model detail
+    (``GET /v1/models/{key}``: ``coverage``, ``image``, ``version``) and cached per key for
+    ``ttl_s`` seconds (the detail changes only when the model is retrained), so a pass asks
+    at most once per model per ``ttl_s``. A model the API cannot describe gets no facts
+    (default coverage, no image check)."""
+
+    def __init__(self, sizing: object, *, ttl_s: float = 600.0, max_keys: int = 10_000) -> None:
+        import time
+
+        self.sizing = sizing
+        self.ttl_s = ttl_s
+        self.max_keys = max_keys
+        self._clock = time.monotonic
+        self._cache: dict[str, tuple[float, float | None, str | None]] = {}
+
+    def lookup(self, keys: Sequence[str]) -> dict[str, tuple[float | None, str | None]]:
+        """key → (coverage or None, image or None)."""
+        from ratefit.models.errors import RatefitError
+
+        now = self._clock()
+        out: dict[str, tuple[float | None, str | None]] = {}
+        for key in dict.fromkeys(keys):
+            hit = self._cache.get(key)
+            if hit is None or now - hit[0] > self.ttl_s:
+                try:
+                    # the sizing client's one call path (bounded, token, errors translated)
+                    body = self.sizing._call("GET", f"/v1/models/{key}")  # type: ignore[attr-defined]
+                except (RatefitError, AttributeError):
+                    body = None
+                cov = body.get("coverage") if isinstance(body, dict) else None
+                img = body.get("image") if isinstance(body, dict) else None
+                hit = (now, float(cov) if isinstance(cov, (int, float)) and 0 < cov < 1 else None,
+                       img if isinstance(img, str) and img else None)
+                if len(self._cache) >= self.max_keys:
+                    self._cache.clear()
+                self._cache[key] = hit
+            out[key] = (hit[1], hit[2])
+        return out

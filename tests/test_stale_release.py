@@ -18,6 +18,7 @@ Checks (issue 13, "Tests"):
   writes the ModelFresh=False condition and a Warning Event; the next plan's proposal is
   within 10 % of the new truth's target: ceil5((1.4 × (0.05 + 0.02 × rate)) × 1.15) — the
   truth at the plan's rate plus headroom (DESIGN.md "One decision", step 3);
+- the retrained model records the image; a Deployment now running another image is marked stale;
 - `ratefit models rollback` restores the old model and the API serves it after a reload.
 """
 
@@ -172,6 +173,15 @@ def test_release_marks_stale_retrains_and_rolls_back(prometheus_from_openmetrics
             assert abs(after["proposed_m"] - want) <= 0.10 * want, (after, want)
             print(f"stale ratio {ratio:.3f}; after retraining proposed {after['proposed_m']}m, new truth {want}m, "
                   f"old curve {before['proposed_m']}m")
+
+            # the new model records the image it was trained on; a new image marks it stale again
+            assert store.load(KEY).image == "registry.kestrel-post.example/parcel-router:2.0.0"
+            patch = {"spec": {"template": {"spec": {"containers": [
+                {"name": C, "image": "registry.kestrel-post.example/parcel-router:2.1.0"}]}}}}
+            httpx.patch(f"{sb.url}/apis/apps/v1/namespaces/{NS}/deployments/{WL}", json=patch, timeout=10,
+                        headers={"Content-Type": "application/strategic-merge-patch+json"}).raise_for_status()
+            img = plan(kc, prom.url, api.base_url, end)
+            assert img["why"] == "ModelStale" and "parcel-router:2.1.0" in img["note"], img
 
             # rollback restores the old model; the API serves it after a reload
             rb = subprocess.run([str(RATEFIT), "models", "rollback", KEY, "--store", str(store.root)],

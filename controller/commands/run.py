@@ -176,11 +176,12 @@ def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connect
     if getattr(args, "stale_window", None):
         if not args.prometheus:
             raise InputError("--stale-window needs --prometheus (a replay has no CPU usage series)")
-        from ratefit.controller.usage_source import PrometheusUsageSource
+        from ratefit.controller.usage_source import ModelFacts, PrometheusUsageSource
 
         try:
             usage = PrometheusUsageSource(rates.client, template=template, window=args.stale_window,
-                                          step=args.stale_step, at=args.rate_at, guard=guard)
+                                          step=args.stale_step, at=args.rate_at, guard=guard,
+                                          facts=ModelFacts(sizing))
         except ValueError as exc:
             raise InputError(f"--stale-window/--stale-step: {exc}") from exc
     return Connections(kube=kube, rates=rates, sizing=sizing, rate_source=source, usage=usage)

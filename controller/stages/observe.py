@@ -193,7 +193,8 @@ class Observer:
         staleness: dict[str, Staleness] = {}
         if self.usage is not None:
             kinds = {(p.namespace, p.name): p.workload_kind for _, p in valid}
-            staleness = self._staleness([r for r in asked if sizing.get(r.key) is not None], kinds, models, errors)
+            staleness = self._staleness([r for r in asked if sizing.get(r.key) is not None], kinds, models, errors,
+                                        workloads)
 
         entries = []
         for o, got in zip(objs, parsed):
@@ -377,6 +378,7 @@ class Observer:
     def _staleness(
         self, asked: Sequence[RateRequest], kinds: Mapping[tuple[str, str], str],
         models: Mapping[tuple[str, str, str], str], errors: list[str],
+        workloads: Mapping[tuple[str, str, str], Workload] | None = None,
     ) -> dict[str, Staleness]:
         """Each container's recent (rate, CPU) samples against its model's band at those
         rates (``controller/staleness``). The band comes from ONE sizing batch for all
@@ -386,13 +388,23 @@ class Observer:
 
         if not asked:
             return {}
+        # what the models say about themselves (coverage, training image), when the source knows
+        facts_src = getattr(self.usage, "facts", None)
+        facts = facts_src.lookup([models[(r.namespace, r.policy, r.container)] for r in asked]) if facts_src else {}
+        image_msgs: dict[str, str] = {}
+        for r in asked:
+            trained_on = facts.get(models[(r.namespace, r.policy, r.container)], (None, None))[1]
+            w = (workloads or {}).get((r.namespace, kinds[(r.namespace, r.policy)], r.workload))
+            running = next((c.image for c in (w.containers if w else ()) if c.name == r.container), None)
+            if trained_on and running and running != trained_on:
+                image_msgs[r.key] = f"image changed since training: trained on {trained_on}, runs {running}"
         reqs = [UsageRequest(namespace=r.namespace, policy=r.policy, workload_kind=kinds[(r.namespace, r.policy)],
                              workload=r.workload, container=r.container, rate_query=r.query) for r in asked]
         try:
             got = self.usage.usage(reqs)  # type: ignore[union-attr]
         except RatefitError as exc:
             errors.append(f"recent usage: {exc}")
-            return {}
+            got = {}
         items: list[tuple[str, float]] = []
         spans: list[tuple[RateRequest, object, object, int, int]] = []
         for r in asked:
@@ -403,23 +415,27 @@ class Observer:
             model = models[(r.namespace, r.policy, r.container)]
             spans.append((r, res, grid, len(items), len(items) + len(grid)))
             items.extend((model, float(g)) for g in grid)
+        out: dict[str, Staleness] = {
+            k: Staleness(samples=0, above=0, nominal=1.0 - self.coverage, p_value=1.0, alpha=self.alpha,
+                         image_changed=m) for k, m in image_msgs.items()}
         if not items:
-            return {}
+            self.telemetry.models_stale.set(len(out))
+            return out
         try:
             answers = self.sizing.demand_batch(items)
         except RatefitError as exc:
             errors.append(f"sizing API (band for the staleness check): {exc}")
-            return {}
+            return out
         if len(answers) != len(items):
-            return {}
-        out: dict[str, Staleness] = {}
+            return out
         self.telemetry.band_exceedance.clear()
         for r, res, grid, a, b in spans:
             bounds = [sizing_of(x) for x in answers[a:b]]
             if any(v is None for v in bounds):
                 continue
+            cov = facts.get(models[(r.namespace, r.policy, r.container)], (None, None))[0] or self.coverage
             st = judge(res.rates, res.cpu, grid, [v.upper for v in bounds],  # type: ignore[union-attr]
-                       coverage=self.coverage, alpha=self.alpha, timestamps=res.timestamps)
+                       coverage=cov, alpha=self.alpha, timestamps=res.timestamps, image_changed=image_msgs.get(r.key))
             out[r.key] = st
             self.telemetry.band_exceedance.labels(
                 workload_namespace=r.namespace, workload=f"{kinds[(r.namespace, r.policy)]}/{r.workload}",
