@@ -110,6 +110,30 @@ def plan(kc: Path, prom: str, api: str, at: float) -> dict:
     return rows[0]
 
 
+def in_process_ratio(kc: Path, prom: str, api: str, at: float) -> float:
+    """One dry-run pass in this process (same parts as `ratefit plan --stale-window 6h`);
+    the value of ratefit_controller_band_exceedance_ratio for the container."""
+    from ratefit.controller.kube import KubeAdapter
+    from ratefit.controller.metrics_source import PrometheusRateSource
+    from ratefit.controller.reconcile import ReconcileConfig, Reconciler
+    from ratefit.controller.sizing_client import SizingClient
+    from ratefit.controller.telemetry import Telemetry
+    from ratefit.controller.usage_source import ModelFacts, PrometheusUsageSource
+
+    template = template_for("http-requests-total", metric=METRIC)
+    with PrometheusClient(prom, timeout=60) as client, SizingClient(api, timeout=60) as sizing:
+        kube = KubeAdapter.from_environment(str(kc))
+        tel = Telemetry()
+        rec = Reconciler(kube=kube, rates=PrometheusRateSource(client, at=at, template=template), sizing=sizing,
+                         usage=PrometheusUsageSource(client, template=template, at=at, facts=ModelFacts(sizing)),
+                         config=ReconcileConfig(dry_run=True, write=False), telemetry=tel)
+        result = rec.run_pass()
+        assert [r.why for r in result.rows] == [("ModelStale",)]
+        assert tel.value("ratefit_controller_models_stale") == 1.0
+        return tel.value("ratefit_controller_band_exceedance_ratio", {
+            "workload_namespace": NS, "workload": f"Deployment/{WL}", "workload_container": C})
+
+
 def test_release_marks_stale_retrains_and_rolls_back(prometheus_from_openmetrics, tmp_path: Path) -> None:
     end = time.time() - 300
     start, release = write_history(tmp_path / "history.om", end)
@@ -145,6 +169,8 @@ def test_release_marks_stale_retrains_and_rolls_back(prometheus_from_openmetrics
             assert "exceedance ratio" in row["note"] and row["proposed_m"] == 1000
             ratio = float(row["note"].split("exceedance ratio ")[1].split()[0])
             assert ratio > 0.5, row["note"]
+            # the same pass in process: the per-container gauge carries the ratio
+            assert in_process_ratio(kc, prom.url, api.base_url, end) == pytest.approx(ratio, abs=1e-3)
 
             # automatic retraining (policy retrain: Auto) in one controller pass
             p = subprocess.run([str(RATEFIT), "run", "--once", "--no-leader-election", "--metrics-port", "-1",
