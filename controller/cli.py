@@ -27,6 +27,7 @@ COMMANDS = (
     "sandbox",
     "plan",
     "check",
+    "replay",
     "run",
     "revert",
     "profile",

@@ -24,7 +24,9 @@ The steps, in order (the first that stops a change names the ``why``):
 4. Increases go at once. Decreases wait until the target has stayed below the
    current request for ``settle`` (status ``settling[].belowSince``): held
    **Settling** meanwhile. A decrease then goes to the *highest* target seen while
-   settling (``settling[].peak``), never to one low reading.
+   settling (``settling[].peak``), never to one low reading. If that highest target is
+   still inside the deadband, the settle window starts afresh at this pass (held
+   InsideDeadband), so a slowly falling load is followed down one settle period at a time.
 5. Step limit: at most ×up, at least ×down per change. A cut-short change is still
    a change: verdict changed (proposed in dry-run), why **StepLimited**. A
    step-limited decrease keeps its settling record, so the next step waits only
@@ -127,6 +129,13 @@ class Why(StrEnum):
     IN_PLACE_UNSUPPORTED = "InPlaceUnsupported"  # a resize cannot make this change
     REJECTED = "Rejected"  # the API server refused the change (set by reconcile)
     API_UNAVAILABLE = "ApiUnavailable"  # the workload's LIST failed (429/5xx …): not observed this pass
+    # inputs of one container that failed on their own (the others are decided as usual)
+    QUERY_REFUSED = "QueryRefused"  # the policy's rateQuery leaves its namespace (never sent)
+    QUERY_FAILED = "QueryFailed"  # Prometheus refused the rate query (its error in the message)
+    TOO_MANY_SERIES = "TooManySeries"  # the rate query answered more series than allowed
+    INVALID_MODEL_KEY = "InvalidModelKey"  # the sizing API refused the model key of this item
+    DEMAND_OUT_OF_RANGE = "DemandOutOfRange"  # the demand at this rate is beyond any physical bound
+    CONTAINER_MISSING = "ContainerMissing"  # spec.containers names a container the workload lacks
     MODEL_STALE = "ModelStale"  # recent usage exceeds the model's band (controller/staleness): decreases held
 
 
@@ -148,6 +157,12 @@ class ContainerInput:
     limit_m: int | None  # the pod template's CPU limit (None: unset)
     rate: float | None  # per-pod request rate at the policy's percentile (None: no metrics)
     sizing: Sizing | None  # None: no model / sizing API unavailable
+    #: why ``rate`` is None when it is this container's own problem: (reason, message);
+    #: reason is a :class:`Why` value (QueryRefused, QueryFailed, TooManySeries, NoMetrics)
+    rate_problem: tuple[str, str] | None = None
+    #: why ``sizing`` is None for this item alone: (reason, message) — NoModel,
+    #: InvalidModelKey, DemandOutOfRange
+    sizing_problem: tuple[str, str] | None = None
     #: this pass's staleness verdict on the container's model (None: not checked)
     stale: Staleness | None = None
 
@@ -301,6 +316,14 @@ def _inside_deadband(current_m: int, target_m: int, deadband: float) -> bool:
     return not (diff > deadband * current_m and diff >= MIN_CHANGE_M)
 
 
+def _why_or(value: str, default: Why) -> Why:
+    """A reason named by an input adapter, as a :class:`Why` (an unknown name → ``default``)."""
+    try:
+        return Why(value)
+    except ValueError:
+        return default
+
+
 def _no_metrics(
     name: str, history: ContainerHistory, message: str, *, current_m: int | None = None, limit_m: int | None = None,
 ) -> Decision:
@@ -338,10 +361,17 @@ def decide_container(
 
     rate = observed.rate
     if rate is None or not math.isfinite(rate) or rate < 0:
+        if observed.rate_problem is not None:
+            why, message = observed.rate_problem
+            return replace(_no_metrics(container.name, history, message, current_m=current, limit_m=limit),
+                           why=_why_or(why, Why.NO_METRICS))
         return _no_metrics(container.name, history, "no usable per-pod request rate this pass; nothing changes",
                            current_m=current, limit_m=limit)
     s = observed.sizing
     if s is None:
+        if observed.sizing_problem is not None:
+            why, message = observed.sizing_problem
+            return out(why=_why_or(why, Why.NO_MODEL), message=f"model {container.model!r}: {message}")
         return out(why=Why.NO_MODEL, message=f"the sizing API has no answer for model {container.model!r}")
     if not (math.isfinite(s.demand) and math.isfinite(s.upper) and s.demand >= 0 and s.upper >= 0):
         return out(why=Why.NO_MODEL, message=f"the sizing API answered an unusable demand for {container.model!r}")
@@ -425,9 +455,15 @@ def decide_container(
             message=f"target below {_mc(current)} for {int(waited)}s of {int(policy.settle_s)}s settle",
         )
     if _inside_deadband(current, goal, policy.deadband):
+        # a full settle period has passed without a decrease worth making: start a fresh
+        # settle window here, so the next decrease goes to the highest target of the last
+        # settle period — a slowly falling load is followed down (found by the replay)
+        fresh = ContainerHistory(below_since=now, peak_m=target)
         return out(
             why=Why.INSIDE_DEADBAND,
             message=f"highest target while settling {_mc(goal)} is within the deadband of {_mc(current)}",
+            settle=fresh,
+            settle_if_held=fresh,
         )
     after = settling if limited else ContainerHistory()
     return change(new_m, limited, after, settling)
@@ -467,8 +503,9 @@ def decide_workload(
         h = history.container(c.name)
         o = by_name.get(c.name)
         if o is None:
-            decisions.append(_no_metrics(c.name, h, f"container {c.name!r} is not in {policy.workload_key}; "
-                                         "fix spec.containers"))
+            decisions.append(replace(
+                _no_metrics(c.name, h, f"container {c.name!r} is not in {policy.workload_key}; fix spec.containers"),
+                why=Why.CONTAINER_MISSING))
             continue
         decisions.append(decide_container(policy, c, o, history=h, now=now))
 

@@ -9,8 +9,9 @@ INVENTED DATA: Kestrel Post is a fictional parcel company (``models/scenario``).
    fresh TSDB (``promtool tsdb create-blocks-from openmetrics``) and starts the real
    Prometheus on a free loopback port; otherwise the rates are replayed from the file
    (the output says which);
-3. trains a model for every scenario key (cross-validated candidates, conformal band)
-   into a model store, with a Markdown report + plot per key;
+3. trains every model the example policies name as ``ratefit train --from-policies``
+   does (worker processes; cross-validated candidates, conformal band): from the real
+   Prometheus when it runs, else from the scenario's CSVs; a Markdown report + plot per key;
 4. starts the sizing API (a ``ratefit serve`` subprocess on a free loopback port);
 5. starts the sandbox API server loaded with the SizingPolicy CRD, the scenario's
    workloads and HPA, and the example policies (``manifests/``);
@@ -19,7 +20,10 @@ INVENTED DATA: Kestrel Post is a fictional parcel company (``models/scenario``).
    time past the longest ``settle`` (as if the rates stayed the same) so the review also
    shows where the decreases now "Settling" will go; both reviews are returned and
    written as Markdown;
-7. stops everything it started — on success, on error and on Ctrl-C. With
+7. replays the whole history pass by pass (``controller/replay``): what the example
+   policies would have done, in CPU-hours, shortfall, rollouts and nodes; the summary is
+   printed and the plots go to ``replay/``;
+8. stops everything it started — on success, on error and on Ctrl-C. With
    ``keep=True`` it first waits (Ctrl-C) so the sandbox can be explored with the
    kubeconfig it wrote.
 """
@@ -126,38 +130,40 @@ def start_serve(store: Path, work: Path, *, timeout: float = 60.0) -> Iterator[s
 
 
 def train_scenario(samples_dir: Path, store_dir: Path, reports_dir: Path, *, progress: Progress,
-                   csv_paths: dict[str, Path]) -> list[str]:
-    """Train every key of the scenario from its CSV; save artifacts and reports."""
-    from ratefit.models.report import fit_all_for_report, write_report
-    from ratefit.models.samples import load_csv
-    from ratefit.models.store import ModelStore
-    from ratefit.models.train import train_key_detailed
+                   csv_paths: dict[str, Path], policies: Path | None = None, prometheus: Any = None) -> list[str]:
+    """Train every model the example policies name, the way ``ratefit train --from-policies``
+    does (``controller/train_policies``): from the real Prometheus when ``prometheus`` is a
+    ``PromSource``, else from the scenario's per-key CSVs in ``samples_dir``; worker
+    processes; artifacts and reports written. Returns the keys trained."""
+    from ratefit.controller.rate_template import RateTemplate
+    from ratefit.controller.train_policies import (CsvSource, Result, default_jobs, read_policy_files,
+                                                   train_from_policies)
+    from ratefit.models.scenario.services import REQUEST_METRIC
 
-    store = ModelStore(store_dir)
-    keys = sorted(csv_paths)
-    for i, key in enumerate(keys, 1):
-        t0 = time.perf_counter()
-        res = train_key_detailed(load_csv(csv_paths[key]), key=key)
-        store.save(res.artifact)
-        try:
-            # every candidate and the fixed baseline on the plot, not only the chosen curve
-            write_report(res.artifact, reports_dir, samples=res.samples,
-                         estimators=fit_all_for_report(res.samples))
-        except Exception as exc:  # a plot problem must not stop the demo
-            progress(f"  report for {key} not written: {exc}")
-        chosen = next(r for r in res.artifact.cv if r.model == res.artifact.chosen)
-        fixed = next((r for r in res.artifact.cv if r.model == "fixed"), None)
-        vs = f", fixed allocation {fixed.rmse * 1000:.1f}m" if fixed else ""
-        progress(f"[{i}/{len(keys)}] trained {key}: chose {res.artifact.chosen} "
-                 f"(CV RMSE {chosen.rmse * 1000:.1f}m{vs}) in {time.perf_counter() - t0:.1f}s")
-    return keys
+    summary = train_from_policies(
+        read_policy_files([policies or repo_manifests() / "examples"]),
+        source=prometheus if prometheus is not None else CsvSource(str(samples_dir)),
+        store_dir=store_dir, max_age_s=0.0, jobs=min(default_jobs(), len(csv_paths)),
+        template=RateTemplate(metric=REQUEST_METRIC), report_dir=reports_dir)
+    for i, o in enumerate(summary.outcomes, 1):
+        if o.result is Result.FAILED:
+            progress(f"[{i}/{len(summary.outcomes)}] {o.model} FAILED: {o.detail}")
+            continue
+        vs = f", fixed allocation {o.baseline_rmse * 1000:.1f}m" if o.baseline_rmse is not None else ""
+        progress(f"[{i}/{len(summary.outcomes)}] trained {o.model}: chose {o.estimator} "
+                 f"(CV RMSE {o.cv_rmse * 1000:.1f}m{vs}) in {o.seconds:.1f}s")
+    if not summary.ok:
+        bad = [f"{o.model}: {o.detail}" for o in summary.outcomes if o.result is Result.FAILED]
+        bad += [f"policy {p.policy}: {p.message}" for p in summary.problems]
+        raise DemoError("training failed: " + "; ".join(bad))
+    return [o.model for o in summary.outcomes]
 
 
 def run_demo(
     *,
     out: Path,
     keep: bool = False,
-    hours: float = 24.0,
+    hours: float = 168.0,
     step_s: float = 60.0,
     use_prometheus: bool | None = None,
     progress: Progress = _say,
@@ -189,7 +195,9 @@ def run_demo(
     progress(f"scenario: {ORGANISATION} — INVENTED data; output in {out}")
     end = float(int(time.time() // step_s) * step_s - 5 * step_s)
     info = write_openmetrics(work / "history.om", end=end, hours=hours, step_s=step_s, seed=0)
-    csv_paths = write_csv(out / "samples", seed=0, hours=hours, step_s=step_s, end=end)
+    # a week of training samples at 5-minute steps (at 60 s the training would take minutes; longer
+    # steps than the 5-minute warm-up span would all be cleaned away as warm-up)
+    csv_paths = write_csv(out / "samples", seed=0, hours=hours, step_s=step_s if hours <= 24 else 300.0, end=end)
     progress(f"history: {info.series} series, {info.samples} samples over {hours:g}h at {step_s:g}s steps")
     if use_prometheus is None:
         use_prometheus = prometheus_binaries() is not None
@@ -212,8 +220,14 @@ def run_demo(
             else:
                 progress(f"rates: Prometheus is not installed (no prometheus/promtool), so the demo replays "
                          f"the history file {info.path} instead (same numbers as a Prometheus holding it)")
-        progress(f"training {len(csv_paths)} models (k-fold CV over every candidate; ~5 s each) …")
-        train_scenario(out / "samples", work / "store", out / "reports", progress=progress, csv_paths=csv_paths)
+        progress(f"training the {len(csv_paths)} models the policies name, as `ratefit train --from-policies` does, "
+                 f"from {'Prometheus' if use_prometheus else 'the CSV samples'} (k-fold CV over every candidate) …")
+        from ratefit.controller.train_policies import PromSource
+
+        train_source = PromSource(prom_url, start=info.end - hours * 3600, end=info.end, step=step_s,
+                                  step_text=f"{step_s:g}s") if use_prometheus else None
+        train_scenario(out / "samples", work / "store", out / "reports", progress=progress, csv_paths=csv_paths,
+                       policies=manifests / "examples", prometheus=train_source)
         api_url = stack.enter_context(start_serve(work / "store", work))
         progress(f"sizing API: ratefit serve at {api_url}")
         scenario_dir = work / "scenario-manifests"
@@ -270,6 +284,14 @@ def run_demo(
             "Training reports: reports/*.md\n",
             encoding="utf-8",
         )
+        from ratefit.controller.replay.demo_step import replay_demo
+
+        progress("replay: what the example policies would have done over the whole history, pass every 5 min "
+                 f"(as if in apply mode); plots in {out / 'replay'} …")
+        progress("replay summary:\n" + replay_demo(
+            history=info.path, store=work / "store", manifests=(scenario_dir, manifests / "examples"),
+            out=out / "replay", request_metric=REQUEST_METRIC,
+            prometheus_url=getattr(getattr(rates, "client", None), "base_url", None)))
         if keep:
             progress(f"--keep: everything keeps running; try  kubectl --kubeconfig {kubeconfig} get sizingpolicies -A ; "
                      "Ctrl-C stops it all")

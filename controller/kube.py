@@ -61,6 +61,7 @@ from ratefit.controller.kube_lease import LeaderElector, micro_time
 from ratefit.controller.kube_retry import RetryPolicy, call_with_retry, retry_on_conflict, translate
 from ratefit.controller.quantity import format_cpu, parse_cpu
 from ratefit.controller.workload import (
+    LAST_CHANGE_ANNOTATION,
     PREVIOUS_REQUESTS_ANNOTATION,
     ContainerResources,
     CpuChange,
@@ -92,6 +93,10 @@ __all__ = [
     "POLICY_PLURAL",
     "REPORTING_CONTROLLER",
     "FIELD_MANAGER",
+    "workload_from_json",
+    "pod_from_json",
+    "hpa_from_json",
+    "policy_from_json",
 ]
 
 log = logging.getLogger(__name__)
@@ -472,24 +477,30 @@ class KubeAdapter:
         Returns the stored workload, or None when there is nothing to revert. Containers
         that no longer exist are skipped. Conflicts are re-read and retried."""
 
+        kind = kind if isinstance(kind, WorkloadKind) else WorkloadKind.parse(kind)
+
         def once() -> Workload | None:
-            wl = self.read_workload(namespace, kind, name)
+            raw = self._call(f"read {kind.value} {namespace}/{name}", self._api_of(kind).read, name, namespace)
+            wl = _workload(raw, kind)
             previous = wl.previous_requests
             if not previous:
                 return None
-            names = {c.name for c in wl.containers}
+            raw_containers = {c.get("name"): c for c in (((raw.get("spec") or {}).get("template") or {})
+                                                         .get("spec") or {}).get("containers") or []}
             containers = []
             for cname, prev in sorted(previous.items()):
-                if cname not in names:
+                if cname not in raw_containers:
                     log.warning("%s: container %s is gone; not reverted", wl.key, cname)
                     continue
+                res = raw_containers[cname].get("resources") or {}
                 containers.append({"name": cname, "resources": {
-                    "requests": {"cpu": None if prev.cpu_request_m is None else format_cpu(prev.cpu_request_m)},
-                    "limits": {"cpu": None if prev.cpu_limit_m is None else format_cpu(prev.cpu_limit_m)},
+                    "requests": _revert_map(res.get("requests"), prev.cpu_request_m),
+                    "limits": _revert_map(res.get("limits"), prev.cpu_limit_m),
                 }})
+            # the revert leaves no trace of ratefit: both of its annotations go
             body = {
                 "metadata": {"resourceVersion": wl.resource_version,
-                             "annotations": {PREVIOUS_REQUESTS_ANNOTATION: None}},
+                             "annotations": {PREVIOUS_REQUESTS_ANNOTATION: None, LAST_CHANGE_ANNOTATION: None}},
                 "spec": {"template": {"spec": {"containers": containers}}},
             }
             return self._dry_run_then_patch(wl, body)
@@ -650,6 +661,17 @@ def cpu_patch_body(
 
 
 # -------------------------------------------------------------------- JSON → values
+def _revert_map(current: Mapping[str, Any] | None, previous_m: int | None) -> dict[str, Any] | None:
+    """The strategic-merge value that puts one ``requests``/``limits`` map back: the CPU
+    set to its previous value, or removed — and the whole map removed (None) when CPU was
+    its only key, so a revert never leaves an empty ``requests: {}``/``limits: {}``."""
+    if previous_m is not None:
+        return {"cpu": format_cpu(previous_m)}
+    if not set(current or {}) - {"cpu"}:
+        return None
+    return {"cpu": None}
+
+
 def _ref(ref: ObjectRef) -> dict[str, str]:
     out = {"apiVersion": ref.api_version, "kind": ref.kind, "namespace": ref.namespace, "name": ref.name}
     if ref.uid:
@@ -808,3 +830,12 @@ def _policy(obj: Mapping[str, Any]) -> PolicyObject:
         spec=obj.get("spec") or {},
         status=obj.get("status") or {},
     )
+
+
+#: The JSON → value converters under public names, for the watch-fed cache
+#: (``controller/kube_cache.py``), which stores exactly what the reads above return.
+workload_from_json = _workload
+pod_from_json = _pod
+hpa_from_json = _hpa
+policy_from_json = _policy
+selector_text = _selector

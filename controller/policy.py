@@ -66,6 +66,7 @@ __all__ = [
     "invalid_condition",
     "SizingPolicySpec",
     "SizingPolicyStatus",
+    "METHOD_DEFAULTS",
     "WorkloadRefSpec",
     "ContainerSpec",
     "StepLimitSpec",
@@ -179,15 +180,29 @@ class SizingPolicySpec(_Camel):
     containers: list[ContainerSpec] = Field(min_length=1)
     headroom: float = 0.15
     deadband: float = 0.10
-    cooldown: str = "30m"
-    settle: str = "2h"
+    #: cooldown, settle, rateWindow — None: the method's default (:data:`METHOD_DEFAULTS`);
+    #: the CRD sets no default for these three
+    cooldown: str | None = None
+    settle: str | None = None
     step_limit: StepLimitSpec = StepLimitSpec()
-    rate_window: str = "1h"
+    rate_window: str | None = None
     rate_percentile: float = 95.0
     limits: LimitsMode = LimitsMode.KEEP_RATIO
     allow_horizontal_conflict: bool = False
     allow_extrapolation: bool = False
     retrain: Retrain = Retrain.MANUAL
+
+
+#: ``cooldown``, ``settle`` and ``rateWindow`` when the policy leaves them out, by method.
+#: A rollout restarts every pod, so it is sized for the daily peak (the rate percentile
+#: over a day: no daily up-and-down rollouts). An in-place resize restarts nothing and
+#: follows the daily cycle: the rate over half an hour, decreases after 30 minutes, a change
+#: at most every 15 minutes. Chosen with ``ratefit replay`` on the demo scenario
+#: (DEVELOPERS.md, "Replay: the defaults").
+METHOD_DEFAULTS = {
+    "rollout": {"cooldown": "30m", "settle": "2h", "rateWindow": "1d"},
+    "in-place": {"cooldown": "15m", "settle": "30m", "rateWindow": "30m"},
+}
 
 
 class ConditionModel(_Camel):
@@ -358,7 +373,10 @@ def _to_policy(spec: SizingPolicySpec, *, namespace: str, name: str, generation:
     if not 0.0 < spec.rate_percentile <= 100.0:
         raise bad("spec.ratePercentile", f"{spec.rate_percentile} must be > 0 and <= 100")
     durations = {}
-    for fname, text in (("cooldown", spec.cooldown), ("settle", spec.settle), ("rateWindow", spec.rate_window)):
+    given = {"cooldown": spec.cooldown, "settle": spec.settle, "rateWindow": spec.rate_window}
+    for fname, text in given.items():
+        if text is None:
+            text = METHOD_DEFAULTS[spec.method.value][fname]
         try:
             durations[fname] = parse_duration(text, field=f"spec.{fname}", allow_zero=fname != "rateWindow")
         except InputError as exc:

@@ -74,20 +74,6 @@ class DemandAnswer:
     extrapolated: bool
     version: str
 
-    # Deprecated read-only aliases of the names before issue 10, kept only until every
-    # caller reads the new names (controller/reconcile.py ``_sizing_of``); do not use.
-    @property
-    def key(self) -> str:
-        return self.model
-
-    @property
-    def cpu_m(self) -> int:
-        return self.demand_m
-
-    @property
-    def upper_m(self) -> int:
-        return self.demand_bound_m
-
 
 @dataclass(frozen=True)
 class DemandError:

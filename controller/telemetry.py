@@ -10,7 +10,8 @@ answering while the reconcile loop is busy or on standby):
 - ``/metrics`` — the Prometheus text exposition format (``prometheus_client`` renders it);
 - ``/healthz`` — 200 while the loop thread is alive (liveness: restart me if not);
 - ``/readyz``  — 200 once the controller has completed its first pass as leader, or
-  knows it is a standby replica (readiness: the controller is doing its job).
+  knows it is a standby replica (readiness: the controller is doing its job), and the
+  readiness gate allows it (``ratefit run``: the watch-fed cache has synced, while leading).
 
 Metric names follow the Prometheus naming guide (prometheus.io/docs/practices/naming:
 ``_total`` for counters, base units such as ``_seconds``, a ``ratefit_controller_`` prefix).
@@ -21,10 +22,10 @@ from __future__ import annotations
 import threading
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
-from typing import Callable
+from typing import Any, Callable
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, generate_latest
-from prometheus_client.core import GaugeMetricFamily
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
 from ratefit.controller.bounded_http import BoundedHandler, BoundedHTTPServer, HttpLimits
@@ -199,6 +200,19 @@ class Telemetry:
         self._lock = threading.Lock()
         self._ready = False
         self._alive: Callable[[], bool] = lambda: True
+        self._gate: Callable[[], bool] = lambda: True
+        self._gate_why = ""
+
+    # -- the watch-fed cache ----------------------------------------------------------
+    def watch_cache(self, stats: Callable[[], Any]) -> None:
+        """Export the watch-fed cache's counters (``kube_cache.KubeCache.stats``) at each
+        scrape: relists, 410 Gone answers, dropped streams, errors, events, objects held."""
+        self.registry.register(_CacheCollector(stats))
+
+    def set_readiness_gate(self, gate: Callable[[], bool], why: str = "") -> None:
+        """``/readyz`` is 200 only while ``gate()`` is also True (``why``: the 503 text)."""
+        self._gate = gate
+        self._gate_why = why
 
     # -- health flags ---------------------------------------------------------------
     def set_ready(self, ready: bool) -> None:
@@ -208,7 +222,15 @@ class Telemetry:
     @property
     def ready(self) -> bool:
         with self._lock:
-            return self._ready
+            ready = self._ready
+        return ready and self.gate_open
+
+    @property
+    def gate_open(self) -> bool:
+        try:
+            return bool(self._gate())
+        except Exception:  # a broken gate means "not ready", never a crash of the server
+            return False
 
     def set_liveness(self, probe: Callable[[], bool]) -> None:
         """``probe()`` says whether the loop is alive (e.g. its thread ``is_alive``)."""
@@ -236,6 +258,47 @@ class Telemetry:
         return 0.0 if v is None else float(v)
 
 
+#: counter name in the cache's stats → (metric name, help)
+_CACHE_COUNTERS = {
+    "lists": ("ratefit_controller_cache_lists", "LISTs the watch-fed cache made, by resource (the first one and relists)."),
+    "relists": ("ratefit_controller_cache_relists", "LISTs after the first: 410 Gone, a watch error, the resync period."),
+    "gone": ("ratefit_controller_cache_gone", "Watch positions the API server no longer had (410 Gone)."),
+    "drops": ("ratefit_controller_cache_watch_drops", "Watch streams cut before the server ended them (resumed)."),
+    "errors": ("ratefit_controller_cache_errors", "Failed LIST/WATCH requests and watch ERROR events."),
+    "events": ("ratefit_controller_cache_events", "Watch events (ADDED/MODIFIED/DELETED) applied to the cache."),
+    "bad_objects": ("ratefit_controller_cache_bad_objects", "Objects the cache could not read and left out."),
+}
+
+
+#: the cache's gauges (registered only by ``watch_cache``: ``ratefit run`` with the cache)
+_CACHE_GAUGES = {
+    "objects": ("ratefit_controller_cache_objects", "Objects held by the watch-fed cache."),
+    "synced": ("ratefit_controller_cache_synced", "1 once the watch-fed cache has listed everything it follows."),
+}
+
+
+class _CacheCollector:
+    """Reads the cache's counters at scrape time (no second copy of them to keep in step)."""
+
+    def __init__(self, stats: Callable[[], Any]) -> None:
+        self._stats = stats
+
+    def describe(self) -> list[Any]:
+        return []
+
+    def collect(self) -> Any:
+        snap = self._stats()
+        families = {k: CounterMetricFamily(name, text, labels=["resource"]) for k, (name, text) in _CACHE_COUNTERS.items()}
+        objects = GaugeMetricFamily(*_CACHE_GAUGES["objects"], labels=["resource"])
+        for resource, st in sorted(snap.per_resource.items()):
+            for key, fam in families.items():
+                fam.add_metric([resource], float(getattr(st, key)))
+            objects.add_metric([resource], float(st.objects))
+        yield from families.values()
+        yield objects
+        yield GaugeMetricFamily(*_CACHE_GAUGES["synced"], value=1.0 if snap.synced else 0.0)
+
+
 class HealthServer:
     """Serves ``/metrics``, ``/healthz`` and ``/readyz`` for one :class:`Telemetry`.
 
@@ -260,7 +323,8 @@ class HealthServer:
                     self._send(200 if ok else 503, b"ok\n" if ok else b"loop not running\n")
                 elif path == "/readyz":
                     ok = tel.ready
-                    self._send(200 if ok else 503, b"ok\n" if ok else b"not ready\n")
+                    why = b"not ready\n" if tel.gate_open or not tel._gate_why else f"not ready: {tel._gate_why}\n".encode()
+                    self._send(200 if ok else 503, b"ok\n" if ok else why)
                 else:
                     self._send(404, b"not found: try /metrics, /healthz or /readyz\n")
 

@@ -37,6 +37,9 @@ __all__ = [
 
 #: Annotation on the workload holding what ``ratefit revert`` restores (DESIGN.md naming sheet).
 PREVIOUS_REQUESTS_ANNOTATION = "ratefit.dev/previous-requests"
+#: Annotation written with a change: when ratefit last changed the workload (the cooldown
+#: survives a crash before the status write).
+LAST_CHANGE_ANNOTATION = "ratefit.dev/last-change"
 
 
 class WorkloadKind(str, enum.Enum):

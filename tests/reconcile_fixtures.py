@@ -38,9 +38,12 @@ def ceil5(x: float) -> int:
 
 
 def write_history(path: Path, rates: Mapping[tuple[str, str], Sequence[float]], *, end: float,
-                  minutes: int = 90, step_s: int = 30, metric: str = "http_requests_total") -> Path:
+                  minutes: int = 90, step_s: int = 30, metric: str = "http_requests_total",
+                  statefulsets: frozenset[tuple[str, str]] | set[tuple[str, str]] = frozenset()) -> Path:
     """Constant-rate counters: per (namespace, workload) one series per pod at the given rates.
-    OpenMetrics text format (openmetrics.io spec: counters end in _total, '# EOF' last)."""
+    OpenMetrics text format (openmetrics.io spec: counters end in _total, '# EOF' last).
+    Pods are named as Kubernetes names them: ``<name>-<ordinal>`` for the (namespace, name)
+    pairs in ``statefulsets``, a Deployment's ``<name>-<hash>-<5 random>`` otherwise."""
     base = metric.removesuffix("_total")
     lines = [f"# HELP {base} Requests served (INVENTED test scenario).", f"# TYPE {base} counter"]
     start = end - minutes * 60
@@ -49,7 +52,8 @@ def write_history(path: Path, rates: Mapping[tuple[str, str], Sequence[float]], 
         for i, r in enumerate(pod_rates):
             # a Deployment's pod name (<name>-<pod-template-hash>-<5 random>): the controller maps
             # pods to workloads by name (controller/pod_names); the alphabet is Kubernetes' own
-            labels = f'namespace="{ns}",pod="{wl}-5d4c7b9f8-{"bcdfghjklmnpqrstvwxz2456789"[i % 27] * 5}",workload="{wl}"'
+            pod = f"{wl}-{i}" if (ns, wl) in statefulsets else f"{wl}-5d4c7b9f8-{'bcdfghjklmnpqrstvwxz2456789'[i % 27] * 5}"
+            labels = f'namespace="{ns}",pod="{pod}",workload="{wl}"'
             lines += [f"{metric}{{{labels}}} {r * (t - start):.6f} {t:.3f}" for t in ts]
     lines.append("# EOF")
     path.write_text("\n".join(lines) + "\n")
@@ -234,7 +238,8 @@ def world(tmp: Path, *, objects: Sequence[Mapping[str, Any]], rates: Mapping[tup
     from ratefit.controller.sandbox import SandboxServer
 
     at = float(int(end if end is not None else time.time() - 120))
-    history = write_history(tmp / "history.om", rates, end=at)
+    statefulsets = {(o["metadata"]["namespace"], o["metadata"]["name"]) for o in objects if o.get("kind") == "StatefulSet"}
+    history = write_history(tmp / "history.om", rates, end=at, statefulsets=statefulsets)
     with contextlib.ExitStack() as stack:
         if api_url is None:
             store = ModelStore(tmp / "store")

@@ -24,6 +24,7 @@ from typing import Any
 
 import pytest
 
+from ratefit.controller.local_servers import stop_process
 from ratefit.controller.sandbox.server import SandboxServer
 
 #: the kubectl to run (RATEFIT_KUBECTL picks another binary, e.g. a given minor version)
@@ -84,7 +85,7 @@ def sandbox_process(tmp_path: Path) -> Iterator[tuple[str, Path]]:
     proc = subprocess.Popen(
         [sys.executable, "-m", "ratefit.controller.cli", "sandbox", "--kubeconfig", str(kc),
          "--bookmark-interval", "0.5"],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
     try:
         assert proc.stdout is not None
         url = proc.stdout.readline().strip()
@@ -102,12 +103,7 @@ def sandbox_process(tmp_path: Path) -> Iterator[tuple[str, Path]]:
                 time.sleep(0.05)
         yield url, kc
     finally:
-        proc.terminate()
-        try:
-            proc.wait(timeout=5)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(timeout=5)
+        stop_process(proc, grace=5)
         for stream in (proc.stdout, proc.stderr):
             if stream:
                 stream.close()

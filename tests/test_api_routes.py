@@ -391,15 +391,8 @@ def test_openapi_documents_every_route_with_examples(api: Api) -> None:
 
 
 # -- against `ratefit predict` ---------------------------------------------------------------
-def _predict_cli_available() -> bool:
-    out = subprocess.run([str(RATEFIT), "predict", "--help"], capture_output=True, text=True, timeout=60)
-    return out.returncode == 0 and "--output" in out.stdout
-
-
 @pytest.mark.parametrize("rate", [0.0, 42.5, 180.0, 750.0])
 def test_answers_equal_ratefit_predict(api: Api, rate: float) -> None:
-    if not _predict_cli_available():
-        pytest.skip("`ratefit predict --output json` is not built yet (the curve lookup is compared in the other tests)")
     for key in (LINEAR_KEY, LOW_KEY):
         cli = subprocess.run(
             [str(RATEFIT), "predict", key, "--store", str(api.store), "--rate", repr(rate), "--output", "json"],

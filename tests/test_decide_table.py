@@ -162,9 +162,11 @@ def test_rejected_decrease_keeps_its_settling_record():
 def test_every_verdict_and_why_is_reached():
     seen_verdicts = {c.verdict for c in CASES}
     # Rejected: test_rejected_* above; ApiUnavailable: set by the observe stage when a LIST
-    # fails (tests/test_faults_kube.py), never by the rules
-    # ModelStale: tests/test_stale_decide.py (a staleness verdict on the input)
-    seen_whys = {c.why for c in CASES} | {Why.REJECTED, Why.API_UNAVAILABLE, Why.MODEL_STALE}
+    # fails (tests/test_faults_kube.py), never by the rules; the per-container input reasons
+    # (QueryRefused … ContainerMissing): tests/test_blast_radius.py; ModelStale: tests/test_stale_decide.py
+    seen_whys = {c.why for c in CASES} | {Why.REJECTED, Why.API_UNAVAILABLE, Why.QUERY_REFUSED, Why.QUERY_FAILED,
+                                          Why.TOO_MANY_SERIES, Why.INVALID_MODEL_KEY, Why.DEMAND_OUT_OF_RANGE,
+                                          Why.CONTAINER_MISSING, Why.MODEL_STALE}
     assert seen_verdicts == set(Verdict)
     assert seen_whys == set(Why), set(Why) - seen_whys
 
@@ -202,9 +204,10 @@ def test_one_patch_per_workload_gates_all_containers():
     ]
     cooled = decide_workload(p, inputs, history=WorkloadHistory(last_change=NOW - 5 * M), now=NOW)
     assert [d.why for d in cooled.decisions] == [Why.COOLING_DOWN, Why.INSIDE_DEADBAND]
-    # a container the workload does not have is held NoMetrics, the others go on
+    # a container the workload does not have is held with its own reason (issue 9; it was
+    # NoMetrics before), the others go on
     missing = decide_workload(p, inputs[:1], history=WorkloadHistory(), now=NOW)
-    assert [d.why for d in missing.decisions] == [Why.NEW_TARGET, Why.NO_METRICS]
+    assert [d.why for d in missing.decisions] == [Why.NEW_TARGET, Why.CONTAINER_MISSING]
     assert "log-shipper" in missing.decisions[1].message
 
 

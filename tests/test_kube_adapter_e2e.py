@@ -408,6 +408,23 @@ def test_revert_removes_a_request_that_was_not_set(target: Target, adapter: Kube
     adapter.revert(ns, "Deployment", "web")
     res = container(read_raw(raw, ns), "app")["resources"]
     assert "cpu" not in res.get("requests", {}) and "cpu" not in res.get("limits", {})
+    # issue 9: a revert leaves no empty map behind (memory stays where it was set)
+    assert res.get("requests") != {} and res.get("limits") != {}
+
+
+def test_revert_leaves_no_empty_maps_and_no_ratefit_annotations(target: Target, adapter: KubeAdapter, ns: str,
+                                                                raw: k8s.ApiClient) -> None:
+    dep = deployment(ns, limit=None)
+    container(dep, "app")["resources"] = {}
+    target.create(dep)
+    wl = adapter.read_workload(ns, "Deployment", "web")
+    adapter.patch_cpu(wl, {"app": CpuChange(250)}, annotations={"ratefit.dev/last-change": "2026-12-01T00:00:00Z"})
+    adapter.revert(ns, "Deployment", "web")
+    after = read_raw(raw, ns)
+    res = container(after, "app").get("resources") or {}
+    assert "requests" not in res and "limits" not in res, res
+    annotations = after["metadata"].get("annotations") or {}
+    assert "ratefit.dev/last-change" not in annotations and "ratefit.dev/previous-requests" not in annotations
 
 
 def test_statefulset_read_and_patch(target: Target, adapter: KubeAdapter, ns: str) -> None:

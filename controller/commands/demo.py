@@ -9,16 +9,19 @@ from pathlib import Path
 
 HELP = """\
 Run ratefit end to end on this machine with an INVENTED demo scenario (Kestrel Post,
-a fictional parcel company): write its 24 h request/CPU history, backfill it into
+a fictional parcel company): write its 7-day request/CPU history, backfill it into
 the real Prometheus (if `prometheus` and `promtool` are installed; else replay the
 history file — the output says which), train a demand model for every container,
 start the sizing API (`ratefit serve`) and the sandbox API server (a local stand-in
 for Kubernetes) loaded with the scenario's workloads, the SizingPolicy CRD and the
 example policies, run one reconcile pass in dry-run, then a read-only pass at a
 simulated time past the longest settle period (as if the rates stayed the same),
-print both reviews, and stop everything it started (also on Ctrl-C or an error).
+print both reviews, replay the week pass by pass (what the example policies would
+have done: CPU-hours against today's requests and a fixed p95 request, shortfall,
+rollouts, nodes; summary printed, plots in replay/), and stop everything it started
+(also on Ctrl-C or an error).
 
-Writes into --out: review.md, reports/ (one training report + plot per model),
+Writes into --out: review.md, replay/ (plots and summary), reports/ (one training report + plot per model),
 samples/ (the invented CSVs), kubeconfig, run/ (history, model store, logs).
 The next demo with the same --out deletes run/ only if a demo created it (it holds
 the marker file .ratefit-demo-run); any other run/ is refused with an error, and so is
@@ -36,7 +39,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--keep", action="store_true",
                    help="keep the sandbox, Prometheus and the sizing API running after the review until Ctrl-C")
     p.add_argument("--replay", action="store_true", help="replay the history file even when Prometheus is installed")
-    p.add_argument("--hours", type=float, default=24.0, help="hours of invented history (default %(default)s)")
+    p.add_argument("--hours", type=float, default=168.0, help="hours of invented history (default %(default)s: a week)")
     p.add_argument("--output", "-o", choices=("table", "json", "markdown"), default="table",
                    help="review format on stdout (default %(default)s)")
     p.set_defaults(handler=_run)

@@ -25,6 +25,11 @@ in apply mode (a policy's `mode: apply`, and no --dry-run) a server-side dry run
 then one strategic-merge patch per workload (or in-place pod resizes), within the
 cluster-wide budget of --budget-per-minute changes and --max-rollouts rollouts.
 
+Reads come from a watch-fed cache: SizingPolicies, Deployments, StatefulSets and
+HPAs (and the pods of in-place policies) are listed once, then watched (per
+namespace when --namespace is given); a pass sends no LIST. /readyz answers 503
+until the cache has synced. --once reads with plain LISTs instead, like plan.
+
 Only the holder of the Lease --lease-namespace/--lease-name acts; other replicas
 stand by and keep answering /healthz and /readyz on --metrics-port.
 SIGTERM/SIGINT: finish the workload being patched, abandon the rest of the pass,
@@ -211,6 +216,8 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="act only on policies whose namespace hashes (CRC-32 mod N) to shard I of N; the Lease "
                         "becomes <lease-name>-I-of-N, so each shard elects its own leader")
     p.add_argument("--once", action="store_true", help="run one pass and exit (as leader, when the Lease can be had)")
+    p.add_argument("--cache-resync", default="10m", metavar="DURATION",
+                   help="full relist of the watch-fed cache every DURATION, e.g. 10m (0s: never; default %(default)s)")
     p.add_argument("--log-level", default="INFO", help="log level (default %(default)s)")
     p.add_argument("--retrain-store", metavar="DIR",
                    help="retrain stale models of policies with retrain: Auto into this model store (the one the "
@@ -224,7 +231,6 @@ def register(sub: argparse._SubParsersAction) -> None:
 def _run(args: argparse.Namespace) -> int:
     import random
     import signal
-    import threading
     import time
 
     from ratefit.controller.limits import Budget, ExponentialBackoff, RolloutSlots, TokenBucket
@@ -240,7 +246,17 @@ def _run(args: argparse.Namespace) -> int:
     if interval <= 0:
         raise InputError("--interval must be longer than 0s")
     shard = parse_shard(args.shard)
+    resync = parse_duration(args.cache_resync, field="--cache-resync")
+    if resync < 0:
+        raise InputError("--cache-resync must be 0s (never) or longer")
     conns = connect(args, identity=args.identity)
+    cache = None
+    kube: Any = conns.kube
+    if not args.once:  # one pass needs no cache: it LISTs, like `ratefit plan`
+        from ratefit.controller.kube_cache import CachedKube, KubeCache
+
+        cache = KubeCache.for_adapter(conns.kube, namespaces=args.namespace, resync_s=resync)
+        kube = CachedKube(reader=cache, writer=conns.kube)
     telemetry = Telemetry()
     mono = time.monotonic
     budget = Budget(
@@ -261,7 +277,7 @@ def _run(args: argparse.Namespace) -> int:
         raise InputError("--retrain-stale goes with --retrain-store DIR")
     reconciler = Reconciler(
         usage=conns.usage, retrainer=retrainer, retrain_all=args.retrain_stale,
-        kube=conns.kube, rates=conns.rates, sizing=conns.sizing,
+        kube=kube, rates=conns.rates, sizing=conns.sizing,
         config=ReconcileConfig(dry_run=args.dry_run, write=True, namespaces=tuple(args.namespace),
                                identity=conns.kube.identity, shard=shard),
         budget=budget, backoff=ExponentialBackoff(base=5.0, cap=300.0, rng=random.Random()),
@@ -271,10 +287,17 @@ def _run(args: argparse.Namespace) -> int:
     elector = None if args.no_leader_election else conns.kube.leader_elector(
         namespace=args.lease_namespace, name=lease_name)
     loop = ControllerLoop(
-        run_pass=reconciler.run_pass, elector=elector, interval_s=interval,
+        run_pass=reconciler.run_pass if cache is None else _after_sync(cache, reconciler.run_pass),
+        elector=elector, interval_s=interval,
         retry_period_s=getattr(elector, "retry_period", 2.0), renew_deadline_s=getattr(elector, "renew_deadline", 10.0),
         telemetry=telemetry, max_passes=1 if args.once else None,
     )
+    if cache is not None:
+        cache.on_policy_change = loop.wake  # a policy's spec changed: run a pass now
+        telemetry.watch_cache(cache.stats)
+        # while leading, not ready before the cache has synced (a standby is ready as before)
+        telemetry.set_readiness_gate(lambda: cache.has_synced() or not loop.is_leader,
+                                     "the watch-fed cache has not synced yet")
     health = None
     if args.metrics_port >= 0:
         try:
@@ -284,19 +307,15 @@ def _run(args: argparse.Namespace) -> int:
             raise InputError(f"--metrics-port {args.metrics_port} on {args.metrics_host}: {exc.strerror or exc}; "
                              "pick another port (0: any free one, -1: off)") from exc
         print(f"ratefit run: /metrics /healthz /readyz on {health.url}", file=sys.stderr, flush=True)
-    stop_watch = threading.Event()
 
     def on_signal(signum: int, frame: Any) -> None:
         print(f"ratefit run: {signal.Signals(signum).name}: stopping after the current workload", file=sys.stderr, flush=True)
-        stop_watch.set()
         loop.stop()
 
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
-    watcher = threading.Thread(target=_watch, args=(conns.kube, args.namespace, loop, stop_watch),
-                               name="ratefit-watch", daemon=True)
-    if not args.once:
-        watcher.start()
+    if cache is not None:
+        cache.start()
     mode = "dry-run (forced)" if args.dry_run else "per policy (dry-run or apply)"
     print(f"ratefit run: identity {conns.kube.identity}; rates from {conns.rate_source}; sizing API {args.sizing_api}; "
           f"mode {mode}; interval {args.interval}", file=sys.stderr, flush=True)
@@ -312,7 +331,8 @@ def _run(args: argparse.Namespace) -> int:
     finally:
         if retrainer is not None:
             retrainer.stop()
-        stop_watch.set()
+        if cache is not None:
+            cache.stop()
         if health is not None:
             health.stop()
         conns.close()
@@ -333,31 +353,20 @@ def parse_shard(text: str | None) -> tuple[int, int] | None:
     return index, count
 
 
-def _watch(kube: Any, namespaces: list[str], loop: Any, stop: Any) -> None:
-    """Wake the loop when a policy's spec changes (not for our own status writes:
-    those leave ``generation`` as it is)."""
-    log = logging.getLogger("ratefit.controller.watch")
-    seen: dict[tuple[str, str], int] = {}
-    ns = namespaces[0] if len(namespaces) == 1 else None
-    while not stop.is_set():
-        try:
-            for ev in kube.watch_policies(namespace=ns, timeout_seconds=20, stop=stop):
-                if stop.is_set():
-                    return
-                if ev.type == "RELISTED":
-                    fresh = {(p.namespace, p.name): p.generation for p in ev.listed.items}
-                    if seen and fresh != seen:
-                        loop.wake()
-                    seen = fresh
-                    continue
-                p = ev.policy
-                k = (p.namespace, p.name)
-                if ev.type == "DELETED":
-                    seen.pop(k, None)
-                    loop.wake()
-                elif seen.get(k) != p.generation:
-                    seen[k] = p.generation
-                    loop.wake()
-        except Exception as exc:  # the watch is only a wake-up; the interval still runs passes
-            log.warning("policy watch failed (%s); retrying in 5s", exc)
-            stop.wait(5.0)
+def _after_sync(cache: Any, run_pass: Any) -> Any:
+    """``run_pass`` that first waits for the cache's first sync. Every half second it
+    checks for a stop and keeps the Lease (``may_act`` renews it when due); stopped or
+    no longer leader before the sync, the pass fails with CacheNotSynced and the loop
+    carries on (ends, or stands by)."""
+
+    def run(control: Any) -> Any:
+        from ratefit.controller.kube_cache import CacheNotSynced
+
+        while not cache.wait_synced(0.5):
+            if control is not None and control.should_stop():
+                raise CacheNotSynced("stopped before the watch-fed cache had synced")
+            if control is not None and not control.may_act():
+                raise CacheNotSynced("lost the leader Lease while waiting for the watch-fed cache to sync")
+        return run_pass(control)
+
+    return run

@@ -4,6 +4,8 @@ Three sources: one CSV (``--samples FILE --key KEY``), a directory with one CSV 
 key (``--samples-dir DIR``, files named ``namespace__workload__container.csv``),
 or Prometheus range queries (``--prometheus URL --rate-query Q --cpu-query Q``).
 The work is ``ratefit.models.train``; this module parses flags and prints.
+``--from-policies`` (every model the SizingPolicies name) is handled by
+``controller/commands/train_from_policies``.
 """
 
 from __future__ import annotations
@@ -43,6 +45,7 @@ Examples:
       --rate-query 'sum by (pod) (rate(http_requests_total{pod=~"web-.*"}[2m]))' \\
       --cpu-query 'sum by (pod) (rate(container_cpu_usage_seconds_total{container="app"}[2m]))' \\
       --window 7d --step 30s
+  ratefit train --from-policies --prometheus http://127.0.0.1:9090 --store ./models
 """
 
 
@@ -59,7 +62,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     prom.add_argument("--cpu-query", metavar="PROMQL", help="per-pod CPU usage (cores), one series per pod")
     prom.add_argument("--throttle-query", metavar="PROMQL",
                       help="per-pod share of throttled CFS periods (0..1); optional")
-    prom.add_argument("--window", default="7d", help="how far back to read (Prometheus duration; default 7d)")
+    prom.add_argument("--window", "--lookback", dest="window", default="7d",
+                      help="history to learn from: how far back to read (Prometheus duration; default 7d)")
     prom.add_argument("--step", default="30s", help="query resolution (Prometheus duration; default 30s)")
     prom.add_argument("--end", metavar="TIME", help="end of the window: unix seconds or RFC 3339 (default now)")
     prom.add_argument("--timeout", type=float, default=30.0, help="HTTP timeout per query in seconds (default 30)")
@@ -82,7 +86,10 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="the container image the samples came from, recorded in the model; the controller "
                         "marks the model stale when the container runs another image")
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
-    p.set_defaults(handler=_run)
+    from ratefit.controller.commands.train_from_policies import add_from_policies_flags, from_policies_or
+
+    add_from_policies_flags(p)  # ratefit train --from-policies
+    p.set_defaults(handler=from_policies_or(_run))
 
 
 def _progress(args: argparse.Namespace):

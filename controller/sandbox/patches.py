@@ -63,23 +63,10 @@ def _index(container: list, token: str, *, for_add: bool) -> int:
     return idx
 
 
-def _parent(doc: Any, tokens: list[str], path: str) -> Any:
+def _walk(doc: Any, tokens: list[str], path: str) -> Any:
+    """The node the pointer tokens lead to (the one JSON-pointer walk of this module)."""
     node = doc
-    for tok in tokens[:-1]:
-        if isinstance(node, dict):
-            if tok not in node:
-                raise PatchError(f"doc is missing path: {path!r}")
-            node = node[tok]
-        elif isinstance(node, list):
-            node = node[_index(node, tok, for_add=False)]
-        else:
-            raise PatchError(f"doc is missing path: {path!r}")
-    return node
-
-
-def _get(doc: Any, path: str) -> Any:
-    node = doc
-    for tok in _pointer(path):
+    for tok in tokens:
         if isinstance(node, dict) and tok in node:
             node = node[tok]
         elif isinstance(node, list):
@@ -87,6 +74,14 @@ def _get(doc: Any, path: str) -> Any:
         else:
             raise PatchError(f"doc is missing path: {path!r}")
     return node
+
+
+def _parent(doc: Any, tokens: list[str], path: str) -> Any:
+    return _walk(doc, tokens[:-1], path)
+
+
+def _get(doc: Any, path: str) -> Any:
+    return _walk(doc, _pointer(path), path)
 
 
 def _add(doc: Any, path: str, value: Any) -> Any:

@@ -106,6 +106,7 @@ BUILTINS: tuple[ResourceType, ...] = (
     _r("", "v1", "persistentvolumeclaims", "PersistentVolumeClaim", short_names=("pvc",),
        subresources=("status",)),
     _r("batch", "v1", "jobs", "Job", subresources=("status",), categories=("all",)),
+    _r("batch", "v1", "cronjobs", "CronJob", short_names=("cj",), subresources=("status",), categories=("all",)),
     _r("policy", "v1", "poddisruptionbudgets", "PodDisruptionBudget", short_names=("pdb",),
        subresources=("status",)),
     _r("rbac.authorization.k8s.io", "v1", "roles", "Role"),

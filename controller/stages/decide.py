@@ -19,12 +19,10 @@ from ratefit.controller.decide import ContainerInput, WorkloadDecision, decide_w
 from ratefit.controller.limits import Budget, BudgetView
 from ratefit.controller.policy import Mode, WorkloadHistory, history_from_status, parse_time
 from ratefit.controller.stages.observe import Observed, Snapshot
-from ratefit.controller.workload import Workload
+from ratefit.controller.workload import LAST_CHANGE_ANNOTATION, Workload
 
 __all__ = ["LAST_CHANGE_ANNOTATION", "Decider"]
 
-#: Annotation written in the same patch as a change: when ratefit changed the workload.
-LAST_CHANGE_ANNOTATION = "ratefit.dev/last-change"
 
 
 class Decider:

@@ -107,10 +107,27 @@ def sizing_of(answer: object) -> Sizing | None:
     get = answer.get if isinstance(answer, Mapping) else (lambda k, d=None: getattr(answer, k, d))
     if get("error"):
         return None
-    cpu_m, upper_m = get("cpu_m"), get("upper_m")
-    if cpu_m is None or upper_m is None:
+    demand_m, bound_m = get("demand_m"), get("demand_bound_m")
+    if demand_m is None or bound_m is None:
         return None
-    return Sizing(demand=float(cpu_m) / 1000.0, upper=float(upper_m) / 1000.0, extrapolated=bool(get("extrapolated", False)))
+    return Sizing(demand=float(demand_m) / 1000.0, upper=float(bound_m) / 1000.0,
+                  extrapolated=bool(get("extrapolated", False)))
+
+
+#: the sizing API's per-item error reasons (models/api_routes) → the held reason
+_SIZING_REASONS = {"unknown_model": "NoModel", "invalid_model": "InvalidModelKey",
+                   "out_of_range": "DemandOutOfRange", "invalid_rate": "NoMetrics", "invalid_item": "NoModel"}
+
+
+def sizing_problem(answer: object) -> tuple[str, str] | None:
+    """The held reason and message of one item the sizing API answered with an error."""
+    if answer is None or isinstance(answer, Sizing):
+        return None
+    get = answer.get if isinstance(answer, Mapping) else (lambda k, d=None: getattr(answer, k, d))
+    error = get("error")
+    if not error:
+        return None
+    return _SIZING_REASONS.get(str(get("reason") or ""), "NoModel"), str(error)
 
 
 class Observer:
@@ -137,6 +154,8 @@ class Observer:
     def observe(self, now: datetime) -> Snapshot:
         """One snapshot. Raises KubeError when the policies cannot be listed."""
         errors: list[str] = []
+        #: "namespace/policy/container" → (reason, message) of an input that failed for it alone
+        problems: dict[str, tuple[str, str]] = {}
         t_g0 = time.perf_counter()
         objs = list(self.reader.list_policies(list(self.namespaces) or None).items)
         if self.shard is not None:
@@ -158,7 +177,7 @@ class Observer:
             for c in p.containers:
                 requests.append(RateRequest(
                     namespace=p.namespace, policy=p.name, workload=p.workload_name, container=c.name,
-                    query=c.rate_query, rate_window=window_texts[p.rate_window_s], percentile=p.rate_percentile,
+                    workload_kind=p.workload_kind, query=c.rate_query, rate_window=window_texts[p.rate_window_s], percentile=p.rate_percentile,
                 ))
                 models[(p.namespace, p.name, c.name)] = c.model
         rate_box: dict[str, object] = {}
@@ -166,7 +185,7 @@ class Observer:
         def ask_rates() -> None:
             t = time.perf_counter()
             try:
-                rate_box["rates"] = self._query_rates(requests, errors)
+                rate_box["rates"] = self._query_rates(requests, errors, problems)
             except BaseException as exc:  # handed to the pass's thread below
                 rate_box["error"] = exc
             rate_box["seconds"] = time.perf_counter() - t
@@ -188,7 +207,7 @@ class Observer:
             if (p.namespace, p.workload_kind, p.workload_name) in workloads:
                 found.add((p.namespace, p.name))
         asked = [r for r in requests if (r.namespace, r.policy) in found]
-        sizing = self._query_sizing(asked, models, rates, errors)
+        sizing = self._query_sizing(asked, models, rates, errors, problems)
         t_sizing = time.perf_counter()
         staleness: dict[str, Staleness] = {}
         if self.usage is not None:
@@ -201,7 +220,7 @@ class Observer:
             if isinstance(got, PolicyInvalid):
                 entries.append(Observed(obj=o, invalid=got))
                 continue
-            entries.append(self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors, staleness))
+            entries.append(self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors, problems, staleness))
         split = {"gather_kube": t_lists - t_g0, "gather_rates": float(rate_box.get("seconds", 0.0)),  # type: ignore[arg-type]
                  "gather_rates_wait": t_rates - t_lists, "gather_sizing": t_sizing - t_rates}
         if self.usage is not None:
@@ -270,8 +289,10 @@ class Observer:
         self, o: PolicyObject, p: Policy, workloads: Mapping[tuple[str, str, str], Workload],
         hpa_cpu: set[tuple[str, str, str]], failed: Mapping[tuple[str, str], str],
         rates: Mapping[str, float | None], sizing: Mapping[str, Sizing | None], errors: list[str],
+        problems: Mapping[str, tuple[str, str]] | None = None,
         staleness: Mapping[str, Staleness] | None = None,
     ) -> Observed:
+        problems = problems or {}
         # a failed LIST (workloads of this kind, or HPAs) means "unknown", never "not found"
         why_unknown = next((failed[s] for s in ((p.namespace, p.workload_kind), ("*", p.workload_kind),
                                                 (p.namespace, "HPA"), ("*", "HPA")) if s in failed), None)
@@ -295,6 +316,8 @@ class Observer:
                 name=c.name, request_m=current_req, limit_m=current_lim,
                 rate=rates.get(f"{p.key}/{c.name}"), sizing=sizing.get(f"{p.key}/{c.name}"),
                 stale=(staleness or {}).get(f"{p.key}/{c.name}"),
+                rate_problem=problems.get(f"rate:{p.key}/{c.name}"),
+                sizing_problem=problems.get(f"sizing:{p.key}/{c.name}"),
             ))
         return Observed(obj=o, policy=p, workload=w, inputs=tuple(inputs), pods=pods,
                         hpa_on_cpu=(p.namespace, p.workload_kind, p.workload_name) in hpa_cpu)
@@ -323,7 +346,9 @@ class Observer:
                 out[c.name] = max(sorted(seen, key=lambda v: (v[0] or 0, v[1] or 0)), key=lambda v: seen[v])
         return pods, out
 
-    def _query_rates(self, requests: Sequence[RateRequest], errors: list[str]) -> dict[str, float | None]:
+    def _query_rates(
+        self, requests: Sequence[RateRequest], errors: list[str], problems: dict[str, tuple[str, str]] | None = None,
+    ) -> dict[str, float | None]:
         """key ``namespace/policy/container`` → the rate (req/s per pod), None: NoMetrics."""
         if not requests:
             return {}
@@ -343,6 +368,8 @@ class Observer:
             out[r.key] = float(v) if ok else None  # type: ignore[arg-type]
             if not ok:
                 missing += 1
+                if res is not None and problems is not None:
+                    problems[f"rate:{r.key}"] = (res.why or "NoMetrics", res.status_message())
                 first_message = first_message or (res.message if res is not None else "no answer")
         if missing:
             self.telemetry.rate_query_errors.labels(kind="NoMetrics").inc(missing)
@@ -352,7 +379,7 @@ class Observer:
 
     def _query_sizing(
         self, requests: Sequence[RateRequest], models: Mapping[tuple[str, str, str], str],
-        rates: Mapping[str, float | None], errors: list[str],
+        rates: Mapping[str, float | None], errors: list[str], problems: dict[str, tuple[str, str]] | None = None,
     ) -> dict[str, Sizing | None]:
         asked = [r for r in requests if rates.get(r.key) is not None]
         if not asked:
@@ -370,6 +397,11 @@ class Observer:
             self.telemetry.api_errors.labels(kind="ShortAnswer").inc()
             return {}
         out = {r.key: sizing_of(a) for r, a in zip(asked, answers)}
+        if problems is not None:
+            for r, a in zip(asked, answers):
+                problem = sizing_problem(a)
+                if problem is not None:
+                    problems[f"sizing:{r.key}"] = problem
         unknown = sum(1 for v in out.values() if v is None)
         if unknown:
             self.telemetry.api_errors.labels(kind="NoModel").inc(unknown)

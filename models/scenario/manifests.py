@@ -17,7 +17,7 @@ import yaml
 
 from ratefit.models.scenario.services import HPA_TARGET_UTILISATION, ORGANISATION, SCENARIO, Service
 
-__all__ = ["manifest_objects", "write_manifests", "SCENARIO_LABEL", "SCENARIO_ANNOTATION"]
+__all__ = ["manifest_objects", "write_manifests", "default_policies", "SCENARIO_LABEL", "SCENARIO_ANNOTATION"]
 
 SCENARIO_LABEL = {"app.kubernetes.io/part-of": "kestrel-post"}
 SCENARIO_ANNOTATION = {"ratefit.dev/scenario": f"INVENTED demo data: {ORGANISATION}"}
@@ -132,4 +132,30 @@ def write_manifests(directory: str | os.PathLike[str]) -> dict[str, Path]:
         p = d / name
         p.write_text(header + yaml.safe_dump_all(objs, sort_keys=False, explicit_start=True))
         out[name] = p
+    return out
+
+
+#: how the scenario's policies resize each workload (in-place for the one that follows its cycle)
+IN_PLACE = frozenset({"label-printer", "address-lookup"})
+
+
+def default_policies(*, mode: str = "apply") -> list[dict[str, Any]]:
+    """One SizingPolicy per scenario workload with every sizing field left at its default:
+    only the workload, the mode, the method (in-place for :data:`IN_PLACE`, else rollout)
+    and each container's model. The replay's acceptance test runs these."""
+    out = []
+    for svc in SCENARIO:
+        out.append({
+            "apiVersion": "ratefit.dev/v1alpha1",
+            "kind": "SizingPolicy",
+            "metadata": {"name": svc.workload, "namespace": svc.namespace, "labels": _labels(svc),
+                         "annotations": dict(SCENARIO_ANNOTATION)},
+            "spec": {
+                "workload": {"kind": svc.kind, "name": svc.workload},
+                "mode": mode,
+                "method": "in-place" if svc.workload in IN_PLACE else "rollout",
+                "containers": [{"name": c.name, "model": f"{svc.namespace}/{svc.workload}/{c.name}"}
+                               for c in svc.containers],
+            },
+        })
     return out

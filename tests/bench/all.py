@@ -27,8 +27,10 @@ BENCHES: dict[str, tuple[str, list[str], list[str]]] = {
     "sandbox": ("tests.bench.bench_sandbox", [], ["--deployments", "200", "--ops", "100"]),
     "kube": ("tests.bench.bench_kube", [], ["--workloads", "300", "--patches", "20"]),
     "reconcile": ("tests.bench.bench_reconcile", [], ["--workloads", "1000"]),
+    "cache": ("tests.bench.bench_cache", [], ["--workloads", "1000", "--no-writes"]),
     "health": ("tests.bench.bench_health", [], ["--idle", "300", "--header-mib", "10"]),
     "profile": ("tests.bench.bench_profile", [], ["--duration", "3", "--rates", "100,300"]),
+    "replay": ("tests.bench.bench_replay", ["--scaling"], ["--workloads", "100", "--days", "2"]),
 }
 
 

@@ -34,7 +34,8 @@ from pathlib import Path
 
 import yaml
 
-from ratefit.controller.kube import KubeAdapter, _workload
+from ratefit.controller.kube import KubeAdapter, workload_from_json
+from ratefit.controller.local_servers import stop_process
 from ratefit.controller.workload import CpuChange, WorkloadKind
 from tests.bench.machine import cpu_model
 
@@ -86,7 +87,7 @@ def main() -> int:
         proc = subprocess.Popen(
             [sys.executable, "-m", "ratefit.controller.cli", "sandbox", "--kubeconfig", str(kc),
              "--load", str(ROOT / "manifests" / "crd"), str(load)],
-            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
         try:
             url = proc.stdout.readline().strip() if proc.stdout else ""
             if not url.startswith("http://127.0.0.1:"):
@@ -106,7 +107,7 @@ def main() -> int:
             raw = kube._call("bench raw list", kube._apps.list_deployment_for_all_namespaces)
             items = raw["items"]
             reps = 5
-            _, _, cpu = _timed(lambda: [_workload(o, WorkloadKind.DEPLOYMENT) for _ in range(reps) for o in items])
+            _, _, cpu = _timed(lambda: [workload_from_json(o, WorkloadKind.DEPLOYMENT) for _ in range(reps) for o in items])
             print(f"JSON → Workload alone: {cpu / (reps * len(items)) * 1e6:.1f} µs/workload "
                   f"({cpu / (reps * len(items) * 2) * 1e6:.1f} µs/container)")
 
@@ -128,12 +129,7 @@ def main() -> int:
             print(f"list_pods x{len(pl)}: p50 {statistics.median(pl) * 1e3:.1f} ms")
             kube.close()
         finally:
-            proc.terminate()
-            try:
-                proc.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                proc.kill()
-                proc.wait(timeout=5)
+            stop_process(proc)
             for s in (proc.stdout, proc.stderr):
                 if s:
                     s.close()
