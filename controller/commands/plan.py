@@ -38,7 +38,7 @@ def _run(args: argparse.Namespace) -> int:
 
     conns = connect(args)
     try:
-        rec = Reconciler(kube=conns.kube, rates=conns.rates, sizing=conns.sizing,
+        rec = Reconciler(kube=conns.kube, rates=conns.rates, sizing=conns.sizing, usage=conns.usage,
                          config=ReconcileConfig(dry_run=True, write=False, namespaces=tuple(args.namespace)))
         result = rec.run_pass()
     finally:
