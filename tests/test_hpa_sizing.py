@@ -201,14 +201,14 @@ def test_replica_arithmetic_matches_the_documented_algorithm_end_to_end(tmp_path
     for i, (n, rate, t, _, _) in enumerate(HPA_ALGORITHM_TABLE):
         name = f"row{i}"
         objects += setup(name, replicas=n, request="100m", metrics=[metric("Pods", "http_requests", avg(f"{t:g}"))],
-                         mode="dry-run")
+                         mode="DryRun")
         rates[("shop", name)] = [rate] * n
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates=rates) as w:
         rows = rows_by_workload(w.reconciler().run_pass())
     for i, (n, rate, t, want, working) in enumerate(HPA_ALGORITHM_TABLE):
         row = rows[f"row{i}"]
         sizing_rate = max(rate, t * 1.1)
-        assert row.verdict == "proposed" and row.proposed_m == target_at(sizing_rate), working
+        assert row.verdict == "Proposed" and row.proposed_m == target_at(sizing_rate), working
         # the request covers the upper band at the rate the autoscaler lets a pod reach
         assert row.proposed_m / 1000 >= demand(sizing_rate) + BAND, working
         total = rate * n
@@ -220,7 +220,7 @@ def test_hpa_tolerance_from_behavior_moves_the_sizing_rate(tmp_path: Path, share
     """Kubernetes 1.33+ ``behavior.scaleUp.tolerance`` (blog "Kubernetes v1.33:
     HorizontalPodAutoscaler Configurable Tolerance"): pods reach T x (1 + tolerance)."""
     objects = setup("tol", replicas=2, request="100m", metrics=[metric("Pods", "http_requests", avg("100"))],
-                    hpa_kw={"behavior": {"scaleUp": {"tolerance": "0.3"}}}, mode="dry-run")
+                    hpa_kw={"behavior": {"scaleUp": {"tolerance": "0.3"}}}, mode="DryRun")
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "tol"): [20.0, 20.0]}) as w:
         row = rows_by_workload(w.reconciler().run_pass())["tol"]
     assert row.proposed_m == target_at(130.0)
@@ -254,7 +254,7 @@ def test_capacity_from_the_model_caps_the_per_pod_rate(tmp_path: Path) -> None:
     cpu_util = [metric("Resource", "cpu", {"type": "Utilization", "averageUtilization": 70})]
     objects = (setup("capcpu", replicas=4, request="250m", metrics=cpu_util, model="shop/cap/app")
                + setup("caprate", replicas=4, request="100m", metrics=[metric("Pods", "http_requests", avg("100"))],
-                       model="shop/cap/app", mode="dry-run"))
+                       model="shop/cap/app", mode="DryRun"))
     with serve_process(tmp_path / "store", workdir=tmp_path) as api:
         rates = {("shop", "capcpu"): [46.0] * 4, ("shop", "caprate"): [50.0] * 4}
         with world(tmp_path, objects=objects, api_url=api.base_url, rates=rates) as w:
@@ -320,9 +320,9 @@ def test_pure_decision_proposes_the_coupled_request_in_dry_run() -> None:
 
     grid = curve_grid(0.0, 200.0)
     facts = ModelFacts(rate_lo=0.0, rate_hi=200.0, rates=grid, demand=tuple(demand(r) for r in grid))
-    p = make_policy(mode="dry-run", allowHorizontalConflict=True, stepLimit={"up": 20, "down": 0.5})
+    p = make_policy(mode="DryRun", allowHorizontalConflict=True, stepLimit={"maxIncreasePercent": 1900, "maxDecreasePercent": 50})
     d = _decide(p, 44.0, view=_view(cpu=True), facts=facts, hpa_on_cpu=True)
     n, req_m, _ = brute_force(total=176.0, u=0.7, hi=200.0)
-    assert d.verdict.value == "proposed" and d.proposed_m == req_m == 1080 and f"{n} replicas" in d.message
+    assert d.verdict.value == "Proposed" and d.proposed_m == req_m == 1080 and f"{n} replicas" in d.message
     # today's 100m settles at (0.07 - 0.05) / 0.004 = 5 req/s per pod: ceil(176 / 5) = 36 pods > maxReplicas 20
     assert "today 100m has no settling point with pods within [0, 200] req/s, at most 20 replicas" in d.message

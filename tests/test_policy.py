@@ -68,7 +68,7 @@ def test_defaults():
     assert p.mode is Mode.DRY_RUN and p.resize_by is ResizeBy.ROLLOUT and p.cpu_limit is CpuLimit.KEEP_RATIO
     assert (p.mode.value, p.resize_by.value, p.cpu_limit.value) == ("DryRun", "Rollout", "KeepRatio")
     assert (p.headroom, p.deadband) == (0.15, 0.10)
-    # method rollout: sized for the daily peak (rateWindow 1d; issue 12 changed it from 1h)
+    # resizeBy Rollout: sized for the daily peak (rateWindow 1d; issue 12 changed it from 1h)
     assert (p.cooldown_s, p.settle_s, p.rate_window_s) == (1800.0, 7200.0, 86400.0)
     in_place = parse_policy({**MINIMAL, "spec": {**MINIMAL["spec"], "resizeBy": "InPlace"}})
     assert (in_place.cooldown_s, in_place.settle_s, in_place.rate_window_s) == (900.0, 1800.0, 1800.0)
