@@ -220,8 +220,10 @@ def simulate(
     decider = Decider(budget=bud, monotonic=lambda: 0.0, dry_run=False, write=True)
     observed = [Observed(obj=_policy_object(p, {}), policy=p, hpa_on_cpu=t.hpa_on_cpu) for t, p in zip(order, policies)]
     applies = [decider.applies(o) for o in observed]
-    last_in: list[list[ContainerInput] | None] = [None for _ in order]  # inputs of a settled last pass
+    #: inputs' parts of a settled last pass (None: the last pass was not settled)
+    last_key: list[list | None] = [None for _ in order]
     last_given: list[WorkloadHistory | None] = [None for _ in order]
+    given_hist = [carried(h) for h in history]  # the history as the next pass reads it
     track_rows = [[_inputs(tracks[(p.key, c.name)]) for c in p.containers] for p in policies]
     for t, p in zip(order, policies):
         for c in p.containers:
@@ -234,11 +236,22 @@ def simulate(
         now = _utc(now_s)
         kept: list[WorkloadDecision] = []
         for w, p in enumerate(policies):
+            vals = values[w]
+            if shortcut:
+                # what the inputs are built from: (request, limit) and (rate, sizing) per container
+                key = [(vals.get(c.name), track[i]) for c, track in zip(p.containers, track_rows[w])]
+                given = given_hist[w]
+                if i not in keep_set and key == last_key[w] and given is last_given[w]:
+                    # provably the same decision as the last pass (see the module doc): skip it,
+                    # reading the budget as the decision would
+                    if applies[w]:
+                        bud.view(now_s)
+                    continue
             inputs = []
             for c, track in zip(p.containers, track_rows[w]):
-                if c.name not in values[w]:
+                if c.name not in vals:
                     continue  # not in the workload: decide holds it NoMetrics naming the container
-                req, lim = values[w][c.name]
+                req, lim = vals[c.name]
                 rate, sizing = track[i]
                 inputs.append(ContainerInput(name=c.name, request_m=req, limit_m=lim, rate=rate, sizing=sizing))
             if not shortcut:
@@ -249,18 +262,13 @@ def simulate(
                 wd = decider.decide_one(obs, None, obs.inputs, now, now_s)
                 status[w] = history_to_status(wd.history)
             else:
-                given = carried(history[w])
-                if i not in keep_set and last_in[w] is not None and inputs == last_in[w] and given is last_given[w]:
-                    # provably the same decision as the last pass (see the module doc): skip it,
-                    # reading the budget as the decision would
-                    if applies[w]:
-                        bud.view(now_s)
-                    continue
                 # the live loop's decide stage with the history given directly (no status text)
                 wd = decider.decide_one(observed[w], None, inputs, now, now_s, history=given)
                 settled = _settled(wd, given)
-                last_in[w] = inputs if settled else None
+                last_key[w] = key if settled else None
                 last_given[w] = given
+                if not settled:
+                    given_hist[w] = carried(wd.history)
             history_before = history[w]
             history[w] = given if shortcut and settled else wd.history
             if i in keep_set:
