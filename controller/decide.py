@@ -15,35 +15,44 @@ The steps, in order (the first that stops a change names the ``why``):
    The API extrapolated beyond the trained range → held **Extrapolated**, unless
    the policy sets ``allowExtrapolation: true`` (then it goes on, flagged
    ``extrapolated`` in the proposal).
-2. target = upper × (1 + headroom), clamped to [floor, ceiling], rounded up to a
+2. target = demand bound (upper) × (1 + headroomPercent/100), clamped to [floor, ceiling], rounded up to a
    multiple of 5m (a ceiling that is not a multiple of 5 still wins). With
-   ``limits: keep`` the target never exceeds the kept limit.
+   ``cpuLimit: Keep`` the target never exceeds the kept limit.
 3. Deadband: held **InsideDeadband** unless |target − current| > deadband × current
    and ≥ 10m. If the target sits on a bound the why is **AtFloor**, **AtCeiling**
    or **AtLimit** instead (the model wants more/less than the policy allows).
 4. Increases go at once. Decreases wait until the target has stayed below the
-   current request for ``settle`` (status ``settling[].belowSince``): held
+   current request for ``settle`` (status ``containers[].belowSinceTime``): held
    **Settling** meanwhile. A decrease then goes to the *highest* target seen while
-   settling (``settling[].peak``), never to one low reading. If that highest target is
+   settling (``containers[].peakTarget``), never to one low reading. If that highest target is
    still inside the deadband, the settle window starts afresh at this pass (held
    InsideDeadband), so a slowly falling load is followed down one settle period at a time.
-5. Step limit: at most ×up, at least ×down per change. A cut-short change is still
-   a change: verdict changed (proposed in dry-run), why **StepLimited**. A
+5. Step limit: at most ×up, at least ×down per change (up = 1 + maxIncreasePercent/100,
+   down = 1 − maxDecreasePercent/100). A cut-short change is still
+   a change: verdict Changed (Proposed in DryRun), why **StepLimited**. A
    step-limited decrease keeps its settling record, so the next step waits only
    for the cooldown.
 6. Workload gates (one patch per workload): a CPU-utilisation horizontal
    autoscaler → held **HorizontalConflict** unless ``allowHorizontalConflict``;
-   ``method: in-place`` where the change would need removing a limit, adding a
+   ``resizeBy: InPlace`` where the change would need removing a limit, adding a
    first request, or would change the QoS class → held **InPlaceUnsupported**;
-   cooldown since ``status.lastChange`` → held **CoolingDown** (increases too: the
+   cooldown since ``status.lastChangeTime`` → held **CoolingDown** (increases too: the
    cooldown bounds rollouts); in apply mode the global budget (changes per minute,
    concurrent rollouts) → held **BudgetSpent**. Dry-run policies never draw from
    nor wait for the budget.
-7. Limits: ``keep-ratio`` scales the limit by the request's factor (rounded up to
-   1m, never below the request); ``keep`` leaves it; ``drop`` removes it, together
+   With the workload's autoscaler (``autoscaler=``, ``controller/hpa_sizing``): on a
+   per-pod request rate the sizing answer was asked at the rate the autoscaler lets a
+   pod reach (observe stage) and the message says "sized for the autoscaler's target
+   T req/s per pod" — no conflict; on CPU utilisation the HorizontalConflict message
+   carries the coupled answer (request, replicas, reserved CPU), and with
+   ``allowHorizontalConflict`` that request is the target (no headroom: the
+   autoscaler's utilisation target is the slack). Every decision reports reserved
+   cores per 100 req/s now and at the suggested size.
+7. Limits (``cpuLimit``): ``KeepRatio`` scales the limit by the request's factor (rounded up to
+   1m, never below the request); ``Keep`` leaves it; ``Drop`` removes it, together
    with the next request change (a limit alone never starts a rollout).
-8. Verdict: **changed** (apply mode), **proposed** (dry-run, where apply would say
-   changed), **held**. A change that reaches its full target says **NewTarget**
+8. Verdict: **Changed** (Apply mode), **Proposed** (DryRun, where Apply would say
+   Changed), **Held**. A change that reaches its full target says **NewTarget**
    (or the bound it sits on: AtFloor/AtCeiling/AtLimit).
 
 **Rejected** is set by reconcile through :meth:`WorkloadDecision.rejected` when the
@@ -63,12 +72,13 @@ from datetime import datetime
 from enum import StrEnum
 from typing import Any
 
+from ratefit.controller.hpa_sizing import AutoscalerHint, AutoscalerView, ModelFacts, autoscaler_hint, cores_per_100
 from ratefit.controller.limits import BudgetView, Cooldown, round_up, step_limit
 from ratefit.controller.policy import (
     ContainerHistory,
+    ResizeBy,
     ContainerRule,
-    LimitsMode,
-    Method,
+    CpuLimit,
     Mode,
     Policy,
     WorkloadHistory,
@@ -83,6 +93,7 @@ def _mc(m: int) -> str:
 __all__ = [
     "Verdict",
     "Why",
+    "INPUT_REASONS",
     "Sizing",
     "ContainerInput",
     "Decision",
@@ -92,6 +103,7 @@ __all__ = [
     "limit_for",
     "decide_container",
     "decide_workload",
+    "held_by_conflict",
     "MIN_CHANGE_M",
     "ROUND_TO_M",
 ]
@@ -103,9 +115,9 @@ ROUND_TO_M = 5
 
 
 class Verdict(StrEnum):
-    CHANGED = "changed"  # apply mode: reconcile patches the proposed values
-    PROPOSED = "proposed"  # dry-run: apply mode would have changed it
-    HELD = "held"  # nothing changes; ``why`` says what stopped it
+    CHANGED = "Changed"  # apply mode: reconcile patches the proposed values
+    PROPOSED = "Proposed"  # dry-run: apply mode would have changed it
+    HELD = "Held"  # nothing changes; ``why`` (status ``reason``) says what stopped it
 
 
 class Why(StrEnum):
@@ -115,7 +127,7 @@ class Why(StrEnum):
     # a bound: with a change it went to the bound; held, it sits there already
     AT_FLOOR = "AtFloor"  # the target was raised to spec floor
     AT_CEILING = "AtCeiling"  # the target was cut to spec ceiling
-    AT_LIMIT = "AtLimit"  # limits: keep and the target was cut to the CPU limit
+    AT_LIMIT = "AtLimit"  # cpuLimit: Keep and the target was cut to the CPU limit
     # reasons nothing changes (verdict held)
     INSIDE_DEADBAND = "InsideDeadband"  # |target − current| too small to bother
     SETTLING = "Settling"  # a decrease waits until the target stayed low for settle
@@ -135,6 +147,18 @@ class Why(StrEnum):
     INVALID_MODEL_KEY = "InvalidModelKey"  # the sizing API refused the model key of this item
     DEMAND_OUT_OF_RANGE = "DemandOutOfRange"  # the demand at this rate is beyond any physical bound
     CONTAINER_MISSING = "ContainerMissing"  # spec.containers names a container the workload lacks
+    # set by the stages around the decision, never by decide_container
+    POLICY_CONFLICT = "PolicyConflict"  # an older SizingPolicy names the same workload
+    POLICY_INVALID = "PolicyInvalid"  # the spec cannot be acted on (status condition says why)
+    WORKLOAD_NOT_FOUND = "WorkloadNotFound"  # the workload the policy names does not exist
+
+
+#: reasons that mean an input was missing or unusable (the InputsAvailable condition is
+#: False for them; Ready is False when every container has one)
+INPUT_REASONS = frozenset({
+    Why.NO_METRICS, Why.NO_MODEL, Why.API_UNAVAILABLE, Why.QUERY_REFUSED, Why.QUERY_FAILED, Why.TOO_MANY_SERIES,
+    Why.INVALID_MODEL_KEY, Why.DEMAND_OUT_OF_RANGE, Why.CONTAINER_MISSING,
+})
 
 
 @dataclass(frozen=True)
@@ -161,6 +185,8 @@ class ContainerInput:
     #: why ``sizing`` is None for this item alone: (reason, message) — NoModel,
     #: InvalidModelKey, DemandOutOfRange
     sizing_problem: tuple[str, str] | None = None
+    #: the model's trained range, capacity and curve points (asked only under an autoscaler)
+    facts: ModelFacts | None = None
 
 
 @dataclass(frozen=True)
@@ -189,6 +215,9 @@ class Decision:
     settle: ContainerHistory = ContainerHistory()
     #: settling record to persist if the change is not applied after all (Rejected)
     settle_if_held: ContainerHistory = field(default=ContainerHistory(), repr=False)
+    #: reserved cores per 100 req/s of the workload's load: now, and at the suggested size
+    cores_per_100_now: float | None = field(default=None, compare=False)
+    cores_per_100_suggested: float | None = field(default=None, compare=False)
 
     @property
     def moves(self) -> bool:
@@ -196,8 +225,10 @@ class Decision:
         return self.proposed_m != self.current_m or self.proposed_limit_m != self.limit_m
 
     def to_status(self) -> dict[str, Any]:
-        """This decision as a ``status.proposals[]`` entry (quantities as strings;
-        fields without a value are left out — the CRD schema has no nullable fields)."""
+        """This decision as a ``status.containers[]`` row (quantities as strings; fields
+        without a value are left out — the CRD schema has no nullable fields).
+        ``newRequest``/``newLimit`` only when the verdict is Changed or Proposed: a held
+        row has no new value."""
 
         def q(m: int | None) -> str | None:
             return None if m is None else format_cpu(m)
@@ -205,19 +236,20 @@ class Decision:
         def cores(c: float | None) -> str | None:
             return None if c is None else format_cpu(round_up(c * 1000.0, 1))
 
+        moving = self.verdict is not Verdict.HELD
         entry = {
-            "container": self.container,
+            "name": self.container,
             "current": q(self.current_m),
-            "proposed": q(self.proposed_m),
+            "newRequest": q(self.proposed_m) if moving else None,
             "target": q(self.target_m),
             "currentLimit": q(self.limit_m),
-            "proposedLimit": q(self.proposed_limit_m),
+            "newLimit": q(self.proposed_limit_m) if moving else None,
             "demand": cores(self.demand),
-            "upper": cores(self.upper),
+            "demandBound": cores(self.upper),
             "rate": None if self.rate is None else round(self.rate, 6),
             "extrapolated": self.extrapolated,
             "verdict": self.verdict.value,
-            "why": self.why.value,
+            "reason": self.why.value,
             "message": self.message,
         }
         return {k: v for k, v in entry.items() if v is not None}
@@ -230,7 +262,7 @@ class WorkloadDecision:
     policy: str  # namespace/name of the SizingPolicy
     workload: str  # namespace/Kind/name
     decisions: tuple[Decision, ...]
-    #: history to persist in status (lastChange = now if anything changed)
+    #: history to persist in status (lastChangeTime = now if anything changed)
     history: WorkloadHistory
     #: history to persist if reconcile could not apply the change
     history_if_held: WorkloadHistory = field(default=WorkloadHistory(), repr=False)
@@ -279,7 +311,7 @@ def target_millicores(
     upper_cores: float, *, headroom: float, floor_m: int, ceiling_m: int | None, limit_m: int | None = None
 ) -> tuple[int, Why | None]:
     """Step 2: upper × (1 + headroom) clamped to [floor, ceiling], rounded up to 5m,
-    and (with ``limit_m``, i.e. limits: keep) not above the limit.
+    and (with ``limit_m``, i.e. cpuLimit: Keep) not above the limit.
     Returns (target, the bound it sits on or None)."""
     raw = upper_cores * 1000.0 * (1.0 + headroom)
     bound: Why | None = None
@@ -295,15 +327,15 @@ def target_millicores(
     return target, bound
 
 
-def limit_for(current_m: int | None, limit_m: int | None, new_m: int, mode: LimitsMode) -> int | None:
+def limit_for(current_m: int | None, limit_m: int | None, new_m: int, mode: CpuLimit) -> int | None:
     """Step 7: the CPU limit that goes with request ``new_m``."""
-    if mode is LimitsMode.DROP or limit_m is None:
+    if mode is CpuLimit.DROP or limit_m is None:
         return None
-    if mode is LimitsMode.KEEP:
+    if mode is CpuLimit.KEEP:
         return limit_m
     if current_m is None or current_m <= 0:
         return max(limit_m, new_m)
-    # keep-ratio: scale by the request's factor, whole millicores up, never below the request
+    # KeepRatio: scale by the request's factor, whole millicores up, never below the request
     return max(round_up(limit_m * new_m / current_m, 1), new_m)
 
 
@@ -332,10 +364,13 @@ def _no_metrics(
 
 
 def decide_container(
-    policy: Policy, container: ContainerRule, observed: ContainerInput, *, history: ContainerHistory, now: datetime
+    policy: Policy, container: ContainerRule, observed: ContainerInput, *, history: ContainerHistory, now: datetime,
+    coupled_m: int | None = None,
 ) -> Decision:
     """Steps 1–5 and 7 for one container; the verdict is ``changed`` or ``held``
-    (the workload gates, dry-run and the budget come in :func:`decide_workload`)."""
+    (the workload gates, dry-run and the budget come in :func:`decide_workload`).
+    ``coupled_m``: the request sized with a CPU-utilisation autoscaler, taken as the
+    target instead of upper × (1 + headroom) (bounds and rounding still apply)."""
     current = observed.request_m if observed.request_m is not None else observed.limit_m
     limit = observed.limit_m
     # the fields every outcome shares (each return names its why); one Decision per return
@@ -371,10 +406,15 @@ def decide_container(
         return out(why=Why.NO_MODEL, message=f"the sizing API has no answer for model {container.model!r}")
     if not (math.isfinite(s.demand) and math.isfinite(s.upper) and s.demand >= 0 and s.upper >= 0):
         return out(why=Why.NO_MODEL, message=f"the sizing API answered an unusable demand for {container.model!r}")
-    keep_limit = limit if policy.limits is LimitsMode.KEEP else None
+    keep_limit = limit if policy.cpu_limit is CpuLimit.KEEP else None
     target, bound = target_millicores(
         s.upper, headroom=policy.headroom, floor_m=container.floor_m, ceiling_m=container.ceiling_m, limit_m=keep_limit
     )
+    if coupled_m is not None:
+        target, bound = target_millicores(
+            coupled_m / 1000.0, headroom=0.0, floor_m=container.floor_m, ceiling_m=container.ceiling_m,
+            limit_m=keep_limit,
+        )
     base.update(target_m=target, demand=s.demand, upper=s.upper, extrapolated=s.extrapolated)
     if s.extrapolated and not policy.allow_extrapolation:
         return out(
@@ -385,12 +425,13 @@ def decide_container(
     note = " (extrapolated beyond the trained range)" if s.extrapolated else ""
 
     def change(new_m: int, limited: bool, settle_after: ContainerHistory, settle_held: ContainerHistory) -> Decision:
-        new_limit = limit_for(current, limit, new_m, policy.limits)
+        new_limit = limit_for(current, limit, new_m, policy.cpu_limit)
         why = Why.STEP_LIMITED if limited else (bound if (bound and new_m == target) else Why.NEW_TARGET)
         verb = "raise" if current is None or new_m > current else "lower"
         msg = f"{verb} to {_mc(new_m)} (target {_mc(target)})"
         if limited:
-            msg += f", cut by stepLimit ×{policy.step_limit.up if verb == 'raise' else policy.step_limit.down}"
+            pct = round((policy.step_limit.up - 1.0) * 100) if verb == "raise" else round((1.0 - policy.step_limit.down) * 100)
+            msg += f", cut by stepLimit.{'maxIncreasePercent' if verb == 'raise' else 'maxDecreasePercent'} {pct}"
         return out(
             verdict=Verdict.CHANGED,
             why=why,
@@ -433,7 +474,7 @@ def decide_container(
         return out(
             why=Why.SETTLING,
             proposed_m=new_m,
-            proposed_limit_m=limit_for(current, limit, new_m, policy.limits),
+            proposed_limit_m=limit_for(current, limit, new_m, policy.cpu_limit),
             message=f"target below {_mc(current)} for {int(waited)}s of {int(policy.settle_s)}s settle",
         )
     if _inside_deadband(current, goal, policy.deadband):
@@ -470,6 +511,8 @@ def decide_workload(
     budget: BudgetView = BudgetView(),
     hpa_on_cpu: bool = False,
     dry_run: bool = False,
+    autoscaler: AutoscalerView | None = None,
+    replicas: int | None = None,
 ) -> WorkloadDecision:
     """All containers of one policy (in the policy's order), then the workload gates.
 
@@ -478,9 +521,12 @@ def decide_workload(
     ``ratefit plan``). A container named by the policy but not observed is held
     NoMetrics. In apply mode the caller must ``Budget.spend`` once when the result
     has changed containers, and persist ``history`` after the patch succeeded (or
-    ``rejected(...)`` and its history if it failed)."""
+    ``rejected(...)`` and its history if it failed). ``autoscaler``: the workload's
+    autoscaler as ``controller/hpa_sizing`` sees it; ``replicas``: the workload's
+    current replicas (for cores per 100 req/s)."""
     by_name: Mapping[str, ContainerInput] = {o.name: o for o in observed}
     decisions: list[Decision] = []
+    hints: dict[str, AutoscalerHint] = {}
     for c in policy.containers:
         h = history.container(c.name)
         o = by_name.get(c.name)
@@ -489,7 +535,11 @@ def decide_workload(
                 _no_metrics(c.name, h, f"container {c.name!r} is not in {policy.workload_key}; fix spec.containers"),
                 why=Why.CONTAINER_MISSING))
             continue
-        decisions.append(decide_container(policy, c, o, history=h, now=now))
+        current = o.request_m if o.request_m is not None else o.limit_m
+        hint = hints[c.name] = autoscaler_hint(autoscaler, container=c.name, observed_rate=o.rate,
+                                               current_m=current, facts=o.facts)
+        coupled = hint.coupled_m if (hpa_on_cpu and policy.allow_horizontal_conflict) else None
+        decisions.append(decide_container(policy, c, o, history=h, now=now, coupled_m=coupled))
 
     def hold(d: Decision, why: Why, message: str) -> Decision:
         return replace(d, verdict=Verdict.HELD, why=why, message=message, settle=d.settle_if_held)
@@ -505,10 +555,10 @@ def decide_workload(
             "moves its measurement (set allowHorizontalConflict to change anyway)"
         )
         decisions = [hold(d, Why.HORIZONTAL_CONFLICT, msg) if wants(d) else d for d in decisions]
-    if policy.method is Method.IN_PLACE:
+    if policy.resize_by is ResizeBy.IN_PLACE:
         for i, d in enumerate(decisions):
             if d.verdict is Verdict.CHANGED and (problem := _in_place_problem(d)):
-                decisions[i] = hold(d, Why.IN_PLACE_UNSUPPORTED, problem + "; use method rollout")
+                decisions[i] = hold(d, Why.IN_PLACE_UNSUPPORTED, problem + "; use resizeBy Rollout")
     if any(d.verdict is Verdict.CHANGED for d in decisions):
         wait = Cooldown(policy.cooldown_s).remaining(history.last_change, now)
         if wait > 0:
@@ -526,6 +576,7 @@ def decide_workload(
                 hold(d, Why.BUDGET_SPENT, refusal + "; retried next pass") if d.verdict is Verdict.CHANGED else d
                 for d in decisions
             ]
+    decisions = [_with_autoscaler(d, hints.get(d.container), autoscaler, replicas) for d in decisions]
     changed = any(d.verdict is Verdict.CHANGED for d in decisions)
     held_history = WorkloadHistory(
         last_change=history.last_change, containers={d.container: d.settle_if_held for d in decisions}
@@ -540,3 +591,45 @@ def decide_workload(
         history=new_history,
         history_if_held=held_history,
     )
+
+
+def _with_autoscaler(
+    d: Decision, hint: AutoscalerHint | None, autoscaler: AutoscalerView | None, replicas: int | None,
+) -> Decision:
+    """The autoscaler's words in the message, and cores per 100 req/s now and suggested."""
+    n = autoscaler.replicas if autoscaler is not None else replicas
+    if hint is None or n is None:
+        return d
+    now = cores_per_100(d.current_m, d.rate, n, n)
+    if hint.coupled is not None and hint.coupled.best is not None:
+        suggested: float | None = hint.coupled.best.cores_per_100_rps
+    else:
+        suggested = cores_per_100(d.proposed_m, d.rate, n, hint.replicas_after if hint.replicas_after is not None else n)
+    message = f"{d.message}; {hint.message}" if hint.message and d.message else (hint.message or d.message)
+    return replace(d, message=message, cores_per_100_now=now, cores_per_100_suggested=suggested)
+
+
+def held_by_conflict(
+    policy: Policy, observed: Sequence[ContainerInput], *, history: WorkloadHistory, older: str
+) -> WorkloadDecision:
+    """Every container of a policy held **PolicyConflict**: the older SizingPolicy
+    ``older`` (namespace/name) names the same workload and keeps acting on it. The
+    history is kept as it is (this policy decides nothing)."""
+    by_name: Mapping[str, ContainerInput] = {o.name: o for o in observed}
+    message = (
+        f"SizingPolicy {older} is older and already sizes {policy.workload_key}; this policy is held "
+        "until one of the two is deleted or names another workload"
+    )
+    decisions = []
+    for c in policy.containers:
+        o = by_name.get(c.name)
+        current = None if o is None else (o.request_m if o.request_m is not None else o.limit_m)
+        limit = None if o is None else o.limit_m
+        h = history.container(c.name)
+        decisions.append(Decision(
+            container=c.name, verdict=Verdict.HELD, why=Why.POLICY_CONFLICT, current_m=current, limit_m=limit,
+            proposed_m=current, proposed_limit_m=limit, rate=None if o is None else o.rate, message=message,
+            settle=h, settle_if_held=h,
+        ))
+    return WorkloadDecision(policy=policy.key, workload=policy.workload_key, decisions=tuple(decisions),
+                            history=history, history_if_held=history)

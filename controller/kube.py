@@ -75,6 +75,7 @@ from ratefit.controller.workload import (
     PolicyObject,
     PreviousRequest,
     ResizeOutcome,
+    ScalerMetric,
     Workload,
     WorkloadKind,
     encode_previous_requests,
@@ -522,7 +523,7 @@ class KubeAdapter:
         start at the template's value. Limits cannot be removed by a resize (Kubernetes
         docs, "Resize CPU and Memory Resources assigned to Containers")."""
         if any(c.drop_limit for c in changes.values()):
-            raise InputError("an in-place resize cannot remove a CPU limit; use method rollout for limits: drop")
+            raise InputError("an in-place resize cannot remove a CPU limit; use resizeBy Rollout for cpuLimit: Drop")
         pods = list(pods)
         body = {"spec": {"containers": [
             {"name": n, "resources": _resources_patch(ch)} for n, ch in changes.items()]}}
@@ -793,28 +794,92 @@ def _scales_on_cpu_utilization(spec: Mapping[str, Any]) -> bool:
         # autoscaling/v2 API reference, HorizontalPodAutoscalerSpec.metrics: "If not set,
         # the default metric will be set to 80% average CPU utilization."
         return True
-    for m in metrics:
+    for m in metrics if isinstance(metrics, list) else ():
+        if not isinstance(m, Mapping):
+            continue
         if m.get("type") == "Resource":
             src = m.get("resource") or {}
         elif m.get("type") == "ContainerResource":
             src = m.get("containerResource") or {}
         else:
             continue
-        if src.get("name") == "cpu" and (src.get("target") or {}).get("type") == "Utilization":
+        if isinstance(src, Mapping) and src.get("name") == "cpu" and isinstance(src.get("target"), Mapping) \
+                and src["target"].get("type") == "Utilization":
             return True
     return False
+
+
+#: spec.metrics[].type → the field holding that metric's source (autoscaling/v2 API reference)
+_METRIC_FIELDS = {"Resource": "resource", "ContainerResource": "containerResource", "Pods": "pods",
+                  "Object": "object", "External": "external"}
+
+
+def _number(v: Any) -> float | None:
+    """A quantity (``"100"``, ``"500m"``, ``1.5``) as a float; None when absent or malformed
+    (one odd metric never hides the autoscaler's other fields)."""
+    if v is None:
+        return None
+    try:
+        return parse_cpu(v, field="metric target") / 1000.0
+    except InputError:
+        return None
+
+
+def _whole(v: Any) -> int | None:
+    return v if isinstance(v, int) and not isinstance(v, bool) and v >= 0 else None
+
+
+def _scaler_metrics(spec: Mapping[str, Any]) -> tuple[ScalerMetric, ...]:
+    metrics = spec.get("metrics")
+    if not metrics:
+        # the API's default (see _scales_on_cpu_utilization): 80 % average CPU utilisation
+        return (ScalerMetric("Resource", "cpu", "Utilization", utilization=80.0),)
+    out = []
+    for m in metrics if isinstance(metrics, list) else ():
+        if not isinstance(m, Mapping) or m.get("type") not in _METRIC_FIELDS:
+            continue
+        src = m.get(_METRIC_FIELDS[m["type"]]) or {}
+        if not isinstance(src, Mapping):
+            continue
+        target = src.get("target") or {}
+        if m["type"] in ("Resource", "ContainerResource"):
+            name = src.get("name")
+        else:  # Pods/Object/External name their metric in .metric.name
+            name = (src.get("metric") or {}).get("name") if isinstance(src.get("metric"), Mapping) else None
+        if not isinstance(name, str) or not isinstance(target, Mapping):
+            continue
+        util = target.get("averageUtilization")
+        out.append(ScalerMetric(
+            source=m["type"], name=name, target_type=str(target.get("type") or ""),
+            average_value=_number(target.get("averageValue")), value=_number(target.get("value")),
+            utilization=float(util) if _whole(util) is not None else None,
+            container=src.get("container") if isinstance(src.get("container"), str) else None,
+        ))
+    return tuple(out)
+
+
+def _scale_up_tolerance(spec: Mapping[str, Any]) -> float:
+    up = ((spec.get("behavior") or {}).get("scaleUp") or {}) if isinstance(spec.get("behavior"), Mapping) else {}
+    tol = _number(up.get("tolerance")) if isinstance(up, Mapping) else None
+    return tol if tol is not None else 0.1  # Kubernetes docs: the default tolerance 0.1
 
 
 def _hpa(obj: Mapping[str, Any]) -> HorizontalScaler:
     meta = obj.get("metadata") or {}
     spec = obj.get("spec") or {}
     target = spec.get("scaleTargetRef") or {}
+    status = obj.get("status") or {}
     return HorizontalScaler(
         namespace=meta.get("namespace") or "",
         name=meta.get("name") or "",
         target_kind=target.get("kind") or "",
         target_name=target.get("name") or "",
         scales_on_cpu_utilization=_scales_on_cpu_utilization(spec),
+        metrics=_scaler_metrics(spec),
+        min_replicas=_whole(spec.get("minReplicas")),
+        max_replicas=_whole(spec.get("maxReplicas")),
+        current_replicas=_whole(status.get("currentReplicas")) if isinstance(status, Mapping) else None,
+        tolerance=_scale_up_tolerance(spec),
     )
 
 
@@ -828,6 +893,7 @@ def _policy(obj: Mapping[str, Any]) -> PolicyObject:
         resource_version=str(meta.get("resourceVersion") or ""),
         spec=obj.get("spec") or {},
         status=obj.get("status") or {},
+        created=str(meta.get("creationTimestamp") or ""),
     )
 
 

@@ -380,7 +380,7 @@ class KubeCache:
         wake = False
         with self._lock:
             for ch in changes:
-                if ch.new is not None and (ch.new.spec or {}).get("method") == "in-place":
+                if ch.new is not None and (ch.new.spec or {}).get("resizeBy") == "InPlace":
                     self._in_place[ch.key] = ch.key[0]
                 else:
                     self._in_place.pop(ch.key, None)

@@ -9,10 +9,15 @@ pydantic models whose aliases are the camelCase field names of the CRD
 acted on: reconcile writes :func:`invalid_condition` into its status instead.
 
 Also here: what the status keeps so that a restart or a leader change loses nothing
-(``lastChange`` per workload, ``settling[]`` per container — see
-:class:`WorkloadHistory`), and the Kubernetes condition helpers (conditions keyed by
+(``lastChangeTime`` per workload, ``belowSinceTime``/``peakTarget`` on each
+``containers[]`` row — see :class:`WorkloadHistory`), and the Kubernetes condition helpers (conditions keyed by
 ``type``; ``lastTransitionTime`` moves only when ``status`` changes — Kubernetes API
 conventions, "Typical status properties").
+
+Kubernetes API conventions shape the spec: enum values in CamelCase (``DryRun``,
+``InPlace``, ``KeepRatio``), no floating-point numbers (``headroomPercent: 15``,
+``stepLimit.maxIncreasePercent: 100``); inside, the frozen :class:`Policy` keeps
+fractions (``headroom`` 0.15, ``step_limit.up`` 2.0) for the decision code.
 
 Durations are Prometheus durations (``90s``, ``10m``, ``1h30m``, ``7d``; largest unit
 first, each once); they become float seconds. ``cooldown`` and ``settle`` may be ``0s``
@@ -44,8 +49,8 @@ __all__ = [
     "KIND",
     "PLURAL",
     "Mode",
-    "Method",
-    "LimitsMode",
+    "ResizeBy",
+    "CpuLimit",
     "StepLimit",
     "ContainerRule",
     "Policy",
@@ -60,6 +65,8 @@ __all__ = [
     "format_time",
     "parse_time",
     "CONDITION_READY",
+    "CONDITION_INPUTS",
+    "CONDITION_CONFLICT",
     "REASON_POLICY_INVALID",
     "make_condition",
     "set_condition",
@@ -71,33 +78,37 @@ __all__ = [
     "ContainerSpec",
     "StepLimitSpec",
     "ConditionModel",
-    "ProposalModel",
-    "SettlingModel",
+    "ContainerStatusModel",
 ]
 
 # the CRD's coordinates live in controller/crd.py (re-exported here for old imports)
 from ratefit.controller.crd import GROUP, KIND, PLURAL, VERSION  # noqa: E402
 
-#: Condition type written on every policy: True once a pass decided it, False when
-#: the policy is invalid (reason PolicyInvalid) or could not be decided.
+#: Condition type written on every policy: True once a pass decided it with inputs for
+#: at least one container; False when the policy is invalid (PolicyInvalid), its workload
+#: is missing, it is held by an older policy (PolicyConflict) or every container lacks inputs.
 CONDITION_READY = "Ready"
+#: True when every container had its rate and its model this pass; False names what is missing.
+CONDITION_INPUTS = "InputsAvailable"
+#: True when an older SizingPolicy names the same workload (this one is held).
+CONDITION_CONFLICT = "Conflict"
 REASON_POLICY_INVALID = "PolicyInvalid"
 
 
 class Mode(StrEnum):
-    DRY_RUN = "dry-run"  # decide and report (status, Event, log, metric); never patch
-    APPLY = "apply"  # patch the workload (or resize pods) when the verdict is changed
+    DRY_RUN = "DryRun"  # decide and report (status, Event, log, metric); never patch
+    APPLY = "Apply"  # patch the workload (or resize pods) when the verdict is Changed
 
 
-class Method(StrEnum):
-    ROLLOUT = "rollout"  # patch the pod template: a rolling update
-    IN_PLACE = "in-place"  # the pods' resize subresource, one pod at a time
+class ResizeBy(StrEnum):
+    ROLLOUT = "Rollout"  # patch the pod template: a rolling update
+    IN_PLACE = "InPlace"  # the pods' resize subresource, one pod at a time
 
 
-class LimitsMode(StrEnum):
-    KEEP_RATIO = "keep-ratio"  # scale the CPU limit by the request's factor
-    KEEP = "keep"  # leave the limit; the request never goes above it (AtLimit)
-    DROP = "drop"  # remove the CPU limit (not possible with method in-place)
+class CpuLimit(StrEnum):
+    KEEP_RATIO = "KeepRatio"  # scale the CPU limit by the request's factor
+    KEEP = "Keep"  # leave the limit; the request never goes above it (AtLimit)
+    DROP = "Drop"  # remove the CPU limit (not possible with resizeBy InPlace)
 
 
 # ---------------------------------------------------------------- durations
@@ -136,8 +147,8 @@ class WorkloadRefSpec(_Camel):
 
 
 class StepLimitSpec(_Camel):
-    up: float = 2.0
-    down: float = 0.5
+    max_increase_percent: int = Field(default=100, strict=True)
+    max_decrease_percent: int = Field(default=50, strict=True)
 
 
 class ContainerSpec(_Camel):
@@ -169,31 +180,35 @@ class ContainerSpec(_Camel):
 class SizingPolicySpec(_Camel):
     workload: WorkloadRefSpec
     mode: Mode = Mode.DRY_RUN
-    method: Method = Method.ROLLOUT
+    resize_by: ResizeBy = ResizeBy.ROLLOUT
     containers: list[ContainerSpec] = Field(min_length=1)
-    headroom: float = 0.15
-    deadband: float = 0.10
-    #: cooldown, settle, rateWindow — None: the method's default (:data:`METHOD_DEFAULTS`);
+    headroom_percent: int = Field(default=15, strict=True)
+    deadband_percent: int = Field(default=10, strict=True)
+    #: cooldown, settle, rateWindow — None: the resizeBy's default (:data:`METHOD_DEFAULTS`);
     #: the CRD sets no default for these three
     cooldown: str | None = None
     settle: str | None = None
     step_limit: StepLimitSpec = StepLimitSpec()
     rate_window: str | None = None
-    rate_percentile: float = 95.0
-    limits: LimitsMode = LimitsMode.KEEP_RATIO
+    rate_percentile: int = Field(default=95, strict=True)
+    cpu_limit: CpuLimit = CpuLimit.KEEP_RATIO
     allow_horizontal_conflict: bool = False
     allow_extrapolation: bool = False
+    #: the HPA metric (Pods/Object/External, AverageValue target) that is this policy's
+    #: request rate; unset: the HPA's only Pods metric, if it has exactly one
+    autoscaler_rate_metric: str | None = Field(None, min_length=1, max_length=253,
+                                               pattern=r"^[A-Za-z_:][A-Za-z0-9_:.\-/]*$")
 
 
-#: ``cooldown``, ``settle`` and ``rateWindow`` when the policy leaves them out, by method.
+#: ``cooldown``, ``settle`` and ``rateWindow`` when the policy leaves them out, by resizeBy.
 #: A rollout restarts every pod, so it is sized for the daily peak (the rate percentile
 #: over a day: no daily up-and-down rollouts). An in-place resize restarts nothing and
 #: follows the daily cycle: the rate over half an hour, decreases after 30 minutes, a change
 #: at most every 15 minutes. Chosen with ``ratefit replay`` on the demo scenario
 #: (DEVELOPERS.md, "Replay: the defaults").
 METHOD_DEFAULTS = {
-    "rollout": {"cooldown": "30m", "settle": "2h", "rateWindow": "1d"},
-    "in-place": {"cooldown": "15m", "settle": "30m", "rateWindow": "30m"},
+    "Rollout": {"cooldown": "30m", "settle": "2h", "rateWindow": "1d"},
+    "InPlace": {"cooldown": "15m", "settle": "30m", "rateWindow": "30m"},
 }
 
 
@@ -206,36 +221,35 @@ class ConditionModel(_Camel):
     message: str = ""
 
 
-class ProposalModel(_Camel):
-    """One row of ``status.proposals[]`` (written by ``decide.Decision.to_status``)."""
+class ContainerStatusModel(_Camel):
+    """One row of ``status.containers[]`` (built by ``decide.Decision.to_status`` and the
+    record stage). ``newRequest``/``newLimit`` only when the verdict is Changed or Proposed;
+    ``belowSinceTime``/``peakTarget`` while a decrease settles."""
 
-    container: str
+    name: str
     current: str | None = None
-    proposed: str | None = None
+    new_request: str | None = None
     target: str | None = None
     current_limit: str | None = None
-    proposed_limit: str | None = None
+    new_limit: str | None = None
     demand: str | None = None
-    upper: str | None = None
+    demand_bound: str | None = None
     rate: float | None = None
     extrapolated: bool = False
-    verdict: str
-    why: str
+    verdict: Literal["Changed", "Proposed", "Held"]
+    reason: str
     message: str = ""
-
-
-class SettlingModel(_Camel):
-    container: str
-    below_since: str
-    peak: str
+    below_since_time: str | None = None
+    peak_target: str | None = None
 
 
 class SizingPolicyStatus(_Camel):
     observed_generation: int | None = None
+    effective_mode: Mode | None = None
+    summary: str | None = None
     conditions: list[ConditionModel] = []
-    proposals: list[ProposalModel] = []
-    last_change: str | None = None
-    settling: list[SettlingModel] = []
+    containers: list[ContainerStatusModel] = []
+    last_change_time: str | None = None
 
 
 # ---------------------------------------------------------------- frozen values (the inside)
@@ -243,7 +257,8 @@ class SizingPolicyStatus(_Camel):
 
 @dataclass(frozen=True)
 class StepLimit:
-    """Per change the request moves at most ×``up`` and at least ×``down``."""
+    """Per change the request moves at most ×``up`` and at least ×``down`` (from the
+    spec's percentages: up = 1 + maxIncreasePercent/100, down = 1 − maxDecreasePercent/100)."""
 
     up: float = 2.0
     down: float = 0.5
@@ -267,17 +282,19 @@ class Policy:
     workload_name: str
     containers: tuple[ContainerRule, ...]
     mode: Mode = Mode.DRY_RUN
-    method: Method = Method.ROLLOUT
-    headroom: float = 0.15
-    deadband: float = 0.10
+    resize_by: ResizeBy = ResizeBy.ROLLOUT
+    headroom: float = 0.15  # fraction (spec headroomPercent / 100)
+    deadband: float = 0.10  # fraction (spec deadbandPercent / 100)
     cooldown_s: float = 1800.0
     settle_s: float = 7200.0
     step_limit: StepLimit = StepLimit()
     rate_window_s: float = 3600.0
     rate_percentile: float = 95.0
-    limits: LimitsMode = LimitsMode.KEEP_RATIO
+    cpu_limit: CpuLimit = CpuLimit.KEEP_RATIO
     allow_horizontal_conflict: bool = False
     allow_extrapolation: bool = False
+    #: PromQL metric name of the rate a horizontal autoscaler scales on (None: not set)
+    autoscaler_rate_metric: str | None = None
 
     @property
     def key(self) -> str:
@@ -298,7 +315,7 @@ class Policy:
 
 class PolicyInvalid(InputError):
     """A SizingPolicy that cannot be acted on. ``field`` is the dotted path inside the
-    object (e.g. ``spec.stepLimit.down``), ``problem`` says why and how to fix it."""
+    object (e.g. ``spec.stepLimit.maxDecreasePercent``), ``problem`` says why and how to fix it."""
 
     def __init__(self, field: str, problem: str, *, policy: str = "") -> None:
         self.field = field
@@ -352,28 +369,31 @@ def _to_policy(spec: SizingPolicySpec, *, namespace: str, name: str, generation:
     def bad(field: str, problem: str) -> PolicyInvalid:
         return PolicyInvalid(field, problem, policy=key)
 
-    if not 0.0 <= spec.headroom <= 10.0:
-        raise bad("spec.headroom", f"{spec.headroom} must be between 0 and 10 (0.15 = 15 % above the upper band)")
-    if not 0.0 <= spec.deadband < 1.0:
-        raise bad("spec.deadband", f"{spec.deadband} must be >= 0 and < 1 (0.10 = ignore changes under 10 %)")
-    up, down = spec.step_limit.up, spec.step_limit.down
-    if not up >= 1.0:
-        raise bad("spec.stepLimit.up", f"{up} must be >= 1 (2.0 = at most double per change)")
-    if not 0.0 < down <= 1.0:
-        raise bad("spec.stepLimit.down", f"{down} must be > 0 and <= 1 (0.5 = at most halve per change)")
-    if not 0.0 < spec.rate_percentile <= 100.0:
-        raise bad("spec.ratePercentile", f"{spec.rate_percentile} must be > 0 and <= 100")
+    if not 0 <= spec.headroom_percent <= 1000:
+        raise bad("spec.headroomPercent",
+                  f"{spec.headroom_percent} must be between 0 and 1000 (15 = 15 % above the demand bound)")
+    if not 0 <= spec.deadband_percent <= 99:
+        raise bad("spec.deadbandPercent",
+                  f"{spec.deadband_percent} must be between 0 and 99 (10 = ignore changes under 10 %)")
+    inc, dec = spec.step_limit.max_increase_percent, spec.step_limit.max_decrease_percent
+    if not 0 <= inc <= 10000:
+        raise bad("spec.stepLimit.maxIncreasePercent", f"{inc} must be between 0 and 10000 (100 = at most double per change)")
+    if not 0 <= dec <= 99:
+        raise bad("spec.stepLimit.maxDecreasePercent", f"{dec} must be between 0 and 99 (50 = at most halve per change)")
+    up, down = 1.0 + inc / 100.0, 1.0 - dec / 100.0
+    if not 1 <= spec.rate_percentile <= 100:
+        raise bad("spec.ratePercentile", f"{spec.rate_percentile} must be between 1 and 100 (95 = p95)")
     durations = {}
     given = {"cooldown": spec.cooldown, "settle": spec.settle, "rateWindow": spec.rate_window}
     for fname, text in given.items():
         if text is None:
-            text = METHOD_DEFAULTS[spec.method.value][fname]
+            text = METHOD_DEFAULTS[spec.resize_by.value][fname]
         try:
             durations[fname] = parse_duration(text, field=f"spec.{fname}", allow_zero=fname != "rateWindow")
         except InputError as exc:
             raise bad(f"spec.{fname}", str(exc).split(": ", 1)[1]) from exc
-    if spec.method is Method.IN_PLACE and spec.limits is LimitsMode.DROP:
-        raise bad("spec.limits", "'drop' cannot be used with method 'in-place': a resize cannot remove a limit")
+    if spec.resize_by is ResizeBy.IN_PLACE and spec.cpu_limit is CpuLimit.DROP:
+        raise bad("spec.cpuLimit", "'Drop' cannot be used with resizeBy 'InPlace': a resize cannot remove a limit")
     containers: list[ContainerRule] = []
     seen: set[str] = set()
     for i, c in enumerate(spec.containers):
@@ -402,17 +422,18 @@ def _to_policy(spec: SizingPolicySpec, *, namespace: str, name: str, generation:
         workload_name=spec.workload.name,
         containers=tuple(containers),
         mode=spec.mode,
-        method=spec.method,
-        headroom=spec.headroom,
-        deadband=spec.deadband,
+        resize_by=spec.resize_by,
+        headroom=spec.headroom_percent / 100.0,
+        deadband=spec.deadband_percent / 100.0,
         cooldown_s=durations["cooldown"],
         settle_s=durations["settle"],
         step_limit=StepLimit(up=up, down=down),
         rate_window_s=durations["rateWindow"],
-        rate_percentile=spec.rate_percentile,
-        limits=spec.limits,
+        rate_percentile=float(spec.rate_percentile),
+        cpu_limit=spec.cpu_limit,
         allow_horizontal_conflict=spec.allow_horizontal_conflict,
         allow_extrapolation=spec.allow_extrapolation,
+        autoscaler_rate_metric=spec.autoscaler_rate_metric,
     )
 
 
@@ -460,38 +481,46 @@ class WorkloadHistory:
 
 
 def history_from_status(status: Mapping[str, Any] | None) -> WorkloadHistory:
-    """Read ``status.lastChange`` and ``status.settling[]``. Entries that cannot be
-    read are dropped (the worst case is settling starts over: slower, never faster)."""
+    """Read ``status.lastChangeTime`` and each ``status.containers[]`` row's
+    ``belowSinceTime``/``peakTarget``. Entries that cannot be read are dropped (the worst
+    case is settling starts over: slower, never faster)."""
     if not status:
         return WorkloadHistory()
     last_change = None
-    if isinstance(status.get("lastChange"), str):
+    if isinstance(status.get("lastChangeTime"), str):
         try:
-            last_change = parse_time(status["lastChange"])
+            last_change = parse_time(status["lastChangeTime"])
         except ValueError:
             last_change = None
     containers: dict[str, ContainerHistory] = {}
-    for entry in status.get("settling") or ():
+    rows = status.get("containers")
+    for entry in rows if isinstance(rows, list) else ():
+        if not isinstance(entry, Mapping):
+            continue
+        name, since, peak = entry.get("name"), entry.get("belowSinceTime"), entry.get("peakTarget")
+        if not (isinstance(name, str) and isinstance(since, str) and isinstance(peak, str | int)):
+            continue
         try:
-            rec = SettlingModel.model_validate(entry)
-            containers[rec.container] = ContainerHistory(
-                below_since=parse_time(rec.below_since), peak_m=parse_cpu(rec.peak, field="peak")
-            )
-        except (ValidationError, ValueError, TypeError):
+            containers[name] = ContainerHistory(below_since=parse_time(since), peak_m=parse_cpu(peak, field="peakTarget"))
+        except (ValueError, TypeError, InputError):
             continue
     return WorkloadHistory(last_change=last_change, containers=containers)
 
 
-def history_to_status(history: WorkloadHistory) -> dict[str, Any]:
-    """The status fields for a history: ``lastChange`` and ``settling[]`` (sorted by container)."""
-    settling = [
-        {"container": name, "belowSince": format_time(h.below_since), "peak": format_cpu(h.peak_m)}
-        for name, h in sorted(history.containers.items())
-        if h.below_since is not None and h.peak_m is not None
-    ]
+def history_to_status(history: WorkloadHistory, rows: Sequence[Mapping[str, Any]] = ()) -> dict[str, Any]:
+    """The status fields for a history: ``lastChangeTime`` and ``containers[]`` — the
+    given rows (keyed by ``name``) with ``belowSinceTime``/``peakTarget`` set from the
+    history (left out where a container is not settling)."""
+    out_rows: list[dict[str, Any]] = []
+    for row in rows:
+        r = {k: v for k, v in row.items() if k not in ("belowSinceTime", "peakTarget")}
+        h = history.containers.get(str(r.get("name")))
+        if h is not None and h.below_since is not None and h.peak_m is not None:
+            r["belowSinceTime"], r["peakTarget"] = format_time(h.below_since), format_cpu(h.peak_m)
+        out_rows.append(r)
     return {
-        "lastChange": None if history.last_change is None else format_time(history.last_change),
-        "settling": settling,
+        "lastChangeTime": None if history.last_change is None else format_time(history.last_change),
+        "containers": out_rows,
     }
 
 

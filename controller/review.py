@@ -9,7 +9,7 @@ demo, the log of ``ratefit run``). Each row carries the fixed columns
 :data:`EXTRA_KEYS`). CPU values are Kubernetes quantities in canonical millicores
 (``"250m"``); ``rate`` is requests per second per pod (the policy's percentile);
 ``why`` is the reason(s) for the verdict, comma-separated, empty when there is none.
-Rows of a policy with ``method: in-place`` say in ``note`` that resizing running pods
+Rows of a policy with ``resizeBy: InPlace`` say in ``note`` that resizing running pods
 leaves the workload's template unchanged, so new pods start at the template value
 (Kubernetes docs, "Resize CPU and Memory Resources assigned to Containers").
 """
@@ -41,6 +41,8 @@ EXTRA_KEYS = (
     "extrapolated",
     "note",
     "cgroup",
+    "cores_per_100_rps",
+    "cores_per_100_rps_suggested",
 )
 FORMATS = ("table", "json", "markdown")
 
@@ -73,12 +75,15 @@ class ReviewRow:
     rate: float | None = None
     limit_m: int | None = None
     proposed_limit_m: int | None = None
-    mode: str = "dry-run"
-    method: str = "rollout"
+    mode: str = "DryRun"
+    method: str = "Rollout"
     extrapolated: bool = False
     note: str = ""
     #: what the kernel gets for the proposed request (controller/cgroup figures), if known
     cgroup: dict[str, Any] | None = field(default=None, compare=False)
+    #: reserved cores per 100 req/s of the workload's load, now and at the suggested size
+    cores_per_100: float | None = None
+    cores_per_100_suggested: float | None = None
 
     @property
     def why_text(self) -> str:
@@ -87,7 +92,7 @@ class ReviewRow:
     def as_dict(self) -> dict[str, Any]:
         """The JSON object of this row: the fixed :data:`COLUMNS` then :data:`EXTRA_KEYS`."""
         note = self.note
-        if self.method == "in-place" and IN_PLACE_NOTE not in note:
+        if self.method == "InPlace" and IN_PLACE_NOTE not in note:
             note = f"{note}; {IN_PLACE_NOTE}" if note else IN_PLACE_NOTE
         return {
             "workload": f"{self.kind}/{self.workload}",
@@ -113,6 +118,9 @@ class ReviewRow:
             "extrapolated": bool(self.extrapolated),
             "note": note,
             "cgroup": self.cgroup,
+            "cores_per_100_rps": None if self.cores_per_100 is None else round(self.cores_per_100, 4),
+            "cores_per_100_rps_suggested": (
+                None if self.cores_per_100_suggested is None else round(self.cores_per_100_suggested, 4)),
         }
 
 
@@ -127,7 +135,7 @@ def _cells(row: ReviewRow) -> list[str]:
         d["upper"] or "-",
         "-" if row.rate is None else f"{row.rate:.3g}",
         row.verdict,
-        (row.why_text or "-") + (" (in-place: new pods start at template value)" if row.method == "in-place" else ""),
+        (row.why_text or "-") + (" (in-place: new pods start at template value)" if row.method == "InPlace" else ""),
     ]
 
 
@@ -175,7 +183,7 @@ def summary(rows: Sequence[ReviewRow]) -> str:
     delta = 0
     for r in rows:
         counts[r.verdict] = counts.get(r.verdict, 0) + 1
-        if r.verdict in ("changed", "proposed") and r.proposed_m is not None and r.current_m is not None:
+        if r.verdict in ("Changed", "Proposed") and r.proposed_m is not None and r.current_m is not None:
             delta += r.proposed_m - r.current_m
     parts = ", ".join(f"{v}: {n}" for v, n in sorted(counts.items())) or "no containers"
     return f"{len(rows)} containers ({parts}); net change of requests {delta:+d}m (one pod of each workload)"

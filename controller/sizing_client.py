@@ -218,6 +218,23 @@ class SizingClient:
             for m in body["models"]
         ]
 
+    def model_detail(self, model: str) -> dict[str, Any]:
+        """``GET /v1/models/{key}``: one model's detail (trained ``rate_range``, ``capacity``
+        …) as the JSON object the API answers. UnknownModel for a key it does not serve."""
+        from ratefit.models.keys import parse_key
+
+        key = parse_key(model)  # InputError for a malformed key: never a path of our making
+        try:
+            body = self._call("GET", f"/v1/models/{key}")
+        except SizingApiRejected as exc:
+            if exc.status == 404:
+                raise UnknownModel(str(key)) from None
+            raise
+        if not isinstance(body, dict):
+            raise SizingApiRejected(f"{self.base_url}/v1/models/{key} answered a non-object", status=200,
+                                    url=f"{self.base_url}/v1/models/{key}")
+        return body
+
     def health(self) -> ApiHealth:
         """Readiness (``/readyz``); a not-ready server is an answer, not an error."""
         body = self._call("GET", "/readyz", ok_statuses=(200, 503))

@@ -24,6 +24,7 @@ __all__ = [
     "PodContainer",
     "Pod",
     "HorizontalScaler",
+    "ScalerMetric",
     "CpuChange",
     "PreviousRequest",
     "PolicyObject",
@@ -160,6 +161,33 @@ class HorizontalScaler:
     #: it scales on a Resource metric ``cpu`` with target type Utilization: changing the
     #: CPU request moves what it measures → HorizontalConflict
     scales_on_cpu_utilization: bool
+    #: spec.metrics, one entry each (an HPA without metrics: the API's default, 80 %
+    #: average CPU utilisation, as one Resource entry); empty when not read
+    metrics: tuple[ScalerMetric, ...] = ()
+    min_replicas: int | None = None  # spec.minReplicas (the API's default is 1)
+    max_replicas: int | None = None  # spec.maxReplicas
+    current_replicas: int | None = None  # status.currentReplicas, when the HPA has run
+    #: behavior.scaleUp.tolerance (Kubernetes 1.33+), else the default 0.1
+    tolerance: float = 0.1
+
+
+@dataclass(frozen=True, slots=True)
+class ScalerMetric:
+    """One metric of an autoscaling/v2 HPA (``spec.metrics[]``), values as numbers.
+
+    ``source`` is the metric type: Resource, ContainerResource, Pods, Object or External;
+    ``name`` the metric's name (``pods.metric.name`` …) or the resource (``cpu``);
+    ``target_type`` Utilization, AverageValue or Value with its number: ``average_value``
+    (per pod), ``value`` (a total) or ``utilization`` (percent of the request)."""
+
+    source: str
+    name: str
+    target_type: str
+    average_value: float | None = None
+    value: float | None = None
+    utilization: float | None = None
+    #: ContainerResource: the container measured
+    container: str | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -233,6 +261,9 @@ class PolicyObject:
     resource_version: str
     spec: Mapping[str, Any]
     status: Mapping[str, Any]
+    #: ``metadata.creationTimestamp`` (RFC 3339; "" when unknown) — the older of two
+    #: policies naming one workload keeps acting
+    created: str = ""
 
     @property
     def ref(self) -> ObjectRef:

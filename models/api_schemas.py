@@ -221,6 +221,9 @@ class ModelDetail(ModelSummary):
     cv: list[dict[str, Any]] = Field(description="the cross-validation table: one row per candidate")
     band_m: int = Field(description="width of the upper band, millicores")
     content_hash: str
+    capacity: float | None = Field(
+        None, description="per-pod capacity, req/s (the profiled knee); null when not measured"
+    )
 
 
 class RefusedFile(BaseModel):

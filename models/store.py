@@ -125,6 +125,11 @@ class Artifact(_Strict):
     window: DataWindow
     trained_at: str
     library: dict[str, str] = Field(default_factory=dict)
+    #: per-pod capacity, req/s: the highest rate one pod carries within its latency SLO
+    #: (``ratefit profile``'s knee, recorded by ``ratefit train --capacity/--profile``);
+    #: None when unmeasured — then the key is left out of the file (older artifacts
+    #: and their content hashes stay as they were)
+    capacity: Annotated[float, Field(gt=0, le=1e9, allow_inf_nan=False)] | None = None
     content_hash: str = ""
 
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
@@ -160,6 +165,7 @@ class Artifact(_Strict):
             "tuned": self.tuned,
             "window": self._window_shown(),
             "cv": [row.model_dump(mode="json") for row in self.cv],
+            "capacity": self.capacity,
         }
 
     def _window_shown(self) -> dict[str, Any]:
@@ -175,7 +181,14 @@ class Artifact(_Strict):
         return window
 
     def to_json_dict(self) -> dict[str, Any]:
-        return self.model_dump(mode="json", by_alias=True)
+        body = self.model_dump(mode="json", by_alias=True)
+        if body.get("capacity") is None:
+            body.pop("capacity", None)  # optional key: absent unless measured
+        return body
+
+    def with_capacity(self, capacity: float | None) -> Artifact:
+        """A re-sealed copy recording the per-pod ``capacity`` (req/s; None removes it)."""
+        return self.model_copy(update={"capacity": capacity, "content_hash": ""}).sealed()
 
     def sealed(self) -> Artifact:
         """A copy with ``content_hash`` computed over everything else."""

@@ -19,7 +19,7 @@ BASE: dict[str, Any] = {
     "metadata": {"name": "label-printer", "namespace": "parcels", "generation": 1},
     "spec": {
         "workload": {"kind": "Deployment", "name": "label-printer"},
-        "mode": "apply",
+        "mode": "Apply",
         "containers": [{"name": "app", "model": "parcels/label-printer/app"}],
     },
 }

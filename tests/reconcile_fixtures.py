@@ -99,19 +99,19 @@ def statefulset(ns: str, name: str, containers: Sequence[tuple[str, str | None, 
 
 
 def policy(ns: str, name: str, *, workload: str, kind: str = "Deployment", containers: Sequence[Mapping[str, Any]],
-           mode: str = "apply", **spec: Any) -> dict[str, Any]:
+           mode: str = "Apply", **spec: Any) -> dict[str, Any]:
     body: dict[str, Any] = {
         "workload": {"kind": kind, "name": workload},
         "mode": mode,
         "containers": [dict(c) for c in containers],
-        "headroom": 0.15,
-        "deadband": 0.1,
+        "headroomPercent": 15,
+        "deadbandPercent": 10,
         "cooldown": "30m",
         "settle": "0s",
-        "stepLimit": {"up": 10.0, "down": 0.1},
+        "stepLimit": {"maxIncreasePercent": 900, "maxDecreasePercent": 90},
         "rateWindow": "1h",
         "ratePercentile": 95,
-        "limits": "keep-ratio",
+        "cpuLimit": "KeepRatio",
     }
     body.update(spec)
     return {"apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",

@@ -36,7 +36,7 @@ TOKEN = "kestrel-check-token"
 
 
 def scenario_policies() -> list[dict]:
-    return [policy(s.namespace, s.workload, workload=s.workload, kind=s.kind, mode="dry-run",
+    return [policy(s.namespace, s.workload, workload=s.workload, kind=s.kind, mode="DryRun",
                    containers=[{"name": c.name, "model": f"{s.namespace}/{s.workload}/{c.name}"} for c in s.containers])
             for s in SCENARIO]
 
@@ -70,10 +70,10 @@ def world(scenario_prometheus, tmp_path_factory):
         ghost["spec"]["template"]["metadata"] = {"labels": {"app": "ghost-api"}}
         sb.create(ghost)
         cname = ghost["spec"]["template"]["spec"]["containers"][0]["name"]
-        sb.create(policy(first.namespace, "ghost-api", workload="ghost-api", mode="dry-run",
+        sb.create(policy(first.namespace, "ghost-api", workload="ghost-api", mode="DryRun",
                          containers=[{"name": cname, "model": f"{first.namespace}/ghost-api/{cname}"}]))
         # a policy whose rateQuery reads another namespace's series: refused, never sent
-        sb.create(policy("parcels", "nosy", workload="label-printer", mode="dry-run",
+        sb.create(policy("parcels", "nosy", workload="label-printer", mode="DryRun",
                          containers=[{"name": "app", "model": "parcels/label-printer/app",
                                       "rateQuery": f'sum by (pod) (rate({REQUEST_METRIC}{{namespace="dispatch"}}[2m]))'}]))
         kc = sb.write_kubeconfig(tmp / "kubeconfig")

@@ -20,7 +20,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from ratefit.controller.decide import Verdict, Why, limit_for, rate_percentile, target_millicores
-from ratefit.controller.policy import ContainerHistory, LimitsMode, WorkloadHistory
+from ratefit.controller.policy import ContainerHistory, CpuLimit, WorkloadHistory
 
 rates = st.lists(st.floats(min_value=0.0, max_value=1e6, allow_nan=False), min_size=1, max_size=60)
 
@@ -59,15 +59,16 @@ settings_ = settings(max_examples=300, deadline=None)
     request=st.integers(min_value=1, max_value=64_000),
     ratio=st.floats(min_value=1.0, max_value=10.0),
     upper=st.floats(min_value=0.0, max_value=64.0),
-    headroom=st.floats(min_value=0.0, max_value=2.0),
-    mode=st.sampled_from(["keep-ratio", "keep", "drop"]),
-    up=st.floats(min_value=1.0, max_value=5.0),
-    down=st.floats(min_value=0.05, max_value=1.0),
+    headroom=st.integers(min_value=0, max_value=200),
+    mode=st.sampled_from(["KeepRatio", "Keep", "Drop"]),
+    up=st.integers(min_value=0, max_value=400),
+    down=st.integers(min_value=0, max_value=95),
     settled=st.booleans(),
 )
 def test_never_request_above_limit(request, ratio, upper, headroom, mode, up, down, settled):
     limit = max(request, int(request * ratio))
-    policy = make_policy(limits=mode, headroom=headroom, stepLimit={"up": up, "down": down})
+    policy = make_policy(cpuLimit=mode, headroomPercent=headroom,
+                         stepLimit={"maxIncreasePercent": up, "maxDecreasePercent": down})
     history = WorkloadHistory(
         containers={"app": ContainerHistory(below_since=NOW - timedelta(hours=3), peak_m=1)} if settled else {}
     )
@@ -78,13 +79,14 @@ def test_never_request_above_limit(request, ratio, upper, headroom, mode, up, do
         assert d.target_m is not None
         lo, hi = sorted((request, d.target_m))
         assert lo <= d.proposed_m <= hi  # between current and target
-        assert request * down - 1e-6 <= d.proposed_m <= request * up + 1e-6
-        if mode == "keep-ratio":
+        # the spec's percentages as factors: up = 1 + inc/100, down = 1 - dec/100 (issue 10)
+        assert request * (1 - down / 100) - 1e-6 <= d.proposed_m <= request * (1 + up / 100) + 1e-6
+        if mode == "KeepRatio":
             # the ratio is kept: the new limit is the smallest whole millicore with
             # new_limit / new_request >= limit / request
             assert d.proposed_limit_m * request >= limit * d.proposed_m - 1e-6
             assert (d.proposed_limit_m - 1) * request < limit * d.proposed_m + 1e-6
-        elif mode == "keep":
+        elif mode == "Keep":
             assert d.proposed_limit_m == limit
         else:
             assert d.proposed_limit_m is None
@@ -98,14 +100,14 @@ def test_never_request_above_limit(request, ratio, upper, headroom, mode, up, do
 def test_limit_for_keep_ratio_never_below_request(current, limit, new):
     if current is not None and current > limit:
         current = limit  # the API server never stores request > limit
-    got = limit_for(current, limit, new, LimitsMode.KEEP_RATIO)
+    got = limit_for(current, limit, new, CpuLimit.KEEP_RATIO)
     assert got is not None and got >= new
 
 
 @settings(max_examples=100, deadline=None)
 @given(request=st.integers(min_value=10, max_value=20_000), upper=st.floats(min_value=0.0, max_value=30.0))
 def test_dry_run_proposes_exactly_where_apply_changes(request, upper):
-    apply = decide_one(make_policy(mode="apply"), request=request, upper=upper).decisions[0]
-    dry = decide_one(make_policy(mode="dry-run"), request=request, upper=upper).decisions[0]
+    apply = decide_one(make_policy(mode="Apply"), request=request, upper=upper).decisions[0]
+    dry = decide_one(make_policy(mode="DryRun"), request=request, upper=upper).decisions[0]
     assert (apply.verdict is Verdict.CHANGED) == (dry.verdict is Verdict.PROPOSED)
     assert (apply.proposed_m, apply.proposed_limit_m, apply.why) == (dry.proposed_m, dry.proposed_limit_m, dry.why)

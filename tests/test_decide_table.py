@@ -17,7 +17,7 @@ from typing import Any
 
 import pytest
 
-from ratefit.controller.decide import ContainerInput, Sizing, Verdict, Why, decide_workload
+from ratefit.controller.decide import ContainerInput, Sizing, Verdict, Why, decide_workload, held_by_conflict
 from ratefit.controller.limits import BudgetView
 from ratefit.controller.policy import ContainerHistory, WorkloadHistory, history_to_status
 from decide_fixtures import NOW, decide_one, make_policy
@@ -69,14 +69,14 @@ CASES = [
          args=dict(request=1000, upper=2.0)),
     Case("a ceiling that is no multiple of 5m wins over rounding", Verdict.CHANGED, Why.AT_CEILING, 1001, None,
          container=dict(ceiling="1001m"), args=dict(request=600, upper=0.9)),
-    Case("limits keep: cut to the limit", Verdict.CHANGED, Why.AT_LIMIT, 600, 600, spec=dict(limits="keep"),
+    Case("limits keep: cut to the limit", Verdict.CHANGED, Why.AT_LIMIT, 600, 600, spec=dict(cpuLimit="Keep"),
          args=dict(request=400, limit=600, upper=1.0)),
-    Case("limits keep: sits at the limit", Verdict.HELD, Why.AT_LIMIT, 600, 600, spec=dict(limits="keep"),
+    Case("limits keep: sits at the limit", Verdict.HELD, Why.AT_LIMIT, 600, 600, spec=dict(cpuLimit="Keep"),
          args=dict(request=600, limit=600, upper=1.0)),
-    Case("limits keep below the limit", Verdict.CHANGED, Why.NEW_TARGET, 460, 2000, spec=dict(limits="keep"),
+    Case("limits keep below the limit", Verdict.CHANGED, Why.NEW_TARGET, 460, 2000, spec=dict(cpuLimit="Keep"),
          args=dict(request=400, limit=2000)),
     Case("limits drop removes the limit with the change", Verdict.CHANGED, Why.NEW_TARGET, 460, None,
-         spec=dict(limits="drop"), args=dict(request=400, limit=800)),
+         spec=dict(cpuLimit="Drop"), args=dict(request=400, limit=800)),
     Case("cooling down", Verdict.HELD, Why.COOLING_DOWN, 460, 920,
          args=dict(request=400, limit=800, history=WorkloadHistory(last_change=NOW - 10 * M))),
     Case("cooldown over", Verdict.CHANGED, Why.NEW_TARGET, 460, 920,
@@ -85,12 +85,12 @@ CASES = [
          args=dict(request=400, limit=800, budget=BudgetView(changes_left=0, rollouts_free=3))),
     Case("no rollout slot free", Verdict.HELD, Why.BUDGET_SPENT, 460, 920,
          args=dict(request=400, limit=800, budget=BudgetView(changes_left=5, rollouts_free=0))),
-    Case("dry-run proposes", Verdict.PROPOSED, Why.NEW_TARGET, 460, 920, spec=dict(mode="dry-run"),
+    Case("dry-run proposes", Verdict.PROPOSED, Why.NEW_TARGET, 460, 920, spec=dict(mode="DryRun"),
          args=dict(request=400, limit=800)),
     Case("--dry-run overrides apply", Verdict.PROPOSED, Why.STEP_LIMITED, 400, None, args=dict(request=200, dry_run=True)),
-    Case("dry-run never waits for the budget", Verdict.PROPOSED, Why.NEW_TARGET, 460, None, spec=dict(mode="dry-run"),
+    Case("dry-run never waits for the budget", Verdict.PROPOSED, Why.NEW_TARGET, 460, None, spec=dict(mode="DryRun"),
          args=dict(request=400, budget=BudgetView(changes_left=0, rollouts_free=0))),
-    Case("dry-run still cools down", Verdict.HELD, Why.COOLING_DOWN, 460, None, spec=dict(mode="dry-run"),
+    Case("dry-run still cools down", Verdict.HELD, Why.COOLING_DOWN, 460, None, spec=dict(mode="DryRun"),
          args=dict(request=400, history=WorkloadHistory(last_change=NOW - M))),
     Case("extrapolated demand is held", Verdict.HELD, Why.EXTRAPOLATED, 400, None, args=dict(request=400, extrapolated=True)),
     Case("extrapolated demand allowed", Verdict.CHANGED, Why.NEW_TARGET, 460, None, spec=dict(allowExtrapolation=True),
@@ -107,16 +107,16 @@ CASES = [
     Case("HPA conflict allowed", Verdict.CHANGED, Why.NEW_TARGET, 460, None, spec=dict(allowHorizontalConflict=True),
          args=dict(request=400, hpa_on_cpu=True)),
     Case("in-place: Guaranteed moves request and limit together", Verdict.CHANGED, Why.NEW_TARGET, 460, 460,
-         spec=dict(method="in-place"), args=dict(request=400, limit=400)),
+         spec=dict(resizeBy="InPlace"), args=dict(request=400, limit=400)),
     Case("in-place: limits keep would break request == limit", Verdict.HELD, Why.IN_PLACE_UNSUPPORTED, 600, 1000,
-         spec=dict(method="in-place", limits="keep"), args=dict(request=1000, limit=1000, history=settled(600))),
-    Case("in-place: no first request", Verdict.HELD, Why.IN_PLACE_UNSUPPORTED, 460, None, spec=dict(method="in-place"),
+         spec=dict(resizeBy="InPlace", cpuLimit="Keep"), args=dict(request=1000, limit=1000, history=settled(600))),
+    Case("in-place: no first request", Verdict.HELD, Why.IN_PLACE_UNSUPPORTED, 460, None, spec=dict(resizeBy="InPlace"),
          args=dict(request=None, limit=None)),
     Case("no request but a limit: requests its limit", Verdict.CHANGED, Why.NEW_TARGET, 600, 600,
          args=dict(request=None, limit=1000, history=settled(600))),
     Case("no request and no limit: the target at once", Verdict.CHANGED, Why.NEW_TARGET, 460, None,
          args=dict(request=None, limit=None)),
-    Case("headroom 0 and rounding up to 5m", Verdict.CHANGED, Why.NEW_TARGET, 235, None, spec=dict(headroom=0),
+    Case("headroom 0 and rounding up to 5m", Verdict.CHANGED, Why.NEW_TARGET, 235, None, spec=dict(headroomPercent=0),
          args=dict(request=150, upper=0.2311)),
 ]
 
@@ -163,10 +163,13 @@ def test_every_verdict_and_why_is_reached():
     seen_verdicts = {c.verdict for c in CASES}
     # Rejected: test_rejected_* above; ApiUnavailable: set by the observe stage when a LIST
     # fails (tests/test_faults_kube.py), never by the rules; the per-container input reasons
-    # (QueryRefused … ContainerMissing): tests/test_blast_radius.py
+    # (QueryRefused … ContainerMissing): tests/test_blast_radius.py; PolicyConflict:
+    # held_by_conflict (test_held_by_conflict below); PolicyInvalid and WorkloadNotFound:
+    # written by the record stage (tests/test_record.py)
     seen_whys = {c.why for c in CASES} | {Why.REJECTED, Why.API_UNAVAILABLE, Why.QUERY_REFUSED, Why.QUERY_FAILED,
                                           Why.TOO_MANY_SERIES, Why.INVALID_MODEL_KEY, Why.DEMAND_OUT_OF_RANGE,
-                                          Why.CONTAINER_MISSING}
+                                          Why.CONTAINER_MISSING, Why.POLICY_CONFLICT, Why.POLICY_INVALID,
+                                          Why.WORKLOAD_NOT_FOUND}
     assert seen_verdicts == set(Verdict)
     assert seen_whys == set(Why), set(Why) - seen_whys
 
@@ -182,8 +185,20 @@ def test_settling_record_starts_and_peaks():
     # a target back at or above the current request ends the settling
     wd4 = decide_one(p, request=1000, upper=0.9, history=wd3.history, now=NOW + 30 * M)
     assert wd4.decisions[0].settle == ContainerHistory()
-    status = history_to_status(wd3.history)
-    assert status["settling"] == [{"container": "app", "belowSince": "2026-12-01T12:00:00Z", "peak": "575m"}]
+    status = history_to_status(wd3.history, [d.to_status() for d in wd3.decisions])
+    (row,) = status["containers"]
+    assert (row["name"], row["belowSinceTime"], row["peakTarget"]) == ("app", "2026-12-01T12:00:00Z", "575m")
+    assert row["verdict"] == "Held" and "newRequest" not in row  # a held row has no new value
+
+
+def test_held_by_conflict():
+    p = make_policy()
+    history = WorkloadHistory(last_change=NOW - 60 * M, containers={"app": ContainerHistory(below_since=NOW, peak_m=300)})
+    wd = held_by_conflict(p, [ContainerInput("app", 400, 800, 10.0, Sizing(0.3, 0.9))], history=history,
+                          older="parcels/first")
+    (d,) = wd.decisions
+    assert (d.verdict, d.why, d.current_m, d.proposed_m) == (Verdict.HELD, Why.POLICY_CONFLICT, 400, 400)
+    assert "parcels/first" in d.message and wd.changed == () and wd.history == history
 
 
 def test_one_patch_per_workload_gates_all_containers():
@@ -224,17 +239,20 @@ def test_status_entry():
     wd = decide_one(make_policy(), request=400, limit=800, rate=12.3456789, upper=0.4, demand=0.3121)
     entry = wd.decisions[0].to_status()
     assert entry == {
-        "container": "app",
+        "name": "app",
         "current": "400m",
-        "proposed": "460m",
+        "newRequest": "460m",
         "target": "460m",
         "currentLimit": "800m",
-        "proposedLimit": "920m",
+        "newLimit": "920m",
         "demand": "313m",  # 0.3121 cores rounded up to whole millicores
-        "upper": "400m",
+        "demandBound": "400m",
         "rate": 12.345679,
         "extrapolated": False,
-        "verdict": "changed",
-        "why": "NewTarget",
+        "verdict": "Changed",
+        "reason": "NewTarget",
         "message": "raise to 460m (target 460m)",
     }
+    # held: no new value in the row (issue 10)
+    held = decide_one(make_policy(), request=450, limit=800, upper=0.4).decisions[0].to_status()
+    assert held["verdict"] == "Held" and "newRequest" not in held and "newLimit" not in held

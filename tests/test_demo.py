@@ -36,7 +36,7 @@ def test_demo_prints_the_review_and_stops_everything(tmp_path, source) -> None:
     want = {(s.namespace, s.workload, c.name) for s in SCENARIO for c in s.containers}
     for rs in (rows, later):
         assert {(r["namespace"], r["workload"].split("/", 1)[1], r["container"]) for r in rs} == want
-        assert all(r["verdict"] in ("held", "proposed") for r in rs)  # dry-run passes: nothing "changed"
+        assert all(r["verdict"] in ("Held", "Proposed") for r in rs)  # DryRun passes: nothing "Changed"
     # past the settle period nothing is still Settling (the rates are the same)
     assert not any(r["why"] == "Settling" for r in later)
     assert f"rates from {source}" in err

@@ -80,7 +80,7 @@ def workload_docs() -> list[dict]:
 def other_policies() -> list[dict]:
     return [{"apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
              "metadata": {"name": name, "namespace": NS},
-             "spec": {"workload": {"kind": kind, "name": name}, "mode": "dry-run",
+             "spec": {"workload": {"kind": kind, "name": name}, "mode": "DryRun",
                       "containers": [{"name": c, "model": f"{NS}/{name}/{c}", "floor": "20m", "ceiling": "2"}]}}
             for kind, name, c, _ in WORKLOADS if name != "api"]
 
@@ -109,7 +109,7 @@ def test_every_command_of_on_your_cluster_runs(sandbox, sandbox_kubeconfig, kube
     lines = [ln for ln in fenced_block("on-your-cluster").splitlines() if ln.strip()]
     assert lines[0].startswith("export KUBECONFIG=") and "PROMETHEUS=" in lines[0]
     policy = yaml.safe_load(fenced_block("my-policies/api.yaml"))
-    assert policy["kind"] == "SizingPolicy" and policy["spec"]["mode"] == "dry-run"
+    assert policy["kind"] == "SizingPolicy" and policy["spec"]["mode"] == "DryRun"
 
     # the reader's cluster: workloads running, pods named by the sandbox
     kubectl("apply", "-f", "-", input=yaml.safe_dump_all(workload_docs()), check=True)
@@ -177,7 +177,7 @@ def test_every_command_of_on_your_cluster_runs(sandbox, sandbox_kubeconfig, kube
         assert row is not None, f"no review row for {name}/{c}:\n{review}"
         assert "NoMetrics" not in row and "NoModel" not in row, row
     got = json.loads(kubectl("get", "sizingpolicy", "api", "-n", NS, "-o", "json", check=True).stdout)
-    assert got["spec"]["mode"] == "apply"
+    assert got["spec"]["mode"] == "Apply"
     # step 10 created the trainer's CronJob and Indexed Job in the sandbox
     listed = kubectl("get", "cronjobs,jobs", "-n", "ratefit-system", check=True).stdout
     assert "ratefit-train-daily" in listed and "job.batch/ratefit-train" in listed

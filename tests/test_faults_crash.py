@@ -62,7 +62,7 @@ def test_crash_between_two_workloads_then_converges_without_a_duplicate(tmp_path
         # one workload fully changed, the other not at all: never half a workload
         assert (_req(w, "a"), _req(w, "b")) == (315, 100)
         assert parse_cpu(w.cpu("shop", "a", "app")[1]) == 630  # its limit moved in the same patch
-        assert "status" not in w.sizing_policy("shop", "a") or not w.sizing_policy("shop", "a")["status"].get("proposals")
+        assert "status" not in w.sizing_policy("shop", "a") or not w.sizing_policy("shop", "a")["status"].get("containers")
         p2 = run_controller(w)
         assert p2.returncode == 0, p2.stderr
         assert (_req(w, "a"), _req(w, "b")) == (315, 315)
@@ -76,7 +76,7 @@ def test_crash_after_a_step_limited_patch_keeps_the_cooldown(tmp_path, shared_si
     """The status write is lost with the process, but the change time travelled in the
     same patch (annotation ratefit.dev/last-change): the next run does not take a
     second step inside the cooldown."""
-    objects = _objects(stepLimit={"up": 2.0, "down": 0.5}, cooldown="30m")
+    objects = _objects(stepLimit={"maxIncreasePercent": 100, "maxDecreasePercent": 50}, cooldown="30m")
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates=RATES) as w:
         p = run_controller(w, crash_at="after-patch:1")
         assert p.returncode == -signal.SIGKILL, p.stderr
@@ -86,8 +86,8 @@ def test_crash_after_a_step_limited_patch_keeps_the_cooldown(tmp_path, shared_si
         assert p2.returncode == 0, p2.stderr
         assert _req(w, "a") == 200  # CoolingDown: no duplicate step
         assert _req(w, "b") == 200
-        props = {x["container"]: x for x in w.sizing_policy("shop", "a")["status"]["proposals"]}
-        assert props["app"]["verdict"] == "held" and props["app"]["why"] == "CoolingDown"
+        props = {x["name"]: x for x in w.sizing_policy("shop", "a")["status"]["containers"]}
+        assert props["app"]["verdict"] == "Held" and props["app"]["reason"] == "CoolingDown"
         assert len(w.patches("shop", "a")) == 1
 
 
@@ -107,10 +107,10 @@ def test_crash_after_a_status_write_then_converges(tmp_path, shared_sizing_api) 
 
 
 def test_crash_after_in_place_resizes_then_converges(tmp_path, shared_sizing_api) -> None:
-    """method in-place: killed after the pods were resized (before the status write), the
+    """resizeBy InPlace: killed after the pods were resized (before the status write), the
     next run decides from what the pods run and resizes nothing again."""
     objects = [deployment("shop", "a", [("app", "100m", "200m")], replicas=2),
-               policy("shop", "a", workload="a", method="in-place", containers=[{"name": "app", "model": "shop/a/app"}])]
+               policy("shop", "a", workload="a", resizeBy="InPlace", containers=[{"name": "app", "model": "shop/a/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "a"): [50.0]}) as w:
         def pods() -> list[int]:
             items = w.get("/api/v1/namespaces/shop/pods?labelSelector=app%3Da")["items"]
@@ -123,7 +123,7 @@ def test_crash_after_in_place_resizes_then_converges(tmp_path, shared_sizing_api
         p = run_controller(w, crash_at="after-patch:1")
         assert p.returncode == -signal.SIGKILL, p.stderr
         assert pods() == [315, 315] and len(resizes()) == 2
-        assert not (w.sizing_policy("shop", "a").get("status") or {}).get("proposals")  # the status was lost
+        assert not (w.sizing_policy("shop", "a").get("status") or {}).get("containers")  # the status was lost
         # ... but the change time is on the workload (metadata only: no new generation, no rollout),
         # so the cooldown survives the crash
         wl = w.workload("shop", "a")
@@ -134,5 +134,5 @@ def test_crash_after_in_place_resizes_then_converges(tmp_path, shared_sizing_api
         assert pods() == [315, 315]
         assert len(resizes()) == 2 and len(set(resizes())) == 2  # each pod resized exactly once
         assert w.cpu("shop", "a", "app") == ("100m", "200m")  # the template is left as it was
-        (prop,) = w.sizing_policy("shop", "a")["status"]["proposals"]
-        assert (prop["verdict"], prop["why"]) == ("held", "InsideDeadband")
+        (prop,) = w.sizing_policy("shop", "a")["status"]["containers"]
+        assert (prop["verdict"], prop["reason"]) == ("Held", "InsideDeadband")

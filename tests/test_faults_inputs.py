@@ -52,13 +52,17 @@ def test_prometheus_trouble_holds_everything_with_nometrics(tmp_path, shared_siz
         finally:
             client.close()
         assert r.outcome is PassOutcome.DEGRADED
-        assert [(row.verdict, row.why) for row in r.rows] == [("held", ("NoMetrics",))] * 2
+        assert [(row.verdict, row.why) for row in r.rows] == [("Held", ("NoMetrics",))] * 2
         assert r.patched == ()
         _assert_untouched(w)
         assert tel.value("ratefit_controller_rate_query_errors_total", {"kind": "NoMetrics"}) == 2
         # the status says so (proposals held NoMetrics), so an operator sees why nothing moves
-        props = w.sizing_policy("shop", "web")["status"]["proposals"]
-        assert {p["why"] for p in props} == {"NoMetrics"}
+        status = w.sizing_policy("shop", "web")["status"]
+        props = status["containers"]
+        assert {p["reason"] for p in props} == {"NoMetrics"}
+        # every container held for a missing input: Ready is not True (issue 10)
+        conds = {c["type"]: c for c in status["conditions"]}
+        assert (conds["Ready"]["status"], conds["InputsAvailable"]["reason"]) == ("False", "NoMetrics")
 
 
 @pytest.mark.parametrize("fault", ["down", "error-500", "garbage"])
@@ -75,7 +79,7 @@ def test_sizing_api_trouble_holds_everything_with_nomodel(tmp_path, shared_sizin
         tel = Telemetry()
         rec = w.reconciler(sizing=w.sizing(url, retries=1), telemetry=tel)
         r = rec.run_pass()
-        assert [(row.verdict, row.why) for row in r.rows] == [("held", ("NoModel",))] * 2
+        assert [(row.verdict, row.why) for row in r.rows] == [("Held", ("NoModel",))] * 2
         assert r.patched == () and r.outcome is PassOutcome.DEGRADED
         _assert_untouched(w)
         assert sum(tel.value("ratefit_controller_sizing_api_errors_total", {"kind": k})
@@ -90,6 +94,7 @@ def test_after_the_fault_the_next_pass_converges(tmp_path, shared_sizing_api, cl
         assert r.patched == ("shop/Deployment/web",)
         assert len(w.patches("shop", "web")) == 1  # both containers in ONE patch: never half a workload
         assert w.cpu("shop", "web", "app")[0] != "100m" and w.cpu("shop", "web", "side")[0] != "100m"
-        (ev,) = [e for e in w.events("shop") if e["reason"] == "CpuRequestChanged"]  # one Event per workload …
+        (ev,) = [e for e in w.events("shop") if e["reason"] == "CpuRequestChanged"
+                 and e["regarding"]["kind"] == "Deployment"]  # one Event per workload …
         assert ev["note"].startswith("app: ") and "; side: " in ev["note"]  # … naming each container
         assert ev["regarding"]["kind"] == "Deployment" and ev["regarding"]["name"] == "web"

@@ -99,25 +99,25 @@ def test_503_on_the_workload_list_holds_apiunavailable_and_keeps_the_status(tmp_
     and no Event, so the stored proposals and Ready condition stay as they were
     (Kubernetes API conventions: 503 is a temporary failure; clients retry)."""
     objects = [deployment("shop", "web", [("app", "100m", None)]),
-               policy("shop", "web", workload="web", mode="dry-run",
+               policy("shop", "web", workload="web", mode="DryRun",
                       containers=[{"name": "app", "model": "shop/web/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates=RATES) as w:
         first = w.reconciler().run_pass()
-        assert first.rows[0].verdict == "proposed"
+        assert first.rows[0].verdict == "Proposed"
         stored = w.sizing_policy("shop", "web")["status"]
         events = [e["reason"] for e in w.events("shop")]
         rule = w.sandbox.faults.add("GET", LIST_PATH, status=503, count=None)
         r = w.reconciler().run_pass()
         assert rule.hits >= 2  # the adapter retried, then gave up
         assert [row.why for row in r.rows] == [("ApiUnavailable",)]
-        assert r.rows[0].verdict == "held"
+        assert r.rows[0].verdict == "Held"
         assert r.rows[0].note.startswith("listing Deployments in shop failed") and "last status is kept" in r.rows[0].note
         assert r.status_writes == 0 and r.events == 0 and r.outcome.value == "degraded"
         assert w.sizing_policy("shop", "web")["status"] == stored  # the last status is kept
         assert [e["reason"] for e in w.events("shop")] == events  # no WorkloadNotFound Event
         w.sandbox.faults.clear()
         again = w.reconciler().run_pass()  # the API is back: decided as before, nothing new to say
-        assert again.rows[0].verdict == "proposed" and again.status_writes == 0
+        assert again.rows[0].verdict == "Proposed" and again.status_writes == 0
 
 
 def test_503_on_the_hpa_list_holds_apiunavailable(tmp_path, shared_sizing_api) -> None:

@@ -53,7 +53,7 @@ def scenario_policies(mode: str) -> list[dict]:
         out.append(policy(svc.namespace, svc.workload, workload=svc.workload, kind=svc.kind, mode=mode,
                           containers=[{"name": c.name, "model": f"{svc.namespace}/{svc.workload}/{c.name}",
                                        "floor": "10m"} for c in svc.containers],
-                          headroom=HEADROOM, deadband=DEADBAND))
+                          headroomPercent=round(HEADROOM * 100), deadbandPercent=round(DEADBAND * 100)))
     return out
 
 
@@ -133,11 +133,11 @@ def expected_rows(prom_url: str, api_url: str, at: float) -> dict[tuple[str, str
             target = max(10, ceil5(ans["demand_bound_m"] * (1 + HEADROOM)))
             diff = abs(target - c.request_m)
             if not (diff > DEADBAND * c.request_m and diff >= 10):
-                verdict, why, proposed = "held", "InsideDeadband", c.request_m
+                verdict, why, proposed = "Held", "InsideDeadband", c.request_m
             elif svc.hpa_on_cpu:
-                verdict, why, proposed = "held", "HorizontalConflict", target
+                verdict, why, proposed = "Held", "HorizontalConflict", target
             else:
-                verdict, why, proposed = "proposed", "NewTarget", target
+                verdict, why, proposed = "Proposed", "NewTarget", target
             out[(svc.namespace, svc.workload, c.name)] = {
                 "rate": rate, "upper_m": ans["demand_bound_m"], "proposed_m": proposed, "verdict": verdict, "why": why,
                 "limit_m": c.limit_m, "request_m": c.request_m}
@@ -146,7 +146,7 @@ def expected_rows(prom_url: str, api_url: str, at: float) -> dict[tuple[str, str
 
 def test_plan_prints_the_expected_proposals_and_changes_nothing(parts) -> None:
     hist, api_url, tmp = parts
-    sb, kc = start_sandbox(tmp, "dry-run")
+    sb, kc = start_sandbox(tmp, "DryRun")
     try:
         before = rvs(sb.url)
         rows = plan(kc, hist.url, api_url, hist.end)
@@ -164,14 +164,14 @@ def test_plan_prints_the_expected_proposals_and_changes_nothing(parts) -> None:
         assert row["proposed_m"] == exp["proposed_m"], k
         assert parse_cpu(row["current"]) == exp["request_m"]
     # the invented scenario has both directions: over-provisioned ones come down, throttled ones go up
-    assert any(r["verdict"] == "proposed" and r["proposed_m"] < r["current_m"] for r in rows)
+    assert any(r["verdict"] == "Proposed" and r["proposed_m"] < r["current_m"] for r in rows)
     assert any(r["why"] == "HorizontalConflict" for r in rows)
 
 
 def test_apply_patches_exactly_the_changed_containers_and_a_second_pass_changes_nothing(parts) -> None:
     hist, api_url, tmp = parts
     want = expected_rows(hist.url, api_url, hist.end)
-    sb, kc = start_sandbox(tmp, "apply")
+    sb, kc = start_sandbox(tmp, "Apply")
     try:
         run_once(kc, hist.url, api_url, hist.end)
         for (ns, wl, cname), exp in want.items():
@@ -180,7 +180,7 @@ def test_apply_patches_exactly_the_changed_containers_and_a_second_pass_changes_
             c = {x["name"]: x for x in obj["spec"]["template"]["spec"]["containers"]}[cname]
             req = parse_cpu(c["resources"]["requests"]["cpu"])
             lim = c["resources"].get("limits", {}).get("cpu")
-            if exp["verdict"] == "proposed":  # apply mode: changed, with the proposed value
+            if exp["verdict"] == "Proposed":  # apply mode: changed, with the proposed value
                 assert req == exp["proposed_m"], (ns, wl, cname)
                 if exp["limit_m"] is not None:  # keep-ratio (DESIGN.md step 8), never below the request
                     assert parse_cpu(lim) == max(math.ceil(exp["limit_m"] * req / exp["request_m"] - 1e-9), req)

@@ -240,7 +240,7 @@ def policy(ns: str, name: str = "web") -> dict:
     return {
         "apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
         "metadata": {"name": name, "namespace": ns},
-        "spec": {"workload": {"kind": "Deployment", "name": "web"}, "mode": "dry-run",
+        "spec": {"workload": {"kind": "Deployment", "name": "web"}, "mode": "DryRun",
                  "containers": [{"name": "app", "model": f"{ns}/web/app"}]},
     }
 
@@ -541,10 +541,10 @@ def test_status_written_through_subresource_without_moving_generation(
     status = {"observedGeneration": before.generation, "conditions": [{
         "type": "Ready", "status": "True", "reason": "Sized", "message": "ok",
         "lastTransitionTime": "2026-01-01T00:00:00Z", "observedGeneration": before.generation}],
-        "proposals": [{"container": "app", "current": "500m", "proposed": "300m", "verdict": "proposed",
-                       "why": "NewTarget"}]}
+        "containers": [{"name": "app", "current": "500m", "newRequest": "300m", "verdict": "Proposed",
+                        "reason": "NewTarget"}]}
     after = adapter.write_policy_status(ns, "web", status, resource_version=before.resource_version)
-    assert after.status["proposals"][0]["proposed"] == "300m"
+    assert after.status["containers"][0]["newRequest"] == "300m"
     assert after.generation == before.generation  # status writes never bump generation
     assert after.spec == before.spec
     assert adapter.read_policy(ns, "web").status["conditions"][0]["reason"] == "Sized"
@@ -579,9 +579,9 @@ def test_watch_sees_added_and_modified(target: Target, adapter: KubeAdapter, ns:
         added = events.get(timeout=10)
         assert added.type == "ADDED" and added.policy.name == "web"
         k8s.CustomObjectsApi(raw).patch_namespaced_custom_object(
-            "ratefit.dev", "v1alpha1", ns, "sizingpolicies", "web", {"spec": {"mode": "apply"}})
+            "ratefit.dev", "v1alpha1", ns, "sizingpolicies", "web", {"spec": {"mode": "Apply"}})
         modified = events.get(timeout=10)
-        assert modified.type == "MODIFIED" and modified.policy.spec["mode"] == "apply"
+        assert modified.type == "MODIFIED" and modified.policy.spec["mode"] == "Apply"
     finally:
         stop.set()
         t.join(timeout=15)

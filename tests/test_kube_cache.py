@@ -39,14 +39,14 @@ def eventually(check: Callable[[], Any], *, timeout: float = 15.0, what: str = "
         time.sleep(0.05)
 
 
-def _objects(ns: str, *, method: str = "rollout") -> list[dict[str, Any]]:
+def _objects(ns: str, *, resize_by: str = "Rollout") -> list[dict[str, Any]]:
     return [
         deployment(ns, "web", [("app", "500m", "1"), ("side", "100m", None)]),
         deployment(ns, "api", [("app", "250m", None)], replicas=1),
         statefulset(ns, "db", [("app", "1", "2")], replicas=1),
         hpa(ns, "web", target="web"),
         hpa(ns, "api", target="api", cpu_utilization=False),
-        policy(ns, "web", workload="web", containers=[{"name": "app", "model": f"{ns}/web/app"}], method=method),
+        policy(ns, "web", workload="web", containers=[{"name": "app", "model": f"{ns}/web/app"}], resizeBy=resize_by),
         policy(ns, "db", workload="db", kind="StatefulSet", containers=[{"name": "app", "model": f"{ns}/db/app"}]),
     ]
 
@@ -56,7 +56,7 @@ def cluster(tmp_path) -> Iterator[tuple[SandboxServer, KubeAdapter]]:
     """The sandbox with the CRD and two namespaces of objects; an adapter for LIST reads."""
     sb = SandboxServer(load=[CRD], bookmark_interval=0.2).start()
     try:
-        for obj in _objects("shop", method="in-place") + _objects("bank"):
+        for obj in _objects("shop", resize_by="InPlace") + _objects("bank"):
             sb.create(obj)
         kube = KubeAdapter.from_kubeconfig(str(sb.write_kubeconfig(tmp_path / "kubeconfig")), identity="test",
                                            sleep=lambda s: None)
@@ -141,7 +141,7 @@ def test_adds_changes_and_deletes_are_seen(cluster, caches) -> None:
     eventually(lambda: cache.list_policies(["bank"]) and any(
         p.status.get("observedGeneration") == 1 for p in cache.list_policies(["bank"]).items), what="status")
     assert woken == []
-    httpx.patch(f"{sb.url}/apis/ratefit.dev/v1alpha1/namespaces/bank/sizingpolicies/web", json={"spec": {"headroom": 0.3}},
+    httpx.patch(f"{sb.url}/apis/ratefit.dev/v1alpha1/namespaces/bank/sizingpolicies/web", json={"spec": {"headroomPercent": 30}},
                 headers={"Content-Type": "application/merge-patch+json"}, timeout=10).raise_for_status()
     eventually(lambda: woken, what="the wake-up on a spec change")
     assert cache.stats().total("relists") == 0
@@ -219,12 +219,12 @@ def test_pods_of_in_place_workloads_follow_resizes_and_policy_changes(cluster, c
     # bank switches its policy to in-place: its pods are watched from then on; back: no longer
     merge = {"Content-Type": "application/merge-patch+json"}
     url = f"{sb.url}/apis/ratefit.dev/v1alpha1/namespaces/bank/sizingpolicies/web"
-    httpx.patch(url, json={"spec": {"method": "in-place"}}, headers=merge, timeout=10).raise_for_status()
+    httpx.patch(url, json={"spec": {"resizeBy": "InPlace"}}, headers=merge, timeout=10).raise_for_status()
     eventually(lambda: _watches(sb, "/namespaces/bank/pods"), what="a pod watch in bank")
     bank_web = cache.read_workload("bank", "Deployment", "web")
     eventually(lambda: list(cache.list_pods(bank_web)) == sorted(kube.list_pods(bank_web), key=lambda p: p.name),
                what="bank's pods")
-    httpx.patch(url, json={"spec": {"method": "rollout"}}, headers=merge, timeout=10).raise_for_status()
+    httpx.patch(url, json={"spec": {"resizeBy": "Rollout"}}, headers=merge, timeout=10).raise_for_status()
     eventually(lambda: "bank" not in cache._pods, what="the bank pod informer to stop")
 
 
@@ -234,7 +234,7 @@ def test_cached_values_are_frozen_and_copies_are_plain(cluster, caches) -> None:
     pol = next(p for p in cache.list_policies(["shop"]).items if p.name == "web")
     assert isinstance(pol.spec, FrozenDict) and isinstance(pol.spec["containers"], FrozenList)
     with pytest.raises(TypeError, match="read-only"):
-        pol.spec["mode"] = "apply"  # type: ignore[index]
+        pol.spec["mode"] = "Apply"  # type: ignore[index]
     with pytest.raises(TypeError, match="read-only"):
         pol.spec["containers"].append({})
     wl = cache.read_workload("shop", "Deployment", "web")
@@ -242,9 +242,9 @@ def test_cached_values_are_frozen_and_copies_are_plain(cluster, caches) -> None:
         wl.annotations["x"] = "y"  # type: ignore[index]
     plain = copy.deepcopy(pol.spec)
     assert type(plain) is dict and type(plain["containers"]) is list and plain == pol.spec
-    plain["mode"] = "dry-run"  # the copy is the caller's
-    assert pol.spec["mode"] == "apply"
-    assert json.loads(json.dumps(pol.spec)) == plain | {"mode": "apply"}
+    plain["mode"] = "DryRun"  # the copy is the caller's
+    assert pol.spec["mode"] == "Apply"
+    assert json.loads(json.dumps(pol.spec)) == plain | {"mode": "Apply"}
     # the policy parses exactly as the LISTed one does (pydantic takes the frozen values)
     listed = next(p for p in kube.list_policies(["shop"]).items if p.name == "web")
     assert parse_policy(policy_object_dict(pol)) == parse_policy(policy_object_dict(listed))

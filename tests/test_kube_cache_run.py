@@ -27,10 +27,10 @@ OBJECTS = [
     deployment("shop", "api", [("app", "100m", "1")]),
     statefulset("shop", "a", [("app", "400m", None)]),
     hpa("shop", "api", target="api", cpu_utilization=False),
-    policy("shop", "web", workload="web", mode="dry-run",
+    policy("shop", "web", workload="web", mode="DryRun",
            containers=[{"name": "app", "model": "shop/web/app"}, {"name": "side", "model": "shop/web/side"}]),
-    policy("shop", "api", workload="api", mode="dry-run", containers=[{"name": "app", "model": "shop/api/app"}]),
-    policy("shop", "a", workload="a", kind="StatefulSet", mode="dry-run", method="in-place",
+    policy("shop", "api", workload="api", mode="DryRun", containers=[{"name": "app", "model": "shop/api/app"}]),
+    policy("shop", "a", workload="a", kind="StatefulSet", mode="DryRun", resizeBy="InPlace",
            containers=[{"name": "app", "model": "shop/a/app"}]),
 ]
 RATES = {("shop", "web"): [50.0, 40.0], ("shop", "api"): [10.0], ("shop", "a"): [30.0]}

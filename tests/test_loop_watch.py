@@ -21,7 +21,7 @@ RATEFIT = Path(sys.executable).with_name("ratefit")
 
 def test_a_spec_change_wakes_the_loop_and_logs_are_json(tmp_path, shared_sizing_api) -> None:
     objects = [deployment("shop", "web", [("app", "1000m", None)]),
-               policy("shop", "web", workload="web", mode="dry-run", containers=[{"name": "app", "model": "shop/web/app"}])]
+               policy("shop", "web", workload="web", mode="DryRun", containers=[{"name": "app", "model": "shop/web/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         log = open(tmp_path / "run.log", "w")
         proc = subprocess.Popen([str(RATEFIT), "run", "--kubeconfig", str(w.kubeconfig), "--replay", str(w.history),
@@ -35,16 +35,16 @@ def test_a_spec_change_wakes_the_loop_and_logs_are_json(tmp_path, shared_sizing_
             while status().get("observedGeneration") != 1:
                 assert time.monotonic() < deadline, (tmp_path / "run.log").read_text()[-2000:]
                 time.sleep(0.2)
-            assert parse_cpu(status()["proposals"][0]["proposed"]) == 315  # headroom 0.15: ceil5(270 × 1.15)
+            assert parse_cpu(status()["containers"][0]["newRequest"]) == 315  # headroomPercent 15: ceil5(270 × 1.15)
             r = httpx.patch(w.sandbox.url + "/apis/ratefit.dev/v1alpha1/namespaces/shop/sizingpolicies/web",
-                            json={"spec": {"headroom": 0.5}}, headers={"Content-Type": "application/merge-patch+json"},
+                            json={"spec": {"headroomPercent": 50}}, headers={"Content-Type": "application/merge-patch+json"},
                             timeout=10)
             r.raise_for_status()
             changed_at = time.monotonic()
             while status().get("observedGeneration") != 2:
                 assert time.monotonic() - changed_at < 30, "the loop did not wake up on the spec change"
                 time.sleep(0.2)
-            assert parse_cpu(status()["proposals"][0]["proposed"]) == 405  # ceil5(270 × 1.5)
+            assert parse_cpu(status()["containers"][0]["newRequest"]) == 405  # ceil5(270 × 1.5)
         finally:
             proc.send_signal(signal.SIGTERM)
             code = proc.wait(timeout=30)
@@ -53,5 +53,5 @@ def test_a_spec_change_wakes_the_loop_and_logs_are_json(tmp_path, shared_sizing_
         lines = [ln for ln in (tmp_path / "run.log").read_text().splitlines() if ln.startswith("{")]
         docs = [json.loads(ln) for ln in lines]
         assert any(d.get("msg") == "pass" and d.get("outcome") == "done" for d in docs)
-        assert any(d.get("msg") == "decision" and d.get("verdict") == "proposed" for d in docs)
+        assert any(d.get("msg") == "decision" and d.get("verdict") == "Proposed" for d in docs)
         assert all({"time", "level", "logger"} <= set(d) for d in docs)

@@ -116,11 +116,13 @@ def test_schema_is_structural(schema):
 
 def test_printer_columns_point_at_schema_fields(crd, schema):
     cols = {c["name"]: c for c in crd["spec"]["versions"][0]["additionalPrinterColumns"]}
-    assert {"Workload", "Mode", "Ready", "Last change", "Age"} <= set(cols)
+    assert {"Workload", "Mode", "Ready", "Summary", "Last change", "Age"} <= set(cols)
+    # the Mode column says what the controller does (issue 10), not what the spec asks
+    assert cols["Mode"]["jsonPath"] == ".status.effectiveMode"
     assert cols["Age"]["jsonPath"] == ".metadata.creationTimestamp" and cols["Age"]["type"] == "date"
     assert cols["Last change"]["type"] == "date"
     assert cols["Ready"]["jsonPath"] == '.status.conditions[?(@.type=="Ready")].status'
-    for name in ("Workload", "Mode", "Last change"):
+    for name in ("Workload", "Mode", "Summary", "Last change"):
         node = schema
         for part in cols[name]["jsonPath"].strip(".").split("."):
             node = node["properties"][part]
@@ -128,9 +130,12 @@ def test_printer_columns_point_at_schema_fields(crd, schema):
 
 
 def test_enums_match_the_decision_code(schema):
-    item = schema["properties"]["status"]["properties"]["proposals"]["items"]["properties"]
-    assert set(item["why"]["enum"]) == {w.value for w in Why}
+    item = schema["properties"]["status"]["properties"]["containers"]["items"]["properties"]
+    assert set(item["reason"]["enum"]) == {w.value for w in Why}
     assert set(item["verdict"]["enum"]) == {v.value for v in Verdict}
+    from ratefit.controller.policy import Mode
+
+    assert set(schema["properties"]["status"]["properties"]["effectiveMode"]["enum"]) == {m.value for m in Mode}
 
 
 def test_defaults_match_the_pydantic_model(schema):
@@ -144,8 +149,8 @@ def test_defaults_match_the_pydantic_model(schema):
         model_default = by_alias[name].default
         assert node["default"] == (model_default.value if hasattr(model_default, "value") else model_default), name
     step = props["stepLimit"]["properties"]
-    assert step["up"]["default"] == by_alias["stepLimit"].default.up
-    assert step["down"]["default"] == by_alias["stepLimit"].default.down
+    assert step["maxIncreasePercent"]["default"] == by_alias["stepLimit"].default.max_increase_percent
+    assert step["maxDecreasePercent"]["default"] == by_alias["stepLimit"].default.max_decrease_percent
     container = props["containers"]["items"]["properties"]
     assert container["floor"]["default"] == "10m"
     from ratefit.controller.policy import ContainerSpec
@@ -178,8 +183,8 @@ def test_example_accepted_by_crd_schema_and_parser(path, validator):
 
 def test_examples_cover_the_features():
     policies = [parse_policy(yaml.safe_load(p.read_text())) for p in POLICY_EXAMPLES]
-    assert {p.mode.value for p in policies} == {"dry-run", "apply"}
-    assert {p.method.value for p in policies} == {"rollout", "in-place"}
+    assert {p.mode.value for p in policies} == {"DryRun", "Apply"}
+    assert {p.resize_by.value for p in policies} == {"Rollout", "InPlace"}
     assert {"StatefulSet", "Deployment"} == {p.workload_kind for p in policies}
     # the scenario's HPA-on-CPU workload has a policy that must be held
     hpa = [p for p in policies if service(f"{p.namespace}/{p.workload_name}").hpa_on_cpu]
@@ -205,17 +210,22 @@ def test_examples_render_with_kustomize():
 BAD = [
     ("unknown kind", ["spec", "workload", "kind"], "DaemonSet"),
     ("unknown mode", ["spec", "mode"], "auto"),
-    ("unknown method", ["spec", "method"], "restart"),
-    ("unknown limits", ["spec", "limits"], "scale"),
-    ("deadband 1", ["spec", "deadband"], 1.0),
-    ("negative deadband", ["spec", "deadband"], -0.1),
-    ("step up < 1", ["spec", "stepLimit", "up"], 0.9),
-    ("step down 0", ["spec", "stepLimit", "down"], 0),
-    ("step down > 1", ["spec", "stepLimit", "down"], 1.5),
+    ("old mode spelling", ["spec", "mode"], "dry-run"),
+    ("unknown resizeBy", ["spec", "resizeBy"], "Restart"),
+    ("old resizeBy spelling", ["spec", "resizeBy"], "in-place"),
+    ("unknown cpuLimit", ["spec", "cpuLimit"], "Scale"),
+    ("deadband 100", ["spec", "deadbandPercent"], 100),
+    ("negative deadband", ["spec", "deadbandPercent"], -1),
+    ("fractional deadband", ["spec", "deadbandPercent"], 0.1),
+    ("fractional headroom", ["spec", "headroomPercent"], 0.15),
+    ("negative step increase", ["spec", "stepLimit", "maxIncreasePercent"], -1),
+    ("step decrease 100", ["spec", "stepLimit", "maxDecreasePercent"], 100),
+    ("fractional step decrease", ["spec", "stepLimit", "maxDecreasePercent"], 0.5),
     ("bad duration", ["spec", "cooldown"], "30 minutes"),
     ("duration order", ["spec", "settle"], "30m2h"),
     ("percentile 0", ["spec", "ratePercentile"], 0),
     ("percentile 101", ["spec", "ratePercentile"], 101),
+    ("fractional percentile", ["spec", "ratePercentile"], 99.5),
     ("bad floor", ["spec", "containers", 0, "floor"], "1Gi"),
     ("unquoted decimal floor", ["spec", "containers", 0, "floor"], 0.5),
     ("negative ceiling", ["spec", "containers", 0, "ceiling"], "-1"),
@@ -258,6 +268,7 @@ def _status_from_a_real_decision() -> dict:
 
     from ratefit.controller.decide import ContainerInput, Sizing, decide_workload
     from ratefit.controller.policy import WorkloadHistory, history_to_status, make_condition
+    from ratefit.controller.stages.record import summary_of
 
     policy = parse_policy(_example("label-printer.yaml"))
     now = datetime(2026, 12, 1, 12, 0, tzinfo=timezone.utc)
@@ -275,9 +286,10 @@ def _status_from_a_real_decision() -> dict:
     )
     return {
         "observedGeneration": 1,
+        "effectiveMode": "Apply",
+        "summary": summary_of(wd.decisions),
         "conditions": [cond],
-        "proposals": [d.to_status() for d in wd.decisions],
-        **history_to_status(wd.history),
+        **history_to_status(wd.history, [d.to_status() for d in wd.decisions]),
     }
 
 
@@ -292,13 +304,14 @@ def test_crd_and_examples_through_kubectl_and_the_sandbox(kubectl):
     table = kubectl("get", "rfp", "-A", check=True).stdout
     header = table.splitlines()[0].split()
     assert header[:3] == ["NAMESPACE", "NAME", "WORKLOAD"] and "MODE" in header and "AGE" in header
-    assert "READY" in header and "LAST" in header  # "LAST CHANGE"
+    assert "READY" in header and "LAST" in header and "SUMMARY" in header  # "LAST CHANGE"
     assert len(table.splitlines()) == 1 + len(POLICY_EXAMPLES)
 
     # the server filled in the CRD's defaults; the parser reads the stored object the same
     stored = json.loads(kubectl("get", "sizingpolicy", "route-planner", "-n", "parcels", "-o", "json", check=True).stdout)
-    assert stored["spec"]["stepLimit"] == {"up": 2.0, "down": 0.5}
-    # cooldown/settle/rateWindow have no CRD default: their default depends on the method (issue 12)
+    assert stored["spec"]["stepLimit"] == {"maxIncreasePercent": 100, "maxDecreasePercent": 50}
+    assert (stored["spec"]["mode"], stored["spec"]["resizeBy"], stored["spec"]["headroomPercent"]) == ("DryRun", "Rollout", 15)
+    # cooldown/settle/rateWindow have no CRD default: their default depends on resizeBy (issue 12)
     assert not {"cooldown", "settle", "rateWindow"} & set(stored["spec"])
     assert stored["spec"]["containers"][0].get("floor") == "200m"
     from_server = parse_policy(stored)
@@ -308,9 +321,9 @@ def test_crd_and_examples_through_kubectl_and_the_sandbox(kubectl):
     # a bad policy is refused and the message names the field
     bad = _example("label-printer.yaml")
     bad["metadata"]["name"] = "bad"
-    bad["spec"]["deadband"] = 1.5
+    bad["spec"]["deadbandPercent"] = 150
     out = kubectl("apply", "-f", "-", input=yaml.safe_dump(bad))
-    assert out.returncode != 0 and "deadband" in out.stderr
+    assert out.returncode != 0 and "deadbandPercent" in out.stderr
 
     # the status subresource takes what decide writes; spec and generation stay
     status = _status_from_a_real_decision()
@@ -320,13 +333,16 @@ def test_crd_and_examples_through_kubectl_and_the_sandbox(kubectl):
         "-p", json.dumps({"status": status}), check=True,
     )
     after = json.loads(kubectl("get", "sizingpolicy", "label-printer", "-n", "parcels", "-o", "json", check=True).stdout)
-    assert after["status"]["proposals"] == status["proposals"]
-    assert after["status"]["settling"] == status["settling"] and after["status"]["lastChange"] == status["lastChange"]
+    assert after["status"]["containers"] == status["containers"]
+    assert after["status"]["lastChangeTime"] == status["lastChangeTime"]
     # Kubernetes docs (status subresource): status writes ignore spec; generation moves only on spec changes
     assert after["spec"] == before["spec"]
     assert after["metadata"]["generation"] == before["metadata"]["generation"]
     row = kubectl("get", "rfp", "label-printer", "-n", "parcels", "--no-headers", check=True).stdout.split()
-    assert row[:3] == ["label-printer", "label-printer", "apply"] and row[3] == "True"
+    # Mode shows status.effectiveMode; Summary the verdict counts
+    assert row[:3] == ["label-printer", "label-printer", "Apply"] and row[3] == "True"
+    words = status["summary"].split()
+    assert " ".join(row[4:4 + len(words)]) == status["summary"] and status["summary"].endswith("held")
 
 
 def test_status_written_by_decide_fits_the_crd_and_the_status_model(validator, schema):
@@ -338,18 +354,20 @@ def test_status_written_by_decide_fits_the_crd_and_the_status_model(validator, s
     assert not errors, errors
     status = obj["status"]
     parsed = SizingPolicyStatus.model_validate(status)
-    assert [p.model_dump(by_alias=True, exclude_none=True) for p in parsed.proposals] == status["proposals"]
+    assert [p.model_dump(by_alias=True, exclude_none=True) for p in parsed.containers] == status["containers"]
     assert [c.model_dump(by_alias=True, exclude_none=True) for c in parsed.conditions] == status["conditions"]
-    assert [x.model_dump(by_alias=True) for x in parsed.settling] == status["settling"]
-    assert (parsed.last_change, parsed.observed_generation) == (status["lastChange"], 1)
+    assert (parsed.last_change_time, parsed.observed_generation) == (status["lastChangeTime"], 1)
+    # a held row has no new value; a changed one has
+    by_name = {c["name"]: c for c in status["containers"]}
+    assert all(("newRequest" in c) == (c["verdict"] in ("Changed", "Proposed")) for c in by_name.values())
     # the CRD's status fields are the status model's fields
     crd_status = schema["properties"]["status"]["properties"]
     fields = {(f.alias or n) for n, f in SizingPolicyStatus.model_fields.items()}
     assert set(crd_status) == fields
-    from ratefit.controller.policy import ProposalModel
+    from ratefit.controller.policy import ContainerStatusModel
 
-    assert set(crd_status["proposals"]["items"]["properties"]) == {
-        (f.alias or n) for n, f in ProposalModel.model_fields.items()
+    assert set(crd_status["containers"]["items"]["properties"]) == {
+        (f.alias or n) for n, f in ContainerStatusModel.model_fields.items()
     }
 
 

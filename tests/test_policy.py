@@ -18,10 +18,10 @@ from hypothesis import strategies as st
 from ratefit.controller.policy import (
     CONDITION_READY,
     ContainerHistory,
-    LimitsMode,
-    Method,
+    CpuLimit,
     Mode,
     PolicyInvalid,
+    ResizeBy,
     WorkloadHistory,
     format_duration,
     format_time,
@@ -65,7 +65,8 @@ def test_defaults():
     p = parse_policy(MINIMAL)
     assert (p.namespace, p.name, p.generation) == ("dispatch", "tracking-api", 3)
     assert p.key == "dispatch/tracking-api" and p.workload_key == "dispatch/Deployment/tracking-api"
-    assert p.mode is Mode.DRY_RUN and p.method is Method.ROLLOUT and p.limits is LimitsMode.KEEP_RATIO
+    assert p.mode is Mode.DRY_RUN and p.resize_by is ResizeBy.ROLLOUT and p.cpu_limit is CpuLimit.KEEP_RATIO
+    assert (p.mode.value, p.resize_by.value, p.cpu_limit.value) == ("DryRun", "Rollout", "KeepRatio")
     assert (p.headroom, p.deadband) == (0.15, 0.10)
     # method rollout: sized for the daily peak (rateWindow 1d; issue 12 changed it from 1h)
     assert (p.cooldown_s, p.settle_s, p.rate_window_s) == (1800.0, 7200.0, 86400.0)
@@ -73,7 +74,7 @@ def test_defaults():
     assert (in_place.cooldown_s, in_place.settle_s, in_place.rate_window_s) == (900.0, 1800.0, 1800.0)
     assert (p.step_limit.up, p.step_limit.down) == (2.0, 0.5)
     assert p.rate_percentile == 95.0
-    assert not p.allow_horizontal_conflict and not p.allow_extrapolation
+    assert not p.allow_horizontal_conflict and not p.allow_extrapolation and p.autoscaler_rate_metric is None
     (c,) = p.containers
     assert (c.name, c.model, c.rate_query, c.floor_m, c.ceiling_m) == ("api", "dispatch/tracking-api/api", None, 10, None)
 
@@ -90,6 +91,16 @@ def test_quantities_and_durations_parsed():
     assert (c.floor_m, c.ceiling_m, c.rate_query) == (250, 2000, "up")
 
 
+def test_percentages_map_to_fractions_and_factors():
+    # up = 1 + maxIncreasePercent/100, down = 1 - maxDecreasePercent/100 (issue 10)
+    p = parse_policy(with_spec(headroomPercent=20, deadbandPercent=5, ratePercentile=99,
+                               stepLimit={"maxIncreasePercent": 50, "maxDecreasePercent": 25},
+                               autoscalerRateMetric="kestrel_http_requests_total"))
+    assert (p.headroom, p.deadband, p.rate_percentile) == (0.20, 0.05, 99.0)
+    assert (p.step_limit.up, p.step_limit.down) == (1.5, 0.75)
+    assert p.autoscaler_rate_metric == "kestrel_http_requests_total"
+
+
 def test_policy_is_frozen():
     p = parse_policy(MINIMAL)
     with pytest.raises(AttributeError):
@@ -100,19 +111,24 @@ def test_policy_is_frozen():
     "obj,field,words",
     [
         (with_container(floor="300m", ceiling="200m"), "spec.containers[0].floor", "ceiling"),
-        (with_spec(deadband=1.0), "spec.deadband", "< 1"),
-        (with_spec(deadband=-0.01), "spec.deadband", ">= 0"),
-        (with_spec(stepLimit={"up": 0.9}), "spec.stepLimit.up", ">= 1"),
-        (with_spec(stepLimit={"down": 0}), "spec.stepLimit.down", "> 0"),
-        (with_spec(stepLimit={"down": 1.2}), "spec.stepLimit.down", "<= 1"),
+        (with_spec(deadbandPercent=100), "spec.deadbandPercent", "between 0 and 99"),
+        (with_spec(deadbandPercent=-1), "spec.deadbandPercent", "between 0 and 99"),
+        (with_spec(deadbandPercent=0.1), "spec.deadbandPercent", "integer"),
+        (with_spec(headroomPercent=15.5), "spec.headroomPercent", "integer"),
+        (with_spec(stepLimit={"maxIncreasePercent": -10}), "spec.stepLimit.maxIncreasePercent", "between"),
+        (with_spec(stepLimit={"maxDecreasePercent": 100}), "spec.stepLimit.maxDecreasePercent", "between 0 and 99"),
+        (with_spec(stepLimit={"up": 2.0}), "spec.stepLimit.up", "unknown field"),
         (with_spec(cooldown="10 minutes"), "spec.cooldown", "duration"),
         (with_spec(settle=""), "spec.settle", "duration"),
         (with_spec(rateWindow="0s"), "spec.rateWindow", "zero"),
-        (with_spec(ratePercentile=0), "spec.ratePercentile", "> 0"),
-        (with_spec(mode="auto"), "spec.mode", "dry-run"),
-        (with_spec(limits="drop", method="in-place"), "spec.limits", "remove a limit"),
+        (with_spec(ratePercentile=0), "spec.ratePercentile", "between 1 and 100"),
+        (with_spec(ratePercentile=99.5), "spec.ratePercentile", "integer"),
+        (with_spec(mode="auto"), "spec.mode", "DryRun"),
+        (with_spec(mode="dry-run"), "spec.mode", "DryRun"),
+        (with_spec(cpuLimit="Drop", resizeBy="InPlace"), "spec.cpuLimit", "remove a limit"),
+        (with_spec(method="Rollout"), "spec.method", "unknown field"),
         (with_spec(workload={"kind": "DaemonSet", "name": "x"}), "spec.workload.kind", "Deployment"),
-        (with_spec(headroom=-0.5), "spec.headroom", "between"),
+        (with_spec(headroomPercent=-5), "spec.headroomPercent", "between"),
         (with_spec(colldown="5m"), "spec.colldown", "unknown field"),
         (with_container(floor="lots"), "spec.containers[0].floor", "quantity"),
         (with_container(floor="0m"), "spec.containers[0].floor", "at least 1m"),
@@ -187,10 +203,15 @@ def test_history_round_trip_through_status():
         last_change=T0,
         containers={"api": ContainerHistory(below_since=T0 - timedelta(minutes=30), peak_m=450), "sidecar": ContainerHistory()},
     )
-    status = history_to_status(h)
+    rows = [{"name": "api", "verdict": "Held", "reason": "Settling"}, {"name": "sidecar", "verdict": "Held", "reason": "InsideDeadband"}]
+    status = history_to_status(h, rows)
     assert status == {
-        "lastChange": "2026-12-01T12:00:00Z",
-        "settling": [{"container": "api", "belowSince": "2026-12-01T11:30:00Z", "peak": "450m"}],
+        "lastChangeTime": "2026-12-01T12:00:00Z",
+        "containers": [
+            {"name": "api", "verdict": "Held", "reason": "Settling",
+             "belowSinceTime": "2026-12-01T11:30:00Z", "peakTarget": "450m"},
+            {"name": "sidecar", "verdict": "Held", "reason": "InsideDeadband"},
+        ],
     }
     back = history_from_status(status)
     assert back.last_change == T0
@@ -200,7 +221,8 @@ def test_history_round_trip_through_status():
 
 def test_history_from_garbage_status_starts_over():
     h = history_from_status(
-        {"lastChange": "yesterday", "settling": [{"container": "api"}, {"container": "x", "belowSince": "no", "peak": "1m"}, 7]}
+        {"lastChangeTime": "yesterday", "containers": [{"name": "api"}, {"name": "x", "belowSinceTime": "no", "peakTarget": "1m"},
+                                                       {"name": "y", "belowSinceTime": "2026-12-01T11:30:00Z", "peakTarget": "lots"}, 7]}
     )
     assert h == WorkloadHistory()
     assert history_from_status(None) == WorkloadHistory()
@@ -247,7 +269,7 @@ def test_set_condition_keeps_transition_time_while_status_stays():
 
 def test_invalid_condition_says_what_is_wrong():
     with pytest.raises(PolicyInvalid) as exc:
-        parse_policy(with_spec(deadband=2))
+        parse_policy(with_spec(deadbandPercent=200))
     c = invalid_condition(exc.value, observed_generation=3, now=T0)
     assert (c["type"], c["status"], c["reason"], c["observedGeneration"]) == ("Ready", "False", "PolicyInvalid", 3)
-    assert c["message"].startswith("spec.deadband: ") and "not acted on" in c["message"]
+    assert c["message"].startswith("spec.deadbandPercent: ") and "not acted on" in c["message"]

@@ -85,10 +85,10 @@ def test_rbac_rules_are_exactly_what_a_full_run_requests(tmp_path, shared_sizing
         deployment("shop", "web", [("app", "100m", "200m"), ("side", "50m", None)]),
         policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}]),
         statefulset("shop", "api", [("app", "100m", "200m")]),
-        policy("shop", "api", workload="api", kind="StatefulSet", method="in-place",
+        policy("shop", "api", workload="api", kind="StatefulSet", resizeBy="InPlace",
                containers=[{"name": "app", "model": "shop/api/app"}]),
         deployment("shop", "a", [("app", "100m", "200m")]),
-        policy("shop", "a", workload="a", mode="dry-run", containers=[{"name": "app", "model": "shop/a/app"}]),
+        policy("shop", "a", workload="a", mode="DryRun", containers=[{"name": "app", "model": "shop/a/app"}]),
         hpa("shop", "a", target="a", cpu_utilization=False),
     ]
     rates = {("shop", "web"): [50.0], ("shop", "api"): [50.0], ("shop", "a"): [50.0]}

@@ -59,15 +59,18 @@ def test_apply_patches_the_changed_container_and_a_second_pass_does_nothing(tmp_
         assert prev == {"app": {"cpu_request": "100m", "cpu_limit": "200m"}}
         assert len(w.patches("shop", "web")) == 1
         status = w.sizing_policy("shop", "web")["status"]
-        (p,) = status["proposals"]
-        assert p["verdict"] == "changed" and _m(p["proposed"]) == want and _m(p["current"]) == 100
-        assert status["lastChange"] and status["observedGeneration"] == 1
+        (p,) = status["containers"]
+        assert p["verdict"] == "Changed" and _m(p["newRequest"]) == want and _m(p["current"]) == 100
+        assert status["lastChangeTime"] and status["observedGeneration"] == 1
         ready = {c["type"]: c for c in status["conditions"]}["Ready"]
         assert ready["status"] == "True"
-        reasons = [e["reason"] for e in w.events("shop")]
-        assert reasons.count("CpuRequestChanged") == 1
+        # one Event regarding the workload and the same regarding the policy (issue 10)
+        changed = [e for e in w.events("shop") if e["reason"] == "CpuRequestChanged"]
+        assert sorted((e["regarding"]["kind"], e["related"]["kind"]) for e in changed) == [
+            ("Deployment", "SizingPolicy"), ("SizingPolicy", "Deployment")]
+        assert {e["action"] for e in changed} == {"Rollout"}
         (row,) = r1.rows
-        assert (row.verdict, _m(f"{row.proposed_m}m"), row.rate) == ("changed", want, pytest.approx(50.0, rel=1e-6))
+        assert (row.verdict, _m(f"{row.proposed_m}m"), row.rate) == ("Changed", want, pytest.approx(50.0, rel=1e-6))
 
         before = w.resource_versions()
         r2 = rec.run_pass()
@@ -77,8 +80,8 @@ def test_apply_patches_the_changed_container_and_a_second_pass_does_nothing(tmp_
         after = w.resource_versions()
         assert {k: v for k, v in after.items() if "sizingpolicies" not in k} == \
             {k: v for k, v in before.items() if "sizingpolicies" not in k}
-        assert r2.rows[0].verdict == "held" and r2.rows[0].why == ("InsideDeadband",)
-        assert w.sizing_policy("shop", "web")["status"]["lastChange"] == status["lastChange"]
+        assert r2.rows[0].verdict == "Held" and r2.rows[0].why == ("InsideDeadband",)
+        assert w.sizing_policy("shop", "web")["status"]["lastChangeTime"] == status["lastChangeTime"]
         r3 = rec.run_pass()
         assert (r3.patched, r3.status_writes, r3.events) == ((), 0, 0)
         assert w.resource_versions() == after  # level-based: an unchanged world is left alone
@@ -87,16 +90,17 @@ def test_apply_patches_the_changed_container_and_a_second_pass_does_nothing(tmp_
 def test_dry_run_proposes_writes_status_once_and_never_patches(tmp_path, shared_sizing_api) -> None:
     objects = [
         deployment("shop", "api", [("app", "1000m", "2000m")]),
-        policy("shop", "api", workload="api", mode="dry-run", containers=[{"name": "app", "model": "shop/api/app"}]),
+        policy("shop", "api", workload="api", mode="DryRun", containers=[{"name": "app", "model": "shop/api/app"}]),
     ]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "api"): [25.0]}) as w:
         rec = w.reconciler()
         r1 = rec.run_pass()
-        assert r1.patched == () and r1.status_writes == 1 and r1.events == 1
+        assert r1.patched == () and r1.status_writes == 1 and r1.events == 2  # on the workload and the policy
         assert [_m(q) for q in w.cpu("shop", "api", "app")] == [1000, 2000]
-        (p,) = w.sizing_policy("shop", "api")["status"]["proposals"]
-        assert p["verdict"] == "proposed" and _m(p["proposed"]) == target_m(25.0)
-        assert [e["reason"] for e in w.events("shop")] == ["CpuRequestProposed"]
+        (p,) = w.sizing_policy("shop", "api")["status"]["containers"]
+        assert p["verdict"] == "Proposed" and _m(p["newRequest"]) == target_m(25.0)
+        assert [(e["reason"], e["regarding"]["kind"]) for e in w.events("shop")] == [
+            ("CpuRequestProposed", "Deployment"), ("CpuRequestProposed", "SizingPolicy")]
         before = w.resource_versions()
         r2 = rec.run_pass()
         assert (r2.status_writes, r2.events) == (0, 0) and w.resource_versions() == before
@@ -107,7 +111,7 @@ def test_forced_dry_run_overrides_apply_mode(tmp_path, shared_sizing_api) -> Non
                policy("shop", "web", workload="web", containers=[{"name": "app", "model": "shop/web/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         r = w.reconciler(dry_run=True).run_pass()
-        assert r.patched == () and r.rows[0].verdict == "proposed"
+        assert r.patched == () and r.rows[0].verdict == "Proposed"
         assert w.cpu("shop", "web", "app") == ("100m", None)
 
 
@@ -117,7 +121,7 @@ def test_plan_mode_writes_nothing_at_all(tmp_path, shared_sizing_api) -> None:
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         before = w.resource_versions()
         r = w.reconciler(dry_run=True, write=False).run_pass()
-        assert r.rows[0].verdict == "proposed" and r.rows[0].proposed_m == target_m(50.0)
+        assert r.rows[0].verdict == "Proposed" and r.rows[0].proposed_m == target_m(50.0)
         assert w.resource_versions() == before
 
 
@@ -195,15 +199,15 @@ def test_telemetry_counts_decisions_and_patches(tmp_path, shared_sizing_api) -> 
         rec.run_pass()
         rec.run_pass()
         assert tel.value("ratefit_controller_changes_total", {"resize_by": "Rollout"}) == 1
-        assert tel.value("ratefit_controller_decisions_total", {"verdict": "changed", "reason": "NewTarget"}) == 1
-        assert tel.value("ratefit_controller_decisions_total", {"verdict": "held", "reason": "InsideDeadband"}) == 1
+        assert tel.value("ratefit_controller_decisions_total", {"verdict": "Changed", "reason": "NewTarget"}) == 1
+        assert tel.value("ratefit_controller_decisions_total", {"verdict": "Held", "reason": "InsideDeadband"}) == 1
         assert tel.value("ratefit_controller_passes_total", {"outcome": "done"}) == 2
         assert tel.value("ratefit_controller_pass_duration_seconds_count") == 2
 
 
 def test_in_place_resizes_pods_keeps_the_template_and_reapplies_to_new_pods(tmp_path, shared_sizing_api) -> None:
     objects = [deployment("shop", "web", [("app", "100m", "200m")], replicas=2),
-               policy("shop", "web", workload="web", method="in-place",
+               policy("shop", "web", workload="web", resizeBy="InPlace",
                       containers=[{"name": "app", "model": "shop/web/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         def pod_cpu() -> dict[str, tuple[int, int]]:
@@ -308,8 +312,36 @@ def test_shards_split_the_policies_by_namespace(tmp_path, shared_sizing_api) -> 
     from ratefit.controller.reconcile import shard_of
 
     objects = [deployment("shop", "web", [("app", "100m", None)]),
-               policy("shop", "web", workload="web", mode="dry-run", containers=[{"name": "app", "model": "shop/web/app"}])]
+               policy("shop", "web", workload="web", mode="DryRun", containers=[{"name": "app", "model": "shop/web/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
         mine = shard_of("shop", 3)
         seen = [len(w.reconciler(write=False, shard=(i, 3)).run_pass().rows) for i in range(3)]
         assert seen == [1 if i == mine else 0 for i in range(3)]
+
+
+def test_two_policies_on_one_workload_the_older_acts_the_newer_is_held(tmp_path, shared_sizing_api) -> None:
+    # issue 10: never two contradictory rows — the older policy (creationTimestamp, then
+    # name) keeps acting; the newer is held PolicyConflict with a Warning Event naming it
+    objects = [
+        deployment("shop", "web", [("app", "100m", "200m")]),
+        policy("shop", "a-old", workload="web", containers=[{"name": "app", "model": "shop/web/app"}]),
+        policy("shop", "b-new", workload="web", containers=[{"name": "app", "model": "shop/web/app"}],
+               headroomPercent=100),
+    ]
+    with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
+        r = w.reconciler().run_pass()
+        assert r.outcome is PassOutcome.DONE, r.errors
+        assert r.patched == ("shop/Deployment/web",) and len(w.patches("shop", "web")) == 1
+        assert _m(w.cpu("shop", "web", "app")[0]) == target_m(50.0)  # a-old's headroom, not b-new's
+        rows = {(row.policy, row.verdict, row.why) for row in r.rows}
+        assert rows == {("a-old", "Changed", ("NewTarget",)), ("b-new", "Held", ("PolicyConflict",))}
+        new = w.sizing_policy("shop", "b-new")["status"]
+        conds = {c["type"]: c for c in new["conditions"]}
+        assert (conds["Conflict"]["status"], conds["Ready"]["status"]) == ("True", "False")
+        assert "shop/a-old" in conds["Conflict"]["message"]
+        (row,) = new["containers"]
+        assert (row["verdict"], row["reason"]) == ("Held", "PolicyConflict") and "newRequest" not in row
+        old = w.sizing_policy("shop", "a-old")["status"]
+        assert {c["type"]: c["status"] for c in old["conditions"]}["Conflict"] == "False"
+        (warn,) = [e for e in w.events("shop") if e["reason"] == "PolicyConflict"]
+        assert warn["type"] == "Warning" and warn["regarding"]["name"] == "b-new" and "shop/a-old" in warn["note"]

@@ -29,7 +29,7 @@ def test_plan_table_and_markdown_change_nothing(tmp_path, shared_sizing_api) -> 
         t = _cli("plan", *common)
         assert t.returncode == 0, t.stderr
         line = next(ln for ln in t.stdout.splitlines() if "Deployment/web" in ln)
-        assert line.split()[1:4] == ["app", "100m", "315m"] and "proposed" in line
+        assert line.split()[1:4] == ["app", "100m", "315m"] and "Proposed" in line
         m = _cli("plan", *common, "--output", "markdown")
         assert m.returncode == 0 and m.stdout.startswith("| workload | container | current |")
         assert "nothing was changed" in t.stderr
@@ -71,5 +71,7 @@ def test_run_honours_ratefit_dry_run_from_the_environment(tmp_path, shared_sizin
         assert r.returncode == 0, r.stderr
         assert "mode dry-run (forced)" in r.stderr
         assert w.cpu("shop", "web", "app") == ("100m", "200m") and w.patches("shop", "web") == []
-        (p,) = w.sizing_policy("shop", "web")["status"]["proposals"]
-        assert p["verdict"] == "proposed" and parse_cpu(p["proposed"]) == 315
+        (p,) = w.sizing_policy("shop", "web")["status"]["containers"]
+        assert p["verdict"] == "Proposed" and parse_cpu(p["newRequest"]) == 315
+        # the policy asks Apply; the controller runs forced dry-run, and the status says so
+        assert w.sizing_policy("shop", "web")["status"]["effectiveMode"] == "DryRun"

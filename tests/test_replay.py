@@ -185,10 +185,10 @@ def test_defaults_on_the_invented_week_meet_the_acceptance_criteria(week) -> Non
     doc = to_json(res.outcome)
     tot = doc["totals"]
     days_after_first = (hist.end - hist.start) / 86400.0 - 1.0
-    methods = {t.policy.workload_key: t.policy.method.value for t in targets.targets}
+    methods = {t.policy.workload_key: t.policy.resize_by.value for t in targets.targets}
     for w in doc["workloads"]:
         late = [c for c in res.sim.changes if c.workload == w["workload"] and c.decided_at >= hist.start + 86400]
-        if methods[w["workload"]] == "rollout":
+        if methods[w["workload"]] == "Rollout":
             # at most one rollout per workload per day on average after the first day
             assert len(late) <= days_after_first, (w["workload"], len(late))
         else:

@@ -54,9 +54,9 @@ def truncated(src: Path, dst: Path, at: float) -> Path:
 
 
 def rollout_policies() -> list[dict]:
-    pols = default_policies(mode="apply")
+    pols = default_policies(mode="Apply")
     for p in pols:
-        p["spec"]["method"] = "rollout"
+        p["spec"]["resizeBy"] = "Rollout"
     return pols
 
 
@@ -93,8 +93,10 @@ def world(sandbox_cls, tmp: Path, state: dict, policies: list[dict], at: float):
                 sb.create(o)
         for key, p in by_policy.items():
             sb.create(p)
-            status = {k: v for k, v in history_to_status(shifted(state[key][0], time.time() - at)).items()
-                      if v is not None}
+            hist_now = shifted(state[key][0], time.time() - at)
+            # settling is kept per container row (a row needs a verdict and a reason)
+            rows = [{"name": n, "verdict": "Held", "reason": "Settling"} for n in hist_now.containers]
+            status = {k: v for k, v in history_to_status(hist_now, rows).items() if v not in (None, [])}
             if status:
                 r = httpx.patch(f"{sb.url}/apis/ratefit.dev/v1alpha1/namespaces/{p['metadata']['namespace']}"
                                 f"/sizingpolicies/{p['metadata']['name']}/status", json={"status": status},
@@ -143,7 +145,7 @@ def test_replay_decisions_equal_plan_at_several_times(tmp_path: Path, prometheus
                 ns, name = wd.policy.split("/")
                 for d in wd.decisions:
                     row = rows[(ns, name, d.container)]
-                    verdict = "proposed" if d.verdict.value == "changed" else d.verdict.value
+                    verdict = "Proposed" if d.verdict.value == "Changed" else d.verdict.value
                     assert (row["verdict"], row["why"]) == (verdict, d.why.value), (i, wd.policy, d.container, row)
                     assert row["proposed_m"] == d.proposed_m, (i, wd.policy, d.container)
                     assert row["current_m"] == d.current_m

@@ -122,8 +122,8 @@ def plateau_cluster(rng: np.random.Generator, workloads: int, hours: int) -> tup
         objs.append({"apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
                      "metadata": {"namespace": ns, "name": name},
                      "spec": {"workload": {"kind": "Deployment", "name": name},
-                              "mode": "apply" if rng.random() < 0.8 else "dry-run",
-                              "method": "in-place" if rng.random() < 0.4 else "rollout",
+                              "mode": "Apply" if rng.random() < 0.8 else "DryRun",
+                              "resizeBy": "InPlace" if rng.random() < 0.4 else "Rollout",
                               "containers": [{"name": c, "model": f"{ns}/{name}/{c}"} for c in ("app", "side")]}})
     return History.build(requests, cpu, source="INVENTED plateaus"), objs, curves
 
@@ -158,7 +158,7 @@ def test_carried_is_the_status_round_trip() -> None:
                                                          "b": ContainerHistory()}),
               WorkloadHistory(last_change=t.replace(microsecond=0),
                               containers={"a": ContainerHistory(below_since=t.replace(microsecond=0), peak_m=5)})):
-        back = history_from_status(history_to_status(h))
+        back = history_from_status(history_to_status(h, [{"name": n} for n in ("a", "b", "c")]))
         got = carried(h)
         assert got.last_change == back.last_change
         for name in ("a", "b", "c"):

@@ -11,11 +11,11 @@ from ratefit.controller.quantity import parse_cpu
 def _rows() -> list[ReviewRow]:
     return [
         ReviewRow(namespace="parcels", policy="label-printer", kind="Deployment", workload="label-printer",
-                  container="app", verdict="proposed", why=(), current_m=1000, proposed_m=500, demand_m=390,
-                  upper_m=430, rate=95.25, limit_m=2000, proposed_limit_m=1000, method="rollout"),
+                  container="app", verdict="Proposed", why=(), current_m=1000, proposed_m=500, demand_m=390,
+                  upper_m=430, rate=95.25, limit_m=2000, proposed_limit_m=1000, method="Rollout"),
         ReviewRow(namespace="dispatch", policy="tracking-api", kind="Deployment", workload="tracking-api",
-                  container="api", verdict="held", why=("HorizontalConflict",), current_m=2000, rate=300.0,
-                  method="in-place"),
+                  container="api", verdict="Held", why=("HorizontalConflict",), current_m=2000, rate=300.0,
+                  method="InPlace"),
     ]
 
 

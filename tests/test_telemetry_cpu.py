@@ -24,7 +24,7 @@ LABELS = {"workload_namespace": "shop", "workload": "Deployment/web", "workload_
 
 def test_a_pass_sets_requested_and_demanded_cpu(tmp_path, shared_sizing_api) -> None:  # noqa: F811
     objects = [deployment("shop", "web", [("app", "100m", "200m")]),
-               policy("shop", "web", workload="web", mode="dry-run",
+               policy("shop", "web", workload="web", mode="DryRun",
                       containers=[{"name": "app", "model": "shop/web/app"}])]
     tel = Telemetry()
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:

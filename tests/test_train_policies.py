@@ -80,7 +80,7 @@ def policy_docs() -> list[dict]:
     docs = [{
         "apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
         "metadata": {"name": name, "namespace": NS},
-        "spec": {"workload": {"kind": kind, "name": wl}, "mode": "dry-run",
+        "spec": {"workload": {"kind": kind, "name": wl}, "mode": "DryRun",
                  "containers": [{"name": c, "model": f"{NS}/{wl}/{c}"}]},
     } for name, (kind, wl, c) in POLICIES.items()]
     # a policy in another namespace whose own rateQuery reads shop's series: refused

@@ -13,7 +13,7 @@ Restore the CPU requests and limits recorded in the workload's
 ratefit.dev/previous-requests annotation (what they were before ratefit first
 changed each container) with one strategic-merge patch (server-side dry run
 first), and remove the annotation. A template change rolls the workload.
-Set the policy to `mode: dry-run` first, or the loop will propose the change again.
+Set the policy to `mode: DryRun` first, or the loop will propose the change again.
 WORKLOAD is NAMESPACE/KIND/NAME, e.g. parcels/Deployment/label-printer
 (kind: Deployment|deploy|StatefulSet|sts).
 """

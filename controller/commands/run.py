@@ -21,7 +21,7 @@ Run the reconcile loop against a cluster: every --interval (and at once when a
 SizingPolicy changes) read every container's per-pod request rate from Prometheus
 (one grouped query), ask the sizing API what that rate costs (one batch call),
 decide within each policy's bounds, and act: status, Event, log line and metric;
-in apply mode (a policy's `mode: apply`, and no --dry-run) a server-side dry run,
+in apply mode (a policy's `mode: Apply`, and no --dry-run) a server-side dry run,
 then one strategic-merge patch per workload (or in-place pod resizes), within the
 cluster-wide budget of --budget-per-minute changes and --max-rollouts rollouts.
 

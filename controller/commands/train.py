@@ -83,6 +83,11 @@ def register(sub: argparse._SubParsersAction) -> None:
                    help="drop this span after each pod's first sample (Prometheus duration or 0; default 5m)")
     p.add_argument("--report", metavar="DIR", help="also write a Markdown page and PNG plot per key here")
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    cap = p.add_argument_group("per-pod capacity (optional; recorded in the model, one of)")
+    cap.add_argument("--capacity", type=float, metavar="R",
+                     help="the highest rate one pod carries within its latency SLO, req/s")
+    cap.add_argument("--profile", metavar="FILE.json",
+                     help="read the capacity from the saved output of ratefit profile --output json")
     from ratefit.controller.commands.train_from_policies import add_from_policies_flags, from_policies_or
 
     add_from_policies_flags(p)  # ratefit train --from-policies
@@ -155,9 +160,10 @@ def _run(args: argparse.Namespace) -> int:
             results.append(train_key_detailed(load_csv(path), key=key, options=options, progress=progress))
     else:
         results.append(_from_prometheus(args, options, progress))
+    capacity = _capacity(args)
     for res in results:
-        path = store.save(res.artifact)
-        a = res.artifact
+        a = res.artifact if capacity is None else res.artifact.with_capacity(capacity)
+        path = store.save(a)
         print(f"{a.key}: {res.summary()}, {res.report.summary()} -> {path}")
         if args.report:
             from ratefit.models.report import write_train_report
@@ -165,6 +171,25 @@ def _run(args: argparse.Namespace) -> int:
             md, _ = write_train_report(res, args.report, seed=options.seed)
             print(f"{a.key}: report {md}")
     return 0
+
+
+def _capacity(args: argparse.Namespace) -> float | None:
+    """--capacity R or --profile FILE.json (the knee ratefit profile found), or None."""
+    import math
+
+    if args.capacity is not None and args.profile:
+        raise InputError("give --capacity R or --profile FILE.json, not both")
+    if (args.capacity is not None or args.profile) and args.samples_dir:
+        raise InputError("--capacity/--profile describe one key: use them with --samples or --prometheus and --key")
+    if args.profile:
+        from ratefit.controller.profile.output import read_capacity
+
+        return read_capacity(args.profile)
+    if args.capacity is None:
+        return None
+    if not math.isfinite(args.capacity) or not 0 < args.capacity <= 1e9:
+        raise InputError(f"--capacity {args.capacity:g}: must be a positive number of req/s (at most 1e9)")
+    return float(args.capacity)
 
 
 def _from_prometheus(args: argparse.Namespace, options, progress):

@@ -26,7 +26,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ratefit.controller.pod_names import PodAssigner, WorkloadRef
-from ratefit.controller.policy import Method
+from ratefit.controller.policy import ResizeBy
 from ratefit.controller.replay.history import History
 from ratefit.controller.replay.inputs import Sizer, Targets
 from ratefit.controller.replay.outcome import STRATEGIES, ContainerFigures, Outcome, container_figures, node_counts, step_values
@@ -228,7 +228,7 @@ def run_replay(history: History, targets: Targets, sizer: Sizer, *, start: float
     for ch in sim.changes:
         c = changes[ch.workload]
         c["changes"] += 1
-        c["resizes" if ch.method is Method.IN_PLACE else "rollouts"] += 1
+        c["resizes" if ch.method is ResizeBy.IN_PLACE else "rollouts"] += 1
     outcome = Outcome(start=start, end=end, step_s=options.step_s, node_cpu=options.node_cpu, containers=figs,
                       changes=changes, nodes=nodes, notes=notes)
     return ReplayResult(outcome=outcome, sim=sim, tracks=tracks, minutes=minutes, usage=usage, static=static)

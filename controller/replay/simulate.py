@@ -51,9 +51,9 @@ from ratefit.controller.decide import ContainerInput, Sizing, Verdict, WorkloadD
 from ratefit.controller.limits import Budget, RolloutSlots, TokenBucket
 from ratefit.controller.policy import (
     ContainerHistory,
-    Method,
     Mode,
     Policy,
+    ResizeBy,
     WorkloadHistory,
     history_to_status,
 )
@@ -99,7 +99,7 @@ class Change:
     workload: str
     decided_at: float  # unix s (the pass)
     effective_at: float  # unix s (at once for in-place, after the rollout delay otherwise)
-    method: Method
+    method: ResizeBy
     #: container → (old request, new request, old limit, new limit), millicores
     containers: Mapping[str, tuple[int | None, int | None, int | None, int | None]]
     why: str
@@ -260,7 +260,7 @@ def simulate(
                 obs = Observed(obj=_policy_object(p, status[w]), policy=p, hpa_on_cpu=order[w].hpa_on_cpu,
                                inputs=tuple(inputs))
                 wd = decider.decide_one(obs, None, obs.inputs, now, now_s)
-                status[w] = history_to_status(wd.history)
+                status[w] = history_to_status(wd.history, [{"name": n} for n in wd.history.containers])
             else:
                 # the live loop's decide stage with the history given directly (no status text)
                 wd = decider.decide_one(observed[w], None, inputs, now, now_s, history=given)
@@ -279,7 +279,7 @@ def simulate(
                 continue
             new = {d.container: (d.proposed_m, d.proposed_limit_m) for d in changed}
             old = {d.container: (d.current_m, d.limit_m) for d in changed}
-            in_place = p.method is Method.IN_PLACE
+            in_place = p.resize_by is ResizeBy.IN_PLACE
             eff = now_s if in_place else now_s + rollout_s
             # the next pass reads the patched template (rollout) or the resized pods (in-place);
             # the pods run the new request from ``eff`` on
@@ -287,7 +287,7 @@ def simulate(
             if not in_place:
                 pending.append((eff, w))
             res.changes.append(Change(
-                workload=p.workload_key, decided_at=now_s, effective_at=eff, method=p.method,
+                workload=p.workload_key, decided_at=now_s, effective_at=eff, method=p.resize_by,
                 containers={c: (old[c][0], new[c][0], old[c][1], new[c][1]) for c in new},
                 why=",".join(sorted({d.why.value for d in changed})),
             ))

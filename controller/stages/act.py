@@ -4,7 +4,7 @@ In apply mode a server-side dry run of the change, then one strategic-merge patc
 the workload's pod template (every changed container in that one patch, so a
 workload is never half-changed; the adapter records the previous requests in the
 ``ratefit.dev/previous-requests`` annotation and the change time in
-``ratefit.dev/last-change`` in the same patch), or with ``method: in-place`` the
+``ratefit.dev/last-change`` in the same patch), or with ``resizeBy: InPlace`` the
 pods' ``resize`` subresource one pod at a time followed by a metadata-only patch of
 the change time. A 409 on the patch → re-read the workload (a fresh GET through the
 adapter), recompute, retry (bounded). 429/5xx (after the adapter's own retries) →
@@ -24,7 +24,7 @@ from datetime import datetime
 from ratefit.controller.decide import ContainerInput, WorkloadDecision
 from ratefit.controller.errors import KubeConflict, KubeError, KubeInvalid, KubeNotFound
 from ratefit.controller.limits import ExponentialBackoff
-from ratefit.controller.policy import Method, format_time
+from ratefit.controller.policy import ResizeBy, format_time
 from ratefit.controller.stages.decide import LAST_CHANGE_ANNOTATION, Decider
 from ratefit.controller.stages.observe import Observed
 from ratefit.controller.stages.ports import Kube
@@ -103,7 +103,7 @@ class Actor:
             if not wd.changed:
                 return workload, wd
             try:
-                if p.method is Method.IN_PLACE:
+                if p.resize_by is ResizeBy.IN_PLACE:
                     workload = self._resize_in_place(workload, wd, now)
                 else:
                     def between() -> None:  # after the server-side dry run, before the patch
@@ -147,7 +147,7 @@ class Actor:
 
     # -- in-place -------------------------------------------------------------------
     def _reapplies(self, o: Observed, wd: WorkloadDecision | None) -> bool:
-        return (o.policy is not None and wd is not None and o.policy.method is Method.IN_PLACE
+        return (o.policy is not None and wd is not None and o.policy.resize_by is ResizeBy.IN_PLACE
                 and self.decider.applies(o))
 
     def _reapply_in_place(self, o: Observed, wd: WorkloadDecision, errors: list[str]) -> None:

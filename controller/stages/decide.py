@@ -7,6 +7,9 @@ The budget is seeded once after a start from the policies' status (changes of th
 last minute count against the token bucket, so a crash loop cannot exceed it) and
 taken once per changed workload. The rollout slots follow what the cluster says is
 rolling (level-based).
+
+A policy the observe stage marked ``conflict_with`` an older one is held
+**PolicyConflict** (``decide.held_by_conflict``): it draws nothing from the budget.
 """
 
 from __future__ import annotations
@@ -15,7 +18,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import replace
 from datetime import datetime
 
-from ratefit.controller.decide import ContainerInput, WorkloadDecision, decide_workload
+from ratefit.controller.decide import ContainerInput, WorkloadDecision, decide_workload, held_by_conflict
 from ratefit.controller.limits import Budget, BudgetView
 from ratefit.controller.policy import Mode, WorkloadHistory, history_from_status, parse_time
 from ratefit.controller.stages.observe import Observed, Snapshot
@@ -66,19 +69,24 @@ class Decider:
         last-change annotation (:func:`history_of`), as the live loop does."""
         p = o.policy
         assert p is not None
+        if o.conflict_with is not None:
+            return held_by_conflict(p, inputs, history=history if history is not None else history_of(o, workload),
+                                    older=o.conflict_with)
         apply = self.applies(o)
         view = self.budget.view(mono) if apply and not spent else BudgetView()
         if history is None:
             history = history_of(o, workload)
+        extra = dict(autoscaler=o.autoscaler, replicas=workload.replicas if workload is not None else None)
         wd = decide_workload(p, inputs, history=history, now=now, budget=view,
-                             hpa_on_cpu=o.hpa_on_cpu, dry_run=not apply)
+                             hpa_on_cpu=o.hpa_on_cpu, dry_run=not apply, **extra)
         if wd.changed and not spent:
             retry_at = self.retry_at.get(p.workload_key)
             if retry_at is not None and mono < retry_at:
                 return wd.rejected(f"the API server failed earlier; backing off {retry_at - mono:.0f}s more")
             if not self.budget.spend(p.workload_key, mono):
                 wd = decide_workload(p, inputs, history=history, now=now,
-                                     budget=BudgetView(changes_left=0), hpa_on_cpu=o.hpa_on_cpu, dry_run=False)
+                                     budget=BudgetView(changes_left=0), hpa_on_cpu=o.hpa_on_cpu, dry_run=False,
+                                     **extra)
         return wd
 
     def _seed(self, snap: Snapshot) -> None:

@@ -3,15 +3,26 @@
 List the policies (one LIST per namespace, or one cluster-wide), parse each (an
 invalid one is kept with its :class:`~ratefit.controller.policy.PolicyInvalid`); LIST
 the Deployments, StatefulSets and HorizontalPodAutoscalers once per namespace that
-has policies (never a GET per policy); for ``method: in-place`` the workload's pods;
+has policies (never a GET per policy); for ``resizeBy: InPlace`` the workload's pods;
 ask the rate source for every container's per-pod rate in one grouped query (in a
 thread, while the workloads are listed) and the sizing API for every (model, rate)
 in one batch call. The result, :class:`Snapshot`, is what the decide stage reads.
+
+Under a horizontal autoscaler (``controller/hpa_sizing``): the sizing API is asked at
+the rate the decision will use (max(observed, T × (1 + tolerance)) under a per-pod
+rate target); for the workload's models the trained range and capacity are read
+(``GET /v1/models/{key}``, one per model) and, under a CPU-utilisation target, the
+curve at :data:`~ratefit.controller.hpa_sizing.GRID_POINTS` rates over the trained
+range in one more batch call. A failure there only drops the autoscaler's extras.
 
 A LIST that fails (429/5xx after the adapter's retries, 403 …) does not make its
 workloads "not found": their policies are marked ``unavailable`` (held
 ``ApiUnavailable``, status left as it was) — a partial observation never rewrites
 status.
+
+Two valid policies naming the same workload (:func:`conflicts`, a pure function of the
+listed policies): the older one (``creationTimestamp``, then name) keeps acting; each
+newer one is marked ``conflict_with`` the older and is held **PolicyConflict**.
 """
 
 from __future__ import annotations
@@ -22,25 +33,28 @@ import threading
 import time
 import zlib
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime
 
 from ratefit.controller.crd import API_VERSION, KIND
 from ratefit.controller.decide import ContainerInput, Sizing
 from ratefit.controller.errors import KubeError
+from ratefit.controller.hpa_sizing import AutoscalerView, ModelFacts, autoscaler_view, curve_grid, sizing_rate
 from ratefit.controller.metrics_source import RateRequest, RateResult
-from ratefit.controller.policy import Method, Policy, PolicyInvalid, format_duration, parse_policy
+from ratefit.controller.policy import Policy, ResizeBy, PolicyInvalid, format_duration, parse_policy
 from ratefit.controller.stages.ports import KubeReader, RateSource, SizingSource
 from ratefit.controller.telemetry import Telemetry
-from ratefit.controller.workload import Pod, PolicyObject, Workload
-from ratefit.models.errors import RatefitError
+from ratefit.controller.workload import HorizontalScaler, Pod, PolicyObject, Workload
+from ratefit.models.errors import RatefitError, UnknownModel
 
-__all__ = ["Observed", "Observer", "Snapshot", "policy_object_dict", "shard_of"]
+__all__ = ["Observed", "Observer", "Snapshot", "conflicts", "policy_object_dict", "shard_of"]
 
 log = logging.getLogger("ratefit.controller.reconcile")
 
 #: up to this many namespaces with policies, workloads are listed per namespace
 LIST_PER_NAMESPACE_UP_TO = 3
+#: seconds a model's detail (trained range, capacity) is reused before it is read again
+FACTS_TTL_S = 600.0
 
 
 @dataclass(frozen=True)
@@ -57,8 +71,12 @@ class Observed:
     problem: str | None = None
     #: True: the workload could not be observed (the API failed), not "not found"
     unavailable: bool = False
-    #: ``method: in-place``: the workload's pods, as listed this pass
+    #: ``resizeBy: InPlace``: the workload's pods, as listed this pass
     pods: tuple[Pod, ...] | None = None
+    #: the workload's horizontal autoscaler, as sizing sees it (None: none)
+    autoscaler: AutoscalerView | None = None
+    #: ``namespace/name`` of the older SizingPolicy naming the same workload (this one is held)
+    conflict_with: str | None = None
 
 
 @dataclass(frozen=True)
@@ -79,6 +97,25 @@ def shard_of(namespace: str, count: int) -> int:
     """The shard (0 … count−1) of a namespace: CRC-32 of its name (stable across
     processes and versions, unlike Python's ``hash``) modulo ``count``."""
     return zlib.crc32(namespace.encode("utf-8")) % count
+
+
+def conflicts(valid: Sequence[tuple[PolicyObject, Policy]]) -> dict[tuple[str, str], str]:
+    """(namespace, name) of every policy that names a workload an older policy already
+    names → ``namespace/name`` of that older policy. Older: the earlier
+    ``creationTimestamp`` (RFC 3339 in UTC, so text order is time order), then the name —
+    a total order, so every pass and every replica picks the same one."""
+    by_workload: dict[str, list[tuple[str, str, PolicyObject]]] = {}
+    for o, p in valid:
+        by_workload.setdefault(p.workload_key, []).append((o.created or "~", o.name, o))
+    out: dict[tuple[str, str], str] = {}
+    for group in by_workload.values():
+        if len(group) < 2:
+            continue
+        group.sort(key=lambda t: (t[0], t[1]))
+        oldest = group[0][2]
+        for _, _, o in group[1:]:
+            out[(o.namespace, o.name)] = f"{oldest.namespace}/{oldest.name}"
+    return out
 
 
 def policy_object_dict(obj: PolicyObject) -> dict[str, object]:
@@ -142,6 +179,9 @@ class Observer:
         self.namespaces = namespaces
         self.shard = shard
         self._parsed: dict[tuple[str, str, str, int], Policy | PolicyInvalid] = {}
+        #: model → (monotonic time read, its facts or None): the model detail is read at most
+        #: every FACTS_TTL_S per model (models are retrained daily; a range minutes old is fine)
+        self._facts: dict[str, tuple[float, ModelFacts | None]] = {}
 
     def observe(self, now: datetime) -> Snapshot:
         """One snapshot. Raises KubeError when the policies cannot be listed."""
@@ -184,8 +224,9 @@ class Observer:
 
         rate_thread = threading.Thread(target=ask_rates, name="ratefit-rates", daemon=True)
         rate_thread.start()
+        scalers: dict[tuple[str, str, str], list[HorizontalScaler]] = {}
         try:
-            workloads, hpa_cpu, rolling, failed = self._list_workloads([p for _, p in valid], errors)
+            workloads, hpa_cpu, rolling, failed = self._list_workloads([p for _, p in valid], errors, scalers)
             t_lists = time.perf_counter()
         finally:
             rate_thread.join()
@@ -199,15 +240,28 @@ class Observer:
             if (p.namespace, p.workload_kind, p.workload_name) in workloads:
                 found.add((p.namespace, p.name))
         asked = [r for r in requests if (r.namespace, r.policy) in found]
-        sizing = self._query_sizing(asked, models, rates, errors, problems)
+        views = self._autoscaler_views(valid, workloads, scalers)
+        facts = self._model_facts(asked, models, views, errors)
+        sizing_rates = dict(rates)
+        for r in asked:
+            view = views.get((r.namespace, r.policy))
+            if view is not None and view.rate_target is not None:
+                f = facts.get(r.key)
+                sizing_rates[r.key] = sizing_rate(view, rates.get(r.key), capacity=f.capacity if f else None)
+        sizing = self._query_sizing(asked, models, sizing_rates, errors, problems)
+        facts = self._curve_points(asked, models, views, facts, errors)
         t_sizing = time.perf_counter()
 
+        clashes = conflicts(valid)
         entries = []
         for o, got in zip(objs, parsed):
             if isinstance(got, PolicyInvalid):
                 entries.append(Observed(obj=o, invalid=got))
                 continue
-            entries.append(self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors, problems))
+            one = self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors, problems,
+                            views=views, facts=facts)
+            older = clashes.get((o.namespace, o.name))
+            entries.append(one if older is None else replace(one, conflict_with=older))
         split = {"gather_kube": t_lists - t_g0, "gather_rates": float(rate_box.get("seconds", 0.0)),  # type: ignore[arg-type]
                  "gather_rates_wait": t_rates - t_lists, "gather_sizing": t_sizing - t_rates}
         return Snapshot(now=now, entries=tuple(entries), rolling=tuple(rolling), errors=tuple(errors), split=split)
@@ -231,6 +285,7 @@ class Observer:
 
     def _list_workloads(
         self, policies: Sequence[Policy], errors: list[str],
+        scalers: dict[tuple[str, str, str], list[HorizontalScaler]] | None = None,
     ) -> tuple[dict[tuple[str, str, str], Workload], set[tuple[str, str, str]], list[str], dict[tuple[str, str], str]]:
         """One LIST of workloads and of HPAs per namespace that has policies. Returns the
         workloads by (namespace, kind, name), the HPA-on-CPU targets, the rolling
@@ -263,6 +318,8 @@ class Observer:
                 for h in self.reader.list_hpas(ns):
                     if h.scales_on_cpu_utilization:
                         hpa_cpu.add((h.namespace, h.target_kind, h.target_name))
+                    if scalers is not None:
+                        scalers.setdefault((h.namespace, h.target_kind, h.target_name), []).append(h)
             except KubeError as exc:
                 self.telemetry.kube_errors.labels(kind=type(exc).__name__).inc()
                 errors.append(f"list horizontal autoscalers in {where}: {exc}")
@@ -273,7 +330,8 @@ class Observer:
         self, o: PolicyObject, p: Policy, workloads: Mapping[tuple[str, str, str], Workload],
         hpa_cpu: set[tuple[str, str, str]], failed: Mapping[tuple[str, str], str],
         rates: Mapping[str, float | None], sizing: Mapping[str, Sizing | None], errors: list[str],
-        problems: Mapping[str, tuple[str, str]] | None = None,
+        problems: Mapping[str, tuple[str, str]] | None = None, *,
+        views: Mapping[tuple[str, str], AutoscalerView] | None = None, facts: Mapping[str, ModelFacts] | None = None,
     ) -> Observed:
         problems = problems or {}
         # a failed LIST (workloads of this kind, or HPAs) means "unknown", never "not found"
@@ -286,7 +344,7 @@ class Observer:
             return Observed(obj=o, policy=p, problem=f"{p.workload_key} not found")
         pods: tuple[Pod, ...] | None = None
         running: dict[str, tuple[int | None, int | None]] = {}
-        if p.method is Method.IN_PLACE:
+        if p.resize_by is ResizeBy.IN_PLACE:
             pods, running = self._running_values(p, w, errors)
         by_name = {c.name: c for c in w.containers}
         inputs = []
@@ -300,14 +358,16 @@ class Observer:
                 rate=rates.get(f"{p.key}/{c.name}"), sizing=sizing.get(f"{p.key}/{c.name}"),
                 rate_problem=problems.get(f"rate:{p.key}/{c.name}"),
                 sizing_problem=problems.get(f"sizing:{p.key}/{c.name}"),
+                facts=(facts or {}).get(f"{p.key}/{c.name}"),
             ))
         return Observed(obj=o, policy=p, workload=w, inputs=tuple(inputs), pods=pods,
-                        hpa_on_cpu=(p.namespace, p.workload_kind, p.workload_name) in hpa_cpu)
+                        hpa_on_cpu=(p.namespace, p.workload_kind, p.workload_name) in hpa_cpu,
+                        autoscaler=(views or {}).get((p.namespace, p.name)))
 
     def _running_values(
         self, p: Policy, w: Workload, errors: list[str],
     ) -> tuple[tuple[Pod, ...], dict[str, tuple[int | None, int | None]]]:
-        """``method: in-place``: what the pods run (their spec after resizes), per container —
+        """``resizeBy: InPlace``: what the pods run (their spec after resizes), per container —
         the value most pods agree on. The template keeps the old value, so deciding from it
         would propose the same resize every pass."""
         try:
@@ -387,4 +447,100 @@ class Observer:
         unknown = sum(1 for v in out.values() if v is None)
         if unknown:
             self.telemetry.api_errors.labels(kind="NoModel").inc(unknown)
+        return out
+
+    # -- the workload's horizontal autoscaler (controller/hpa_sizing) ------------------------
+    def _autoscaler_views(
+        self, valid: Sequence[tuple[PolicyObject, Policy]], workloads: Mapping[tuple[str, str, str], Workload],
+        scalers: Mapping[tuple[str, str, str], Sequence[HorizontalScaler]],
+    ) -> dict[tuple[str, str], AutoscalerView]:
+        """(namespace, policy) → the view of the autoscaler targeting its workload."""
+        out: dict[tuple[str, str], AutoscalerView] = {}
+        for _, p in valid:
+            wk = (p.namespace, p.workload_kind, p.workload_name)
+            w = workloads.get(wk)
+            view = autoscaler_view(scalers.get(wk, ()), metric_name=p.autoscaler_rate_metric,
+                                   workload_replicas=w.replicas if w is not None else 0) if w is not None else None
+            if view is not None:
+                out[(p.namespace, p.name)] = view
+        return out
+
+    def _model_facts(
+        self, asked: Sequence[RateRequest], models: Mapping[tuple[str, str, str], str],
+        views: Mapping[tuple[str, str], AutoscalerView], errors: list[str],
+    ) -> dict[str, ModelFacts]:
+        """Trained range and capacity of each model under an autoscaler (one GET per model)."""
+        detail = getattr(self.sizing, "model_detail", None)
+        if detail is None or not views:
+            return {}
+        by_model: dict[str, ModelFacts | None] = {}
+        out: dict[str, ModelFacts] = {}
+        mono = time.monotonic()
+        for r in asked:
+            if (r.namespace, r.policy) not in views:
+                continue
+            model = models[(r.namespace, r.policy, r.container)]
+            cached = self._facts.get(model)
+            if model not in by_model and cached is not None and mono - cached[0] < FACTS_TTL_S:
+                by_model[model] = cached[1]
+            if model not in by_model:
+                by_model[model] = None
+                try:
+                    d = detail(model)
+                    lo, hi = (float(d["rate_range"][0]), float(d["rate_range"][1]))
+                    cap = d.get("capacity")
+                    cap = float(cap) if isinstance(cap, (int, float)) and not isinstance(cap, bool) else None
+                    if math.isfinite(lo) and math.isfinite(hi) and 0 <= lo < hi:
+                        by_model[model] = ModelFacts(
+                            rate_lo=lo, rate_hi=hi,
+                            capacity=cap if cap is not None and math.isfinite(cap) and cap > 0 else None)
+                except UnknownModel:  # held NoModel by the decision already: not a failure of the pass
+                    self._facts[model] = (mono, None)
+                except (RatefitError, KeyError, TypeError, ValueError, IndexError) as exc:
+                    errors.append(f"sizing API: model {model}: {exc}")
+                else:
+                    self._facts[model] = (mono, by_model[model])
+            f = by_model[model]
+            if f is not None:
+                out[r.key] = f
+        return out
+
+    def _curve_points(
+        self, asked: Sequence[RateRequest], models: Mapping[tuple[str, str, str], str],
+        views: Mapping[tuple[str, str], AutoscalerView], facts: Mapping[str, ModelFacts], errors: list[str],
+    ) -> dict[str, ModelFacts]:
+        """Under a CPU-utilisation autoscaler: demand at a grid of rates over each model's
+        trained range, all in one batch call."""
+        out = dict(facts)
+        wanted: dict[str, tuple[float, ...]] = {}
+        for r in asked:
+            view = views.get((r.namespace, r.policy))
+            f = facts.get(r.key)
+            if view is None or view.cpu is None or f is None:
+                continue
+            wanted.setdefault(models[(r.namespace, r.policy, r.container)], curve_grid(f.rate_lo, f.rate_hi))
+        if not wanted:
+            return out
+        items = [(m, rate) for m, grid in wanted.items() for rate in grid]
+        try:
+            answers = self.sizing.demand_batch(items)
+        except RatefitError as exc:
+            errors.append(f"sizing API (curve points): {exc}")
+            return out
+        if len(answers) != len(items):
+            errors.append(f"sizing API answered {len(answers)} curve points for {len(items)} asked")
+            return out
+        curves: dict[str, tuple[float, ...]] = {}
+        i = 0
+        for m, grid in wanted.items():
+            got = [sizing_of(a) for a in answers[i:i + len(grid)]]
+            i += len(grid)
+            if all(g is not None for g in got):
+                curves[m] = tuple(g.demand for g in got)  # type: ignore[union-attr]
+        for r in asked:
+            m = models[(r.namespace, r.policy, r.container)]
+            if r.key in out and m in curves:
+                f = out[r.key]
+                out[r.key] = ModelFacts(rate_lo=f.rate_lo, rate_hi=f.rate_hi, capacity=f.capacity,
+                                        rates=wanted[m], demand=curves[m])
         return out

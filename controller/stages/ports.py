@@ -78,6 +78,8 @@ class RateSource(Protocol):
 
 class SizingSource(Protocol):
     """``demand_batch`` answers one item per (model key, rate), in order: an object or
-    mapping with ``cpu_m``/``upper_m``/``extrapolated`` (or ``error``)."""
+    mapping with ``cpu_m``/``upper_m``/``extrapolated`` (or ``error``). Optionally
+    ``model_detail(key)`` answers the model's detail (``rate_range``, ``capacity``) —
+    ``SizingClient`` has it; without it the autoscaler's coupled answer is left out."""
 
     def demand_batch(self, items: Sequence[tuple[str, float]]) -> Sequence[object]: ...

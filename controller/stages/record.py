@@ -2,12 +2,19 @@
 and final decision — the new status, the Kubernetes Events, the decision log records
 and the review rows. No I/O here: ``stages/write.py`` writes what this builds.
 
-- :func:`new_status` — conditions merged by type, proposals, lastChange, settling.
-  None when the observation was partial (the API failed): the last status is kept.
+- :func:`new_status` — conditions merged by type (``Ready``, ``InputsAvailable``,
+  ``Conflict``), ``containers[]`` keyed by name (with each settling container's
+  ``belowSinceTime``/``peakTarget``), ``lastChangeTime``, ``effectiveMode`` (what the
+  controller actually does: ``Apply`` under ``run --dry-run`` is ``DryRun``) and
+  ``summary`` (``1 proposed, 6 held``). None when the observation was partial (the API
+  failed): the last status is kept.
 - :func:`validate_status` — the CRD's status model (``policy.SizingPolicyStatus``)
   checks a status before it is written (only then: most passes write nothing).
 - :func:`status_is_current` — level-based: a status that says nothing new is not written.
-- :func:`events_for` — one Event per workload and kind of news (never the same twice).
+- :func:`events_for` — one Event per kind of news (never the same twice), recorded
+  regarding the workload (related: the policy) and again regarding the policy (related:
+  the workload), so ``kubectl describe`` shows it on both; a conflict is a Warning
+  Event on the newer policy naming the older.
 - :func:`decision_records` — one JSON log record per container, flagged when it changed.
 - :func:`review_rows` — the review (``ratefit plan``, the Markdown review).
 """
@@ -23,10 +30,13 @@ from typing import TYPE_CHECKING
 from pydantic import ValidationError
 
 from ratefit.controller.cgroup import cgroup_figures
-from ratefit.controller.decide import Verdict, WorkloadDecision, Why
+from ratefit.controller.decide import INPUT_REASONS, Decision, Verdict, WorkloadDecision, Why
 from ratefit.controller.policy import (
+    CONDITION_CONFLICT,
+    CONDITION_INPUTS,
     CONDITION_READY,
     Mode,
+    ResizeBy,
     SizingPolicyStatus,
     history_to_status,
     invalid_condition,
@@ -51,7 +61,9 @@ __all__ = [
 ]
 
 #: the Ready reason of a policy whose workload does not exist
-WORKLOAD_NOT_FOUND = "WorkloadNotFound"
+WORKLOAD_NOT_FOUND = Why.WORKLOAD_NOT_FOUND.value
+#: the summary's words, in this order
+_VERDICT_WORDS = ((Verdict.CHANGED, "changed"), (Verdict.PROPOSED, "proposed"), (Verdict.HELD, "held"))
 
 
 class StatusInvalid(RatefitError):
@@ -70,25 +82,75 @@ class EventNote:
     note: str
 
 
-def _keep_history(old: Mapping[str, object], status: dict[str, object]) -> None:
-    for k in ("lastChange", "settling"):
-        if old.get(k) is not None:
-            status[k] = old[k]
+def _held_rows(old: Mapping[str, object], reason: Why, message: str) -> list[dict[str, object]]:
+    """The stored rows, each now Held for ``reason`` (nothing is decided), keeping what
+    they recorded of the current request and the settle history."""
+    rows = old.get("containers")
+    out: list[dict[str, object]] = []
+    for r in rows if isinstance(rows, list) else ():
+        if not isinstance(r, Mapping) or not isinstance(r.get("name"), str):
+            continue
+        row: dict[str, object] = {"name": r["name"]}
+        for k in ("current", "currentLimit", "belowSinceTime", "peakTarget"):
+            if isinstance(r.get(k), str):
+                row[k] = r[k]
+        row.update(verdict=Verdict.HELD.value, reason=reason.value, message=message)
+        out.append(row)
+    return out
 
 
-def new_status(o: Observed, wd: WorkloadDecision | None, now: datetime) -> dict[str, object] | None:
+def effective_mode(o: Observed, *, dry_run: bool) -> Mode | None:
+    """What the controller actually does for this policy: DryRun under ``run --dry-run``
+    or ``plan``, else the spec's mode (None: the spec could not be read)."""
+    if o.policy is None:
+        return None
+    return Mode.DRY_RUN if dry_run else o.policy.mode
+
+
+def summary_of(decisions: tuple[Decision, ...]) -> str:
+    """``1 proposed, 6 held`` — the containers by verdict (the ``Summary`` column)."""
+    counts = {v: sum(1 for d in decisions if d.verdict is v) for v, _ in _VERDICT_WORDS}
+    return ", ".join(f"{counts[v]} {w}" for v, w in _VERDICT_WORDS if counts[v]) or "no containers"
+
+
+def _inputs_condition(wd: WorkloadDecision, gen: int | None, now: datetime) -> dict[str, object]:
+    """InputsAvailable: False naming each container whose rate or model was missing."""
+    missing = [d for d in wd.decisions if d.why in INPUT_REASONS]
+    if not missing:
+        return make_condition(type=CONDITION_INPUTS, status=True, reason="InputsFound",
+                              message="every container had its request rate and its model",
+                              observed_generation=gen, now=now)
+    order = [w for w in Why if w in INPUT_REASONS]
+    reason = min((d.why for d in missing), key=order.index)
+    parts = [f"{d.container}: {d.why.value} ({d.message})" if d.message else f"{d.container}: {d.why.value}"
+             for d in missing]
+    return make_condition(type=CONDITION_INPUTS, status=False, reason=reason.value,
+                          message=f"{len(missing)} of {len(wd.decisions)} containers lack inputs; " + "; ".join(parts),
+                          observed_generation=gen, now=now)
+
+
+def new_status(
+    o: Observed, wd: WorkloadDecision | None, now: datetime, *, dry_run: bool = False,
+) -> dict[str, object] | None:
     """The policy's new status (None: keep the stored one — the workload could not be
-    observed, so nothing is known that the stored status does not already say)."""
+    observed, so nothing is known that the stored status does not already say).
+    ``dry_run``: the controller runs with ``--dry-run`` (effectiveMode DryRun)."""
     if o.unavailable:
         return None
     old = dict(o.obj.status or {})
     gen = o.obj.generation
     conditions = old.get("conditions") or []
     status: dict[str, object] = {"observedGeneration": gen}
+    mode = effective_mode(o, dry_run=dry_run)
+    if mode is not None:
+        status["effectiveMode"] = mode.value
     if o.invalid is not None:
-        status["conditions"] = set_condition(conditions, invalid_condition(o.invalid, observed_generation=gen, now=now))
-        status["proposals"] = []
-        _keep_history(old, status)
+        cond = invalid_condition(o.invalid, observed_generation=gen, now=now)
+        status["conditions"] = set_condition(conditions, cond)
+        status["containers"] = _held_rows(old, Why.POLICY_INVALID, str(cond["message"]))
+        status["summary"] = "policy invalid"
+        if old.get("lastChangeTime") is not None:
+            status["lastChangeTime"] = old["lastChangeTime"]
     elif wd is None:
         cond = make_condition(
             type=CONDITION_READY, status=False, reason=WORKLOAD_NOT_FOUND,
@@ -96,21 +158,45 @@ def new_status(o: Observed, wd: WorkloadDecision | None, now: datetime) -> dict[
             observed_generation=gen, now=now,
         )
         status["conditions"] = set_condition(conditions, cond)
-        status["proposals"] = []
-        _keep_history(old, status)
+        status["containers"] = _held_rows(old, Why.WORKLOAD_NOT_FOUND, str(cond["message"]))
+        status["summary"] = "workload not found"
+        if old.get("lastChangeTime") is not None:
+            status["lastChangeTime"] = old["lastChangeTime"]
     else:
-        counts: dict[str, int] = {}
-        for d in wd.decisions:
-            counts[d.verdict.value] = counts.get(d.verdict.value, 0) + 1
-        summary = ", ".join(f"{n} {v}" for v, n in sorted(counts.items()))
-        cond = make_condition(
-            type=CONDITION_READY, status=True, reason="Decided",
-            message=f"{len(wd.decisions)} containers decided: {summary}", observed_generation=gen, now=now,
+        summary = summary_of(wd.decisions)
+        inputs = _inputs_condition(wd, gen, now)
+        if o.conflict_with is not None:
+            ready = make_condition(
+                type=CONDITION_READY, status=False, reason=Why.POLICY_CONFLICT.value,
+                message=f"held: SizingPolicy {o.conflict_with} is older and sizes the same workload",
+                observed_generation=gen, now=now,
+            )
+        elif wd.decisions and all(d.why in INPUT_REASONS for d in wd.decisions):
+            ready = make_condition(
+                type=CONDITION_READY, status=False, reason="InputsMissing",
+                message=f"every container is held for missing inputs ({summary}); see {CONDITION_INPUTS}",
+                observed_generation=gen, now=now,
+            )
+        else:
+            ready = make_condition(
+                type=CONDITION_READY, status=True, reason="Decided",
+                message=f"{len(wd.decisions)} containers decided: {summary}", observed_generation=gen, now=now,
+            )
+        conflict = make_condition(
+            type=CONDITION_CONFLICT, status=o.conflict_with is not None,
+            reason=Why.POLICY_CONFLICT.value if o.conflict_with is not None else "NoConflict",
+            message=(f"SizingPolicy {o.conflict_with} is older and names the same workload; it keeps acting and "
+                     "this one is held until one of the two is deleted or names another workload"
+                     if o.conflict_with is not None else "no older SizingPolicy names this workload"),
+            observed_generation=gen, now=now,
         )
-        status["conditions"] = set_condition(conditions, cond)
+        for cond in (ready, inputs, conflict):
+            conditions = set_condition(conditions, cond)
+        status["conditions"] = conditions
+        status["summary"] = summary
         # the CRD's schema has no nullable fields: leave unknown values out
-        status["proposals"] = [{k: v for k, v in d.to_status().items() if v is not None} for d in wd.decisions]
-        status.update(history_to_status(wd.history))
+        rows = [{k: v for k, v in d.to_status().items() if v is not None} for d in wd.decisions]
+        status.update(history_to_status(wd.history, rows))
     return status
 
 
@@ -127,7 +213,7 @@ def validate_status(status: dict[str, object], *, where: str) -> dict[str, objec
 
 def comparable(status: Mapping[str, object]) -> dict[str, object]:
     """Status as comparable plain data: None values dropped (the server prunes them, and
-    the merge patch deletes them), and without what only ages — the proposals' free-text
+    the merge patch deletes them), and without what only ages — the rows' free-text
     messages such as "1234s of 7200s settle" — so a pass with only newer wording writes
     nothing. The status is shallow (lists of flat objects), so one level of lists is enough."""
     out: dict[str, object] = {}
@@ -135,7 +221,7 @@ def comparable(status: Mapping[str, object]) -> dict[str, object]:
         if v is None:
             continue
         if isinstance(v, list):
-            drop = "message" if k == "proposals" else None
+            drop = "message" if k == "containers" else None
             v = [{kk: vv for kk, vv in item.items() if vv is not None and kk != drop} if isinstance(item, Mapping)
                  else item for item in v]
         out[k] = v
@@ -148,12 +234,16 @@ def status_is_current(new: Mapping[str, object], old: Mapping[str, object]) -> b
 
 
 def _same(before: Mapping[str, object] | None, now_p: Mapping[str, object]) -> bool:
-    return before is not None and all(before.get(k) == now_p.get(k) for k in ("verdict", "why", "proposed", "current"))
+    return before is not None and all(before.get(k) == now_p.get(k) for k in ("verdict", "reason", "newRequest", "current"))
+
+
+def _old_condition(old_status: Mapping[str, object], type_: str) -> Mapping[str, object]:
+    conds = old_status.get("conditions") or []
+    return {c.get("type"): c for c in conds if isinstance(c, Mapping)}.get(type_, {})  # type: ignore[union-attr]
 
 
 def _old_ready(old_status: Mapping[str, object]) -> Mapping[str, object]:
-    conds = old_status.get("conditions") or []
-    return {c.get("type"): c for c in conds if isinstance(c, Mapping)}.get(CONDITION_READY, {})  # type: ignore[union-attr]
+    return _old_condition(old_status, CONDITION_READY)
 
 
 def events_for(
@@ -179,6 +269,14 @@ def events_for(
             return [note(WORKLOAD_NOT_FOUND, EventType.WARNING, "Read",
                          (o.problem or "the workload could not be read") + "; nothing is changed")]
         return []
+    if o.conflict_with is not None:
+        old = _old_condition(old_status, CONDITION_CONFLICT)
+        if old.get("status") != "True" or o.conflict_with not in str(old.get("message", "")):
+            text = (f"SizingPolicy {o.conflict_with} is older and names the same workload "
+                    f"{o.policy.workload_key if o.policy else ''}; it keeps acting and this policy is held")
+            return [EventNote(regarding=o.obj.ref, related=regarding, reason=Why.POLICY_CONFLICT.value,
+                              type=EventType.WARNING, action="Hold", note=text)]
+        return []
     old_props = _old_proposals(old_status)
     news: dict[str, list[str]] = {}
     for d in wd.decisions:
@@ -189,22 +287,26 @@ def events_for(
         elif d.verdict is Verdict.PROPOSED:
             news.setdefault("CpuRequestProposed", []).append(f"{d.container}: {d.message}")
         elif d.why is Why.REJECTED:
-            news.setdefault("CpuChangeRejected", []).append(f"{d.container}: {d.message}")
+            news.setdefault("CpuRequestRejected", []).append(f"{d.container}: {d.message}")
+    # the action names what ratefit does (or would do): a rollout of the template or an in-place resize
+    action = "Resize" if o.policy is not None and o.policy.resize_by is ResizeBy.IN_PLACE else "Rollout"
     out = []
     for reason, notes in news.items():
         text = "; ".join(notes)
         if reason == "CpuRequestProposed":
-            out.append(note(reason, EventType.NORMAL, "Propose", text + " (dry-run: nothing changed)"))
-        elif reason == "CpuRequestChanged":
-            out.append(note(reason, EventType.NORMAL, "Resize", text))
+            text, type_ = text + " (DryRun: nothing changed)", EventType.NORMAL
         else:
-            out.append(note(reason, EventType.WARNING, "Resize", text))
+            type_ = EventType.NORMAL if reason == "CpuRequestChanged" else EventType.WARNING
+        out.append(note(reason, type_, action, text))
+        if workload is not None:  # the same news on the policy, so `kubectl describe` on it shows it
+            out.append(EventNote(regarding=o.obj.ref, related=workload.ref, reason=reason, type=type_,
+                                 action=action, note=text))
     return out
 
 
 def _old_proposals(old_status: Mapping[str, object]) -> dict[object, Mapping[str, object]]:
-    props = old_status.get("proposals") or []
-    return {p.get("container"): p for p in props if isinstance(p, Mapping)}  # type: ignore[union-attr]
+    rows = old_status.get("containers") or []
+    return {p.get("name"): p for p in rows if isinstance(p, Mapping)}  # type: ignore[union-attr]
 
 
 def decision_records(
@@ -214,11 +316,12 @@ def decision_records(
     if wd is None or o.policy is None or o.invalid is not None:
         return []
     old_props = _old_proposals(old_status)
-    mode = "dry-run" if dry_run else o.policy.mode.value
+    mode = Mode.DRY_RUN.value if dry_run else o.policy.mode.value
     out = []
     for d in wd.decisions:
         now_p = d.to_status()
-        record = {"msg": "decision", "policy": o.policy.key, "workload": o.policy.workload_key, **now_p, "mode": mode}
+        record = {"msg": "decision", "policy": o.policy.key, "workload": o.policy.workload_key, **now_p,
+                  "effectiveMode": mode}
         out.append((not _same(old_props.get(d.container), now_p), record))
     return out
 
@@ -237,15 +340,15 @@ def review_rows(o: Observed, wd: WorkloadDecision | None, *, dry_run: bool) -> l
         names = [c.name for c in o.policy.containers] if o.policy else [
             str(c.get("name", "?")) for c in (obj.spec.get("containers") or []) if isinstance(c, Mapping)] or ["-"]
         if o.invalid is not None:
-            why, note = ("PolicyInvalid",), f"{o.invalid.field}: {o.invalid.problem}"
+            why, note = (Why.POLICY_INVALID.value,), f"{o.invalid.field}: {o.invalid.problem}"
         elif o.unavailable:
             why, note = (Why.API_UNAVAILABLE.value,), o.problem or ""
         else:
             why, note = (WORKLOAD_NOT_FOUND,), o.problem or ""
         return [ReviewRow(namespace=obj.namespace, policy=obj.name, kind=kind, workload=wname, container=n,
-                          verdict="held", why=why, note=note) for n in names]
-    method = o.policy.method.value
-    mode = "dry-run" if (dry_run or o.policy.mode is Mode.DRY_RUN) else "apply"
+                          verdict=Verdict.HELD.value, why=why, note=note) for n in names]
+    method = o.policy.resize_by.value
+    mode = (Mode.DRY_RUN if (dry_run or o.policy.mode is Mode.DRY_RUN) else Mode.APPLY).value
     rows = []
     for d in wd.decisions:
         moving = d.verdict is not Verdict.HELD or d.moves
@@ -256,6 +359,7 @@ def review_rows(o: Observed, wd: WorkloadDecision | None, *, dry_run: bool) -> l
             demand_m=_m(d.demand), upper_m=_m(d.upper), rate=d.rate, limit_m=d.limit_m,
             proposed_limit_m=d.proposed_limit_m, mode=mode, method=method, extrapolated=d.extrapolated,
             note=d.message, cgroup=_cgroup(d.proposed_m, d.proposed_limit_m),
+            cores_per_100=d.cores_per_100_now, cores_per_100_suggested=d.cores_per_100_suggested,
         ))
     return rows
 

@@ -43,7 +43,7 @@ class RecordWriter:
     def write(self, a: Acted, now: datetime, errors: list[str]) -> tuple[int, int]:
         """(status writes, events) for one policy."""
         o = a.observed
-        new = new_status(o, a.decision, now)
+        new = new_status(o, a.decision, now, dry_run=self.dry_run)
         old = dict(o.obj.status or {})
         if new is None or status_is_current(new, old):
             return 0, 0  # level-based: nothing to say that the status does not already say

@@ -139,9 +139,9 @@ def write_manifests(directory: str | os.PathLike[str]) -> dict[str, Path]:
 IN_PLACE = frozenset({"label-printer", "address-lookup"})
 
 
-def default_policies(*, mode: str = "apply") -> list[dict[str, Any]]:
+def default_policies(*, mode: str = "Apply") -> list[dict[str, Any]]:
     """One SizingPolicy per scenario workload with every sizing field left at its default:
-    only the workload, the mode, the method (in-place for :data:`IN_PLACE`, else rollout)
+    only the workload, the mode, resizeBy (InPlace for :data:`IN_PLACE`, else Rollout)
     and each container's model. The replay's acceptance test runs these."""
     out = []
     for svc in SCENARIO:
@@ -153,7 +153,7 @@ def default_policies(*, mode: str = "apply") -> list[dict[str, Any]]:
             "spec": {
                 "workload": {"kind": svc.kind, "name": svc.workload},
                 "mode": mode,
-                "method": "in-place" if svc.workload in IN_PLACE else "rollout",
+                "resizeBy": "InPlace" if svc.workload in IN_PLACE else "Rollout",
                 "containers": [{"name": c.name, "model": f"{svc.namespace}/{svc.workload}/{c.name}"}
                                for c in svc.containers],
             },

@@ -33,7 +33,7 @@ def policy_obj(i: int) -> dict:
         "metadata": {"name": f"svc-{i}", "namespace": f"ns-{i % 50}", "generation": 1},
         "spec": {
             "workload": {"kind": "Deployment", "name": f"svc-{i}"},
-            "mode": "apply" if i % 2 else "dry-run",
+            "mode": "Apply" if i % 2 else "DryRun",
             "containers": [
                 {"name": "app", "model": f"ns-{i % 50}/svc-{i}/app", "floor": "20m", "ceiling": "8"},
                 {"name": "sidecar", "model": f"ns-{i % 50}/svc-{i}/sidecar", "ceiling": "1"},

@@ -60,7 +60,7 @@ def _manifests(n: int, namespaces: int) -> list[dict]:
         docs.append({
             "apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
             "metadata": {"name": name, "namespace": ns},
-            "spec": {"workload": {"kind": "Deployment", "name": name}, "mode": "dry-run",
+            "spec": {"workload": {"kind": "Deployment", "name": name}, "mode": "DryRun",
                      "containers": [{"name": "app", "model": f"{ns}/{name}/app"}]},
         })
     return docs

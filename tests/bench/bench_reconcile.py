@@ -67,7 +67,7 @@ def child_sandbox(work: Path, n: int, n_ns: int) -> None:
                                  "resources": {"requests": {"cpu": "100m"}}}]}}}})
         sb.create({"apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
                    "metadata": {"name": wl, "namespace": ns},
-                   "spec": {"workload": {"kind": "Deployment", "name": wl}, "mode": "dry-run", "settle": "0s",
+                   "spec": {"workload": {"kind": "Deployment", "name": wl}, "mode": "DryRun", "settle": "0s",
                             "containers": [{"name": "app", "model": f"{ns}/{wl}/app"},
                                            {"name": "side", "model": f"{ns}/{wl}/app"}]}})
     sb.write_kubeconfig(work / "kubeconfig")
