@@ -166,9 +166,9 @@ def test_release_marks_stale_retrains_and_rolls_back(prometheus_from_openmetrics
             # six hours after it: stale, the decrease is held
             row = plan(kc, prom.url, api.base_url, end)
             assert (row["verdict"], row["why"]) == ("Held", "ModelStale"), row
-            assert "exceedance ratio" in row["note"] and row["proposed_m"] == 1000
-            ratio = float(row["note"].split("exceedance ratio ")[1].split()[0])
-            assert ratio > 0.5, row["note"]
+            assert "exceedance ratio" in row["message"] and row["proposed_m"] == 1000
+            ratio = float(row["message"].split("exceedance ratio ")[1].split()[0])
+            assert ratio > 0.5, row["message"]
             # the same pass in process: the per-container gauge carries the ratio
             assert in_process_ratio(kc, prom.url, api.base_url, end) == pytest.approx(ratio, abs=1e-3)
 
@@ -207,7 +207,7 @@ def test_release_marks_stale_retrains_and_rolls_back(prometheus_from_openmetrics
             httpx.patch(f"{sb.url}/apis/apps/v1/namespaces/{NS}/deployments/{WL}", json=patch, timeout=10,
                         headers={"Content-Type": "application/strategic-merge-patch+json"}).raise_for_status()
             img = plan(kc, prom.url, api.base_url, end)
-            assert img["why"] == "ModelStale" and "parcel-router:2.1.0" in img["note"], img
+            assert img["why"] == "ModelStale" and "parcel-router:2.1.0" in img["message"], img
 
             # rollback restores the old model; the API serves it after a reload
             rb = subprocess.run([str(RATEFIT), "models", "rollback", KEY, "--store", str(store.root)],
