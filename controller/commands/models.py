@@ -50,7 +50,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     rb.add_argument("key", metavar="NAMESPACE/WORKLOAD/CONTAINER", help="the model key")
     rb.add_argument("--store", required=True, metavar="DIR", help="model store directory")
     rb.add_argument("--to", metavar="VERSION", help="the version to restore (at least its first 4 characters; "
-                    "see "ratefit models versions")")
+                    "see 'ratefit models versions')")
     rb.set_defaults(handler=_rollback)
 
 
