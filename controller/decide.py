@@ -84,6 +84,7 @@ from ratefit.controller.policy import (
     WorkloadHistory,
 )
 from ratefit.controller.quantity import format_cpu
+from ratefit.controller.staleness import Staleness
 
 
 def _mc(m: int) -> str:
@@ -147,6 +148,7 @@ class Why(StrEnum):
     INVALID_MODEL_KEY = "InvalidModelKey"  # the sizing API refused the model key of this item
     DEMAND_OUT_OF_RANGE = "DemandOutOfRange"  # the demand at this rate is beyond any physical bound
     CONTAINER_MISSING = "ContainerMissing"  # spec.containers names a container the workload lacks
+    MODEL_STALE = "ModelStale"  # recent usage exceeds the model's band (controller/staleness): decreases held
     # set by the stages around the decision, never by decide_container
     POLICY_CONFLICT = "PolicyConflict"  # an older SizingPolicy names the same workload
     POLICY_INVALID = "PolicyInvalid"  # the spec cannot be acted on (status condition says why)
@@ -187,6 +189,8 @@ class ContainerInput:
     sizing_problem: tuple[str, str] | None = None
     #: the model's trained range, capacity and curve points (asked only under an autoscaler)
     facts: ModelFacts | None = None
+    #: this pass's staleness verdict on the container's model (None: not checked)
+    stale: Staleness | None = None
 
 
 @dataclass(frozen=True)
@@ -423,6 +427,20 @@ def decide_container(
             "retrain the model or set allowExtrapolation",
         )
     note = " (extrapolated beyond the trained range)" if s.extrapolated else ""
+    stale = observed.stale if observed.stale is not None and observed.stale.stale else None
+    if stale is not None:
+        # a stale model (controller/staleness): observed usage may raise the target (the curve
+        # under-predicts), nothing lowers it — decreases and holds say ModelStale, and no
+        # settling record builds up on the stale curve's word
+        p95 = stale.usage_p95
+        if p95 is not None and math.isfinite(p95) and p95 > s.upper:
+            target, bound = target_millicores(p95, headroom=policy.headroom, floor_m=container.floor_m,
+                                              ceiling_m=container.ceiling_m, limit_m=keep_limit)
+            base.update(target_m=target)
+        base.update(settle=ContainerHistory(), settle_if_held=ContainerHistory())
+        if current is not None and (target <= current or _inside_deadband(current, target, policy.deadband)):
+            return out(why=Why.MODEL_STALE, message=stale.message())
+        note += f" ({stale.message()})"
 
     def change(new_m: int, limited: bool, settle_after: ContainerHistory, settle_held: ContainerHistory) -> Decision:
         new_limit = limit_for(current, limit, new_m, policy.cpu_limit)

@@ -732,6 +732,7 @@ def _workload(obj: Mapping[str, Any], kind: WorkloadKind) -> Workload:
             cpu_limit_m=_cpu(res, "limits", f"{where} limits.cpu"),
             mem_request=_mem(res, "requests"),
             mem_limit=_mem(res, "limits"),
+            image=c.get("image") if isinstance(c.get("image"), str) else None,
         ))
     generation = int(meta.get("generation") or 0)
     replicas = int(spec.get("replicas", 1) if spec.get("replicas") is not None else 1)

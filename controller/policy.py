@@ -177,6 +177,13 @@ class ContainerSpec(_Camel):
         return v
 
 
+class Retrain(StrEnum):
+    """What happens when a container's model is marked stale (issue 13)."""
+
+    MANUAL = "Manual"  # flag it (condition, Event, metric); a person retrains
+    AUTO = "Auto"  # the controller retrains it from recent samples (controller/retrain)
+
+
 class SizingPolicySpec(_Camel):
     workload: WorkloadRefSpec
     mode: Mode = Mode.DRY_RUN
@@ -198,6 +205,7 @@ class SizingPolicySpec(_Camel):
     #: request rate; unset: the HPA's only Pods metric, if it has exactly one
     autoscaler_rate_metric: str | None = Field(None, min_length=1, max_length=253,
                                                pattern=r"^[A-Za-z_:][A-Za-z0-9_:.\-/]*$")
+    retrain: Retrain = Retrain.MANUAL
 
 
 #: ``cooldown``, ``settle`` and ``rateWindow`` when the policy leaves them out, by resizeBy.
@@ -295,6 +303,7 @@ class Policy:
     allow_extrapolation: bool = False
     #: PromQL metric name of the rate a horizontal autoscaler scales on (None: not set)
     autoscaler_rate_metric: str | None = None
+    retrain: Retrain = Retrain.MANUAL
 
     @property
     def key(self) -> str:
@@ -434,6 +443,7 @@ def _to_policy(spec: SizingPolicySpec, *, namespace: str, name: str, generation:
         allow_horizontal_conflict=spec.allow_horizontal_conflict,
         allow_extrapolation=spec.allow_extrapolation,
         autoscaler_rate_metric=spec.autoscaler_rate_metric,
+        retrain=spec.retrain,
     )
 
 

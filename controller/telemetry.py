@@ -167,6 +167,18 @@ class Telemetry:
             ["kind"],
             registry=r,
         )
+        self.band_exceedance = Gauge(
+            "ratefit_controller_band_exceedance_ratio",
+            "Share of the container's recent CPU samples above its model's upper band (controller/staleness); "
+            "well above 1 - coverage means the model is stale.",
+            list(CPU_LABELS),
+            registry=r,
+        )
+        self.models_stale = Gauge(
+            "ratefit_controller_models_stale",
+            "Containers whose model was marked stale in the last pass (significant band exceedance or a changed image).",
+            registry=r,
+        )
         self.leader = Gauge(
             "ratefit_controller_leader",
             "1 while this replica holds the leader Lease, else 0.",

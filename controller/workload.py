@@ -85,6 +85,8 @@ class ContainerResources:
     cpu_limit_m: int | None
     mem_request: str | None = None
     mem_limit: str | None = None
+    #: the container's image in the pod template (None: not read)
+    image: str | None = None
 
 
 @dataclass(frozen=True, slots=True)

@@ -1,6 +1,12 @@
 """The model store: one JSON artifact per container key, on a plain directory.
 
-Layout: ``<root>/<namespace>/<workload>/<container>.json``. An artifact holds
+Layout: ``<root>/<namespace>/<workload>/<container>.json`` — the CURRENT model of each
+key, the only files the sizing API serves. Versions: when ``save`` replaces a key's
+artifact by one with other content, the replaced file is kept (hard-linked, else copied)
+as ``<root>/.versions/<namespace>/<workload>/<container>/<archived-at>-<version>.json``
+(a hidden directory: ``entries()`` never walks it, so history is never served);
+``versions(key)`` lists them, ``rollback(key, to=…)`` makes one current again (and
+archives the one it replaces). At most ``MAX_VERSIONS`` are kept per key. An artifact holds
 everything needed to serve and to audit a demand curve (schema version, key,
 curve and band, trained range, sample counts and drops by reason, the CV table,
 the chosen model, the data window, library versions) and a content hash over all
@@ -35,8 +41,10 @@ import errno
 import hashlib
 import json
 import os
+import shutil
 import stat as stat_mod
 import tempfile
+import time
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -57,6 +65,11 @@ ParamValue = float | int | str | bool | None
 #: largest artifact file read (a real one is about 17 KB; the cap stops a huge or
 #: endless file from filling the server's memory)
 MAX_ARTIFACT_BYTES = 16 * 1024 * 1024
+
+#: previous versions kept per key (the oldest are removed beyond this)
+MAX_VERSIONS = 20
+#: hidden directory of the store holding the previous versions
+VERSIONS_DIR = ".versions"
 
 #: why a file of the store was refused (the ``reason`` label of the API's metric)
 REFUSAL_REASONS = (
@@ -131,6 +144,10 @@ class Artifact(_Strict):
     #: and their content hashes stay as they were)
     capacity: Annotated[float, Field(gt=0, le=1e9, allow_inf_nan=False)] | None = None
     content_hash: str = ""
+    #: the container image the samples came from (optional; the controller flags a model
+    #: whose container now runs another image). Left out of the JSON when unset, so the
+    #: hash of an artifact without it is what it always was.
+    image: Annotated[str, Field(min_length=1, max_length=512)] | None = None
 
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
 
@@ -166,6 +183,7 @@ class Artifact(_Strict):
             "window": self._window_shown(),
             "cv": [row.model_dump(mode="json") for row in self.cv],
             "capacity": self.capacity,
+            **({"image": self.image} if self.image is not None else {}),
         }
 
     def _window_shown(self) -> dict[str, Any]:
@@ -184,6 +202,8 @@ class Artifact(_Strict):
         body = self.model_dump(mode="json", by_alias=True)
         if body.get("capacity") is None:
             body.pop("capacity", None)  # optional key: absent unless measured
+        if body.get("image") is None:
+            body.pop("image", None)
         return body
 
     def with_capacity(self, capacity: float | None) -> Artifact:
@@ -320,6 +340,7 @@ class ModelStore:
         sealed = artifact if artifact.content_hash else artifact.sealed()
         path = self.path_for(sealed.key)
         path.parent.mkdir(parents=True, exist_ok=True)
+        self._archive_current(sealed)
         data = json.dumps(sealed.to_json_dict(), indent=1, sort_keys=True, allow_nan=False) + "\n"
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
         try:
@@ -343,6 +364,79 @@ class ModelStore:
         except OSError:  # pragma: no cover - platforms without directory fsync
             pass
         return path
+
+    # -- versions ------------------------------------------------------------------
+    def versions_dir(self, key: str | ModelKey) -> Path:
+        k = key if isinstance(key, ModelKey) else parse_key(str(key))
+        return self.root / VERSIONS_DIR / k.namespace / k.workload / k.container
+
+    def _archive_current(self, new: Artifact) -> None:
+        """Keep the key's current file (if any, and if its content differs from ``new``)."""
+        path = self.path_for(new.key)
+        try:
+            current = self.load(new.key)
+        except (UnknownModel, ArtifactError):
+            return  # nothing (good) to keep: a refused file is not history
+        if current.content_hash == new.content_hash:
+            return
+        d = self.versions_dir(new.key)
+        d.mkdir(parents=True, exist_ok=True)
+        stamp = time.strftime("%Y%m%dT%H%M%S", time.gmtime()) + f".{time.time_ns() % 1_000_000_000:09d}Z"
+        dest = d / f"{stamp}-{current.version}.json"
+        try:
+            os.link(path, dest)
+        except OSError:
+            shutil.copyfile(path, dest)
+        for old in self._version_files(new.key)[:-MAX_VERSIONS]:
+            old.unlink(missing_ok=True)
+
+    def _version_files(self, key: str | ModelKey) -> list[Path]:
+        d = self.versions_dir(key)
+        if not d.is_dir():
+            return []
+        return sorted(p for p in d.iterdir() if p.name.endswith(".json") and not p.name.startswith(".")
+                      and p.is_file() and not p.is_symlink())
+
+    def versions(self, key: str | ModelKey) -> list[tuple[str, Artifact]]:
+        """The key's previous versions, oldest first: (archived-at stamp, artifact).
+        Files that do not verify are left out."""
+        k = key if isinstance(key, ModelKey) else parse_key(str(key))
+        out = []
+        for p in self._version_files(k):
+            try:
+                art = parse_artifact(p.read_bytes(), origin=f"{VERSIONS_DIR}/{k}/{p.name}")
+            except (ArtifactError, OSError):
+                continue
+            if art.key == str(k):
+                out.append((p.name.split("-", 1)[0], art))
+        return out
+
+    def rollback(self, key: str | ModelKey, *, to: str | None = None) -> Artifact:
+        """Make a previous version current again: ``to`` a version (or a prefix of at
+        least 4 characters of one), None: the newest previous version whose content
+        differs from the current one. The replaced model is archived in turn. Returns the
+        artifact now current. ArtifactError when there is nothing to restore."""
+        k = key if isinstance(key, ModelKey) else parse_key(str(key))
+        try:
+            current_version = self.load(k).version
+        except (UnknownModel, ArtifactError):
+            current_version = None
+        history = self.versions(k)
+        if to is not None:
+            if len(to) < 4:
+                raise ArtifactError(f"version {to!r} is too short: give at least 4 characters of it "
+                                    "(`ratefit models versions` lists them)")
+            found = [a for _, a in history if a.version.startswith(to)]
+            if not found:
+                raise ArtifactError(f"{k} has no stored version {to!r}; `ratefit models versions {k}` lists them")
+            art = found[-1]
+        else:
+            older = [a for _, a in history if a.version != current_version]
+            if not older:
+                raise ArtifactError(f"{k} has no previous version to roll back to (the store keeps the versions `ratefit train` replaced)")
+            art = older[-1]
+        self.save(art)
+        return art
 
     def load(self, key: str | ModelKey) -> Artifact:
         k = key if isinstance(key, ModelKey) else parse_key(str(key))

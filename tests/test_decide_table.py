@@ -165,11 +165,11 @@ def test_every_verdict_and_why_is_reached():
     # fails (tests/test_faults_kube.py), never by the rules; the per-container input reasons
     # (QueryRefused … ContainerMissing): tests/test_blast_radius.py; PolicyConflict:
     # held_by_conflict (test_held_by_conflict below); PolicyInvalid and WorkloadNotFound:
-    # written by the record stage (tests/test_record.py)
+    # written by the record stage (tests/test_record.py); ModelStale: tests/test_stale_decide.py
     seen_whys = {c.why for c in CASES} | {Why.REJECTED, Why.API_UNAVAILABLE, Why.QUERY_REFUSED, Why.QUERY_FAILED,
                                           Why.TOO_MANY_SERIES, Why.INVALID_MODEL_KEY, Why.DEMAND_OUT_OF_RANGE,
                                           Why.CONTAINER_MISSING, Why.POLICY_CONFLICT, Why.POLICY_INVALID,
-                                          Why.WORKLOAD_NOT_FOUND}
+                                          Why.WORKLOAD_NOT_FOUND, Why.MODEL_STALE}
     assert seen_verdicts == set(Verdict)
     assert seen_whys == set(Why), set(Why) - seen_whys
 

@@ -6,6 +6,10 @@ JSON fields of ``show`` (cores and req/s throughout): model, chosen, cv (list of
 p95, fit_seconds, params}), rate_range [lo, hi], coverage, band, samples (used),
 samples_total, dropped (by reason), folds, seed, tuned, window, trained_at,
 version, library, demand_at_range ([cores at lo, cores at hi]).
+
+``ratefit models versions NAMESPACE/WORKLOAD/CONTAINER --store DIR`` lists the previous
+versions the store keeps; ``ratefit models rollback NAMESPACE/WORKLOAD/CONTAINER --store DIR
+[--to VERSION]`` makes one current again (the sizing API serves it after its next reload).
 """
 
 from __future__ import annotations
@@ -31,6 +35,23 @@ def register(sub: argparse._SubParsersAction) -> None:
     sh.add_argument("--output", choices=("table", "json", "markdown"), default="table",
                     help="output format (default table)")
     sh.set_defaults(handler=_show)
+    vs = msub.add_parser("versions", help="the previous versions the store keeps for one key",
+                         description="List the previous versions of one model, oldest first, and the current one.")
+    vs.add_argument("key", metavar="NAMESPACE/WORKLOAD/CONTAINER", help="the model key")
+    vs.add_argument("--store", required=True, metavar="DIR", help="model store directory")
+    vs.add_argument("--output", choices=("table", "json"), default="table", help="output format (default table)")
+    vs.set_defaults(handler=_versions)
+    rb = msub.add_parser(
+        "rollback", help="make a previous version of a model current again",
+        description="Restore a previous version of one model as its current artifact. Without --to, the newest "
+                    "previous version that differs from the current one. The replaced model is kept as a version "
+                    "too, so a rollback can itself be rolled back. The sizing API serves the restored model after "
+                    "its next reload (POST /v1/reload, or its periodic reload).")
+    rb.add_argument("key", metavar="NAMESPACE/WORKLOAD/CONTAINER", help="the model key")
+    rb.add_argument("--store", required=True, metavar="DIR", help="model store directory")
+    rb.add_argument("--to", metavar="VERSION", help="the version to restore (at least its first 4 characters; "
+                    "see 'ratefit models versions')")
+    rb.set_defaults(handler=_rollback)
 
 
 def show_dict(art: Any) -> dict[str, Any]:
@@ -114,6 +135,40 @@ def _show(args: argparse.Namespace) -> int:
         ],
     )
     print("(errors in cores, out-of-fold)")
+    return 0
+
+
+def _versions(args: argparse.Namespace) -> int:
+    from ratefit.models.errors import ArtifactError, UnknownModel
+    from ratefit.models.keys import parse_key
+    from ratefit.models.store import ModelStore
+
+    key = str(parse_key(args.key, field="model"))
+    store = ModelStore(args.store)
+    try:
+        current = store.load(key)
+    except (UnknownModel, ArtifactError):
+        current = None
+    rows = [{"version": a.version, "archived": stamp, "trained_at": a.trained_at, "chosen": a.chosen,
+             "image": a.image, "current": current is not None and a.version == current.version}
+            for stamp, a in store.versions(key)]
+    if args.output == "json":
+        print(json.dumps({"model": key, "current": current.version if current else None, "versions": rows}, indent=2))
+        return 0
+    print(f"model {key}: current version {current.version if current else '(none)'}")
+    _print_table(("VERSION", "ARCHIVED", "TRAINED", "CHOSEN", "IMAGE"),
+                 [(r["version"], r["archived"], r["trained_at"], r["chosen"], r["image"] or "-") for r in rows])
+    return 0
+
+
+def _rollback(args: argparse.Namespace) -> int:
+    from ratefit.models.keys import parse_key
+    from ratefit.models.store import ModelStore
+
+    key = str(parse_key(args.key, field="model"))
+    art = ModelStore(args.store).rollback(key, to=args.to)
+    print(f"ratefit models rollback: {key} is now version {art.version} (trained {art.trained_at}); "
+          "the sizing API serves it after its next reload")
     return 0
 
 

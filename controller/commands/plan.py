@@ -53,7 +53,7 @@ def _run(args: argparse.Namespace) -> int:
     logging.getLogger("urllib3").setLevel(logging.ERROR)
     conns = connect(args)
     try:
-        rec = Reconciler(kube=conns.kube, rates=conns.rates, sizing=conns.sizing,
+        rec = Reconciler(kube=conns.kube, rates=conns.rates, sizing=conns.sizing, usage=conns.usage,
                          config=ReconcileConfig(dry_run=True, write=False, namespaces=tuple(args.namespace)))
         result = rec.run_pass()
         verdict = pass_exit(result, prometheus=prometheus_probe(conns.rates), sizing=sizing_probe(conns.sizing))

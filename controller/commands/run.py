@@ -122,6 +122,13 @@ def add_connection_flags(p: argparse.ArgumentParser, *, sizing_required: bool = 
     r.add_argument("--rate-at", type=float, metavar="UNIX_SECONDS",
                    help="evaluate the rates at this time instead of now (replays, reproducible reviews)")
     r.add_argument("--timeout", type=float, default=10.0, help="seconds for each Prometheus and sizing API call (default %(default)s)")
+    st = p.add_argument_group("stale models")
+    st.add_argument("--stale-window", metavar="DURATION",
+                    help="each pass, compare every container's CPU usage over this window (e.g. 6h) with its model's "
+                         "upper band and mark a model stale when the excess is significant (one-sided binomial test, "
+                         "level 0.001); needs --prometheus (default: off)")
+    st.add_argument("--stale-step", default="5m",
+                    help="sample step (and rate interval) of that comparison (default %(default)s)")
     if p.epilog is None:
         from ratefit.controller.rate_presets import preset_table
 
@@ -135,6 +142,8 @@ class Connections:
     rates: Any
     sizing: Any
     rate_source: str  # what the rates come from, for the output
+    #: recent (rate, CPU) samples for the staleness check (None: off)
+    usage: Any = None
 
     def close(self) -> None:
         for obj in (self.sizing, getattr(self.rates, "client", None), self.kube):
@@ -179,7 +188,19 @@ def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connect
     kwargs = {"identity": identity} if identity else {}
     kube = kube_from_args(args, **kwargs)
     sizing = SizingClient(args.sizing_api, timeout=args.timeout, token=token)
-    return Connections(kube=kube, rates=rates, sizing=sizing, rate_source=source)
+    usage = None
+    if getattr(args, "stale_window", None):
+        if not args.prometheus:
+            raise InputError("--stale-window needs --prometheus (a replay has no CPU usage series)")
+        from ratefit.controller.usage_source import ModelFacts, PrometheusUsageSource
+
+        try:
+            usage = PrometheusUsageSource(rates.client, template=template, window=args.stale_window,
+                                          step=args.stale_step, at=args.rate_at, guard=guard,
+                                          facts=ModelFacts(sizing))
+        except ValueError as exc:
+            raise InputError(f"--stale-window/--stale-step: {exc}") from exc
+    return Connections(kube=kube, rates=rates, sizing=sizing, rate_source=source, usage=usage)
 
 
 def kube_from_args(args: argparse.Namespace, **kwargs: Any) -> Any:
@@ -229,6 +250,12 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--cache-resync", default="10m", metavar="DURATION",
                    help="full relist of the watch-fed cache every DURATION, e.g. 10m (0s: never; default %(default)s)")
     p.add_argument("--log-level", default="INFO", help="log level (default %(default)s)")
+    p.add_argument("--retrain-store", metavar="DIR",
+                   help="retrain stale models of policies with retrain: Auto into this model store (the one the "
+                        "sizing API serves), in the background; needs --stale-window")
+    p.add_argument("--retrain-stale", action="store_true",
+                   help="with --retrain-store: retrain every stale model, whatever the policy's retrain says")
+    p.add_argument("--retrain-step", default="1m", help="sample step of automatic retraining (default %(default)s)")
     p.set_defaults(handler=_run)
 
 
@@ -272,7 +299,20 @@ def _run(args: argparse.Namespace) -> int:
         bucket=TokenBucket.per_minute(args.budget_per_minute, now=mono()) if args.budget_per_minute > 0 else None,
         slots=RolloutSlots(args.max_rollouts) if args.max_rollouts > 0 else None,
     )
+    retrainer = None
+    if args.retrain_store:
+        if conns.usage is None:
+            raise InputError("--retrain-store needs --stale-window (only a stale model is retrained)")
+        from ratefit.controller.retrain import Retrainer
+        from ratefit.models.store import ModelStore
+
+        retrainer = Retrainer(client=conns.rates.client, store=ModelStore(args.retrain_store),
+                              template=conns.usage.rate_template,
+                              step=args.retrain_step, reload=conns.sizing.reload, source=f"prometheus:{args.prometheus}")
+    elif args.retrain_stale:
+        raise InputError("--retrain-stale goes with --retrain-store DIR")
     reconciler = Reconciler(
+        usage=conns.usage, retrainer=retrainer, retrain_all=args.retrain_stale,
         kube=kube, rates=conns.rates, sizing=conns.sizing,
         config=ReconcileConfig(dry_run=args.dry_run, write=True, namespaces=tuple(args.namespace),
                                identity=conns.kube.identity, shard=shard),
@@ -350,6 +390,12 @@ def _run(args: argparse.Namespace) -> int:
           f"mode {mode}; interval {args.interval}", file=sys.stderr, flush=True)
     try:
         code = loop.run()
+        if retrainer is not None and args.once:  # one pass: let its retrains finish before exiting
+            retrainer.drain(timeout=900.0)
+            for out in retrainer.outcomes:
+                print(f"ratefit run: retrained {out.job.model}: " + (
+                    f"version {out.artifact.version} replaces {out.replaced}" if out.artifact else f"failed: {out.error}"),
+                    file=sys.stderr, flush=True)
         if args.once and gave_up:
             print(f"ratefit run: error: {gave_up[0][1]}", file=sys.stderr, flush=True)
             code = gave_up[0][0]
@@ -358,6 +404,8 @@ def _run(args: argparse.Namespace) -> int:
         return code
     finally:
         stop_watch.set()
+        if retrainer is not None:
+            retrainer.stop()
         if cache is not None:
             cache.stop()
         if health is not None:

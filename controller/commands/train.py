@@ -86,6 +86,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--warmup", default="5m",
                    help="drop this span after each pod's first sample (Prometheus duration or 0; default 5m)")
     p.add_argument("--report", metavar="DIR", help="also write a Markdown page and PNG plot per key here")
+    p.add_argument("--image", metavar="IMAGE",
+                   help="the container image the samples came from, recorded in the model; the controller "
+                        "marks the model stale when the container runs another image")
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
     cap = p.add_argument_group("per-pod capacity (optional; recorded in the model, one of)")
     cap.add_argument("--capacity", type=float, metavar="R",
@@ -170,6 +173,10 @@ def _run(args: argparse.Namespace) -> int:
         results.append(_from_prometheus(args, options, progress))
     capacity = _capacity(args)
     for res in results:
+        if getattr(args, "image", None):
+            from dataclasses import replace
+
+            res = replace(res, artifact=with_image(res.artifact, args.image))
         a = res.artifact if capacity is None else res.artifact.with_capacity(capacity)
         path = store.save(a)
         print(f"{a.key}: {res.summary()}, {res.report.summary()} -> {path}")
@@ -198,6 +205,14 @@ def _capacity(args: argparse.Namespace) -> float | None:
     if not math.isfinite(args.capacity) or not 0 < args.capacity <= 1e9:
         raise InputError(f"--capacity {args.capacity:g}: must be a positive number of req/s (at most 1e9)")
     return float(args.capacity)
+
+
+def with_image(artifact, image: str):
+    """The artifact recording ``image`` (re-sealed: the image is part of the content)."""
+    image = image.strip()
+    if not image or len(image) > 512 or any(ch.isspace() for ch in image):
+        raise InputError(f"--image {image!r}: give one image reference (no spaces, at most 512 characters)")
+    return artifact.model_copy(update={"image": image, "content_hash": ""}).sealed()
 
 
 def _from_prometheus(args: argparse.Namespace, options, progress):

@@ -45,6 +45,7 @@ from ratefit.controller.policy import Policy, ResizeBy, PolicyInvalid, format_du
 from ratefit.controller.stages.ports import KubeReader, RateSource, SizingSource
 from ratefit.controller.telemetry import Telemetry
 from ratefit.controller.workload import HorizontalScaler, Pod, PolicyObject, Workload
+from ratefit.controller.staleness import ALPHA, DEFAULT_COVERAGE, Staleness, band_rates, judge
 from ratefit.models.errors import RatefitError, UnknownModel
 
 __all__ = ["Observed", "Observer", "Snapshot", "conflicts", "policy_object_dict", "shard_of"]
@@ -91,6 +92,8 @@ class Snapshot:
     errors: tuple[str, ...] = ()
     #: wall seconds of the observe stage's parts (for the benchmark)
     split: Mapping[str, float] = field(default_factory=dict)
+    #: ``namespace/policy/container`` → this pass's staleness verdict (only containers checked)
+    staleness: Mapping[str, Staleness] = field(default_factory=dict)
 
 
 def shard_of(namespace: str, count: int) -> int:
@@ -171,7 +174,12 @@ class Observer:
     def __init__(
         self, *, reader: KubeReader, rates: RateSource, sizing: SizingSource, telemetry: Telemetry,
         namespaces: tuple[str, ...] = (), shard: tuple[int, int] | None = None,
+        usage: object | None = None, coverage: float = DEFAULT_COVERAGE, alpha: float = ALPHA,
     ) -> None:
+        #: recent (rate, CPU) samples per container (``controller/usage_source``); None: no staleness check
+        self.usage = usage
+        self.coverage = coverage
+        self.alpha = alpha
         self.reader = reader
         self.rates = rates
         self.sizing = sizing
@@ -251,6 +259,11 @@ class Observer:
         sizing = self._query_sizing(asked, models, sizing_rates, errors, problems)
         facts = self._curve_points(asked, models, views, facts, errors)
         t_sizing = time.perf_counter()
+        staleness: dict[str, Staleness] = {}
+        if self.usage is not None:
+            kinds = {(p.namespace, p.name): p.workload_kind for _, p in valid}
+            staleness = self._staleness([r for r in asked if sizing.get(r.key) is not None], kinds, models, errors,
+                                        workloads)
 
         clashes = conflicts(valid)
         entries = []
@@ -259,12 +272,15 @@ class Observer:
                 entries.append(Observed(obj=o, invalid=got))
                 continue
             one = self._one(o, got, workloads, hpa_cpu, failed, rates, sizing, errors, problems,
-                            views=views, facts=facts)
+                            views=views, facts=facts, staleness=staleness)
             older = clashes.get((o.namespace, o.name))
             entries.append(one if older is None else replace(one, conflict_with=older))
         split = {"gather_kube": t_lists - t_g0, "gather_rates": float(rate_box.get("seconds", 0.0)),  # type: ignore[arg-type]
                  "gather_rates_wait": t_rates - t_lists, "gather_sizing": t_sizing - t_rates}
-        return Snapshot(now=now, entries=tuple(entries), rolling=tuple(rolling), errors=tuple(errors), split=split)
+        if self.usage is not None:
+            split["gather_usage"] = time.perf_counter() - t_sizing
+        return Snapshot(now=now, entries=tuple(entries), rolling=tuple(rolling), errors=tuple(errors), split=split,
+                        staleness=staleness)
 
     # -- parts ---------------------------------------------------------------------
     def _parse(self, objs: Sequence[PolicyObject]) -> list[Policy | PolicyInvalid]:
@@ -332,6 +348,7 @@ class Observer:
         rates: Mapping[str, float | None], sizing: Mapping[str, Sizing | None], errors: list[str],
         problems: Mapping[str, tuple[str, str]] | None = None, *,
         views: Mapping[tuple[str, str], AutoscalerView] | None = None, facts: Mapping[str, ModelFacts] | None = None,
+        staleness: Mapping[str, Staleness] | None = None,
     ) -> Observed:
         problems = problems or {}
         # a failed LIST (workloads of this kind, or HPAs) means "unknown", never "not found"
@@ -356,6 +373,7 @@ class Observer:
             inputs.append(ContainerInput(
                 name=c.name, request_m=current_req, limit_m=current_lim,
                 rate=rates.get(f"{p.key}/{c.name}"), sizing=sizing.get(f"{p.key}/{c.name}"),
+                stale=(staleness or {}).get(f"{p.key}/{c.name}"),
                 rate_problem=problems.get(f"rate:{p.key}/{c.name}"),
                 sizing_problem=problems.get(f"sizing:{p.key}/{c.name}"),
                 facts=(facts or {}).get(f"{p.key}/{c.name}"),
@@ -543,4 +561,75 @@ class Observer:
                 f = out[r.key]
                 out[r.key] = ModelFacts(rate_lo=f.rate_lo, rate_hi=f.rate_hi, capacity=f.capacity,
                                         rates=wanted[m], demand=curves[m])
+        return out
+
+    def _staleness(
+        self, asked: Sequence[RateRequest], kinds: Mapping[tuple[str, str], str],
+        models: Mapping[tuple[str, str, str], str], errors: list[str],
+        workloads: Mapping[tuple[str, str, str], Workload] | None = None,
+    ) -> dict[str, Staleness]:
+        """Each container's recent (rate, CPU) samples against its model's band at those
+        rates (``controller/staleness``). The band comes from ONE sizing batch for all
+        containers, at most ``staleness.MAX_BAND_POINTS`` rates each. Trouble here never
+        holds a container: it is simply not judged this pass."""
+        from ratefit.controller.usage_source import UsageRequest
+
+        if not asked:
+            return {}
+        # what the models say about themselves (coverage, training image), when the source knows
+        facts_src = getattr(self.usage, "facts", None)
+        facts = facts_src.lookup([models[(r.namespace, r.policy, r.container)] for r in asked]) if facts_src else {}
+        image_msgs: dict[str, str] = {}
+        for r in asked:
+            trained_on = facts.get(models[(r.namespace, r.policy, r.container)], (None, None))[1]
+            w = (workloads or {}).get((r.namespace, kinds[(r.namespace, r.policy)], r.workload))
+            running = next((c.image for c in (w.containers if w else ()) if c.name == r.container), None)
+            if trained_on and running and running != trained_on:
+                image_msgs[r.key] = f"image changed since training: trained on {trained_on}, runs {running}"
+        reqs = [UsageRequest(namespace=r.namespace, policy=r.policy, workload_kind=kinds[(r.namespace, r.policy)],
+                             workload=r.workload, container=r.container, rate_query=r.query) for r in asked]
+        try:
+            got = self.usage.usage(reqs)  # type: ignore[union-attr]
+        except RatefitError as exc:
+            errors.append(f"recent usage: {exc}")
+            got = {}
+        items: list[tuple[str, float]] = []
+        spans: list[tuple[RateRequest, object, object, int, int]] = []
+        for r in asked:
+            res = got.get(r.key)
+            if res is None or not getattr(res, "count", 0):
+                continue
+            grid = band_rates(res.rates)
+            model = models[(r.namespace, r.policy, r.container)]
+            spans.append((r, res, grid, len(items), len(items) + len(grid)))
+            items.extend((model, float(g)) for g in grid)
+        out: dict[str, Staleness] = {
+            k: Staleness(samples=0, above=0, nominal=1.0 - self.coverage, p_value=1.0, alpha=self.alpha,
+                         image_changed=m) for k, m in image_msgs.items()}
+        if not items:
+            self.telemetry.models_stale.set(len(out))
+            return out
+        try:
+            answers = self.sizing.demand_batch(items)
+        except RatefitError as exc:
+            errors.append(f"sizing API (band for the staleness check): {exc}")
+            return out
+        if len(answers) != len(items):
+            return out
+        self.telemetry.band_exceedance.clear()
+        for r, res, grid, a, b in spans:
+            bounds = [sizing_of(x) for x in answers[a:b]]
+            if any(v is None for v in bounds):
+                continue
+            cov = facts.get(models[(r.namespace, r.policy, r.container)], (None, None))[0] or self.coverage
+            st = judge(res.rates, res.cpu, grid, [v.upper for v in bounds],  # type: ignore[union-attr]
+                       coverage=cov, alpha=self.alpha, timestamps=res.timestamps, image_changed=image_msgs.get(r.key))
+            out[r.key] = st
+            self.telemetry.band_exceedance.labels(
+                workload_namespace=r.namespace, workload=f"{kinds[(r.namespace, r.policy)]}/{r.workload}",
+                workload_container=r.container).set(st.ratio)
+        stale = sum(1 for v in out.values() if v.stale)
+        self.telemetry.models_stale.set(stale)
+        if stale:
+            log.warning("%d containers with a stale model (recent usage above the band); decreases held", stale)
         return out

@@ -70,8 +70,13 @@ class Reconciler:
         backoff: ExponentialBackoff | None = None, telemetry: Telemetry | None = None,
         wall_clock: Callable[[], datetime] = lambda: datetime.now(timezone.utc),
         monotonic: Callable[[], float] = time.monotonic, crash_hook: Callable[[str], None] | None = None,
+        usage: object | None = None, retrainer: object | None = None, retrain_all: bool = False,
     ) -> None:
         self.kube = kube
+        #: stale models (issue 13): recent usage source (None: no check) and the background retrainer
+        self.usage = usage
+        self.retrainer = retrainer
+        self.retrain_all = retrain_all
         self.config = config
         self.budget = budget or Budget()
         self.telemetry = telemetry or Telemetry()
@@ -79,7 +84,7 @@ class Reconciler:
         self._mono = monotonic
         self._hook = crash_hook or (lambda point: None)
         self.observer = Observer(reader=reader or kube, rates=rates, sizing=sizing, telemetry=self.telemetry,
-                                 namespaces=config.namespaces, shard=config.shard)
+                                 namespaces=config.namespaces, shard=config.shard, usage=usage)
         self.decider = Decider(budget=self.budget, monotonic=monotonic, dry_run=config.dry_run, write=config.write)
         self.actor = Actor(kube=kube, decider=self.decider, telemetry=self.telemetry, backoff=backoff,
                            monotonic=monotonic, hook=self._hook, conflict_attempts=config.conflict_attempts)
@@ -111,6 +116,8 @@ class Reconciler:
             log.error("pass failed: cannot list SizingPolicies: %s", exc)
             return self._finish(PassResult(outcome=PassOutcome.FAILED, errors=(str(exc),)), t0, {})
         t1, c1 = self._mono(), time.process_time()
+        if self.retrainer is not None and snap.staleness:
+            self._queue_retrains(snap, now)
         decisions = self.decider.decide_all(snap)
         t2, c2 = self._mono(), time.process_time()
         errors = list(snap.errors)
@@ -149,6 +156,18 @@ class Reconciler:
         phases = dict(snap.split, gather=t1 - t0, decide=t2 - t1, act=t3 - t2,
                       gather_cpu=c1 - c0, decide_cpu=c2 - c1, act_cpu=c3 - c2)
         return self._finish(result, t0, phases)
+
+    def _queue_retrains(self, snap: object, now: datetime) -> None:
+        """Hand stale models to the background retrainer (never waits for training)."""
+        from ratefit.controller.retrain import jobs_for
+
+        end = getattr(self.usage, "at", None) or now.timestamp()
+        window = float(getattr(self.usage, "window_s", 6 * 3600.0))
+        try:
+            self.retrainer.submit_all(jobs_for(snap, now=end, window_s=window,  # type: ignore[attr-defined]
+                                               retrain_all=self.retrain_all))
+        except Exception as exc:  # retraining is an extra: it never fails a pass
+            log.warning("queueing retrains failed: %s", exc)
 
     def _finish(self, result: PassResult, t0: float, phases: Mapping[str, float]) -> PassResult:
         """The one place a pass becomes metrics and its log line."""

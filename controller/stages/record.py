@@ -192,6 +192,9 @@ def new_status(
         )
         for cond in (ready, inputs, conflict):
             conditions = set_condition(conditions, cond)
+        fresh = model_fresh_condition(o, gen, now)
+        if fresh is not None:
+            conditions = set_condition(conditions, fresh)
         status["conditions"] = conditions
         status["summary"] = summary
         # the CRD's schema has no nullable fields: leave unknown values out
@@ -291,6 +294,9 @@ def events_for(
     # the action names what ratefit does (or would do): a rollout of the template or an in-place resize
     action = "Resize" if o.policy is not None and o.policy.resize_by is ResizeBy.IN_PLACE else "Rollout"
     out = []
+    stale_text = stale_news(o, old_status)
+    if stale_text:
+        out.append(note(Why.MODEL_STALE.value, EventType.WARNING, "Judge", stale_text))
     for reason, notes in news.items():
         text = "; ".join(notes)
         if reason == "CpuRequestProposed":
@@ -375,3 +381,52 @@ def _cgroup(request_m: int | None, limit_m: int | None) -> dict[str, object] | N
         return None
     return {"shares": f.shares, "weight_linear": f.weight_linear, "weight_log": f.weight_log,
             "quota_us": f.quota_us, "period_us": f.period_us, "cpu_max": f.cpu_max}
+
+
+# ---------------------------------------------------------------- stale models (issue 13)
+
+#: the condition that says whether the policy's models still match recent usage
+CONDITION_MODEL_FRESH = "ModelFresh"
+
+
+def _stale_inputs(o: Observed) -> tuple[list, list]:
+    checked = [i for i in o.inputs if getattr(i, "stale", None) is not None]
+    return checked, [i for i in checked if i.stale.stale]
+
+
+def model_fresh_condition(o: Observed, generation: int | None, now: datetime) -> dict[str, object] | None:
+    """``ModelFresh``: False (reason ModelStale) when any container's model was marked stale
+    this pass, True (reason WithinBand) when every checked one held; None when nothing was
+    checked (the staleness check is off or had no data: the condition is left as it was).
+    The message names the containers and their exceedance ratio to two decimals (so a pass
+    that only moves the third decimal writes nothing)."""
+    checked, stale = _stale_inputs(o)
+    if not checked:
+        return None
+    if stale:
+        parts = []
+        for i in stale:
+            st = i.stale
+            what = f"exceedance ratio {st.ratio:.2f} of {st.samples} samples" if st.significant else ""
+            if st.image_changed:
+                what = (what + "; " if what else "") + st.image_changed
+            parts.append(f"{i.name}: {what}")
+        return make_condition(type=CONDITION_MODEL_FRESH, status=False, reason=Why.MODEL_STALE.value,
+                              message="model stale, decreases held until it is retrained: " + "; ".join(parts),
+                              observed_generation=generation, now=now)
+    return make_condition(type=CONDITION_MODEL_FRESH, status=True, reason="WithinBand",
+                          message=f"recent CPU usage of {len(checked)} containers is within their models' band",
+                          observed_generation=generation, now=now)
+
+
+def stale_news(o: Observed, old_status: Mapping[str, object]) -> str:
+    """The Warning Event text when a model became stale (empty: no news — not stale, or
+    the stored ModelFresh condition already says False)."""
+    checked, stale = _stale_inputs(o)
+    if not stale:
+        return ""
+    conds = old_status.get("conditions") or []
+    old = {c.get("type"): c for c in conds if isinstance(c, Mapping)}.get(CONDITION_MODEL_FRESH, {})  # type: ignore[union-attr]
+    if old.get("status") == "False":
+        return ""
+    return "; ".join(f"{i.name}: {i.stale.message()}" for i in stale)
