@@ -8,7 +8,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from ratefit.controller.commands.run import add_connection_flags, kube_from_args
+from ratefit.controller.commands.run import add_connection_flags, kube_from_args, sizing_token
 from ratefit.models.errors import InputError
 
 HELP = """\
@@ -86,13 +86,7 @@ def build_parts(args: argparse.Namespace):
     if args.store:
         parts.store = ModelStore(args.store)
     elif args.sizing_api:
-        token = None
-        if args.sizing_token_file:
-            try:
-                with open(args.sizing_token_file, encoding="utf-8") as fh:
-                    token = fh.read().strip()
-            except OSError as exc:
-                raise InputError(f"--sizing-token-file {args.sizing_token_file}: {exc}") from exc
+        token = sizing_token(args)
         try:
             parts.sizing = SizingClient(args.sizing_api, timeout=args.timeout, token=token, retries=0)
         except RatefitError as exc:

@@ -178,13 +178,7 @@ def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connect
             raise InputError(f"--replay {args.replay}: no such file")
         rates = ReplayRateSource(args.replay, at=args.rate_at, template=template, step=args.rate_step)
         source = f"replay of {args.replay}"
-    token = None
-    if args.sizing_token_file:
-        try:
-            with open(args.sizing_token_file, encoding="utf-8") as fh:
-                token = fh.read().strip()
-        except OSError as exc:
-            raise InputError(f"--sizing-token-file {args.sizing_token_file}: {exc}") from exc
+    token = sizing_token(args)
     kwargs = {"identity": identity} if identity else {}
     kube = kube_from_args(args, **kwargs)
     sizing = SizingClient(args.sizing_api, timeout=args.timeout, token=token)
@@ -201,6 +195,17 @@ def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connect
         except ValueError as exc:
             raise InputError(f"--stale-window/--stale-step: {exc}") from exc
     return Connections(kube=kube, rates=rates, sizing=sizing, rate_source=source, usage=usage)
+
+
+def sizing_token(args: argparse.Namespace) -> str | None:
+    """The sizing API's bearer token from --sizing-token-file (None: no file given)."""
+    if not args.sizing_token_file:
+        return None
+    try:
+        with open(args.sizing_token_file, encoding="utf-8") as fh:
+            return fh.read().strip()
+    except OSError as exc:
+        raise InputError(f"--sizing-token-file {args.sizing_token_file}: {exc}") from exc
 
 
 def kube_from_args(args: argparse.Namespace, **kwargs: Any) -> Any:
