@@ -162,3 +162,46 @@ def test_reusing_unchanged_policies_changes_no_decision_status_or_write(tmp_path
         assert reused[0] == 0
         assert max(reused) >= 5, reused
         assert sum(reused) >= 40, reused
+
+
+class CountingSizing:
+    """The real sizing client, counting the items each demand batch sends."""
+
+    def __init__(self, inner: Any) -> None:
+        self.inner = inner
+        self.sent: list[int] = []
+
+    def demand_batch(self, items: Any) -> Any:
+        self.sent.append(len(items))
+        return self.inner.demand_batch(items)
+
+    def health(self) -> Any:
+        return self.inner.health()
+
+
+def test_sizing_answers_are_reused_until_the_store_version_changes(tmp_path) -> None:
+    from api_fixtures import make_artifact
+    from ratefit.models.store import ModelStore
+
+    objects = [deployment("shop", "a", [("app", "100m", None)]),
+               policy("shop", "a", workload="a", mode="DryRun", containers=[{"name": "app", "model": "shop/a/app"}]),
+               deployment("shop", "b", [("app", "100m", None)]),
+               policy("shop", "b", workload="b", mode="DryRun", containers=[{"name": "app", "model": "shop/b/app"}])]
+    models = {"shop/a/app": {"base": 0.05, "slope": 0.004}, "shop/b/app": {"base": 0.05, "slope": 0.004}}
+    with world(tmp_path, objects=objects, models=models, rates={("shop", "a"): [50.0], ("shop", "b"): [20.0]}) as w:
+        sizing = CountingSizing(w.sizing())
+        rec = Reconciler(kube=w.kube(), rates=w.rates(), sizing=sizing, config=ReconcileConfig())
+        first = rec.run_pass()
+        assert sizing.sent == [2]
+        second = rec.run_pass()
+        assert sizing.sent == [2]  # same models, same rates, same store version: nothing asked
+        assert [r.as_dict() for r in second.rows] == [r.as_dict() for r in first.rows]
+        # a retrained model (a steeper curve) and a reload: a new store version, asked again
+        ModelStore(tmp_path / "store").save(make_artifact("shop/a/app", base=0.05, slope=0.008))
+        sizing.inner.reload()
+        third = rec.run_pass()
+        assert sizing.sent == [2, 2]
+        by = {r.policy: r for r in third.rows}
+        # Utilization Law (U = X·S): twice the CPU per request, more demand at the same rate
+        assert by["a"].demand_m > {r.policy: r for r in first.rows}["a"].demand_m
+        assert by["b"].demand_m == {r.policy: r for r in first.rows}["b"].demand_m
