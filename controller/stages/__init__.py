@@ -12,6 +12,10 @@
 - ``record.py`` — PURE: new status (validated by the CRD's status model), Events,
   decision log records and review rows, built from observation + decision.
 - ``write.py`` — writes what ``record`` built (status only when it changed, then Events, logs).
+- ``steady.py`` — the steady-state memo: a policy whose inputs (policy and workload
+  resourceVersions, rates, sizing answers, …) are those of its last pass, and whose last
+  decision was a fixed point that read neither the clock nor the budget, reuses that
+  decision, its review rows and its status verdict (work proportional to what changed).
 - ``outcome.py`` — ``PassOutcome`` and ``PassResult``, what a pass came to.
 - ``crash.py`` — the ``RATEFIT_CRASH_AT`` test hook.
 - ``orchestrator.py`` — ``Reconciler``: runs the stages in order; the one place where a
