@@ -254,10 +254,10 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--once", action="store_true", help="run one pass and exit (as leader, when the Lease can be had)")
     p.add_argument("--cache-resync", default="10m", metavar="DURATION",
                    help="full relist of the watch-fed cache every DURATION, e.g. 10m (0s: never; default %(default)s)")
-    p.add_argument("--rate-refresh", default="0s", metavar="DURATION",
+    p.add_argument("--rate-refresh", metavar="DURATION",
                    help="read the rates from a snapshot that its own thread refreshes every DURATION, e.g. 30s, so "
                         "a pass does not wait for Prometheus; new or changed queries and rates older than three "
-                        "periods are asked in the pass (0s: ask Prometheus in every pass; default %(default)s)")
+                        "periods are asked in the pass (default: off, every pass asks Prometheus)")
     p.add_argument("--log-level", default="INFO", help="log level (default %(default)s)")
     p.add_argument("--retrain-store", metavar="DIR",
                    help="retrain stale models of policies with retrain: Auto into this model store (the one the "
@@ -293,9 +293,7 @@ def _run(args: argparse.Namespace) -> int:
     resync = parse_duration(args.cache_resync, field="--cache-resync")
     if resync < 0:
         raise InputError("--cache-resync must be 0s (never) or longer")
-    rate_refresh = parse_duration(args.rate_refresh, field="--rate-refresh")
-    if rate_refresh < 0:
-        raise InputError("--rate-refresh must be 0s (off) or longer")
+    rate_refresh = parse_duration(args.rate_refresh, field="--rate-refresh") if args.rate_refresh else 0.0
     conns = connect(args, identity=args.identity)
     lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
     cache = None
