@@ -205,3 +205,42 @@ def test_sizing_answers_are_reused_until_the_store_version_changes(tmp_path) -> 
         # Utilization Law (U = X·S): twice the CPU per request, more demand at the same rate
         assert by["a"].demand_m > {r.policy: r for r in first.rows}["a"].demand_m
         assert by["b"].demand_m == {r.policy: r for r in first.rows}["b"].demand_m
+
+
+def test_the_memo_key_changes_with_every_observed_input() -> None:
+    """Every field of an observation is part of the memo's key: one changed value (or a new
+    resourceVersion of the policy or the workload) means the policy is decided again."""
+    from dataclasses import fields
+
+    from ratefit.controller.decide import ContainerInput, Sizing
+    from ratefit.controller.stages.observe import Observed
+    from ratefit.controller.stages.steady import inputs_key
+    from ratefit.controller.workload import ContainerResources, PolicyObject, Workload, WorkloadKind
+
+    obj = PolicyObject(namespace="shop", name="web", uid="u1", generation=1, resource_version="10", spec={}, status={})
+    w = Workload(namespace="shop", kind=WorkloadKind.DEPLOYMENT, name="web", uid="w1", generation=1,
+                 resource_version="20", replicas=2, selector="app=web", annotations={},
+                 containers=(ContainerResources("app", 100, None),), rollout_in_progress=False)
+    inp = ContainerInput(name="app", request_m=100, limit_m=None, rate=50.0, sizing=Sizing(0.25, 0.27))
+    o = Observed(obj=obj, workload=w, inputs=(inp,))
+    key = inputs_key(o)
+    assert key is not None and inputs_key(replace(o)) == key
+    changed = [
+        replace(o, obj=replace(obj, resource_version="11")),  # a status or spec write
+        replace(o, workload=replace(w, resource_version="21")),  # the workload edited
+        replace(o, inputs=(replace(inp, rate=50.5),)),
+        replace(o, inputs=(replace(inp, sizing=Sizing(0.25, 0.28)),)),
+        replace(o, inputs=(replace(inp, request_m=105),)),
+        replace(o, hpa_on_cpu=True),
+        replace(o, conflict_with="shop/older"),
+        replace(o, problem="gone"),
+    ]
+    for other in changed:
+        assert inputs_key(other) != key, other
+    # not comparable: unobserved, or objects without a resourceVersion
+    assert inputs_key(replace(o, unavailable=True)) is None
+    assert inputs_key(replace(o, obj=replace(obj, resource_version=""))) is None
+    # every field of Observed is in the key, by value or by resourceVersion
+    from ratefit.controller.stages import steady
+
+    assert set(steady._BY_VALUE) | steady._BY_VERSION == {f.name for f in fields(Observed)}

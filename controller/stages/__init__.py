@@ -28,5 +28,8 @@ Adding a hold reason that needs a new observation touches:
 3. ``manifests/crd/sizingpolicy.yaml`` — the new value in the status ``why`` enum;
 4. their tests (``tests/test_decide_table.py`` for the rule, ``tests/test_reconcile.py``
    or ``tests/test_faults_*.py`` for the observation against the sandbox).
-``record.py`` needs nothing: it writes whatever ``Why`` the decision carries.
+``record.py`` needs nothing: it writes whatever ``Why`` the decision carries, and
+``steady.py`` needs nothing either: its memo compares every field of ``Observed`` and
+``ContainerInput`` (a hold that waits on the clock must be added to its
+``CLOCK_OR_BUDGET``, though).
 """

@@ -43,7 +43,7 @@ others not) with and without the memo and compares decisions, statuses and write
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 from datetime import datetime
 
 from ratefit.controller.decide import Verdict, WorkloadDecision, Why
@@ -74,6 +74,14 @@ class Remembered:
     now: datetime
 
 
+#: fields of :class:`Observed` stood for by resourceVersions in the key: the policy object
+#: (``policy`` and ``invalid`` are parsed from its spec), the workload and the pods
+_BY_VERSION = frozenset({"obj", "policy", "invalid", "workload", "pods"})
+#: every other field of Observed is compared as it is — a field added for a new hold
+#: reason is part of the key without anyone having to remember this module
+_BY_VALUE = tuple(f.name for f in fields(Observed) if f.name not in _BY_VERSION)
+
+
 def inputs_key(o: Observed) -> tuple[object, ...] | None:
     """Everything the decision, the status and the rows of ``o`` read, as one comparable
     value (None: not comparable — objects without a resourceVersion, or not observed)."""
@@ -83,8 +91,8 @@ def inputs_key(o: Observed) -> tuple[object, ...] | None:
     if w is not None and not w.resource_version:
         return None
     pods = None if o.pods is None else tuple((p.uid, p.resource_version) for p in o.pods)
-    return (o.obj.uid, o.obj.resource_version, None if w is None else (w.uid, w.resource_version), o.inputs, pods,
-            o.hpa_on_cpu, o.autoscaler, o.conflict_with, o.problem)
+    return (o.obj.uid, o.obj.resource_version, None if w is None else (w.uid, w.resource_version), pods,
+            *(getattr(o, name) for name in _BY_VALUE))
 
 
 def fixed_point(o: Observed, wd: WorkloadDecision | None, *, status_current: bool) -> bool:
