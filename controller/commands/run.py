@@ -282,6 +282,10 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--once", action="store_true", help="run one pass and exit (as leader, when the Lease can be had)")
     p.add_argument("--cache-resync", default="10m", metavar="DURATION",
                    help="full relist of the watch-fed cache every DURATION, e.g. 10m (0s: never; default %(default)s)")
+    p.add_argument("--rate-refresh", metavar="DURATION",
+                   help="read the rates from a snapshot that its own thread refreshes every DURATION, e.g. 30s, so "
+                        "a pass does not wait for Prometheus; new or changed queries and rates older than three "
+                        "periods are asked in the pass (default: off, every pass asks Prometheus)")
     p.add_argument("--log-level", default="INFO", help="log level (default %(default)s)")
     p.add_argument("--retrain-store", metavar="DIR",
                    help="retrain stale models of policies with retrain: Auto into this model store (the one the "
@@ -317,6 +321,7 @@ def _run(args: argparse.Namespace) -> int:
     resync = parse_duration(args.cache_resync, field="--cache-resync")
     if resync < 0:
         raise InputError("--cache-resync must be 0s (never) or longer")
+    rate_refresh = parse_duration(args.rate_refresh, field="--rate-refresh") if args.rate_refresh else 0.0
     conns = connect(args, identity=args.identity)
     lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
     cache = None
@@ -327,6 +332,12 @@ def _run(args: argparse.Namespace) -> int:
         cache = KubeCache.for_adapter(conns.kube, namespaces=args.namespace, resync_s=resync)
         kube = CachedKube(reader=cache, writer=conns.kube)
     telemetry = Telemetry()
+    rates: Any = conns.rates
+    snapshot = None
+    if rate_refresh > 0 and not args.once:  # controller/rates_snapshot.py
+        from ratefit.controller.rates_snapshot import RateSnapshot
+
+        snapshot = rates = RateSnapshot(conns.rates, period_s=rate_refresh, registry=telemetry.registry)
     mono = time.monotonic
     budget = Budget(
         bucket=TokenBucket.per_minute(args.budget_per_minute, now=mono()) if args.budget_per_minute > 0 else None,
@@ -347,7 +358,7 @@ def _run(args: argparse.Namespace) -> int:
         raise InputError("--retrain-stale goes with --retrain-store DIR")
     reconciler = Reconciler(
         usage=conns.usage, retrainer=retrainer, retrain_all=args.retrain_stale,
-        kube=kube, rates=conns.rates, sizing=conns.sizing,
+        kube=kube, rates=rates, sizing=conns.sizing,
         config=ReconcileConfig(dry_run=args.dry_run, write=True, namespaces=tuple(args.namespace),
                                identity=conns.kube.identity, shard=shard),
         budget=budget, backoff=ExponentialBackoff(base=5.0, cap=300.0, rng=random.Random()),
@@ -406,6 +417,8 @@ def _run(args: argparse.Namespace) -> int:
     signal.signal(signal.SIGINT, on_signal)
     if cache is not None:
         cache.start()
+    if snapshot is not None:
+        snapshot.start()
     if args.once and elector is not None:
         # --once as a standby would wait forever: give up after two Lease durations
         patience = 2 * float(getattr(elector, "lease_duration", 15.0)) + float(getattr(elector, "retry_period", 2.0))
@@ -442,6 +455,8 @@ def _run(args: argparse.Namespace) -> int:
             retrainer.stop()
         if cache is not None:
             cache.stop()
+        if snapshot is not None:
+            snapshot.stop()
         if health is not None:
             health.stop()
         conns.close()

@@ -12,6 +12,10 @@
 - ``record.py`` — PURE: new status (validated by the CRD's status model), Events,
   decision log records and review rows, built from observation + decision.
 - ``write.py`` — writes what ``record`` built (status only when it changed, then Events, logs).
+- ``steady.py`` — the steady-state memo: a policy whose inputs (policy and workload
+  resourceVersions, rates, sizing answers, …) are those of its last pass, and whose last
+  decision was a fixed point that read neither the clock nor the budget, reuses that
+  decision, its review rows and its status verdict (work proportional to what changed).
 - ``outcome.py`` — ``PassOutcome`` and ``PassResult``, what a pass came to.
 - ``crash.py`` — the ``RATEFIT_CRASH_AT`` test hook.
 - ``orchestrator.py`` — ``Reconciler``: runs the stages in order; the one place where a
@@ -24,5 +28,8 @@ Adding a hold reason that needs a new observation touches:
 3. ``manifests/crd/sizingpolicy.yaml`` — the new value in the status ``why`` enum;
 4. their tests (``tests/test_decide_table.py`` for the rule, ``tests/test_reconcile.py``
    or ``tests/test_faults_*.py`` for the observation against the sandbox).
-``record.py`` needs nothing: it writes whatever ``Why`` the decision carries.
+``record.py`` needs nothing: it writes whatever ``Why`` the decision carries, and
+``steady.py`` needs nothing either: its memo compares every field of ``Observed`` and
+``ContainerInput`` (a hold that waits on the clock must be added to its
+``CLOCK_OR_BUDGET``, though).
 """

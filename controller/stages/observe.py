@@ -167,6 +167,14 @@ def sizing_problem(answer: object) -> tuple[str, str] | None:
     return _SIZING_REASONS.get(str(get("reason") or ""), "NoModel"), str(error)
 
 
+class _WrongLength(Exception):
+    """The sizing API answered another number of items than it was asked."""
+
+    def __init__(self, got: int, asked: int) -> None:
+        super().__init__(f"{got} answers for {asked} items")
+        self.got, self.asked = got, asked
+
+
 class Observer:
     """Builds a :class:`Snapshot` per pass. Keeps only the parsed policies across
     passes (the spec changes only with the generation: each is parsed once)."""
@@ -190,6 +198,11 @@ class Observer:
         #: model → (monotonic time read, its facts or None): the model detail is read at most
         #: every FACTS_TTL_S per model (models are retrained daily; a range minutes old is fine)
         self._facts: dict[str, tuple[float, ModelFacts | None]] = {}
+        #: (model, rate) → the sizing API's answer, for store version ``_answers_version``
+        self._answers: dict[tuple[str, float], object] = {}
+        self._answers_version: str | None = None
+        #: items sent to the sizing API in the last pass's demand batch (the rest were reused)
+        self.sizing_asked = 0
 
     def observe(self, now: datetime) -> Snapshot:
         """One snapshot. Raises KubeError when the policies cannot be listed."""
@@ -446,14 +459,14 @@ class Observer:
             return {}
         items = [(models[(r.namespace, r.policy, r.container)], float(rates[r.key])) for r in asked]  # type: ignore[arg-type]
         try:
-            answers = self.sizing.demand_batch(items)
+            answers = self._demand_answers(items)
         except RatefitError as exc:  # sizing API down: every container NoModel
             self.telemetry.api_errors.labels(kind=type(exc).__name__).inc()
             errors.append(f"sizing API: {exc}")
             log.warning("sizing API failed; holding every container with NoModel: %s", exc)
             return {}
-        if len(answers) != len(asked):
-            errors.append(f"sizing API answered {len(answers)} items for {len(asked)} asked")
+        except _WrongLength as exc:
+            errors.append(f"sizing API answered {exc.got} items for {exc.asked} asked")
             self.telemetry.api_errors.labels(kind="ShortAnswer").inc()
             return {}
         out = {r.key: sizing_of(a) for r, a in zip(asked, answers)}
@@ -466,6 +479,36 @@ class Observer:
         if unknown:
             self.telemetry.api_errors.labels(kind="NoModel").inc(unknown)
         return out
+
+    def _demand_answers(self, items: Sequence[tuple[str, float]]) -> Sequence[object]:
+        """The sizing API's answers for ``items``, in order. Answers of the last pass for the
+        same (model, rate) are reused while the API's store version (``/readyz``) stays the
+        same — a model's answer at a rate changes only with the model — and only the other
+        items are asked, in one batch call. A source without ``health`` (or a store without a
+        version) is asked for everything, every pass."""
+        version = self._store_version()
+        memo = self._answers if version is not None and version == self._answers_version else {}
+        todo = list(dict.fromkeys(it for it in items if it not in memo))
+        self.sizing_asked = len(todo)
+        got = list(self.sizing.demand_batch(todo)) if todo else []
+        if len(got) != len(todo):
+            raise _WrongLength(len(got), len(todo))
+        fresh = dict(zip(todo, got))
+        answers = [fresh[it] if it in fresh else memo[it] for it in items]
+        if version is not None:
+            self._answers = dict(zip(items, answers))  # only this pass's items: bounded by the containers
+            self._answers_version = version
+        return answers
+
+    def _store_version(self) -> str | None:
+        health = getattr(self.sizing, "health", None)
+        if health is None:
+            return None
+        try:
+            v = getattr(health(), "store_version", None)
+        except Exception:  # no usable version (API down, a garbage answer): no reuse; the batch call says what is wrong
+            return None
+        return str(v) if v else None
 
     # -- the workload's horizontal autoscaler (controller/hpa_sizing) ------------------------
     def _autoscaler_views(

@@ -28,6 +28,7 @@ from ratefit.controller.stages.observe import Observer
 from ratefit.controller.stages.outcome import PassOutcome, PassResult
 from ratefit.controller.stages.ports import Kube, KubeReader, RateSource, SizingSource
 from ratefit.controller.stages.record import review_rows
+from ratefit.controller.stages.steady import SteadyMemo, cpu_samples
 from ratefit.controller.stages.write import RecordWriter
 from ratefit.controller.telemetry import CpuSample, Telemetry
 
@@ -51,6 +52,9 @@ class ReconcileConfig:
     #: (index, count): act only on policies whose namespace hashes to this shard
     #: (DESIGN.md "Scale path"; each shard runs its own replicas and its own Lease)
     shard: tuple[int, int] | None = None
+    #: reuse a policy's last decision, rows and status verdict while nothing it depends on
+    #: changed and that decision read neither the clock nor the budget (``stages/steady.py``)
+    reuse_unchanged: bool = True
 
 
 class PassControl(Protocol):
@@ -89,6 +93,8 @@ class Reconciler:
         self.actor = Actor(kube=kube, decider=self.decider, telemetry=self.telemetry, backoff=backoff,
                            monotonic=monotonic, hook=self._hook, conflict_attempts=config.conflict_attempts)
         self.writer = RecordWriter(kube=kube, telemetry=self.telemetry, dry_run=config.dry_run)
+        #: the steady-state memo (``stages/steady.py``); None: every policy is decided every pass
+        self.memo: SteadyMemo | None = SteadyMemo() if config.reuse_unchanged else None
 
     def run_pass(self, control: PassControl | None = None) -> PassResult:
         """One pass. ``control`` may say stop / not leader.
@@ -118,14 +124,20 @@ class Reconciler:
         t1, c1 = self._mono(), time.process_time()
         if self.retrainer is not None and snap.staleness:
             self._queue_retrains(snap, now)
-        decisions = self.decider.decide_all(snap)
+        memo = self.memo
+        known = [memo.lookup(o, now) if memo is not None else (None, None) for o in snap.entries]
+        todo = [o for o, (_, got) in zip(snap.entries, known) if got is None]
+        fresh = iter(self.decider.decide_all(replace(snap, entries=tuple(todo))))
+        decisions = [got.decision if got is not None else next(fresh) for _, got in known]
         t2, c2 = self._mono(), time.process_time()
         errors = list(snap.errors)
         rows: list[ReviewRow] = []
+        samples: list[CpuSample] = []
+        verdicts: dict[tuple[str, str], int] = {}
         patched: list[str] = []
         writes = events = 0
         abandoned = False
-        for o, wd in zip(snap.entries, decisions):
+        for o, wd, (key, got) in zip(snap.entries, decisions, known):
             if should_stop():
                 abandoned = True  # finish nothing half: the rest is left as it was
                 break
@@ -135,14 +147,39 @@ class Reconciler:
             acted = self.actor.act(o, wd, now, errors, may_act=may_act)
             if acted.patched and o.policy is not None:
                 patched.append(o.policy.workload_key)
-            rows.extend(review_rows(o, acted.decision, dry_run=self.config.dry_run))
+            if got is not None:  # the same inputs as a fixed point of an earlier pass: the same rows
+                mine, my_samples = got.rows, got.samples
+            else:
+                mine = tuple(review_rows(o, acted.decision, dry_run=self.config.dry_run))
+                my_samples = cpu_samples(mine)
+            rows.extend(mine)
+            samples.extend(my_samples)
             for d in acted.decision.decisions if acted.decision is not None else ():
-                self.telemetry.decisions.labels(verdict=d.verdict.value, reason=d.why.value).inc()
+                vk = (d.verdict.value, d.why.value)
+                verdicts[vk] = verdicts.get(vk, 0) + 1
+            current = False  # the stored status says all this pass would write (known only if the writer ran)
             if self.config.write and may_act():
-                w, ev = self.writer.write(acted, now, errors)
+                if got is not None:
+                    w, ev, current = 0, 0, True  # the stored status was current for these inputs: it still is
+                else:
+                    w, ev = self.writer.write(acted, now, errors)
+                    current = self.writer.was_current
                 writes, events = writes + w, events + ev
                 if w:
                     self._hook("after-status")
+            elif not self.config.write:
+                current = True  # read only (plan): no status to keep current
+            if memo is not None and got is None:
+                if acted.decision is wd:
+                    memo.remember(o, key, wd, mine, my_samples, now, status_current=current)
+                else:
+                    memo.forget(o)
+        for (verdict, why), n in verdicts.items():
+            self.telemetry.decisions.labels(verdict=verdict, reason=why).inc(n)
+        if memo is not None:
+            memo.keep_only({(o.obj.namespace, o.obj.name) for o in snap.entries})
+            memo.reused = sum(1 for _, got in known if got is not None)
+            memo.decided = len(todo)
         t3, c3 = self._mono(), time.process_time()
         outcome = PassOutcome.ABANDONED if abandoned else (PassOutcome.DEGRADED if errors else PassOutcome.DONE)
         retry_at = self.decider.retry_at
@@ -155,7 +192,9 @@ class Reconciler:
         # wall and CPU seconds per phase (CPU: this process, all threads) — for the benchmark
         phases = dict(snap.split, gather=t1 - t0, decide=t2 - t1, act=t3 - t2,
                       gather_cpu=c1 - c0, decide_cpu=c2 - c1, act_cpu=c3 - c2)
-        return self._finish(result, t0, phases)
+        if memo is not None:
+            phases.update(reused=float(memo.reused), decided=float(memo.decided))
+        return self._finish(result, t0, phases, samples=samples)
 
     def _queue_retrains(self, snap: object, now: datetime) -> None:
         """Hand stale models to the background retrainer (never waits for training)."""
@@ -169,7 +208,8 @@ class Reconciler:
         except Exception as exc:  # retraining is an extra: it never fails a pass
             log.warning("queueing retrains failed: %s", exc)
 
-    def _finish(self, result: PassResult, t0: float, phases: Mapping[str, float]) -> PassResult:
+    def _finish(self, result: PassResult, t0: float, phases: Mapping[str, float], *,
+                samples: list[CpuSample] | None = None) -> PassResult:
         """The one place a pass becomes metrics and its log line."""
         dur = self._mono() - t0
         view = self.budget.view(self._mono())
@@ -179,10 +219,7 @@ class Reconciler:
             self.telemetry.rollout_slots_left.set(view.rollouts_free)
         self.telemetry.passes.labels(outcome=result.outcome.value).inc()
         if result.outcome in (PassOutcome.DONE, PassOutcome.DEGRADED):
-            self.telemetry.set_cpu(
-                CpuSample(namespace=r.namespace, workload=f"{r.kind}/{r.workload}", container=r.container,
-                          request_m=r.current_m, demand_m=r.demand_m, demand_bound_m=r.upper_m)
-                for r in result.rows)
+            self.telemetry.set_cpu(samples if samples is not None else cpu_samples(result.rows))
         self.telemetry.pass_duration.observe(dur)
         self.telemetry.last_pass.set(time.time())
         log.info(json.dumps({

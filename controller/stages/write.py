@@ -39,13 +39,17 @@ class RecordWriter:
         self.kube = kube
         self.telemetry = telemetry
         self.dry_run = dry_run
+        #: after :meth:`write`: True when the stored status already said everything (nothing written)
+        self.was_current = False
 
     def write(self, a: Acted, now: datetime, errors: list[str]) -> tuple[int, int]:
         """(status writes, events) for one policy."""
         o = a.observed
+        self.was_current = False
         new = new_status(o, a.decision, now, dry_run=self.dry_run)
         old = dict(o.obj.status or {})
         if new is None or status_is_current(new, old):
+            self.was_current = new is not None
             return 0, 0  # level-based: nothing to say that the status does not already say
         try:
             validate_status(new, where=f"{o.obj.namespace}/{o.obj.name}")

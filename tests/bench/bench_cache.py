@@ -43,8 +43,24 @@ import time
 import urllib.request
 from pathlib import Path
 
-from tests.bench.bench_reconcile import METRIC, ROOT, write_history, write_store
+from tests.bench.bench_reconcile import METRIC, ROOT, _names, _rate, write_store
 from tests.bench.machine import cpu_model
+
+
+def write_history(path: Path, n: int, n_ns: int, *, end: float, minutes: int = 70, step_s: int = 60) -> None:
+    """One request counter per workload, on one pod named as a Deployment's pod is named
+    (``<name>-<pod-template-hash>-<5 random>``, controller/pod_names): the controller maps
+    pods to workloads by name, so a pod named ``wl-00000-0`` (bench_reconcile's history)
+    is not the Deployment's and every container would be held NoMetrics."""
+    start = end - minutes * 60
+    ts = [start + k * step_s for k in range(minutes * 60 // step_s + 1)]
+    with open(path, "w") as f:
+        f.write(f"# HELP {METRIC[:-6]} Requests (INVENTED benchmark scenario).\n# TYPE {METRIC[:-6]} counter\n")
+        for i, (ns, wl) in enumerate(_names(n, n_ns)):
+            r = _rate(i)
+            lab = f'namespace="{ns}",pod="{wl}-5d4c7b9f8-bcdfg",workload="{wl}"'
+            f.write("".join(f"{METRIC}{{{lab}}} {r * (t - start):.3f} {t:.0f}\n" for t in ts))
+        f.write("# EOF\n")
 
 
 def _rss_mb() -> float:
@@ -111,12 +127,20 @@ def child_cache(args: argparse.Namespace) -> None:
     gc.collect()
     rss_synced = _rss_mb()
     objects = {r: s.objects for r, s in cache.stats().per_resource.items()}
-    rec = Reconciler(kube=CachedKube(reader=cache, writer=kube), rates=rates, sizing=sizing,
-                     config=ReconcileConfig(dry_run=True, write=args.writes, identity="bench"))
+    snapshot = None
+    source = rates
+    if args.rate_refresh > 0:  # what `ratefit run` builds with a rate refresh period
+        from ratefit.controller.rates_snapshot import RateSnapshot
+
+        snapshot = source = RateSnapshot(rates, period_s=args.rate_refresh)
+    rec = Reconciler(kube=CachedKube(reader=cache, writer=kube), rates=source, sizing=sizing,
+                     config=ReconcileConfig(dry_run=True, write=args.writes, identity="bench",
+                                            reuse_unchanged=not args.no_reuse))
     out = []
 
     def one(label: str) -> None:
         q0, s0 = rates.queries_sent, calls["sizing"]
+        r0 = snapshot.refreshes if snapshot is not None else 0
         tw, w0, c0 = time.time(), time.perf_counter(), time.process_time()
         r = rec.run_pass()
         wall, cpu = time.perf_counter() - w0, time.process_time() - c0
@@ -126,9 +150,14 @@ def child_cache(args: argparse.Namespace) -> None:
             "events": r.events, "errors": list(r.errors)[:3], "wall_s": round(wall, 3), "cpu_s": round(cpu, 3),
             "phases": {k: round(v, 3) for k, v in dict(r.phases).items()}, "kube_requests": served,
             "prom_queries": rates.queries_sent - q0, "sizing_calls": calls["sizing"] - s0,
+            "sizing_items": rec.observer.sizing_asked,
+            "rates_from_snapshot": snapshot.hits if snapshot is not None else 0,
+            "refresh_overlapped": (snapshot.refreshes - r0) if snapshot is not None else 0,
         })
 
     one("first pass on the fresh cache" + (" (writes every status + Events)" if args.writes else " (read-only)"))
+    if snapshot is not None:
+        snapshot.start()
     # let the watches deliver our own writes, then wait until nothing more arrives
     events = -1
     settle0 = time.perf_counter()
@@ -150,6 +179,14 @@ def child_cache(args: argparse.Namespace) -> None:
         cache.list_workloads(WorkloadKind.STATEFULSET)
         cache.list_hpas()
     reads_ms = (time.perf_counter() - t) / 5 * 1e3
+    refresh = {}
+    if snapshot is not None:  # the refresh's own cost, alone (the thread is stopped first)
+        snapshot.stop()
+        t, c = time.perf_counter(), time.process_time()
+        snapshot.refresh()
+        refresh = {"wall_s": round(time.perf_counter() - t, 3), "cpu_s": round(time.process_time() - c, 3),
+                   "period_s": snapshot.period_s, "refreshes_during_run": snapshot.refreshes - 1}
+        one("steady state right after a refresh (same rates)")
     profile = ""
     if args.profile:
         prof = cProfile.Profile()
@@ -167,7 +204,7 @@ def child_cache(args: argparse.Namespace) -> None:
         "synced": synced, "sync_s": round(sync_s, 2), "sync_requests": sync_requests, "objects": objects,
         "rss_before_mb": round(rss_before, 1), "rss_synced_mb": round(rss_synced, 1), "rss_end_mb": round(_rss_mb(), 1),
         "peak_rss_mb": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024, 1),
-        "cache_reads_ms": round(reads_ms, 1), "relists": stats.total("relists"), "watch_events": stats.total("events"), "passes": out, "profile": profile,
+        "cache_reads_ms": round(reads_ms, 1), "refresh": refresh, "relists": stats.total("relists"), "watch_events": stats.total("events"), "passes": out, "profile": profile,
     }))
     cache.stop()
     kube.close()
@@ -183,6 +220,11 @@ def main() -> int:
     ap.add_argument("--no-writes", dest="writes", action="store_false",
                     help="read-only passes (no status writes); quicker, same reads")
     ap.add_argument("--profile", action="store_true", help="also profile one steady-state pass (cProfile)")
+    ap.add_argument("--rate-refresh", type=float, default=30.0, metavar="SECONDS",
+                    help="read the rates from a snapshot refreshed every SECONDS by its own thread "
+                         "(controller/rates_snapshot.py); 0: ask Prometheus in every pass (default %(default)s)")
+    ap.add_argument("--no-reuse", action="store_true",
+                    help="decide every policy every pass (no steady-state memo, controller/stages/steady.py)")
     ap.add_argument("--child-cache", action="store_true", help=argparse.SUPPRESS)
     ap.add_argument("--kubeconfig", help=argparse.SUPPRESS)
     ap.add_argument("--prometheus", help=argparse.SUPPRESS)
@@ -227,6 +269,7 @@ def main() -> int:
                "--prometheus", prom_url, "--sizing-api", api_url, "--at", str(end)]
         cmd += [] if args.writes else ["--no-writes"]
         cmd += ["--profile"] if args.profile else []
+        cmd += ["--rate-refresh", str(args.rate_refresh)] + (["--no-reuse"] if args.no_reuse else [])
         p = subprocess.run(cmd, capture_output=True, text=True, cwd=ROOT, timeout=3600)
         if p.returncode != 0:
             print(p.stderr[-3000:], file=sys.stderr)
@@ -250,11 +293,19 @@ def main() -> int:
               f"reads), sizing {ph.get('gather_sizing', 0):.2f} s], decide {ph.get('decide', 0):.2f} s, act {ph.get('act', 0):.2f} s")
         full = " (the sandbox's log keeps the last 2000 requests: at least this many)" if sum(kr.values()) >= 1990 else ""
         print(f"  API requests in the pass: {kr['LIST']} LIST, {kr['WATCH']} WATCH (re)opened, {kr['GET']} GET, "
-              f"{kr['write']} writes{full}; {ps['prom_queries']} PromQL queries; {ps['sizing_calls']} batched sizing calls")
+              f"{kr['write']} writes{full}; {ps['prom_queries']} PromQL queries in the pass; "
+              f"{ps['sizing_calls']} batched sizing calls ({ps['sizing_items']} items asked)")
+        print(f"  policies reused unchanged {int(ph.get('reused', 0))}, decided {int(ph.get('decided', 0))}; "
+              f"rates from the snapshot {ps['rates_from_snapshot']}; refreshes during the pass {ps['refresh_overlapped']}")
         if ps["errors"]:
             print(f"  errors: {ps['errors']}")
     print(f"\ncache: {res['watch_events']} watch events applied, {res['relists']} relists; the read calls of one pass "
           f"alone (list_policies, list_workloads ×2, list_hpas over everything): {res['cache_reads_ms']} ms")
+    if res["refresh"]:
+        rf = res["refresh"]
+        print(f"rate snapshot: refreshed every {rf['period_s']:g} s by its own thread ({rf['refreshes_during_run']} "
+              f"refreshes during the run); one refresh alone: {rf['wall_s']:.2f} s wall, {rf['cpu_s']:.2f} s CPU "
+              "(the grouped PromQL query and its decoding)")
     if res["profile"]:
         print("\nprofile of one steady-state pass (cProfile; times inflated by the profiler):")
         print(res["profile"])
