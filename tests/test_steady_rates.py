@@ -10,6 +10,7 @@ INVENTED test scenario (namespace ``shop``).
 
 from __future__ import annotations
 
+import os
 import time
 from dataclasses import replace
 from typing import Any
@@ -188,3 +189,19 @@ def test_a_bad_rate_refresh_is_an_error_naming_the_flag(tmp_path) -> None:
     r = subprocess.run([str(ratefit), "run", "--sizing-api", "http://127.0.0.1:1", "--replay", str(tmp_path / "none.om"),
                         "--rate-refresh", "soon"], capture_output=True, text=True, timeout=60)
     assert r.returncode == 2 and "--rate-refresh" in r.stderr and "duration" in r.stderr
+
+
+def test_duration_flags_that_may_be_off() -> None:
+    """--rate-refresh (default 30s) and --cache-resync accept 0s/off for "never"."""
+    from ratefit.controller.cli import build_parser
+    from ratefit.controller.commands.run import duration_or_off
+    from ratefit.models.errors import InputError
+
+    for off in ("0", "0s", "off", "never", None):
+        assert duration_or_off(off, field="--rate-refresh") == 0.0
+    assert duration_or_off("30s", field="--rate-refresh") == 30.0
+    assert duration_or_off("1m30s", field="--cache-resync") == 90.0
+    with pytest.raises(InputError, match="--cache-resync"):
+        duration_or_off("soon", field="--cache-resync")
+    ns = build_parser().parse_args(["run", "--sizing-api", "http://127.0.0.1:1", "--prometheus", "http://127.0.0.1:2"])
+    assert ns.rate_refresh == (os.environ.get("RATEFIT_RATE_REFRESH") or "30s")

@@ -225,6 +225,16 @@ def stale_window(args: argparse.Namespace) -> str | None:
     return given if given is not None else DEFAULT_WINDOW
 
 
+def duration_or_off(text: str | None, *, field: str) -> float:
+    """Seconds of a duration flag that may also be off: None, '0', '0s', 'off' or 'never'
+    give 0.0; anything else must be a Prometheus duration (InputError naming ``field``)."""
+    from ratefit.models.durations import parse_duration
+
+    if text is None or text.strip().lower() in ("0", "0s", "off", "never", "none"):
+        return 0.0
+    return parse_duration(text, field=field)
+
+
 def sizing_token(args: argparse.Namespace) -> str | None:
     """The sizing API's bearer token from --sizing-token-file (None: no file given)."""
     if not args.sizing_token_file:
@@ -281,11 +291,13 @@ def register(sub: argparse._SubParsersAction) -> None:
                         "becomes <lease-name>-I-of-N, so each shard elects its own leader")
     p.add_argument("--once", action="store_true", help="run one pass and exit (as leader, when the Lease can be had)")
     p.add_argument("--cache-resync", default="10m", metavar="DURATION",
-                   help="full relist of the watch-fed cache every DURATION, e.g. 10m (0s: never; default %(default)s)")
-    p.add_argument("--rate-refresh", metavar="DURATION",
-                   help="read the rates from a snapshot that its own thread refreshes every DURATION, e.g. 30s, so "
-                        "a pass does not wait for Prometheus; new or changed queries and rates older than three "
-                        "periods are asked in the pass (default: off, every pass asks Prometheus)")
+                   help="full relist of the watch-fed cache every DURATION, e.g. 10m (0s or off: never; "
+                        "default %(default)s)")
+    p.add_argument("--rate-refresh", metavar="DURATION", default=os.environ.get("RATEFIT_RATE_REFRESH") or "30s",
+                   help="read the rates from a snapshot that its own thread refreshes every DURATION, so a pass "
+                        "does not wait for Prometheus; new or changed queries and rates older than three periods "
+                        "are asked in the pass; 0s or off: every pass asks Prometheus itself (default "
+                        "$RATEFIT_RATE_REFRESH, else 30s; --once never uses it)")
     p.add_argument("--log-level", default="INFO", help="log level (default %(default)s)")
     p.add_argument("--retrain-store", metavar="DIR",
                    help="retrain stale models of policies with retrain: Auto into this model store (the one the "
@@ -318,10 +330,8 @@ def _run(args: argparse.Namespace) -> int:
         raise InputError("--interval must be longer than 0s")
     check_limits(args)
     shard = parse_shard(args.shard)
-    resync = parse_duration(args.cache_resync, field="--cache-resync")
-    if resync < 0:
-        raise InputError("--cache-resync must be 0s (never) or longer")
-    rate_refresh = parse_duration(args.rate_refresh, field="--rate-refresh") if args.rate_refresh else 0.0
+    resync = duration_or_off(args.cache_resync, field="--cache-resync")
+    rate_refresh = duration_or_off(args.rate_refresh, field="--rate-refresh")
     conns = connect(args, identity=args.identity)
     lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
     cache = None
