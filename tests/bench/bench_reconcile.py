@@ -133,7 +133,9 @@ def write_history(path: Path, n: int, n_ns: int, *, end: float, minutes: int = 7
         f.write(f"# HELP {METRIC[:-6]} Requests (INVENTED benchmark scenario).\n# TYPE {METRIC[:-6]} counter\n")
         for i, (ns, wl) in enumerate(_names(n, n_ns)):
             r = _rate(i)
-            lab = f'namespace="{ns}",pod="{wl}-0",workload="{wl}"'
+            # named as a Deployment's pod is (<name>-<template hash>-<5>, controller/pod_names):
+            # the controller maps pods to workloads by name (a pod "wl-0" would be NoMetrics)
+            lab = f'namespace="{ns}",pod="{wl}-5d4c7b9f8-bcdfg",workload="{wl}"'
             f.write("".join(f"{METRIC}{{{lab}}} {r * (t - start):.3f} {t:.0f}\n" for t in ts))
         f.write("# EOF\n")
 
