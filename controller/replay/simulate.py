@@ -8,10 +8,11 @@ Per pass at time T and per policy (in the live loop's order: namespace, name):
    the rate at T (:mod:`controller.replay.series`, from samples up to T only) and the
    sizing answer at that rate;
 2. the decision by the live loop's decide stage (``controller.stages.decide.Decider.
-   decide_one`` over ``controller.decide.decide_workload`` — never a copy), reading the
-   history (``lastChange``, settling) from the status the previous pass left
-   (``policy.history_to_status``, as the record stage writes it), and drawing the cluster
-   budget (``controller.limits.Budget``: changes per minute, concurrent rollouts) as the
+   decide_one`` over ``controller.decide.decide_workload`` — never a copy), given the
+   history (``lastChange``, settling) the previous pass left, as the status would carry it
+   (:func:`carried`: whole seconds, only complete settling records — what
+   ``policy.history_to_status`` then ``history_from_status`` give, without the text round
+   trip), and drawing the cluster budget (``controller.limits.Budget``: changes per minute, concurrent rollouts) as the
    live pass does;
 3. a changed workload takes its new requests at once for an in-place resize and after
    ``rollout_s`` for a rollout; the rollout holds a rollout slot until then.
@@ -23,6 +24,17 @@ it each pass); the API server accepts every change (no Rejected).
 
 Rates, sizing answers and usage do not depend on the decisions, so they are computed
 once up front (vectorised); only the decisions run pass by pass.
+
+A pass is skipped for a workload (its decision is not recomputed) only when it provably
+gives the same result as the last one: a pass whose decisions are not kept, the same
+inputs (requests, limits, rates, sizing answers) and the same history as the last pass,
+that last pass changed nothing and left the history as it found it (a fixed point), and
+none of its decisions waits on the clock or the budget (Settling, CoolingDown,
+BudgetSpent). Every other way the clock enters a decision writes ``now`` into the history
+(a new settle window, ``lastChange``), which the fixed-point test excludes. A skipped
+pass still reads the budget as the decision would (the token bucket refills in the same
+steps). ``simulate(..., shortcut=False)`` decides every pass and carries the history
+through the status text; tests check both give the same replay.
 """
 
 from __future__ import annotations
@@ -35,9 +47,16 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from ratefit.controller.decide import ContainerInput, Sizing, WorkloadDecision
+from ratefit.controller.decide import ContainerInput, Sizing, Verdict, WorkloadDecision, Why
 from ratefit.controller.limits import Budget, RolloutSlots, TokenBucket
-from ratefit.controller.policy import Mode, Policy, ResizeBy, WorkloadHistory, history_to_status
+from ratefit.controller.policy import (
+    ContainerHistory,
+    Mode,
+    Policy,
+    ResizeBy,
+    WorkloadHistory,
+    history_to_status,
+)
 from ratefit.controller.stages.decide import Decider
 from ratefit.controller.stages.observe import Observed
 from ratefit.controller.workload import PolicyObject
@@ -117,6 +136,38 @@ def _policy_object(p: Policy, status: dict) -> PolicyObject:
                         resource_version="", spec={}, status=status)
 
 
+def carried(h: WorkloadHistory) -> WorkloadHistory:
+    """``h`` as the next decision reads it back from the status (``history_to_status`` then
+    ``history_from_status``): times at whole seconds, a settling record without both fields
+    read as none (the decision asks ``history.container(name)``, which answers an empty
+    record for a missing one). Returns ``h`` itself when nothing changes (the usual case:
+    passes at whole seconds)."""
+    last = h.last_change
+    if (last is None or not last.microsecond) and all(
+            (c.below_since is None and c.peak_m is None)
+            or (c.below_since is not None and c.peak_m is not None and not c.below_since.microsecond)
+            for c in h.containers.values()):
+        return h
+    return WorkloadHistory(
+        last_change=None if last is None else last.replace(microsecond=0),
+        containers={n: ContainerHistory(below_since=c.below_since.replace(microsecond=0), peak_m=c.peak_m)
+                    if c.below_since is not None and c.peak_m is not None else ContainerHistory()
+                    for n, c in h.containers.items()},
+    )
+
+
+#: reasons whose decision may flip with the clock or the budget alone
+_TIMED = frozenset({Why.SETTLING, Why.COOLING_DOWN, Why.BUDGET_SPENT})
+
+
+def _settled(wd: WorkloadDecision, history: WorkloadHistory) -> bool:
+    """True when deciding again from the same inputs and ``history`` gives ``wd`` again
+    in every part the replay uses (history, changes): nothing changed, the history is a
+    fixed point, no decision waits on the clock or the budget."""
+    return wd.history == history and all(
+        d.verdict is not Verdict.CHANGED and d.why not in _TIMED for d in wd.decisions)
+
+
 def _utc(t: float) -> datetime:
     return datetime.fromtimestamp(t, tz=timezone.utc)
 
@@ -148,10 +199,13 @@ def simulate(
     budget: BudgetConfig = BudgetConfig(),
     keep: Sequence[int] = (),
     on_pass: Callable[[int], None] | None = None,
+    shortcut: bool = True,
 ) -> SimResult:
     """Run every pass. ``tracks`` is keyed by (policy key, container). ``as_written``
     keeps each policy's mode (a dry-run policy then changes nothing); otherwise every
-    policy is simulated in apply mode. ``keep``: pass indices whose decisions are kept."""
+    policy is simulated in apply mode. ``keep``: pass indices whose decisions are kept.
+    ``shortcut=False``: decide every workload at every pass and carry the history through
+    the status text, as the live loop does (the reference the skipping is tested against)."""
     order = sorted(targets, key=lambda t: (t.policy.namespace, t.policy.name))
     policies = [t.policy if as_written else dataclasses.replace(t.policy, mode=Mode.APPLY) for t in order]
     values: list[dict[str, tuple[int | None, int | None]]] = [dict(t.containers) for t in order]
@@ -164,6 +218,12 @@ def simulate(
         return res
     bud = budget.build(float(res.pass_times[0]))
     decider = Decider(budget=bud, monotonic=lambda: 0.0, dry_run=False, write=True)
+    observed = [Observed(obj=_policy_object(p, {}), policy=p, hpa_on_cpu=t.hpa_on_cpu) for t, p in zip(order, policies)]
+    applies = [decider.applies(o) for o in observed]
+    #: inputs' parts of a settled last pass (None: the last pass was not settled)
+    last_key: list[list | None] = [None for _ in order]
+    last_given: list[WorkloadHistory | None] = [None for _ in order]
+    given_hist = [carried(h) for h in history]  # the history as the next pass reads it
     track_rows = [[_inputs(tracks[(p.key, c.name)]) for c in p.containers] for p in policies]
     for t, p in zip(order, policies):
         for c in p.containers:
@@ -176,21 +236,41 @@ def simulate(
         now = _utc(now_s)
         kept: list[WorkloadDecision] = []
         for w, p in enumerate(policies):
+            vals = values[w]
+            if shortcut:
+                # what the inputs are built from: (request, limit) and (rate, sizing) per container
+                key = [(vals.get(c.name), track[i]) for c, track in zip(p.containers, track_rows[w])]
+                given = given_hist[w]
+                if i not in keep_set and key == last_key[w] and given is last_given[w]:
+                    # provably the same decision as the last pass (see the module doc): skip it,
+                    # reading the budget as the decision would
+                    if applies[w]:
+                        bud.view(now_s)
+                    continue
             inputs = []
             for c, track in zip(p.containers, track_rows[w]):
-                if c.name not in values[w]:
+                if c.name not in vals:
                     continue  # not in the workload: decide holds it NoMetrics naming the container
-                req, lim = values[w][c.name]
+                req, lim = vals[c.name]
                 rate, sizing = track[i]
                 inputs.append(ContainerInput(name=c.name, request_m=req, limit_m=lim, rate=rate, sizing=sizing))
-            # the live loop's decide stage, reading the history from the status the previous
-            # pass wrote (lastChange, settling), drawing the budget the way the live pass does
-            obs = Observed(obj=_policy_object(p, status[w]), policy=p, hpa_on_cpu=order[w].hpa_on_cpu,
-                           inputs=tuple(inputs))
-            wd = decider.decide_one(obs, None, obs.inputs, now, now_s)
+            if not shortcut:
+                # the live loop's decide stage, reading the history from the status the previous
+                # pass wrote (lastChange, settling), drawing the budget the way the live pass does
+                obs = Observed(obj=_policy_object(p, status[w]), policy=p, hpa_on_cpu=order[w].hpa_on_cpu,
+                               inputs=tuple(inputs))
+                wd = decider.decide_one(obs, None, obs.inputs, now, now_s)
+                status[w] = history_to_status(wd.history, [{"name": n} for n in wd.history.containers])
+            else:
+                # the live loop's decide stage with the history given directly (no status text)
+                wd = decider.decide_one(observed[w], None, inputs, now, now_s, history=given)
+                settled = _settled(wd, given)
+                last_key[w] = key if settled else None
+                last_given[w] = given
+                if not settled:
+                    given_hist[w] = carried(wd.history)
             history_before = history[w]
-            history[w] = wd.history
-            status[w] = history_to_status(wd.history, [{"name": n} for n in wd.history.containers])
+            history[w] = given if shortcut and settled else wd.history
             if i in keep_set:
                 kept.append(wd)
                 res.states.setdefault(i, {})[p.key] = (history_before, tuple(inputs))

@@ -65,8 +65,8 @@ def cluster(workloads: int, days: float, seed: int = 0) -> tuple[History, list[d
                      "spec": {"template": {"spec": {"containers": conts}}}})
         objs.append({"apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
                      "metadata": {"namespace": ns, "name": name},
-                     "spec": {"workload": {"kind": "Deployment", "name": name}, "mode": "apply",
-                              "method": "in-place" if w % 4 == 0 else "rollout",
+                     "spec": {"workload": {"kind": "Deployment", "name": name}, "mode": "Apply",
+                              "resizeBy": "InPlace" if w % 4 == 0 else "Rollout",
                               "containers": [{"name": c, "model": f"{ns}/{name}/{c}"} for c in ("app", "side")]}})
     return History.build(requests, cpu, source="bench"), objs, curves
 
