@@ -163,3 +163,44 @@ def test_carried_is_the_status_round_trip() -> None:
         assert got.last_change == back.last_change
         for name in ("a", "b", "c"):
             assert got.container(name) == back.container(name)
+
+
+def _one_container_policy(**spec) -> dict:
+    return {"apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
+            "metadata": {"namespace": "ns", "name": "w"},
+            "spec": {"workload": {"kind": "Deployment", "name": "w"}, "mode": "Apply", "headroomPercent": 0,
+                     "settle": "30m", "containers": [{"name": "app", "model": "ns/w/app"}], **spec}}
+
+
+def test_a_decrease_settling_under_a_cpu_autoscaler_is_decided_again_when_its_window_ends() -> None:
+    """Held HorizontalConflict can hide a settling decrease whose window ends with the clock
+    (a fresh settle window starts when the highest target seen proves inside the deadband):
+    such passes are not skipped. Hand-made INVENTED inputs at 5-minute passes, request 1000m,
+    deadband 10 %: target 950m (inside the deadband, starts the settling record with peak
+    950m), then 500m for good (a decrease: Settling, held HorizontalConflict). After the 30m
+    settle the highest target, 950m, is inside the deadband: a fresh window starts then."""
+    from datetime import datetime, timezone
+
+    from ratefit.controller.decide import Why
+    from ratefit.controller.policy import parse_policy
+    from ratefit.controller.replay.simulate import ReplayTarget, SizingTrack
+
+    p = parse_policy(_one_container_policy())
+    n = 24
+    upper = np.array([0.95] + [0.5] * (n - 1))
+    track = SizingTrack(rate=np.full(n, 10.0), demand=upper - 0.01, upper=upper, extrapolated=np.zeros(n, dtype=bool))
+    times = END + 300.0 * np.arange(n)
+    target = ReplayTarget(policy=p, containers={"app": (1000, None)}, hpa_on_cpu=True)
+    every = simulate([target], {(p.key, "app"): track}, times, keep=tuple(range(n)), shortcut=False)
+    whys = [every.decisions[i][0].decisions[0].why for i in range(n)]
+    # pass 0 inside the deadband, then held by the autoscaler while settling; the fresh
+    # window at the end of the first settle period (pass 0 + 30 min = pass 6) says InsideDeadband
+    assert whys[0] is Why.INSIDE_DEADBAND and whys[1] is Why.HORIZONTAL_CONFLICT
+    assert whys[6] is Why.INSIDE_DEADBAND
+    fresh = every.decisions[6][0].history.container("app")
+    assert (fresh.below_since, fresh.peak_m) == (datetime.fromtimestamp(times[6], tz=timezone.utc), 500)
+    # the shortcut may skip passes 2…6 and 8…: the kept passes after them must be the same
+    keep = (0, 1, 7, 8, 20)
+    runs = [simulate([target], {(p.key, "app"): track}, times, keep=keep, shortcut=s) for s in (False, True)]
+    assert runs[1].decisions == runs[0].decisions
+    assert runs[1].states == runs[0].states

@@ -24,6 +24,8 @@ import yaml
 from ratefit.controller.policy import KIND, PolicyInvalid, parse_policy
 from ratefit.controller.quantity import parse_cpu
 from ratefit.controller.replay.simulate import ReplayTarget
+from ratefit.controller.stages.observe import conflicts
+from ratefit.controller.workload import PolicyObject
 from ratefit.models.errors import InputError, RatefitError
 
 __all__ = ["Targets", "read_manifests", "targets_from_objects", "targets_from_cluster", "StoreSizer", "ApiSizer", "Sizer"]
@@ -110,6 +112,7 @@ def targets_from_objects(objs: Iterable[Mapping[str, Any]]) -> Targets:
             policies.append(o)
     targets: list[ReplayTarget] = []
     kinds: dict[str, str] = {}
+    valid: list[tuple[PolicyObject, Any]] = []
     for o in policies:
         meta = o.get("metadata") or {}
         try:
@@ -121,8 +124,20 @@ def targets_from_objects(objs: Iterable[Mapping[str, Any]]) -> Targets:
         if wk not in workloads:
             notes.append(f"SizingPolicy {p.key} skipped: its workload {p.workload_key} is not among the objects read")
             continue
+        valid.append((PolicyObject(namespace=p.namespace, name=p.name, uid="", generation=p.generation or 0,
+                                   resource_version="", spec={}, status={},
+                                   created=str(meta.get("creationTimestamp") or "")), p))
+    # two policies naming one workload: the older acts, the newer is held PolicyConflict and
+    # draws nothing from the budget — the live loop's rule (observe stage), not a copy of it
+    clashes = conflicts(valid)
+    for po, p in valid:
+        wk = (p.namespace, p.workload_kind, p.workload_name)
+        older = clashes.get((p.namespace, p.name))
+        if older is not None:
+            notes.append(f"SizingPolicy {p.key} is held PolicyConflict: {older} is older and names the same "
+                         f"workload {p.workload_key}")
         kinds[p.workload_key] = p.workload_kind
-        targets.append(ReplayTarget(policy=p, containers=workloads[wk], hpa_on_cpu=wk in hpa))
+        targets.append(ReplayTarget(policy=p, containers=workloads[wk], hpa_on_cpu=wk in hpa, conflict_with=older))
     if not targets:
         raise InputError("no SizingPolicy with its workload to replay"
                          + (f" ({'; '.join(notes[:3])})" if notes else "; give the policies and workloads with -f or --kubeconfig"))
@@ -136,7 +151,8 @@ def targets_from_cluster(kube: Any, namespaces: Sequence[str] = ()) -> Targets:
     objs: list[dict[str, Any]] = []
     pols = list(kube.list_policies(list(namespaces) or None).items)
     objs.extend({"apiVersion": f"{GROUP}/{VERSION}", "kind": KIND,
-                 "metadata": {"namespace": p.namespace, "name": p.name, "generation": p.generation},
+                 "metadata": {"namespace": p.namespace, "name": p.name, "generation": p.generation,
+                              "creationTimestamp": getattr(p, "created", "") or None},
                  "spec": dict(p.spec or {})} for p in pols)
     for ns in sorted({p.namespace for p in pols}):
         for kind in ("Deployment", "StatefulSet"):

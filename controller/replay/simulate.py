@@ -30,7 +30,7 @@ gives the same result as the last one: a pass whose decisions are not kept, the 
 inputs (requests, limits, rates, sizing answers) and the same history as the last pass,
 that last pass changed nothing and left the history as it found it (a fixed point), and
 none of its decisions waits on the clock or the budget (Settling, CoolingDown,
-BudgetSpent). Every other way the clock enters a decision writes ``now`` into the history
+BudgetSpent, or HorizontalConflict over a decrease still settling). Every other way the clock enters a decision writes ``now`` into the history
 (a new settle window, ``lastChange``), which the fixed-point test excludes. A skipped
 pass still reads the budget as the decision would (the token bucket refills in the same
 steps). ``simulate(..., shortcut=False)`` decides every pass and carries the history
@@ -79,6 +79,10 @@ class ReplayTarget:
     #: container → (request_m, limit_m) of the workload's pod template today
     containers: Mapping[str, tuple[int | None, int | None]]
     hpa_on_cpu: bool = False
+    #: ``namespace/name`` of an older SizingPolicy naming the same workload: this one is
+    #: held PolicyConflict and draws nothing from the budget, as in the live loop
+    #: (``controller.stages.observe.conflicts``)
+    conflict_with: str | None = None
 
 
 @dataclass(frozen=True)
@@ -160,12 +164,19 @@ def carried(h: WorkloadHistory) -> WorkloadHistory:
 _TIMED = frozenset({Why.SETTLING, Why.COOLING_DOWN, Why.BUDGET_SPENT})
 
 
+def _waits(d) -> bool:
+    """True when this held decision may flip with the clock or the budget alone: a timed
+    reason, or a HorizontalConflict hold over a decrease still settling (its settle window
+    may end, or start afresh, with the clock — the hold hides the Settling reason)."""
+    return d.why in _TIMED or (d.why is Why.HORIZONTAL_CONFLICT and d.settle.below_since is not None)
+
+
 def _settled(wd: WorkloadDecision, history: WorkloadHistory) -> bool:
     """True when deciding again from the same inputs and ``history`` gives ``wd`` again
     in every part the replay uses (history, changes): nothing changed, the history is a
     fixed point, no decision waits on the clock or the budget."""
     return wd.history == history and all(
-        d.verdict is not Verdict.CHANGED and d.why not in _TIMED for d in wd.decisions)
+        d.verdict is not Verdict.CHANGED and not _waits(d) for d in wd.decisions)
 
 
 def _utc(t: float) -> datetime:
@@ -218,8 +229,10 @@ def simulate(
         return res
     bud = budget.build(float(res.pass_times[0]))
     decider = Decider(budget=bud, monotonic=lambda: 0.0, dry_run=False, write=True)
-    observed = [Observed(obj=_policy_object(p, {}), policy=p, hpa_on_cpu=t.hpa_on_cpu) for t, p in zip(order, policies)]
-    applies = [decider.applies(o) for o in observed]
+    observed = [Observed(obj=_policy_object(p, {}), policy=p, hpa_on_cpu=t.hpa_on_cpu, conflict_with=t.conflict_with)
+                for t, p in zip(order, policies)]
+    # a policy held PolicyConflict never reads the budget (decide_one returns before)
+    applies = [decider.applies(o) and o.conflict_with is None for o in observed]
     #: inputs' parts of a settled last pass (None: the last pass was not settled)
     last_key: list[list | None] = [None for _ in order]
     last_given: list[WorkloadHistory | None] = [None for _ in order]
@@ -258,7 +271,7 @@ def simulate(
                 # the live loop's decide stage, reading the history from the status the previous
                 # pass wrote (lastChange, settling), drawing the budget the way the live pass does
                 obs = Observed(obj=_policy_object(p, status[w]), policy=p, hpa_on_cpu=order[w].hpa_on_cpu,
-                               inputs=tuple(inputs))
+                               inputs=tuple(inputs), conflict_with=order[w].conflict_with)
                 wd = decider.decide_one(obs, None, obs.inputs, now, now_s)
                 status[w] = history_to_status(wd.history, [{"name": n} for n in wd.history.containers])
             else:
