@@ -26,20 +26,26 @@ Rates, sizing answers and usage do not depend on the decisions, so they are comp
 once up front (vectorised); only the decisions run pass by pass.
 
 A pass is skipped for a workload (its decision is not recomputed) only when it provably
-gives the same result as the last one: a pass whose decisions are not kept, the same
-inputs (requests, limits, rates, sizing answers) and the same history as the last pass,
-that last pass changed nothing and left the history as it found it (a fixed point), and
-none of its decisions waits on the clock or the budget (Settling, CoolingDown,
-BudgetSpent, or HorizontalConflict over a decrease still settling). Every other way the clock enters a decision writes ``now`` into the history
-(a new settle window, ``lastChange``), which the fixed-point test excludes. A skipped
-pass still reads the budget as the decision would (the token bucket refills in the same
-steps). ``simulate(..., shortcut=False)`` decides every pass and carries the history
-through the status text; tests check both give the same replay.
+gives the same result as its last decision: a pass whose decisions are not kept, the same
+inputs as that decision (requests and limits; whether the rate is usable; the sizing
+answer — the rate's value itself only reaches the decision's ``rate`` field and messages,
+which a skipped pass never shows: :func:`input_changes`, vectorised), and that decision
+changed nothing and left the history as it found it (a fixed point). A fixed point that
+waits on the clock is decided again from one second before its hold may end
+(:func:`_wake`: Settling and a HorizontalConflict hold over a settling decrease at the
+settle window's end, CoolingDown at the cooldown's end); BudgetSpent and every decision
+that moved the history are decided again at the next pass. Every other way the clock
+enters a decision writes ``now`` into the history, which the fixed-point test excludes.
+The token bucket refills to the pass's time once per pass, as the first decision reading
+it would (later reads at the same time change nothing). ``simulate(..., shortcut=False)``
+decides every pass and carries the history through the status text; tests check both
+give the same replay (``tests/test_replay_shortcut.py``, ``tests/test_replay_plan.py``).
 """
 
 from __future__ import annotations
 
 import dataclasses
+import heapq
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -160,31 +166,13 @@ def carried(h: WorkloadHistory) -> WorkloadHistory:
     )
 
 
-#: reasons whose decision may flip with the clock or the budget alone
-_TIMED = frozenset({Why.SETTLING, Why.COOLING_DOWN, Why.BUDGET_SPENT})
-
-
-def _waits(d) -> bool:
-    """True when this held decision may flip with the clock or the budget alone: a timed
-    reason, or a HorizontalConflict hold over a decrease still settling (its settle window
-    may end, or start afresh, with the clock — the hold hides the Settling reason)."""
-    return d.why in _TIMED or (d.why is Why.HORIZONTAL_CONFLICT and d.settle.below_since is not None)
-
-
-def _settled(wd: WorkloadDecision, history: WorkloadHistory) -> bool:
-    """True when deciding again from the same inputs and ``history`` gives ``wd`` again
-    in every part the replay uses (history, changes): nothing changed, the history is a
-    fixed point, no decision waits on the clock or the budget."""
-    return wd.history == history and all(
-        d.verdict is not Verdict.CHANGED and not _waits(d) for d in wd.decisions)
-
-
 def _utc(t: float) -> datetime:
     return datetime.fromtimestamp(t, tz=timezone.utc)
 
 
 def _inputs(track: SizingTrack) -> list[tuple[float | None, Sizing | None]]:
-    """(rate, sizing answer) at every pass as plain Python values, built once."""
+    """(rate, sizing answer) at every pass as plain Python values, built once (the
+    straightforward path)."""
     out: list[tuple[float | None, Sizing | None]] = []
     last: Sizing | None = None
     for r, d, u, x in zip(track.rate.tolist(), track.demand.tolist(), track.upper.tolist(),
@@ -198,6 +186,71 @@ def _inputs(track: SizingTrack) -> list[tuple[float | None, Sizing | None]]:
                 last = Sizing(demand=d, upper=u, extrapolated=bool(x))
             out.append((r, last))
     return out
+
+
+def _one_input(name: str, req: int | None, lim: int | None, r: float, d: float, u: float, x: bool) -> ContainerInput:
+    """One container's input at one pass, as :func:`_inputs` builds it."""
+    if not math.isfinite(r):
+        return ContainerInput(name=name, request_m=req, limit_m=lim, rate=None, sizing=None)
+    if not math.isfinite(d):
+        return ContainerInput(name=name, request_m=req, limit_m=lim, rate=r, sizing=None)
+    return ContainerInput(name=name, request_m=req, limit_m=lim, rate=r,
+                          sizing=Sizing(demand=d, upper=u, extrapolated=bool(x)))
+
+
+def _same(a: np.ndarray) -> np.ndarray:
+    """Per pass i ≥ 1: a[i] equals a[i − 1] (NaN equals NaN); pass 0: False."""
+    out = np.zeros(len(a), dtype=bool)
+    if len(a) > 1:
+        prev, cur = a[:-1], a[1:]
+        eq = cur == prev
+        if a.dtype.kind == "f":
+            eq |= np.isnan(cur) & np.isnan(prev)
+        out[1:] = eq
+    return out
+
+
+def input_changes(track: SizingTrack, *, with_rate: bool) -> np.ndarray:
+    """Per pass: True where this container's input to the decision may differ from the
+    pass before (pass 0: True). The decision reads the rate only to see whether it is
+    usable (finite, not negative) — its value goes into the decision's ``rate`` field and
+    messages, which a skipped pass never shows — and the sizing answer (demand, upper,
+    extrapolated) only when the rate is usable and the demand finite. ``with_rate``: the
+    rate's value counts too (an autoscaler reads it)."""
+    rate = np.asarray(track.rate, dtype=float)
+    with np.errstate(invalid="ignore"):
+        usable = np.isfinite(rate) & (rate >= 0)
+    sized = usable & np.isfinite(track.demand)
+    same = _same(usable) & _same(sized)
+    same &= _same(np.where(sized, track.demand, 0.0)) & _same(np.where(sized, track.upper, 0.0))
+    same &= _same(np.where(sized, np.asarray(track.extrapolated, dtype=bool), False))
+    if with_rate:
+        same &= _same(rate)
+    return ~same
+
+
+def _wake(wd: WorkloadDecision, given: WorkloadHistory, p: Policy) -> float | None:
+    """When deciding again from the same inputs may give something else: None — at the
+    next pass (a change, BudgetSpent, or the history moved); +inf — never (a fixed point
+    that waits on nothing); else the time (unix s) a timed hold may end: a decrease's settle
+    window (Settling, or HorizontalConflict over a settling decrease) or the cooldown.
+    One second early on purpose: deciding a pass too many is always safe."""
+    if wd.history != given:
+        return None
+    wake = math.inf
+    for d in wd.decisions:
+        if d.verdict is Verdict.CHANGED or d.why is Why.BUDGET_SPENT:
+            return None
+        if d.why is Why.SETTLING or (d.why is Why.HORIZONTAL_CONFLICT and d.settle.below_since is not None):
+            since = d.settle.below_since
+            if since is None:
+                return None
+            wake = min(wake, since.timestamp() + p.settle_s - 1.0)
+        elif d.why is Why.COOLING_DOWN:
+            if given.last_change is None:
+                return None
+            wake = min(wake, given.last_change.timestamp() + p.cooldown_s - 1.0)
+    return wake
 
 
 def simulate(
@@ -221,7 +274,6 @@ def simulate(
     policies = [t.policy if as_written else dataclasses.replace(t.policy, mode=Mode.APPLY) for t in order]
     values: list[dict[str, tuple[int | None, int | None]]] = [dict(t.containers) for t in order]
     history: list[WorkloadHistory] = [WorkloadHistory() for _ in order]
-    status: list[dict] = [{} for _ in order]  # what the live loop keeps in status.lastChange/settling
     pending: list[tuple[float, int]] = []  # rollouts in flight: (done at, workload index)
     keep_set = set(keep)
     res = SimResult(pass_times=np.asarray(pass_times, dtype=float))
@@ -233,82 +285,137 @@ def simulate(
                 for t, p in zip(order, policies)]
     # a policy held PolicyConflict never reads the budget (decide_one returns before)
     applies = [decider.applies(o) and o.conflict_with is None for o in observed]
-    #: inputs' parts of a settled last pass (None: the last pass was not settled)
-    last_key: list[list | None] = [None for _ in order]
-    last_given: list[WorkloadHistory | None] = [None for _ in order]
-    given_hist = [carried(h) for h in history]  # the history as the next pass reads it
-    track_rows = [[_inputs(tracks[(p.key, c.name)]) for c in p.containers] for p in policies]
     for t, p in zip(order, policies):
         for c in p.containers:
             res.steps[(p.workload_key, c.name)] = [(float(res.pass_times[0]), t.containers.get(c.name, (None, None))[0])]
-    for i, now_s in enumerate(res.pass_times.tolist()):
+
+    def record(i: int, now_s: float, w: int, wd: WorkloadDecision, inputs: list[ContainerInput],
+               history_before: WorkloadHistory, kept: list[WorkloadDecision]) -> None:
+        """Keep the decision (``keep`` passes) and carry out its change."""
+        p = policies[w]
+        if i in keep_set:
+            kept.append(wd)
+            res.states.setdefault(i, {})[p.key] = (history_before, tuple(inputs))
+        changed = wd.changed
+        if not changed:
+            return
+        new = {d.container: (d.proposed_m, d.proposed_limit_m) for d in changed}
+        old = {d.container: (d.current_m, d.limit_m) for d in changed}
+        in_place = p.resize_by is ResizeBy.IN_PLACE
+        eff = now_s if in_place else now_s + rollout_s
+        # the next pass reads the patched template (rollout) or the resized pods (in-place);
+        # the pods run the new request from ``eff`` on
+        values[w].update(new)
+        if not in_place:
+            pending.append((eff, w))
+        res.changes.append(Change(
+            workload=p.workload_key, decided_at=now_s, effective_at=eff, method=p.resize_by,
+            containers={c: (old[c][0], new[c][0], old[c][1], new[c][1]) for c in new},
+            why=",".join(sorted({d.why.value for d in changed})),
+        ))
+        for c, (req, _lim) in new.items():
+            res.steps[(p.workload_key, c)].append((eff, req))
+
+    def sync_rollouts(now_s: float) -> None:
         # rollouts still under way hold their slot (level-based, as the live loop syncs it)
+        nonlocal pending
         pending = [(eff, w) for eff, w in pending if eff > now_s]
         if bud.slots is not None:
             bud.slots.sync(policies[w].workload_key for _, w in pending)
-        now = _utc(now_s)
-        kept: list[WorkloadDecision] = []
-        for w, p in enumerate(policies):
-            vals = values[w]
-            if shortcut:
-                # what the inputs are built from: (request, limit) and (rate, sizing) per container
-                key = [(vals.get(c.name), track[i]) for c, track in zip(p.containers, track_rows[w])]
-                given = given_hist[w]
-                if i not in keep_set and key == last_key[w] and given is last_given[w]:
-                    # provably the same decision as the last pass (see the module doc): skip it,
-                    # reading the budget as the decision would
-                    if applies[w]:
-                        bud.view(now_s)
-                    continue
-            inputs = []
-            for c, track in zip(p.containers, track_rows[w]):
-                if c.name not in vals:
-                    continue  # not in the workload: decide holds it NoMetrics naming the container
-                req, lim = vals[c.name]
-                rate, sizing = track[i]
-                inputs.append(ContainerInput(name=c.name, request_m=req, limit_m=lim, rate=rate, sizing=sizing))
-            if not shortcut:
+
+    if not shortcut:
+        status: list[dict] = [{} for _ in order]  # what the live loop keeps in status.lastChange/settling
+        track_rows = [[_inputs(tracks[(p.key, c.name)]) for c in p.containers] for p in policies]
+        for i, now_s in enumerate(res.pass_times.tolist()):
+            sync_rollouts(now_s)
+            now = _utc(now_s)
+            kept: list[WorkloadDecision] = []
+            for w, p in enumerate(policies):
+                vals = values[w]
+                inputs = []
+                for c, track in zip(p.containers, track_rows[w]):
+                    if c.name not in vals:
+                        continue  # not in the workload: decide holds it NoMetrics naming the container
+                    req, lim = vals[c.name]
+                    rate, sizing = track[i]
+                    inputs.append(ContainerInput(name=c.name, request_m=req, limit_m=lim, rate=rate, sizing=sizing))
                 # the live loop's decide stage, reading the history from the status the previous
                 # pass wrote (lastChange, settling), drawing the budget the way the live pass does
                 obs = Observed(obj=_policy_object(p, status[w]), policy=p, hpa_on_cpu=order[w].hpa_on_cpu,
                                inputs=tuple(inputs), conflict_with=order[w].conflict_with)
                 wd = decider.decide_one(obs, None, obs.inputs, now, now_s)
                 status[w] = history_to_status(wd.history, [{"name": n} for n in wd.history.containers])
-            else:
-                # the live loop's decide stage with the history given directly (no status text)
-                wd = decider.decide_one(observed[w], None, inputs, now, now_s, history=given)
-                settled = _settled(wd, given)
-                last_key[w] = key if settled else None
-                last_given[w] = given
-                if not settled:
-                    given_hist[w] = carried(wd.history)
-            history_before = history[w]
-            history[w] = given if shortcut and settled else wd.history
+                history_before = history[w]
+                history[w] = wd.history
+                record(i, now_s, w, wd, inputs, history_before, kept)
             if i in keep_set:
-                kept.append(wd)
-                res.states.setdefault(i, {})[p.key] = (history_before, tuple(inputs))
-            changed = wd.changed
-            if not changed:
-                continue
-            new = {d.container: (d.proposed_m, d.proposed_limit_m) for d in changed}
-            old = {d.container: (d.current_m, d.limit_m) for d in changed}
-            in_place = p.resize_by is ResizeBy.IN_PLACE
-            eff = now_s if in_place else now_s + rollout_s
-            # the next pass reads the patched template (rollout) or the resized pods (in-place);
-            # the pods run the new request from ``eff`` on
-            values[w].update(new)
-            if not in_place:
-                pending.append((eff, w))
-            res.changes.append(Change(
-                workload=p.workload_key, decided_at=now_s, effective_at=eff, method=p.resize_by,
-                containers={c: (old[c][0], new[c][0], old[c][1], new[c][1]) for c in new},
-                why=",".join(sorted({d.why.value for d in changed})),
-            ))
-            for c, (req, _lim) in new.items():
-                res.steps[(p.workload_key, c)].append((eff, req))
+                res.decisions[i] = kept
+            if on_pass is not None:
+                on_pass(i)
+        return res
+
+    # The shortcut: a workload is decided at a pass only when one of its inputs may have
+    # changed since its last decision, when that decision was not a fixed point, or when a
+    # timed hold it made may end (:func:`_wake`); every pass of ``keep``. Passes in between
+    # provably give the same decision (module doc) and are skipped.
+    n = len(res.pass_times)
+    moved = np.zeros((n, len(policies)), dtype=bool)
+    columns: list[list[tuple[str, list, list, list, list]]] = []
+    for w, p in enumerate(policies):
+        cols = []
+        for c in p.containers:
+            tr = tracks[(p.key, c.name)]
+            moved[:, w] |= input_changes(tr, with_rate=observed[w].autoscaler is not None)
+            cols.append((c.name, tr.rate.tolist(), tr.demand.tolist(), tr.upper.tolist(), tr.extrapolated.tolist()))
+        columns.append(cols)
+    given_hist = [carried(h) for h in history]  # the history as the next pass reads it
+    version = [0] * len(policies)
+    wakes: list[tuple[float, int, int]] = []  # (time, workload, version) of timed holds and unsettled passes
+    reads_budget = any(applies)
+    everyone = list(range(len(policies)))
+    for i, now_s in enumerate(res.pass_times.tolist()):
+        sync_rollouts(now_s)
+        if reads_budget:
+            # the token bucket refills to ``now`` at the first decision that reads it in a pass
+            # (later reads at the same time change nothing): once here, as every pass of the
+            # straightforward replay does
+            bud.view(now_s)
+        if i in keep_set:
+            due: Sequence[int] = everyone
+            wakes.clear()
+        else:
+            picked = set(np.flatnonzero(moved[i]).tolist())
+            while wakes and wakes[0][0] <= now_s:
+                _t, w, v = heapq.heappop(wakes)
+                if v == version[w]:
+                    picked.add(w)
+            due = sorted(picked)
+        now = _utc(now_s)
+        kept = []
+        for w in due:
+            p = policies[w]
+            vals = values[w]
+            inputs = [_one_input(name, *vals[name], r[i], d[i], u[i], x[i])
+                      for name, r, d, u, x in columns[w] if name in vals]
+            given = given_hist[w]
+            # the live loop's decide stage with the history given directly (no status text)
+            wd = decider.decide_one(observed[w], None, inputs, now, now_s, history=given)
+            wake = _wake(wd, given, p)
+            version[w] += 1
+            if wake is None:
+                heapq.heappush(wakes, (now_s, w, version[w]))  # decided again at the next pass
+            elif wake < math.inf:
+                heapq.heappush(wakes, (wake, w, version[w]))
+            fixed = wd.history == given
+            history_before = history[w]
+            if fixed:
+                history[w] = given
+            else:
+                history[w] = wd.history
+                given_hist[w] = carried(wd.history)
+            record(i, now_s, w, wd, inputs, history_before, kept)
         if i in keep_set:
             res.decisions[i] = kept
         if on_pass is not None:
             on_pass(i)
     return res
-
