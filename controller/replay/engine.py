@@ -30,7 +30,8 @@ from ratefit.controller.policy import ResizeBy
 from ratefit.controller.replay.history import History
 from ratefit.controller.replay.inputs import Sizer, Targets
 from ratefit.controller.replay.outcome import STRATEGIES, ContainerFigures, Outcome, container_figures, node_counts, step_values
-from ratefit.controller.replay.series import MINUTE, PodUsage, pod_usage, workload_rates
+from ratefit.controller.replay.replicas import AutoscaledFigures, autoscaled_figures, suggested_requests
+from ratefit.controller.replay.series import MINUTE, PodUsage, pod_rate_grid, pod_usage, workload_rates
 from ratefit.controller.replay.simulate import BudgetConfig, SimResult, SizingTrack, simulate
 from ratefit.models.errors import InputError
 
@@ -229,6 +230,65 @@ def run_replay(history: History, targets: Targets, sizer: Sizer, *, start: float
         c = changes[ch.workload]
         c["changes"] += 1
         c["resizes" if ch.method is ResizeBy.IN_PLACE else "rollouts"] += 1
+    scaled = [_autoscaled(t, history, pods_of, sizer, sim, tracks, times, figs, options, notes)
+              for t in targets.targets if t.autoscaler is not None and t.autoscaler.cpu is not None
+              and t.conflict_with is None]
     outcome = Outcome(start=start, end=end, step_s=options.step_s, node_cpu=options.node_cpu, containers=figs,
-                      changes=changes, nodes=nodes, notes=notes)
+                      changes=changes, nodes=nodes, notes=notes, autoscaled=[a for a in scaled if a is not None])
     return ReplayResult(outcome=outcome, sim=sim, tracks=tracks, minutes=minutes, usage=usage, static=static)
+
+
+def _autoscaled(t, history: History, pods_of, sizer: Sizer, sim: SimResult, tracks, times: np.ndarray,
+                figs: list[ContainerFigures], options: ReplayOptions, notes: list[str]) -> AutoscaledFigures | None:
+    """Replicas and reserved CPU of one workload under its CPU-utilisation autoscaler, per
+    strategy (``controller.replay.replicas``)."""
+    p = t.policy
+    view = t.autoscaler
+    wk = p.workload_key
+    measured = [c for c in p.containers if c.name in t.containers
+                and (view.cpu.container is None or view.cpu.container == c.name)]
+    left = [n for n in t.containers if n not in {c.name for c in p.containers}]
+    if view.cpu.container is None and left:
+        notes.append(f"{wk}: the autoscaler measures container(s) {', '.join(left)} too, which the policy does not "
+                     "size; the simulated replicas leave them out")
+    if not measured:
+        return None
+    pods = pods_of.get((p.namespace, p.workload_kind, p.workload_name), [])
+    total = np.zeros(len(times))
+    seen = np.zeros(len(times), dtype=bool)
+    for pod in pods:
+        r = pod_rate_grid(history.requests.get((p.namespace, pod), ()), times, interval_s=options.rate_interval_s)
+        ok = np.isfinite(r)
+        total[ok] += r[ok]
+        seen |= ok
+    total[~seen] = np.nan
+
+    def demand_at(rates: np.ndarray) -> np.ndarray:
+        out = np.zeros(len(rates))
+        for c in measured:
+            out += sizer.answers(c.model, rates)[0]
+        return out
+
+    fixed = {f.container: f.fixed_m for f in figs if f.workload == wk}
+    requests = {
+        "current": {c.name: np.full(len(times), float(t.containers[c.name][0] or 0)) for c in measured},
+        "fixed": {c.name: np.full(len(times), float(math.ceil(fixed.get(c.name, 0.0) - 1e-9))) for c in measured},
+        "ratefit": {c.name: step_values(sim.steps.get((wk, c.name), [(float(times[0]), t.containers[c.name][0])]),
+                                        times).astype(float) for c in measured},
+    }
+    figures = autoscaled_figures(wk, view, containers=[c.name for c in measured], total_rate=total,
+                                 demand_at=demand_at, requests_m=requests, step_s=options.step_s)
+    facts_of = getattr(sizer, "facts", None)
+    if facts_of is None:
+        notes.append(f"{wk}: no suggested size under the autoscaler (it needs the model store: --store)")
+        return figures
+    sug = suggested_requests(view, [c.name for c in measured], {c.name: tracks[(p.key, c.name)].rate for c in measured},
+                             {c.name: facts_of(c.model) for c in measured},
+                             {c.name: t.containers[c.name][0] for c in measured},
+                             figures.replicas["current"], times)
+    requests["suggested"] = {c: np.where(np.isfinite(v), v, requests["ratefit"][c]) for c, v in sug.items()}
+    both = autoscaled_figures(wk, view, containers=[c.name for c in measured], total_rate=total, demand_at=demand_at,
+                              requests_m={"suggested": requests["suggested"]}, step_s=options.step_s)
+    figures.replicas["suggested"] = both.replicas["suggested"]  # type: ignore[index]
+    figures.request_m["suggested"] = both.request_m["suggested"]  # type: ignore[index]
+    return figures

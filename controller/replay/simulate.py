@@ -49,6 +49,7 @@ import heapq
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 from datetime import datetime, timezone
 
 import numpy as np
@@ -89,6 +90,10 @@ class ReplayTarget:
     #: held PolicyConflict and draws nothing from the budget, as in the live loop
     #: (``controller.stages.observe.conflicts``)
     conflict_with: str | None = None
+    #: the workload's horizontal autoscaler as ``hpa_sizing.autoscaler_view`` sees it (None:
+    #: none). The replay simulates the replicas of one on CPU utilisation
+    #: (``controller.replay.replicas``); the decisions still see only ``hpa_on_cpu``
+    autoscaler: Any = None
 
 
 @dataclass(frozen=True)
