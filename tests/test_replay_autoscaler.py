@@ -151,7 +151,8 @@ def test_the_demo_autoscaled_workload_shows_the_suggested_size_against_today(two
             assert documented_rule(n, util, target, 2, 6) == n, (s, i, n, util)
             checked += 1
     assert checked > 0.95 * 4 * np.isfinite(a.total_rate).sum()
-    # the suggested size (the review's coupled answer) reserves less than today's request
+    # the suggested size (the review's coupled answer) reserves less than today's request on
+    # these two INVENTED days (a property of our scenario, not a law)
     h = w["reserved_cpu_hours"]
     assert h["suggested"] < h["current"] and h["ratefit"] == h["current"]
     # reserved CPU-hours = Σ replicas × request × 5 min, by hand from the arrays
@@ -164,3 +165,38 @@ def test_the_demo_autoscaled_workload_shows_the_suggested_size_against_today(two
     written = write_report(res, tmp_path / "report")
     plot = tmp_path / "report" / "autoscaled-dispatch-Deployment-tracking-api.png"
     assert plot in written and plot.stat().st_size > 10_000
+
+
+def test_allowing_the_conflict_applies_the_coupled_answer_the_same_with_the_shortcuts(tmp_path: Path,
+                                                                                       monkeypatch) -> None:
+    """With ``allowHorizontalConflict: true`` the live decision takes the coupled answer as
+    its target (controller/decide.py step 6): the replay hands the decide stage the
+    autoscaler (replicas as the history shows them) and the models' facts, as the observe
+    stage does. Every pass decided through the status text and the shortcut replay agree."""
+    from ratefit.controller.decide import Verdict
+    from test_replay_shortcut import assert_same, both
+
+    info = write_openmetrics(tmp_path / "h.om", end=END, hours=24, step_s=60, seed=2)
+    hist = read_openmetrics(info.path, request_metric=REQUEST_METRIC)
+    pols = default_policies()
+    for p in pols:
+        if p["metadata"]["name"] == "tracking-api":
+            p["spec"]["allowHorizontalConflict"] = True
+    targets = targets_from_objects(scenario_objects(pols))
+    sizer = StoreSizer(truth_store(tmp_path / "store"))
+    keep = (40, 150, 280)
+    plain, fast, n_plain, n_fast = both(monkeypatch, hist, targets, sizer, start=hist.start, end=hist.end,
+                                        keep=keep)
+    assert_same(plain, fast)
+    assert n_fast < n_plain
+    api = [d for i in keep for wd in fast.sim.decisions[i] if wd.policy == "dispatch/tracking-api"
+           for d in wd.decisions if d.container == "api"]
+    assert all("with the autoscaler at 90% CPU" in d.message for d in api), [d.message for d in api]
+    changed = [c for c in fast.sim.changes if c.workload == "dispatch/Deployment/tracking-api"]
+    assert changed, "the coupled answer moves tracking-api's request"
+    a = fast.outcome.autoscaled[0]
+    # ratefit's request is the coupled one now: on this INVENTED day it reserves less than
+    # today's (a property of our scenario, not a law: on other seeds the settle window keeps
+    # a low request into the evening peak and the autoscaler adds a third pod)
+    assert a.reserved_cpu_hours("ratefit") < a.reserved_cpu_hours("current")
+    assert any(d.verdict is Verdict.CHANGED or d.why.value != "HorizontalConflict" for d in api)

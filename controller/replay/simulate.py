@@ -70,6 +70,7 @@ from ratefit.controller.workload import PolicyObject
 
 __all__ = [
     "ReplayTarget",
+    "AutoscaledInputs",
     "SizingTrack",
     "Change",
     "BudgetConfig",
@@ -94,6 +95,22 @@ class ReplayTarget:
     #: none). The replay simulates the replicas of one on CPU utilisation
     #: (``controller.replay.replicas``); the decisions still see only ``hpa_on_cpu``
     autoscaler: Any = None
+
+
+@dataclass(frozen=True)
+class AutoscaledInputs:
+    """What a policy's decisions see of its workload's horizontal autoscaler at every pass:
+    the view (``hpa_sizing.autoscaler_view``) with ``replicas[i]`` pods running — the pods
+    the history shows at the pass, whose per-pod rates the decision reads — and per
+    container the model's facts (trained range, capacity, curve points)."""
+
+    view: Any  # hpa_sizing.AutoscalerView
+    replicas: np.ndarray  # int, one per pass
+    facts: Mapping[str, Any] = field(default_factory=dict)  # container → hpa_sizing.ModelFacts | None
+
+    def at(self, i: int) -> Any:
+        n = int(self.replicas[i])
+        return self.view if n == self.view.replicas else dataclasses.replace(self.view, replicas=n)
 
 
 @dataclass(frozen=True)
@@ -193,14 +210,15 @@ def _inputs(track: SizingTrack) -> list[tuple[float | None, Sizing | None]]:
     return out
 
 
-def _one_input(name: str, req: int | None, lim: int | None, r: float, d: float, u: float, x: bool) -> ContainerInput:
+def _one_input(name: str, req: int | None, lim: int | None, r: float, d: float, u: float, x: bool,
+               facts: Any = None) -> ContainerInput:
     """One container's input at one pass, as :func:`_inputs` builds it."""
     if not math.isfinite(r):
-        return ContainerInput(name=name, request_m=req, limit_m=lim, rate=None, sizing=None)
+        return ContainerInput(name=name, request_m=req, limit_m=lim, rate=None, sizing=None, facts=facts)
     if not math.isfinite(d):
-        return ContainerInput(name=name, request_m=req, limit_m=lim, rate=r, sizing=None)
+        return ContainerInput(name=name, request_m=req, limit_m=lim, rate=r, sizing=None, facts=facts)
     return ContainerInput(name=name, request_m=req, limit_m=lim, rate=r,
-                          sizing=Sizing(demand=d, upper=u, extrapolated=bool(x)))
+                          sizing=Sizing(demand=d, upper=u, extrapolated=bool(x)), facts=facts)
 
 
 def _same(a: np.ndarray) -> np.ndarray:
@@ -269,12 +287,15 @@ def simulate(
     keep: Sequence[int] = (),
     on_pass: Callable[[int], None] | None = None,
     shortcut: bool = True,
+    autoscaled: Mapping[str, AutoscaledInputs] | None = None,
 ) -> SimResult:
     """Run every pass. ``tracks`` is keyed by (policy key, container). ``as_written``
     keeps each policy's mode (a dry-run policy then changes nothing); otherwise every
     policy is simulated in apply mode. ``keep``: pass indices whose decisions are kept.
     ``shortcut=False``: decide every workload at every pass and carry the history through
-    the status text, as the live loop does (the reference the skipping is tested against)."""
+    the status text, as the live loop does (the reference the skipping is tested against).
+    ``autoscaled``: policy key → what its decisions see of the workload's autoscaler
+    (:class:`AutoscaledInputs`), as the observe stage hands it to the decide stage."""
     order = sorted(targets, key=lambda t: (t.policy.namespace, t.policy.name))
     policies = [t.policy if as_written else dataclasses.replace(t.policy, mode=Mode.APPLY) for t in order]
     values: list[dict[str, tuple[int | None, int | None]]] = [dict(t.containers) for t in order]
@@ -290,6 +311,7 @@ def simulate(
                 for t, p in zip(order, policies)]
     # a policy held PolicyConflict never reads the budget (decide_one returns before)
     applies = [decider.applies(o) and o.conflict_with is None for o in observed]
+    scaled = [(autoscaled or {}).get(p.key) for p in policies]
     for t, p in zip(order, policies):
         for c in p.containers:
             res.steps[(p.workload_key, c.name)] = [(float(res.pass_times[0]), t.containers.get(c.name, (None, None))[0])]
@@ -343,11 +365,13 @@ def simulate(
                         continue  # not in the workload: decide holds it NoMetrics naming the container
                     req, lim = vals[c.name]
                     rate, sizing = track[i]
-                    inputs.append(ContainerInput(name=c.name, request_m=req, limit_m=lim, rate=rate, sizing=sizing))
+                    inputs.append(ContainerInput(name=c.name, request_m=req, limit_m=lim, rate=rate, sizing=sizing,
+                                                 facts=scaled[w].facts.get(c.name) if scaled[w] else None))
                 # the live loop's decide stage, reading the history from the status the previous
                 # pass wrote (lastChange, settling), drawing the budget the way the live pass does
                 obs = Observed(obj=_policy_object(p, status[w]), policy=p, hpa_on_cpu=order[w].hpa_on_cpu,
-                               inputs=tuple(inputs), conflict_with=order[w].conflict_with)
+                               inputs=tuple(inputs), conflict_with=order[w].conflict_with,
+                               autoscaler=scaled[w].at(i) if scaled[w] else None)
                 wd = decider.decide_one(obs, None, obs.inputs, now, now_s)
                 status[w] = history_to_status(wd.history, [{"name": n} for n in wd.history.containers])
                 history_before = history[w]
@@ -365,13 +389,17 @@ def simulate(
     # provably give the same decision (module doc) and are skipped.
     n = len(res.pass_times)
     moved = np.zeros((n, len(policies)), dtype=bool)
-    columns: list[list[tuple[str, list, list, list, list]]] = []
+    columns: list[list[tuple[str, list, list, list, list, Any]]] = []
     for w, p in enumerate(policies):
         cols = []
         for c in p.containers:
             tr = tracks[(p.key, c.name)]
-            moved[:, w] |= input_changes(tr, with_rate=observed[w].autoscaler is not None)
-            cols.append((c.name, tr.rate.tolist(), tr.demand.tolist(), tr.upper.tolist(), tr.extrapolated.tolist()))
+            # under an autoscaler the rate's value is an input (the coupled answer, the replicas it implies)
+            moved[:, w] |= input_changes(tr, with_rate=scaled[w] is not None)
+            cols.append((c.name, tr.rate.tolist(), tr.demand.tolist(), tr.upper.tolist(), tr.extrapolated.tolist(),
+                         scaled[w].facts.get(c.name) if scaled[w] else None))
+        if scaled[w] is not None:
+            moved[:, w] |= ~_same(np.asarray(scaled[w].replicas))
         columns.append(cols)
     given_hist = [carried(h) for h in history]  # the history as the next pass reads it
     version = [0] * len(policies)
@@ -400,11 +428,12 @@ def simulate(
         for w in due:
             p = policies[w]
             vals = values[w]
-            inputs = [_one_input(name, *vals[name], r[i], d[i], u[i], x[i])
-                      for name, r, d, u, x in columns[w] if name in vals]
+            inputs = [_one_input(name, *vals[name], r[i], d[i], u[i], x[i], f)
+                      for name, r, d, u, x, f in columns[w] if name in vals]
             given = given_hist[w]
+            obs = observed[w] if scaled[w] is None else dataclasses.replace(observed[w], autoscaler=scaled[w].at(i))
             # the live loop's decide stage with the history given directly (no status text)
-            wd = decider.decide_one(observed[w], None, inputs, now, now_s, history=given)
+            wd = decider.decide_one(obs, None, inputs, now, now_s, history=given)
             wake = _wake(wd, given, p)
             version[w] += 1
             if wake is None:
