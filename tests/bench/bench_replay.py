@@ -1,6 +1,6 @@
 """Benchmark: `ratefit replay` over 7 days at 5-minute passes, 1,000 workloads / 2,000 containers.
 
-``python -m tests.bench.bench_replay [--workloads 1000] [--days 7] [--scaling]``
+``python -m tests.bench.bench_replay [--workloads 1000] [--days 7] [--scaling] [--profile FILE]``
 
 INVENTED synthetic cluster: each workload has 2 pods and 2 containers (linear demand
 curves, a daily cycle with a per-workload phase), one in four resizes in place, the rest
@@ -108,7 +108,24 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--workloads", type=int, default=1000)
     ap.add_argument("--days", type=float, default=7.0)
     ap.add_argument("--scaling", action="store_true", help="also ¼ and ½ of the workloads and of the days")
+    ap.add_argument("--profile", metavar="FILE",
+                    help="run one size in one process under cProfile (no forked split), write the stats to FILE "
+                         "(pstats format) and print the 25 costliest functions by own time")
     a = ap.parse_args(argv)
+    if a.profile:
+        import cProfile
+        import pstats
+
+        import ratefit.controller.replay.engine as engine
+
+        engine.PARALLEL_FROM = 10**9  # forked workers would escape the profiler
+        prof = cProfile.Profile()
+        r = prof.runcall(one, a.workloads, a.days)
+        prof.dump_stats(a.profile)
+        print(f"replay {a.workloads} workloads, {a.days:g} days under cProfile: total {r['total']:.1f} s wall "
+              f"(rates+sizing {r['rates']:.1f} s, passes {r['passes']:.1f} s, figures {r['figures']:.1f} s)")
+        pstats.Stats(a.profile).sort_stats("tottime").print_stats(25)
+        return 0
     import platform
 
     print(f"machine: nproc {os.cpu_count()}, {cpu_model()}, Python {platform.python_version()}")
