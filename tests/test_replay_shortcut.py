@@ -204,3 +204,25 @@ def test_a_decrease_settling_under_a_cpu_autoscaler_is_decided_again_when_its_wi
     runs = [simulate([target], {(p.key, "app"): track}, times, keep=keep, shortcut=s) for s in (False, True)]
     assert runs[1].decisions == runs[0].decisions
     assert runs[1].states == runs[0].states
+
+
+def test_a_cluster_queueing_for_the_budget_replays_the_same_with_the_shortcuts(tmp_path: Path, monkeypatch) -> None:
+    """Thirty INVENTED workloads behind a budget of one change a minute and one rollout at
+    a time: most passes hold most workloads BudgetSpent. The shortcut decides such a hold
+    again only when the budget, read at its turn in the pass, would let it go."""
+    from ratefit.controller.decide import Why
+
+    rng = np.random.default_rng(7)
+    hist, objs, curves = plateau_cluster(rng, workloads=30, hours=12)
+    write_store(tmp_path, curves)
+    targets = targets_from_objects(objs)
+    sizer = StoreSizer(tmp_path)
+    keep = (2, 20, 60, 130)
+    plain, fast, n_plain, n_fast = both(monkeypatch, hist, targets, sizer, start=hist.start, end=hist.end,
+                                        options=ReplayOptions(budget=BudgetConfig(per_minute=1, max_rollouts=1),
+                                                              rate_interval_s=300.0, rate_step_s=60.0),
+                                        keep=keep)
+    held = sum(d.why is Why.BUDGET_SPENT for i in keep for wd in plain.sim.decisions[i] for d in wd.decisions)
+    assert held >= 10, held  # the budget really queues them
+    assert n_fast < n_plain / 2
+    assert_same(plain, fast)

@@ -33,8 +33,10 @@ which a skipped pass never shows: :func:`input_changes`, vectorised), and that d
 changed nothing and left the history as it found it (a fixed point). A fixed point that
 waits on the clock is decided again from one second before its hold may end
 (:func:`_wake`: Settling and a HorizontalConflict hold over a settling decrease at the
-settle window's end, CoolingDown at the cooldown's end); BudgetSpent and every decision
-that moved the history are decided again at the next pass. Every other way the clock
+settle window's end, CoolingDown at the cooldown's end); one held BudgetSpent is decided
+again at the first pass whose budget, read at its turn in the pass order, no longer
+refuses (while it refuses, the decision is the same hold); every decision that moved the
+history is decided again at the next pass. Every other way the clock
 enters a decision writes ``now`` into the history, which the fixed-point test excludes.
 The token bucket refills to the pass's time once per pass, as the first decision reading
 it would (later reads at the same time change nothing). ``simulate(..., shortcut=False)``
@@ -252,28 +254,33 @@ def input_changes(track: SizingTrack, *, with_rate: bool) -> np.ndarray:
     return ~same
 
 
-def _wake(wd: WorkloadDecision, given: WorkloadHistory, p: Policy) -> float | None:
-    """When deciding again from the same inputs may give something else: None — at the
-    next pass (a change, BudgetSpent, or the history moved); +inf — never (a fixed point
-    that waits on nothing); else the time (unix s) a timed hold may end: a decrease's settle
-    window (Settling, or HorizontalConflict over a settling decrease) or the cooldown.
-    One second early on purpose: deciding a pass too many is always safe."""
+def _wake(wd: WorkloadDecision, given: WorkloadHistory, p: Policy) -> tuple[float | None, bool]:
+    """When deciding again from the same inputs may give something else, and whether it
+    waits on the budget. Time: None — at the next pass (a change, or the history moved);
+    +inf — never by the clock (a fixed point); else the time (unix s) a timed hold may
+    end: a decrease's settle window (Settling, or HorizontalConflict over a settling
+    decrease) or the cooldown — one second early on purpose: deciding a pass too many is
+    always safe. Budget: True for a BudgetSpent fixed point — it decides the same while the
+    budget, read at its turn in the pass, still refuses (the refusal only words its message)."""
     if wd.history != given:
-        return None
+        return None, False
     wake = math.inf
+    budget = False
     for d in wd.decisions:
-        if d.verdict is Verdict.CHANGED or d.why is Why.BUDGET_SPENT:
-            return None
-        if d.why is Why.SETTLING or (d.why is Why.HORIZONTAL_CONFLICT and d.settle.below_since is not None):
+        if d.verdict is Verdict.CHANGED:
+            return None, False
+        if d.why is Why.BUDGET_SPENT:
+            budget = True
+        elif d.why is Why.SETTLING or (d.why is Why.HORIZONTAL_CONFLICT and d.settle.below_since is not None):
             since = d.settle.below_since
             if since is None:
-                return None
+                return None, False
             wake = min(wake, since.timestamp() + p.settle_s - 1.0)
         elif d.why is Why.COOLING_DOWN:
             if given.last_change is None:
-                return None
+                return None, False
             wake = min(wake, given.last_change.timestamp() + p.cooldown_s - 1.0)
-    return wake
+    return wake, budget
 
 
 def simulate(
@@ -406,6 +413,7 @@ def simulate(
     wakes: list[tuple[float, int, int]] = []  # (time, workload, version) of timed holds and unsettled passes
     reads_budget = any(applies)
     everyone = list(range(len(policies)))
+    on_budget: set[int] = set()  # BudgetSpent fixed points: decided again when the budget lets them
     for i, now_s in enumerate(res.pass_times.tolist()):
         sync_rollouts(now_s)
         if reads_budget:
@@ -414,6 +422,7 @@ def simulate(
             # straightforward replay does
             bud.view(now_s)
         if i in keep_set:
+            picked: set[int] = set(everyone)
             due: Sequence[int] = everyone
             wakes.clear()
         else:
@@ -422,10 +431,13 @@ def simulate(
                 _t, w, v = heapq.heappop(wakes)
                 if v == version[w]:
                     picked.add(w)
-            due = sorted(picked)
+            due = sorted(picked | on_budget) if on_budget else sorted(picked)
         now = _utc(now_s)
         kept = []
         for w in due:
+            if w not in picked and bud.view(now_s).refusal() is not None:
+                continue  # held BudgetSpent again: the budget still refuses at its turn
+            on_budget.discard(w)
             p = policies[w]
             vals = values[w]
             inputs = [_one_input(name, *vals[name], r[i], d[i], u[i], x[i], f)
@@ -434,8 +446,10 @@ def simulate(
             obs = observed[w] if scaled[w] is None else dataclasses.replace(observed[w], autoscaler=scaled[w].at(i))
             # the live loop's decide stage with the history given directly (no status text)
             wd = decider.decide_one(obs, None, inputs, now, now_s, history=given)
-            wake = _wake(wd, given, p)
+            wake, budget_wait = _wake(wd, given, p)
             version[w] += 1
+            if budget_wait:
+                on_budget.add(w)
             if wake is None:
                 heapq.heappush(wakes, (now_s, w, version[w]))  # decided again at the next pass
             elif wake < math.inf:
