@@ -424,6 +424,7 @@ def simulate(
         if i in keep_set:
             picked: set[int] = set(everyone)
             due: Sequence[int] = everyone
+            refused = False
             wakes.clear()
         else:
             picked = set(np.flatnonzero(moved[i]).tolist())
@@ -431,12 +432,17 @@ def simulate(
                 _t, w, v = heapq.heappop(wakes)
                 if v == version[w]:
                     picked.add(w)
-            due = sorted(picked | on_budget) if on_budget else sorted(picked)
+            # within a pass the budget only shrinks (tokens taken, slots acquired; the refill and
+            # the slots' sync happen at its start), so a refusal now holds for the whole pass
+            refused = bool(on_budget) and bud.view(now_s).refusal() is not None
+            due = sorted(picked | on_budget) if on_budget and not refused else sorted(picked)
         now = _utc(now_s)
         kept = []
         for w in due:
-            if w not in picked and bud.view(now_s).refusal() is not None:
-                continue  # held BudgetSpent again: the budget still refuses at its turn
+            if w not in picked:
+                if refused or bud.view(now_s).refusal() is not None:
+                    refused = True
+                    continue  # held BudgetSpent again: the budget still refuses at its turn
             on_budget.discard(w)
             p = policies[w]
             vals = values[w]
