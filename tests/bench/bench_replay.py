@@ -1,6 +1,6 @@
 """Benchmark: `ratefit replay` over 7 days at 5-minute passes, 1,000 workloads / 2,000 containers.
 
-``python -m tests.bench.bench_replay [--workloads 1000] [--days 7] [--scaling] [--profile FILE]``
+``python -m tests.bench.bench_replay [--workloads 1000] [--days 7] [--scaling] [--with-budget] [--profile FILE]``
 
 INVENTED synthetic cluster: each workload has 2 pods and 2 containers (linear demand
 curves, a daily cycle with a per-workload phase), one in four resizes in place, the rest
