@@ -30,10 +30,15 @@ import socket
 import threading
 import time
 from dataclasses import dataclass
+from collections.abc import Callable, Mapping
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
-from typing import Any
+from typing import Any, Self
 
-__all__ = ["HttpLimits", "BoundedHTTPServer", "BoundedHandler"]
+#: what a route answers: (status code, body, content type)
+Answer = tuple[int, bytes, str]
+TEXT = "text/plain; charset=utf-8"
+
+__all__ = ["HttpLimits", "BoundedHTTPServer", "BoundedHandler", "GetServer", "Answer"]
 
 
 @dataclass(frozen=True)
@@ -207,3 +212,67 @@ class BoundedHTTPServer(ThreadingHTTPServer):
         except OSError:
             pass
         self.close_request(request)
+
+
+class GetServer:
+    """A :class:`BoundedHTTPServer` on a daemon thread answering a few GET routes: ``routes``
+    maps a path (query string ignored) to a function giving its :data:`Answer`; any other
+    path gets 404 with ``not_found``. ``port=0`` picks a free port (read it back from
+    :attr:`port`). Used by the controller's health server and `ratefit serve --metrics-port`."""
+
+    def __init__(self, routes: Mapping[str, Callable[[], Answer]], *, host: str = "127.0.0.1", port: int = 0,
+                 limits: HttpLimits | None = None, not_found: bytes = b"not found\n", name: str = "ratefit-http") -> None:
+        table = dict(routes)
+
+        class Handler(BoundedHandler):
+            def do_GET(self) -> None:  # noqa: N802 - stdlib naming
+                route = table.get(self.path.split("?", 1)[0])
+                code, body, ctype = route() if route is not None else (404, not_found, TEXT)
+                self.send_response(code)
+                self.send_header("Content-Type", ctype)
+                self.send_header("Content-Length", str(len(body)))
+                self.end_headers()
+                self.wfile.write(body)
+
+        self._server = BoundedHTTPServer((host, port), Handler, limits=limits)
+        self._name = name
+        self._thread: threading.Thread | None = None
+
+    @property
+    def limits(self) -> HttpLimits:
+        return self._server.limits
+
+    @property
+    def active_connections(self) -> int:
+        """Connections being served now (at most ``limits.max_connections``)."""
+        return self._server.active_connections
+
+    @property
+    def refused_connections(self) -> int:
+        """Connections answered 503 because the cap was reached, since start."""
+        return self._server.refused
+
+    @property
+    def port(self) -> int:
+        return int(self._server.server_address[1])
+
+    @property
+    def url(self) -> str:
+        return f"http://{self._server.server_address[0]}:{self.port}"
+
+    def start(self) -> Self:
+        self._thread = threading.Thread(target=self._server.serve_forever, name=self._name, daemon=True)
+        self._thread.start()
+        return self
+
+    def stop(self) -> None:
+        self._server.shutdown()
+        self._server.server_close()
+        if self._thread is not None:
+            self._thread.join(timeout=5)
+
+    def __enter__(self) -> Self:
+        return self.start()
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()

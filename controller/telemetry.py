@@ -28,7 +28,7 @@ from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, gene
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 
-from ratefit.controller.bounded_http import BoundedHandler, BoundedHTTPServer, HttpLimits
+from ratefit.controller.bounded_http import TEXT, Answer, GetServer, HttpLimits
 
 __all__ = ["Telemetry", "HealthServer", "HttpLimits", "CpuSample", "PASS_BUCKETS", "RESIZE_BY"]
 
@@ -299,7 +299,7 @@ class _CacheCollector:
         yield GaugeMetricFamily(*_CACHE_GAUGES["synced"], value=1.0 if snap.synced else 0.0)
 
 
-class HealthServer:
+class HealthServer(GetServer):
     """Serves ``/metrics``, ``/healthz`` and ``/readyz`` for one :class:`Telemetry`.
 
     ``port=0`` picks a free port (read it back from :attr:`port`). Binds 127.0.0.1
@@ -313,67 +313,16 @@ class HealthServer:
         self.telemetry = telemetry
         tel = telemetry
 
-        class Handler(BoundedHandler):
-            def do_GET(self) -> None:  # noqa: N802 - stdlib naming
-                path = self.path.split("?", 1)[0]
-                if path == "/metrics":
-                    self._send(200, tel.render(), CONTENT_TYPE_LATEST)
-                elif path == "/healthz":
-                    ok = tel.alive
-                    self._send(200 if ok else 503, b"ok\n" if ok else b"loop not running\n")
-                elif path == "/readyz":
-                    ok = tel.ready
-                    why = b"not ready\n" if tel.gate_open or not tel._gate_why else f"not ready: {tel._gate_why}\n".encode()
-                    self._send(200 if ok else 503, b"ok\n" if ok else why)
-                else:
-                    self._send(404, b"not found: try /metrics, /healthz or /readyz\n")
+        def healthz() -> Answer:
+            ok = tel.alive
+            return (200, b"ok\n", TEXT) if ok else (503, b"loop not running\n", TEXT)
 
-            def _send(self, code: int, body: bytes, ctype: str = "text/plain; charset=utf-8") -> None:
-                self.send_response(code)
-                self.send_header("Content-Type", ctype)
-                self.send_header("Content-Length", str(len(body)))
-                self.end_headers()
-                self.wfile.write(body)
+        def readyz() -> Answer:
+            if tel.ready:
+                return 200, b"ok\n", TEXT
+            why = b"not ready\n" if tel.gate_open or not tel._gate_why else f"not ready: {tel._gate_why}\n".encode()
+            return 503, why, TEXT
 
-        self._server = BoundedHTTPServer((host, port), Handler, limits=limits)
-        self._thread: threading.Thread | None = None
-
-    @property
-    def limits(self) -> HttpLimits:
-        return self._server.limits
-
-    @property
-    def active_connections(self) -> int:
-        """Connections being served now (at most ``limits.max_connections``)."""
-        return self._server.active_connections
-
-    @property
-    def refused_connections(self) -> int:
-        """Connections answered 503 because the cap was reached, since start."""
-        return self._server.refused
-
-    @property
-    def port(self) -> int:
-        return int(self._server.server_address[1])
-
-    @property
-    def url(self) -> str:
-        host = self._server.server_address[0]
-        return f"http://{host}:{self.port}"
-
-    def start(self) -> HealthServer:
-        self._thread = threading.Thread(target=self._server.serve_forever, name="ratefit-health", daemon=True)
-        self._thread.start()
-        return self
-
-    def stop(self) -> None:
-        self._server.shutdown()
-        self._server.server_close()
-        if self._thread is not None:
-            self._thread.join(timeout=5)
-
-    def __enter__(self) -> HealthServer:
-        return self.start()
-
-    def __exit__(self, *exc: object) -> None:
-        self.stop()
+        super().__init__({"/metrics": lambda: (200, tel.render(), CONTENT_TYPE_LATEST), "/healthz": healthz,
+                          "/readyz": readyz}, host=host, port=port, limits=limits, name="ratefit-health",
+                         not_found=b"not found: try /metrics, /healthz or /readyz\n")

@@ -29,6 +29,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from ratefit.controller.promql_guard import QueryGuard, QueryRefused
+from ratefit.controller.stale_memo import JudgementMemo
 from ratefit.controller.rate_template import RateTemplate
 from ratefit.controller.workload_queries import cpu_query, normalised_rate_query
 from ratefit.models.durations import parse_duration
@@ -69,6 +70,9 @@ class UsageResult:
     pods: tuple[str, ...] = ()
     #: why there are no samples ("" when there are)
     message: str = ""
+    #: the source answered for this container (False: Prometheus trouble or the source's own
+    #: cap — ask again next pass; True with no samples: there is nothing to judge)
+    answered: bool = True
 
     @property
     def count(self) -> int:
@@ -87,10 +91,12 @@ class PrometheusUsageSource:
     def __init__(
         self, client: PrometheusClient, *, template: RateTemplate = RateTemplate(), window: str = DEFAULT_WINDOW,
         step: str = DEFAULT_STEP, at: float | None = None, guard: QueryGuard = QueryGuard(),
-        max_containers: int = 200, facts: ModelFacts | None = None,
+        max_containers: int = 200, facts: ModelFacts | None = None, memo: JudgementMemo | None = None,
     ) -> None:
         #: what the models say about themselves (coverage, training image); None: defaults, no image check
         self.facts = facts
+        #: the last judgement per container across passes (``controller/stale_memo``); None: judge all, every pass
+        self.memo = memo
         self.window_s = parse_duration(window, field="staleness window")
         self.step_s = parse_duration(step, field="staleness step")
         if self.window_s < 2 * self.step_s:
@@ -126,7 +132,8 @@ class PrometheusUsageSource:
         out: dict[str, UsageResult] = {}
         for i, r in enumerate(requests):
             if i >= self.max_containers:
-                out[r.key] = UsageResult(key=r.key, message=f"not checked this pass (more than {self.max_containers} containers)")
+                out[r.key] = UsageResult(key=r.key, answered=False,
+                                         message=f"not checked this pass (more than {self.max_containers} containers)")
                 continue
             out[r.key] = self._one(r, start, end)
         return out
@@ -142,7 +149,7 @@ class PrometheusUsageSource:
         try:
             rows = fetch_samples(self.client, rate_query=rate_q, cpu_query=cpu_q, start=start, end=end, step=self.step_s)
         except PrometheusError as exc:
-            return UsageResult(key=r.key, message=f"recent usage of {r.key}: {exc}")
+            return UsageResult(key=r.key, message=f"recent usage of {r.key}: {exc}", answered=False)
         rows = [s for s in rows if np.isfinite(s.rate) and np.isfinite(s.cpu)]
         if not rows:
             return UsageResult(key=r.key, message=f"no recent (rate, CPU) samples for {r.key} over the window")
@@ -171,7 +178,7 @@ class ModelFacts:
         self.ttl_s = ttl_s
         self.max_keys = max_keys
         self._clock = time.monotonic
-        self._cache: dict[str, tuple[float, float | None, str | None]] = {}
+        self._cache: dict[str, tuple[float, float | None, str | None, str | None]] = {}
 
     def lookup(self, keys: Sequence[str]) -> dict[str, tuple[float | None, str | None]]:
         """key → (coverage or None, image or None)."""
@@ -189,10 +196,16 @@ class ModelFacts:
                     body = None
                 cov = body.get("coverage") if isinstance(body, dict) else None
                 img = body.get("image") if isinstance(body, dict) else None
+                ver = body.get("version") if isinstance(body, dict) else None
                 hit = (now, float(cov) if isinstance(cov, (int, float)) and 0 < cov < 1 else None,
-                       img if isinstance(img, str) and img else None)
+                       img if isinstance(img, str) and img else None, ver if isinstance(ver, str) and ver else None)
                 if len(self._cache) >= self.max_keys:
                     self._cache.clear()
                 self._cache[key] = hit
             out[key] = (hit[1], hit[2])
         return out
+
+    def version(self, key: str) -> str | None:
+        """The version of ``key`` as last read by :meth:`lookup` (None: unknown)."""
+        hit = self._cache.get(key)
+        return hit[3] if hit is not None else None

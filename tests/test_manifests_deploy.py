@@ -120,3 +120,18 @@ def test_container_args_are_accepted_by_the_cli() -> None:
         args = [re.sub(r"\$\((\w+)\)", lambda m: env[m.group(1)], a) for a in c["args"]]
         ns = parser.parse_args(args)
         assert ns.command == args[0]
+
+
+def test_service_ports_name_container_ports_and_the_api_metrics_are_scrapeable() -> None:
+    """A Service's named targetPort must be the name of a containerPort of the selected
+    pods (Kubernetes docs, "Service": "targetPort ... can be a string: the name of a port
+    in the Pod"). Both /metrics are reachable from another pod (0.0.0.0), while the sizing
+    API itself stays on the pod's loopback."""
+    docs = render("dry-run")
+    spec = by_kind(docs, "Deployment")[0]["spec"]["template"]["spec"]
+    named = {p["name"]: p["containerPort"] for c in spec["containers"] for p in c.get("ports", [])}
+    svc = by_kind(docs, "Service")[0]
+    targets = {p["targetPort"] for p in svc["spec"]["ports"]}
+    assert targets == {"metrics", "api-metrics"} and targets <= set(named)
+    api = next(c for c in spec["containers"] if c["name"] == "sizing-api")
+    assert {"--metrics-host=0.0.0.0", f"--metrics-port={named['api-metrics']}", "--host=127.0.0.1"} <= set(api["args"])

@@ -13,7 +13,8 @@ Checks (issue 13, "Tests"):
 - one `ratefit plan` with six hours of post-release history marks the container stale
   (reason ModelStale, exceedance ratio in the message) and holds the decrease the old curve
   asks for; a plan at the release time (no post-release history) does not;
-- `ratefit run --once --stale-window 6h --retrain-store …` (policy ``retrain: Auto``)
+- `ratefit run --once --retrain-store …` (policy ``retrain: Auto``; the staleness check is on
+  by default with --prometheus, window 6 h)
   retrains from the samples since the change point, keeps the old version, reloads the API,
   writes the ModelFresh=False condition and a Warning Event; the next plan's proposal is
   within 10 % of the new truth's target: ceil5((1.4 × (0.05 + 0.02 × rate)) × 1.15) — the
@@ -98,7 +99,7 @@ def deployment() -> dict:
 
 def flags(kc: Path, prom: str, api: str, at: float) -> list[str]:
     return ["--kubeconfig", str(kc), "--prometheus", prom, "--rate-metric", METRIC, "--rate-at", f"{at:.3f}",
-            "--sizing-api", api, "--stale-window", "6h", "--timeout", "60"]
+            "--sizing-api", api, "--timeout", "60"]  # the staleness check is on by default (6 h window)
 
 
 def plan(kc: Path, prom: str, api: str, at: float) -> dict:
@@ -111,27 +112,40 @@ def plan(kc: Path, prom: str, api: str, at: float) -> dict:
 
 
 def in_process_ratio(kc: Path, prom: str, api: str, at: float) -> float:
-    """One dry-run pass in this process (same parts as `ratefit plan --stale-window 6h`);
-    the value of ratefit_controller_band_exceedance_ratio for the container."""
+    """Dry-run passes in this process (same parts as `ratefit plan`, staleness check on);
+    the value of ratefit_controller_band_exceedance_ratio for the container. The judgement
+    memo (``controller/stale_memo``) with a clock of our own: a second pass within the
+    re-judge interval sends no usage query and carries the verdict; after it, one more
+    judgement (two range queries)."""
     from ratefit.controller.kube import KubeAdapter
     from ratefit.controller.metrics_source import PrometheusRateSource
     from ratefit.controller.reconcile import ReconcileConfig, Reconciler
     from ratefit.controller.sizing_client import SizingClient
     from ratefit.controller.telemetry import Telemetry
+    from ratefit.controller.stale_memo import JudgementMemo
     from ratefit.controller.usage_source import ModelFacts, PrometheusUsageSource
 
     template = template_for("http-requests-total", metric=METRIC)
+    clock = [1000.0]
+    memo = JudgementMemo(every_s=600, clock=lambda: clock[0])
+    labels = {"workload_namespace": NS, "workload": f"Deployment/{WL}", "workload_container": C}
     with PrometheusClient(prom, timeout=60) as client, SizingClient(api, timeout=60) as sizing:
         kube = KubeAdapter.from_environment(str(kc))
         tel = Telemetry()
+        usage = PrometheusUsageSource(client, template=template, at=at, facts=ModelFacts(sizing), memo=memo)
         rec = Reconciler(kube=kube, rates=PrometheusRateSource(client, at=at, template=template), sizing=sizing,
-                         usage=PrometheusUsageSource(client, template=template, at=at, facts=ModelFacts(sizing)),
-                         config=ReconcileConfig(dry_run=True, write=False), telemetry=tel)
-        result = rec.run_pass()
-        assert [r.why for r in result.rows] == [("ModelStale",)]
-        assert tel.value("ratefit_controller_models_stale") == 1.0
-        return tel.value("ratefit_controller_band_exceedance_ratio", {
-            "workload_namespace": NS, "workload": f"Deployment/{WL}", "workload_container": C})
+                         usage=usage, config=ReconcileConfig(dry_run=True, write=False), telemetry=tel)
+        ratios = []
+        for advance, queries in ((0, 2), (300, 0), (301, 2)):  # judged; carried (5 min later); judged (10 min 1 s)
+            clock[0] += advance
+            sent = usage.queries_sent
+            result = rec.run_pass()
+            assert usage.queries_sent - sent == queries, advance
+            assert [r.why for r in result.rows] == [("ModelStale",)]
+            assert tel.value("ratefit_controller_models_stale") == 1.0
+            ratios.append(tel.value("ratefit_controller_band_exceedance_ratio", labels))
+        assert ratios[0] == ratios[1] == ratios[2]
+        return ratios[0]
 
 
 def test_release_marks_stale_retrains_and_rolls_back(prometheus_from_openmetrics, tmp_path: Path) -> None:

@@ -123,12 +123,19 @@ def add_connection_flags(p: argparse.ArgumentParser, *, sizing_required: bool = 
                    help="evaluate the rates at this time instead of now (replays, reproducible reviews)")
     r.add_argument("--timeout", type=float, default=10.0, help="seconds for each Prometheus and sizing API call (default %(default)s)")
     st = p.add_argument_group("stale models")
-    st.add_argument("--stale-window", metavar="DURATION",
-                    help="each pass, compare every container's CPU usage over this window (e.g. 6h) with its model's "
-                         "upper band and mark a model stale when the excess is significant (one-sided binomial test, "
-                         "level 0.001); needs --prometheus (default: off)")
+    st.add_argument("--stale-window", metavar="DURATION", default=os.environ.get("RATEFIT_STALE_WINDOW") or None,
+                    help="each pass, compare containers' CPU usage over this window with their model's upper band "
+                         "and mark a model stale when the excess is significant (one-sided binomial test, level "
+                         "0.001); 'off' turns the check off (default $RATEFIT_STALE_WINDOW, else 6h with --prometheus; "
+                         "off with --replay, which has no CPU usage series)")
     st.add_argument("--stale-step", default="5m",
                     help="sample step (and rate interval) of that comparison (default %(default)s)")
+    st.add_argument("--stale-every", default="10m", metavar="DURATION",
+                    help="judge a container again when its last judgement is older than this; between judgements "
+                         "it carries its last verdict (default %(default)s)")
+    st.add_argument("--stale-per-pass", type=int, default=100, metavar="N",
+                    help="judge at most N containers per pass (two range queries each): never judged first, then "
+                         "the longest ago (default %(default)s)")
     if p.epilog is None:
         from ratefit.controller.rate_presets import preset_table
 
@@ -183,18 +190,39 @@ def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connect
     kube = kube_from_args(args, **kwargs)
     sizing = SizingClient(args.sizing_api, timeout=args.timeout, token=token)
     usage = None
-    if getattr(args, "stale_window", None):
-        if not args.prometheus:
-            raise InputError("--stale-window needs --prometheus (a replay has no CPU usage series)")
+    window = stale_window(args)
+    if window is not None:
+        from ratefit.controller.stale_memo import JudgementMemo
         from ratefit.controller.usage_source import ModelFacts, PrometheusUsageSource
+        from ratefit.models.durations import parse_duration
 
         try:
-            usage = PrometheusUsageSource(rates.client, template=template, window=args.stale_window,
+            memo = JudgementMemo(every_s=parse_duration(args.stale_every, field="--stale-every"),
+                                 per_pass=args.stale_per_pass)
+            usage = PrometheusUsageSource(rates.client, template=template, window=window,
                                           step=args.stale_step, at=args.rate_at, guard=guard,
-                                          facts=ModelFacts(sizing))
+                                          facts=ModelFacts(sizing), memo=memo,
+                                          max_containers=max(200, args.stale_per_pass))
         except ValueError as exc:
-            raise InputError(f"--stale-window/--stale-step: {exc}") from exc
+            raise InputError(f"--stale-window/--stale-step/--stale-every/--stale-per-pass: {exc}") from exc
     return Connections(kube=kube, rates=rates, sizing=sizing, rate_source=source, usage=usage)
+
+
+def stale_window(args: argparse.Namespace) -> str | None:
+    """The staleness check's window, or None when the check is off: on by default (6 h)
+    with --prometheus, off with --replay (no CPU usage series) unless asked for, which is
+    then an error; 'off', 'none' or '0' turn it off."""
+    from ratefit.controller.usage_source import DEFAULT_WINDOW
+
+    given = getattr(args, "stale_window", None)
+    if given is not None and given.strip().lower() in ("off", "none", "0", "false", "no"):
+        return None
+    if not args.prometheus:
+        if given is not None and not os.environ.get("RATEFIT_STALE_WINDOW"):
+            raise InputError("--stale-window needs --prometheus (a replay has no CPU usage series); "
+                             "leave it out or give --stale-window off")
+        return None
+    return given if given is not None else DEFAULT_WINDOW
 
 
 def sizing_token(args: argparse.Namespace) -> str | None:
@@ -257,7 +285,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--log-level", default="INFO", help="log level (default %(default)s)")
     p.add_argument("--retrain-store", metavar="DIR",
                    help="retrain stale models of policies with retrain: Auto into this model store (the one the "
-                        "sizing API serves), in the background; needs --stale-window")
+                        "sizing API serves), in the background; needs the staleness check (on by default with --prometheus)")
     p.add_argument("--retrain-stale", action="store_true",
                    help="with --retrain-store: retrain every stale model, whatever the policy's retrain says")
     p.add_argument("--retrain-step", default="1m", help="sample step of automatic retraining (default %(default)s)")
@@ -307,7 +335,8 @@ def _run(args: argparse.Namespace) -> int:
     retrainer = None
     if args.retrain_store:
         if conns.usage is None:
-            raise InputError("--retrain-store needs --stale-window (only a stale model is retrained)")
+            raise InputError("--retrain-store needs the staleness check (on by default with --prometheus; "
+                             "not with --replay or --stale-window off): only a stale model is retrained")
         from ratefit.controller.retrain import Retrainer
         from ratefit.models.store import ModelStore
 

@@ -29,7 +29,9 @@ serves the rest. POST /v1/reload re-reads the store without a restart.
 Routes: GET /v1/models, GET /v1/models/NS/WORKLOAD/CONTAINER[/demand?rate=R],
 POST /v1/demand (batch), POST /v1/reload, /healthz, /readyz, /metrics, /docs.
 Binds 127.0.0.1 unless --host says otherwise. With --token-file every route but
-/healthz needs 'Authorization: Bearer <token>'.
+/healthz needs 'Authorization: Bearer <token>'. --metrics-port adds a second listener
+that serves only /metrics and /healthz (no token; the labels name routes and reasons,
+never a model), so Prometheus can scrape an API that binds loopback.
 
 Limits (each refusal is logged and counted in ratefit_api_connections_refused_total):
 a request head (request line and headers) over 64 KiB or with more than 100 header
@@ -100,6 +102,19 @@ def register(sub: argparse._SubParsersAction) -> None:
         metavar="DURATION",
         default="5s",
         help="close a keep-alive connection idle this long between requests (default 5s)",
+    )
+    p.add_argument(
+        "--metrics-port",
+        type=int,
+        default=None,
+        metavar="PORT",
+        help="also serve /metrics (and /healthz) alone on this port, for Prometheus "
+        "(0: any free port; default: off, /metrics only on the API's own port)",
+    )
+    p.add_argument(
+        "--metrics-host",
+        default=DEFAULT_HOST,
+        help=f"address of that metrics listener (default {DEFAULT_HOST}; 0.0.0.0 in a Pod)",
     )
     p.add_argument(
         "--log-level",
@@ -176,6 +191,8 @@ def _run(args: argparse.Namespace) -> int:
     store = existing_store(args.store)
     if not 0 <= args.port <= 65535:
         raise InputError(f"--port {args.port}: must be between 0 and 65535")
+    if args.metrics_port is not None and not 0 <= args.metrics_port <= 65535:
+        raise InputError(f"--metrics-port {args.metrics_port}: must be between 0 and 65535")
     token = read_token(args.token_file) if args.token_file else None
 
     import logging
@@ -234,7 +251,26 @@ def _run(args: argparse.Namespace) -> int:
         server_header=False,
     )
     server = uvicorn.Server(config)
-    server.run(sockets=sockets)
+    listener = None
+    if args.metrics_port is not None:
+        from prometheus_client.exposition import generate_latest
+
+        from ratefit.controller.metrics_listener import MetricsListener
+
+        try:
+            listener = MetricsListener(lambda: generate_latest(metrics.registry), host=args.metrics_host,
+                                       port=args.metrics_port).start()
+        except OSError as exc:
+            for sock in sockets:
+                sock.close()
+            raise InputError(f"--metrics-port {args.metrics_port} on {args.metrics_host} cannot be bound "
+                             f"({exc.strerror or exc}): pick another port") from exc
+        log.info("metrics on %s/metrics", listener.url)
+    try:
+        server.run(sockets=sockets)
+    finally:
+        if listener is not None:
+            listener.stop()
     if not server.started:
         raise InputError(f"could not start the server on {args.host}:{args.port} (see the log above: port in use?)")
     return 0

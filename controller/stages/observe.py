@@ -586,6 +586,18 @@ class Observer:
             running = next((c.image for c in (w.containers if w else ()) if c.name == r.container), None)
             if trained_on and running and running != trained_on:
                 image_msgs[r.key] = f"image changed since training: trained on {trained_on}, runs {running}"
+        # judge only the containers whose turn it is; the others carry their last verdict
+        everyone = list(asked)
+        memo = getattr(self.usage, "memo", None)
+        version_of = getattr(facts_src, "version", None)
+        judged_model = {r.key: (models[(r.namespace, r.policy, r.container)],
+                                version_of(models[(r.namespace, r.policy, r.container)]) if version_of else None)
+                        for r in asked}
+        carried = {}
+        if memo is not None:
+            due = set(memo.due([(r.key, judged_model[r.key]) for r in asked]))
+            carried = memo.known(r.key for r in asked if r.key not in due)
+            asked = [r for r in asked if r.key in due]
         reqs = [UsageRequest(namespace=r.namespace, policy=r.policy, workload_kind=kinds[(r.namespace, r.policy)],
                              workload=r.workload, container=r.container, rate_query=r.query) for r in asked]
         try:
@@ -598,6 +610,8 @@ class Observer:
         for r in asked:
             res = got.get(r.key)
             if res is None or not getattr(res, "count", 0):
+                if memo is not None and res is not None and getattr(res, "answered", False):
+                    memo.put(r.key, judged_model[r.key], None)  # nothing to judge until its next turn
                 continue
             grid = band_rates(res.rates)
             model = models[(r.namespace, r.policy, r.container)]
@@ -606,28 +620,34 @@ class Observer:
         out: dict[str, Staleness] = {
             k: Staleness(samples=0, above=0, nominal=1.0 - self.coverage, p_value=1.0, alpha=self.alpha,
                          image_changed=m) for k, m in image_msgs.items()}
-        if not items:
-            self.telemetry.models_stale.set(len(out))
-            return out
-        try:
-            answers = self.sizing.demand_batch(items)
-        except RatefitError as exc:
-            errors.append(f"sizing API (band for the staleness check): {exc}")
-            return out
+        # the last verdicts of the containers not judged this pass, with today's image check
+        out.update({k: replace(v, image_changed=image_msgs.get(k)) for k, v in carried.items()})
+        answers = []
+        if items:
+            try:
+                answers = self.sizing.demand_batch(items)
+            except RatefitError as exc:
+                errors.append(f"sizing API (band for the staleness check): {exc}")
         if len(answers) != len(items):
-            return out
-        self.telemetry.band_exceedance.clear()
+            answers, spans = [], []
         for r, res, grid, a, b in spans:
             bounds = [sizing_of(x) for x in answers[a:b]]
             if any(v is None for v in bounds):
                 continue
             cov = facts.get(models[(r.namespace, r.policy, r.container)], (None, None))[0] or self.coverage
             st = judge(res.rates, res.cpu, grid, [v.upper for v in bounds],  # type: ignore[union-attr]
-                       coverage=cov, alpha=self.alpha, timestamps=res.timestamps, image_changed=image_msgs.get(r.key))
-            out[r.key] = st
-            self.telemetry.band_exceedance.labels(
-                workload_namespace=r.namespace, workload=f"{kinds[(r.namespace, r.policy)]}/{r.workload}",
-                workload_container=r.container).set(st.ratio)
+                       coverage=cov, alpha=self.alpha, timestamps=res.timestamps)
+            if memo is not None:
+                memo.put(r.key, judged_model[r.key], st)
+            out[r.key] = replace(st, image_changed=image_msgs.get(r.key))
+        # one gauge per container with a verdict (judged now or carried)
+        self.telemetry.band_exceedance.clear()
+        for r in everyone:
+            st = out.get(r.key)
+            if st is not None and st.samples:
+                self.telemetry.band_exceedance.labels(
+                    workload_namespace=r.namespace, workload=f"{kinds[(r.namespace, r.policy)]}/{r.workload}",
+                    workload_container=r.container).set(st.ratio)
         stale = sum(1 for v in out.values() if v.stale)
         self.telemetry.models_stale.set(stale)
         if stale:

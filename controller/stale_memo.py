@@ -1,0 +1,95 @@
+"""Each container's last staleness judgement, kept between passes of ``ratefit run``.
+
+The staleness check (``controller/staleness``) looks at hours of usage (default 6 h); its
+verdict moves slowly, while a pass comes every minute or so. Judging every container every
+pass would cost two range queries per container per pass against Prometheus. So the check
+runs on every pass, but each container is judged again only when its last judgement is
+older than ``every_s`` (default 10 min), at most ``per_pass`` containers per pass — the
+ones never judged first, then the longest ago (a rotation: with more containers than
+``per_pass`` every one still gets its turn). Between judgements a container carries its
+last verdict; a judgement is tied to the model it judged (key and version), so a
+retrained or replaced model is judged afresh on the next pass that has room.
+
+Only answers are remembered: a container whose usage could not be read (Prometheus
+trouble, the source's own cap) is asked again on the next pass. A container with no
+samples at all is remembered as "nothing to judge" until its turn comes again.
+
+Pure apart from the clock (a monotonic clock passed in). Memory is bounded: entries of
+containers no longer asked are dropped each pass.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass
+
+from ratefit.controller.staleness import Staleness
+
+__all__ = ["JudgementMemo", "DEFAULT_EVERY_S", "DEFAULT_PER_PASS"]
+
+#: judge a container again after this many seconds (a 6 h window moves little in 10 min)
+DEFAULT_EVERY_S = 600.0
+#: containers judged at most per pass (two range queries each)
+DEFAULT_PER_PASS = 100
+
+
+@dataclass(frozen=True, slots=True)
+class _Entry:
+    at: float  # monotonic time of the judgement
+    model: tuple[str, str | None]  # (model key, version) judged
+    verdict: Staleness | None  # None: no samples to judge
+
+
+class JudgementMemo:
+    """Which containers are due for judgement this pass, and the last verdict of the others."""
+
+    def __init__(self, *, every_s: float = DEFAULT_EVERY_S, per_pass: int = DEFAULT_PER_PASS,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        if not every_s >= 0:
+            raise ValueError(f"the staleness re-judge interval must be >= 0 seconds, got {every_s}")
+        if per_pass < 1:
+            raise ValueError(f"containers judged per pass must be at least 1, got {per_pass}")
+        self.every_s = float(every_s)
+        self.per_pass = int(per_pass)
+        self._clock = clock
+        self._entries: dict[str, _Entry] = {}
+
+    def due(self, asked: Sequence[tuple[str, tuple[str, str | None]]]) -> list[str]:
+        """Of ``asked`` ((container key, (model key, version)) pairs, in the pass's order),
+        the keys to judge this pass: never judged, judged for another model, or judged more
+        than ``every_s`` ago — never judged first, then oldest first, at most ``per_pass``.
+        Drops the entries of containers not asked (bounded memory)."""
+        now = self._clock()
+        keys = {k for k, _ in asked}
+        for gone in [k for k in self._entries if k not in keys]:
+            del self._entries[gone]
+        candidates: list[tuple[float, int, str]] = []
+        for i, (key, model) in enumerate(asked):
+            e = self._entries.get(key)
+            if e is None or e.model != model:
+                candidates.append((float("-inf"), i, key))
+            elif now - e.at >= self.every_s:
+                candidates.append((e.at, i, key))
+        candidates.sort()
+        return [key for _, _, key in candidates[: self.per_pass]]
+
+    def put(self, key: str, model: tuple[str, str | None], verdict: Staleness | None) -> None:
+        """Remember a judgement made now (``verdict`` None: no samples to judge)."""
+        self._entries[key] = _Entry(at=self._clock(), model=model, verdict=verdict)
+
+    def known(self, keys: Iterable[str]) -> dict[str, Staleness]:
+        """The remembered verdicts of ``keys`` (those with one)."""
+        out: dict[str, Staleness] = {}
+        for k in keys:
+            e = self._entries.get(k)
+            if e is not None and e.verdict is not None:
+                out[k] = e.verdict
+        return out
+
+    def forget(self, key: str) -> None:
+        """Judge ``key`` afresh on the next pass (e.g. after its model was retrained)."""
+        self._entries.pop(key, None)
+
+    def __len__(self) -> int:
+        return len(self._entries)
