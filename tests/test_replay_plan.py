@@ -39,6 +39,12 @@ from test_replay import truth_store
 pytestmark = [pytest.mark.prometheus, pytest.mark.slow]
 
 RATEFIT = Path(sys.executable).with_name("ratefit")
+#: the replay does not model the staleness check (issue 13: on by default in `plan` with
+#: --prometheus since main 09073f4; DEVELOPERS.md "Replay", known limits), and the truth
+#: store's fixed band is no conformal band of the scenario's noise, so the check would call
+#: its models stale: the decisions are compared with the check off, as
+#: tests/test_integration_plan.py does
+NO_STALENESS = ["--stale-window", "off"]
 
 
 def truncated(src: Path, dst: Path, at: float) -> Path:
@@ -136,7 +142,7 @@ def test_replay_decisions_equal_plan_at_several_times(tmp_path: Path, prometheus
             try:
                 p = subprocess.run([str(RATEFIT), "plan", "--kubeconfig", str(kc), "--prometheus", prom.url,
                                     "--rate-metric", REQUEST_METRIC, "--rate-at", str(at), "--sizing-api", api.base_url,
-                                    "--output", "json"], capture_output=True, text=True, timeout=180)
+                                    "--output", "json", *NO_STALENESS], capture_output=True, text=True, timeout=180)
             finally:
                 sb.stop()
             assert p.returncode == 0, p.stderr
