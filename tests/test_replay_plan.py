@@ -39,6 +39,12 @@ from test_replay import truth_store
 pytestmark = [pytest.mark.prometheus, pytest.mark.slow]
 
 RATEFIT = Path(sys.executable).with_name("ratefit")
+#: the replay does not model the staleness check (issue 13: on by default in `plan` with
+#: --prometheus since main 09073f4; DEVELOPERS.md "Replay", known limits), and the truth
+#: store's fixed band is no conformal band of the scenario's noise, so the check would call
+#: its models stale: the decisions are compared with the check off, as
+#: tests/test_integration_plan.py does
+NO_STALENESS = ["--stale-window", "off"]
 
 
 def truncated(src: Path, dst: Path, at: float) -> Path:
@@ -136,7 +142,7 @@ def test_replay_decisions_equal_plan_at_several_times(tmp_path: Path, prometheus
             try:
                 p = subprocess.run([str(RATEFIT), "plan", "--kubeconfig", str(kc), "--prometheus", prom.url,
                                     "--rate-metric", REQUEST_METRIC, "--rate-at", str(at), "--sizing-api", api.base_url,
-                                    "--output", "json"], capture_output=True, text=True, timeout=180)
+                                    "--output", "json", *NO_STALENESS], capture_output=True, text=True, timeout=180)
             finally:
                 sb.stop()
             assert p.returncode == 0, p.stderr
@@ -190,9 +196,11 @@ def test_prometheus_input_gives_the_same_replay_as_the_file(tmp_path: Path, prom
     fa, fb = json.loads(a.stdout), json.loads(b.stdout)
     wa = {w["workload"]: w for w in fa["workloads"]}
     wb = {w["workload"]: w for w in fb["workloads"]}
+    # customs-gateway too: two policies name it, the newer (the twin) is held PolicyConflict
+    # as the live loop holds it, so its rates (only Prometheus can evaluate its own query)
+    # change nothing
+    assert set(wa) == set(wb)
     for w in wa:
-        if w.endswith("/customs-gateway"):
-            continue  # two policies size it: the file cannot evaluate the twin's own query
         assert wa[w]["cpu_hours"] == wb[w]["cpu_hours"], w
         assert (wa[w]["changes"], wa[w]["under_share"]) == (wb[w]["changes"], wb[w]["under_share"]), w
     assert any("rateQuery" in n for n in fa["notes"]) and not any("rateQuery" in n for n in fb["notes"])
@@ -216,3 +224,49 @@ def test_prometheus_input_gives_the_same_replay_as_the_file(tmp_path: Path, prom
     with PrometheusClient(prom.url, timeout=60) as client:
         theirs = custom_rates(client, [(("dispatch/twin", "gateway"), req)], times, rate_step="30s")
     np.testing.assert_allclose(theirs[("dispatch/twin", "gateway")], mine, rtol=1e-6)
+
+
+def test_prometheus_input_replays_the_same_with_and_without_the_shortcuts(tmp_path: Path, monkeypatch,
+                                                                          prometheus_from_openmetrics) -> None:
+    """The history read from a real Prometheus (range selectors; the twin policy's own
+    rateQuery evaluated by the server) replays the same whether settled passes are skipped
+    or every pass is decided through the status text (test_replay_shortcut.both), with the
+    default shared cluster budget; and it equals the file's replay."""
+    import yaml
+
+    from ratefit.controller.replay import read_prometheus
+    from ratefit.controller.replay.engine import pass_times
+    from ratefit.controller.replay.history import custom_rates
+    from ratefit.controller.metrics_source import RateRequest
+    from ratefit.models.prometheus import PrometheusClient
+    from test_replay_conflict import END, objects_with_twin
+    from test_replay_shortcut import assert_same, both
+
+    info = write_openmetrics(tmp_path / "h.om", end=END, hours=30, step_s=60, seed=4)
+    prom = prometheus_from_openmetrics(info.path)
+    objs = objects_with_twin()
+    twin = objs[-1]
+    twin["spec"]["containers"][0]["rateQuery"] = (
+        f'sum by (namespace, pod) (rate({REQUEST_METRIC}{{namespace="dispatch",workload="customs-gateway"}}[2m]))')
+    targets = targets_from_objects(objs)
+    sizer = StoreSizer(truth_store(tmp_path / "store"))
+    start = info.start + 6 * 3600
+    times = pass_times(start, info.end, 300.0)
+    with PrometheusClient(prom.url, timeout=60) as client:
+        hist = read_prometheus(client, start=start - 86400 - 150, end=info.end, request_metric=REQUEST_METRIC,
+                               namespaces=sorted({t.policy.namespace for t in targets.targets}))
+        req = RateRequest(namespace="dispatch", policy=twin["metadata"]["name"], workload="customs-gateway",
+                          container="gateway", query=twin["spec"]["containers"][0]["rateQuery"], rate_window="1d",
+                          percentile=95.0)
+        custom = custom_rates(client, [(("dispatch/customs-gateway-own-query", "gateway"), req)], times,
+                              rate_step="30s")
+    keep = (5, 100, 200)
+    plain, fast, n_plain, n_fast = both(monkeypatch, hist, targets, sizer, start=start, end=info.end,
+                                        options=ReplayOptions(), custom_rates=custom, keep=keep)
+    assert plain.sim.changes and n_fast <= n_plain
+    assert_same(plain, fast)
+    from_file = run_replay(read_openmetrics(info.path, request_metric=REQUEST_METRIC), targets, sizer,
+                           start=start, end=info.end, options=ReplayOptions(), keep=keep)
+    assert from_file.sim.changes == fast.sim.changes
+    from ratefit.controller.replay import to_json
+    assert to_json(from_file.outcome)["workloads"] == to_json(fast.outcome)["workloads"]

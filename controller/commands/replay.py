@@ -37,6 +37,12 @@ quantile of its usage over the window), ratefit (what the policies would have se
 cpu_hours = requested cores x hours over pods; under_share = share of pod-minutes
 whose usage exceeded the request; peak_nodes = most nodes of --node-cpu needed at
 any pass (first-fit decreasing). --report DIR writes plots and a Markdown summary.
+
+A workload under a HorizontalPodAutoscaler on CPU utilisation also gets simulated
+replicas (the autoscaler's rule with each strategy's request in force, within its
+min and max replicas) and reserved CPU = replicas x request for current, fixed,
+ratefit and suggested (the request the review suggests with the autoscaler).
+Two policies naming one workload: the newer is held, as the live loop holds it.
 """
 
 

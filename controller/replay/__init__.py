@@ -10,6 +10,8 @@ Modules, in the order a replay uses them:
 * ``simulate`` — pass by pass, the live loop's own decision (``controller.decide``) with
   its settle/cooldown/budget state carried between passes;
 * ``packing`` — nodes needed: first-fit decreasing;
+* ``replicas`` — the replicas a CPU-utilisation autoscaler would run and the CPU they
+  reserve, per strategy and for the suggested (coupled) size;
 * ``outcome`` — cpu-hours, under-share, changes, peak nodes; table, Markdown, JSON;
 * ``plots`` — requested CPU over time against usage, nodes over time, request steps;
 * ``engine`` — :func:`run_replay`, the whole replay from its parts.

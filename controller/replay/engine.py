@@ -25,13 +25,15 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ratefit.controller.hpa_sizing import sizing_rate
 from ratefit.controller.pod_names import PodAssigner, WorkloadRef
 from ratefit.controller.policy import ResizeBy
 from ratefit.controller.replay.history import History
 from ratefit.controller.replay.inputs import Sizer, Targets
 from ratefit.controller.replay.outcome import STRATEGIES, ContainerFigures, Outcome, container_figures, node_counts, step_values
-from ratefit.controller.replay.series import MINUTE, PodUsage, pod_usage, workload_rates
-from ratefit.controller.replay.simulate import BudgetConfig, SimResult, SizingTrack, simulate
+from ratefit.controller.replay.replicas import AutoscaledFigures, autoscaled_figures, suggested_requests
+from ratefit.controller.replay.series import MINUTE, PodUsage, pod_rate_grid, pod_usage, workload_rates
+from ratefit.controller.replay.simulate import AutoscaledInputs, BudgetConfig, SimResult, SizingTrack, simulate
 from ratefit.models.errors import InputError
 
 __all__ = ["ReplayOptions", "ReplayResult", "run_replay", "pass_times"]
@@ -80,7 +82,8 @@ def _minutes(start: float, end: float) -> np.ndarray:
 PARALLEL_FROM = 200
 
 
-def _simulate(targets: Targets, tracks, times: np.ndarray, options: ReplayOptions, keep: tuple[int, ...]) -> SimResult:
+def _simulate(targets: Targets, tracks, times: np.ndarray, options: ReplayOptions, keep: tuple[int, ...],
+              autoscaled: Mapping[str, AutoscaledInputs] | None = None) -> SimResult:
     """The passes. With no cluster budget (``--budget-per-minute 0 --max-rollouts 0``) no
     workload's decision depends on another's, so many workloads are split over the CPUs
     (forked processes, each simulating its share in the live order); the merged result is
@@ -91,7 +94,7 @@ def _simulate(targets: Targets, tracks, times: np.ndarray, options: ReplayOption
     unlimited = options.budget.per_minute <= 0 and options.budget.max_rollouts <= 0
     if not unlimited or cpus < 2 or len(targets.targets) < PARALLEL_FROM:
         return simulate(targets.targets, tracks, times, as_written=options.as_written, rollout_s=options.rollout_s,
-                        budget=options.budget, keep=keep)
+                        budget=options.budget, keep=keep, autoscaled=autoscaled)
     import multiprocessing as mp
 
     order = sorted(targets.targets, key=lambda t: (t.policy.namespace, t.policy.name))
@@ -105,7 +108,7 @@ def _simulate(targets: Targets, tracks, times: np.ndarray, options: ReplayOption
         def work(part=part, send=send) -> None:
             try:
                 send.send(simulate(part, tracks, times, as_written=options.as_written, rollout_s=options.rollout_s,
-                                   budget=options.budget, keep=keep))
+                                   budget=options.budget, keep=keep, autoscaled=autoscaled))
             except BaseException as exc:  # handed to the parent, which raises it
                 send.send(exc)
             finally:
@@ -158,10 +161,14 @@ def run_replay(history: History, targets: Targets, sizer: Sizer, *, start: float
     assigner = PodAssigner(WorkloadRef(t.policy.namespace, t.policy.workload_kind, t.policy.workload_name)
                            for t in targets.targets)
     pods_of = history.pods_by_workload(assigner)
+    autoscaled: dict[str, AutoscaledInputs] = {}
     for t in targets.targets:
         p = t.policy
         pods = pods_of.get((p.namespace, p.workload_kind, p.workload_name), [])
         counters = [history.requests.get((p.namespace, pod), ()) for pod in pods]
+        scaled = _decision_autoscaler(t, counters, sizer, times, options)
+        if scaled is not None:
+            autoscaled[p.key] = scaled
         for c in p.containers:
             if c.rate_query is not None:
                 rates = (custom_rates or {}).get((p.key, c.name))
@@ -176,13 +183,20 @@ def run_replay(history: History, targets: Targets, sizer: Sizer, *, start: float
                                                     quantile=p.rate_percentile / 100.0, step_s=options.rate_step_s,
                                                     interval_s=options.rate_interval_s)
                 rates = rate_cache[ck]
-            d, u, x = sizer.answers(c.model, rates)
+            asked = rates
+            if scaled is not None and scaled.view.rate_target is not None:
+                # the observe stage asks the sizing API at the rate the autoscaler lets a pod reach
+                f = scaled.facts.get(c.name)
+                cap = f.capacity if f is not None else None
+                asked = np.array([sizing_rate(scaled.view, r, capacity=cap) if math.isfinite(r) else math.nan
+                                  for r in rates.tolist()])
+            d, u, x = sizer.answers(c.model, asked)
             tracks[(p.key, c.name)] = SizingTrack(rate=rates, demand=d, upper=u, extrapolated=x)
     missing = sorted(getattr(sizer, "missing", ()))
     if missing:
         notes.append(f"no model for {', '.join(missing)}: held NoModel")
     say(f"rates and sizing answers ready for {len(tracks)} containers over {len(times)} passes")
-    sim = _simulate(targets, tracks, times, options, keep)
+    sim = _simulate(targets, tracks, times, options, keep, autoscaled)
     say(f"simulated {len(times)} passes: {len(sim.changes)} changes")
     minutes = _minutes(start, end)
     figs: list[ContainerFigures] = []
@@ -229,6 +243,87 @@ def run_replay(history: History, targets: Targets, sizer: Sizer, *, start: float
         c = changes[ch.workload]
         c["changes"] += 1
         c["resizes" if ch.method is ResizeBy.IN_PLACE else "rollouts"] += 1
+    scaled = [_autoscaled(t, history, pods_of, sizer, sim, tracks, times, figs, options, notes)
+              for t in targets.targets if t.autoscaler is not None and t.autoscaler.cpu is not None
+              and t.conflict_with is None]
     outcome = Outcome(start=start, end=end, step_s=options.step_s, node_cpu=options.node_cpu, containers=figs,
-                      changes=changes, nodes=nodes, notes=notes)
+                      changes=changes, nodes=nodes, notes=notes, autoscaled=[a for a in scaled if a is not None])
     return ReplayResult(outcome=outcome, sim=sim, tracks=tracks, minutes=minutes, usage=usage, static=static)
+
+
+def _decision_autoscaler(t, counters, sizer: Sizer, times: np.ndarray,
+                         options: ReplayOptions) -> AutoscaledInputs | None:
+    """What the policy's decisions see of its workload's autoscaler, when it changes them:
+    a per-pod rate target (the sizing rate), or a CPU-utilisation one the policy may act
+    against (``allowHorizontalConflict``: the coupled answer is the target). A held
+    HorizontalConflict gets nothing here: the autoscaler would only add words to its
+    message, and each coupled answer costs milliseconds. Replicas: the pods the history
+    shows with a rate at each pass (their per-pod rates are what the decision reads)."""
+    view = t.autoscaler
+    if view is None or t.conflict_with is not None:
+        return None
+    if view.rate_target is None and not (view.cpu is not None and t.hpa_on_cpu and t.policy.allow_horizontal_conflict):
+        return None
+    running = np.zeros(len(times), dtype=np.int64)
+    for c in counters:
+        running += np.isfinite(pod_rate_grid(c, times, interval_s=options.rate_interval_s))
+    replicas = np.where(running > 0, running, max(view.replicas, 1))
+    facts_of = getattr(sizer, "facts", None)
+    facts = {c.name: facts_of(c.model) if facts_of is not None else None for c in t.policy.containers}
+    return AutoscaledInputs(view=view, replicas=replicas, facts=facts)
+
+
+def _autoscaled(t, history: History, pods_of, sizer: Sizer, sim: SimResult, tracks, times: np.ndarray,
+                figs: list[ContainerFigures], options: ReplayOptions, notes: list[str]) -> AutoscaledFigures | None:
+    """Replicas and reserved CPU of one workload under its CPU-utilisation autoscaler, per
+    strategy (``controller.replay.replicas``)."""
+    p = t.policy
+    view = t.autoscaler
+    wk = p.workload_key
+    measured = [c for c in p.containers if c.name in t.containers
+                and (view.cpu.container is None or view.cpu.container == c.name)]
+    left = [n for n in t.containers if n not in {c.name for c in p.containers}]
+    if view.cpu.container is None and left:
+        notes.append(f"{wk}: the autoscaler measures container(s) {', '.join(left)} too, which the policy does not "
+                     "size; the simulated replicas leave them out")
+    if not measured:
+        return None
+    pods = pods_of.get((p.namespace, p.workload_kind, p.workload_name), [])
+    total = np.zeros(len(times))
+    seen = np.zeros(len(times), dtype=bool)
+    for pod in pods:
+        r = pod_rate_grid(history.requests.get((p.namespace, pod), ()), times, interval_s=options.rate_interval_s)
+        ok = np.isfinite(r)
+        total[ok] += r[ok]
+        seen |= ok
+    total[~seen] = np.nan
+
+    def demand_at(rates: np.ndarray) -> np.ndarray:
+        out = np.zeros(len(rates))
+        for c in measured:
+            out += sizer.answers(c.model, rates)[0]
+        return out
+
+    fixed = {f.container: f.fixed_m for f in figs if f.workload == wk}
+    requests = {
+        "current": {c.name: np.full(len(times), float(t.containers[c.name][0] or 0)) for c in measured},
+        "fixed": {c.name: np.full(len(times), float(math.ceil(fixed.get(c.name, 0.0) - 1e-9))) for c in measured},
+        "ratefit": {c.name: step_values(sim.steps.get((wk, c.name), [(float(times[0]), t.containers[c.name][0])]),
+                                        times).astype(float) for c in measured},
+    }
+    figures = autoscaled_figures(wk, view, containers=[c.name for c in measured], total_rate=total,
+                                 demand_at=demand_at, requests_m=requests, step_s=options.step_s)
+    facts_of = getattr(sizer, "facts", None)
+    if facts_of is None:
+        notes.append(f"{wk}: no suggested size under the autoscaler (it needs the model store: --store)")
+        return figures
+    sug = suggested_requests(view, [c.name for c in measured], {c.name: tracks[(p.key, c.name)].rate for c in measured},
+                             {c.name: facts_of(c.model) for c in measured},
+                             {c.name: t.containers[c.name][0] for c in measured},
+                             figures.replicas["current"], times)
+    requests["suggested"] = {c: np.where(np.isfinite(v), v, requests["ratefit"][c]) for c, v in sug.items()}
+    both = autoscaled_figures(wk, view, containers=[c.name for c in measured], total_rate=total, demand_at=demand_at,
+                              requests_m={"suggested": requests["suggested"]}, step_s=options.step_s)
+    figures.replicas["suggested"] = both.replicas["suggested"]  # type: ignore[index]
+    figures.request_m["suggested"] = both.request_m["suggested"]  # type: ignore[index]
+    return figures

@@ -24,6 +24,8 @@ import yaml
 from ratefit.controller.policy import KIND, PolicyInvalid, parse_policy
 from ratefit.controller.quantity import parse_cpu
 from ratefit.controller.replay.simulate import ReplayTarget
+from ratefit.controller.stages.observe import conflicts
+from ratefit.controller.workload import PolicyObject
 from ratefit.models.errors import InputError, RatefitError
 
 __all__ = ["Targets", "read_manifests", "targets_from_objects", "targets_from_cluster", "StoreSizer", "ApiSizer", "Sizer"]
@@ -79,9 +81,20 @@ def _hpa_on_cpu(spec: Mapping[str, Any]) -> bool:
     return False
 
 
-def targets_from_objects(objs: Iterable[Mapping[str, Any]]) -> Targets:
+def targets_from_objects(objs: Iterable[Mapping[str, Any]], scalers: Sequence[Any] = ()) -> Targets:
+    """``scalers``: HorizontalPodAutoscalers already read (``workload.HorizontalScaler``),
+    besides those among ``objs``."""
+    from ratefit.controller.hpa_sizing import autoscaler_view
+    from ratefit.controller.kube import _hpa as scaler_from_object
+
     workloads: dict[tuple[str, str, str], dict[str, tuple[int | None, int | None]]] = {}
+    replicas: dict[tuple[str, str, str], int] = {}
     hpa: set[tuple[str, str, str]] = set()
+    hpas: dict[tuple[str, str, str], list[Any]] = {}
+    for s in scalers:
+        hpas.setdefault((s.namespace, s.target_kind, s.target_name), []).append(s)
+        if s.scales_on_cpu_utilization:
+            hpa.add((s.namespace, s.target_kind, s.target_name))
     policies: list[Mapping[str, Any]] = []
     notes: list[str] = []
     for o in objs:
@@ -101,15 +114,23 @@ def targets_from_objects(objs: Iterable[Mapping[str, Any]]) -> Targets:
                 notes.append(f"{ns}/{kind}/{key[2]} skipped: {exc}")
                 continue
             workloads[key] = containers
+            n = (o.get("spec") or {}).get("replicas")
+            replicas[key] = n if isinstance(n, int) and not isinstance(n, bool) and n >= 0 else 1
         elif kind == "HorizontalPodAutoscaler":
             spec = o.get("spec") or {}
             ref = spec.get("scaleTargetRef") or {}
+            wk = (ns, ref.get("kind") or "", ref.get("name") or "")
             if _hpa_on_cpu(spec):
-                hpa.add((ns, ref.get("kind") or "", ref.get("name") or ""))
+                hpa.add(wk)
+            try:
+                hpas.setdefault(wk, []).append(scaler_from_object({**o, "metadata": {**meta, "namespace": ns}}))
+            except (TypeError, AttributeError, ValueError) as exc:
+                notes.append(f"HorizontalPodAutoscaler {ns}/{meta.get('name')} not read: {exc}")
         elif kind == KIND:
             policies.append(o)
     targets: list[ReplayTarget] = []
     kinds: dict[str, str] = {}
+    valid: list[tuple[PolicyObject, Any]] = []
     for o in policies:
         meta = o.get("metadata") or {}
         try:
@@ -121,8 +142,23 @@ def targets_from_objects(objs: Iterable[Mapping[str, Any]]) -> Targets:
         if wk not in workloads:
             notes.append(f"SizingPolicy {p.key} skipped: its workload {p.workload_key} is not among the objects read")
             continue
+        valid.append((PolicyObject(namespace=p.namespace, name=p.name, uid="", generation=p.generation or 0,
+                                   resource_version="", spec={}, status={},
+                                   created=str(meta.get("creationTimestamp") or "")), p))
+    # two policies naming one workload: the older acts, the newer is held PolicyConflict and
+    # draws nothing from the budget — the live loop's rule (observe stage), not a copy of it
+    clashes = conflicts(valid)
+    for po, p in valid:
+        wk = (p.namespace, p.workload_kind, p.workload_name)
+        older = clashes.get((p.namespace, p.name))
+        if older is not None:
+            notes.append(f"SizingPolicy {p.key} is held PolicyConflict: {older} is older and names the same "
+                         f"workload {p.workload_key}")
         kinds[p.workload_key] = p.workload_kind
-        targets.append(ReplayTarget(policy=p, containers=workloads[wk], hpa_on_cpu=wk in hpa))
+        view = autoscaler_view(hpas.get(wk, []), metric_name=p.autoscaler_rate_metric,
+                               workload_replicas=replicas.get(wk, 1))
+        targets.append(ReplayTarget(policy=p, containers=workloads[wk], hpa_on_cpu=wk in hpa, conflict_with=older,
+                                    autoscaler=view))
     if not targets:
         raise InputError("no SizingPolicy with its workload to replay"
                          + (f" ({'; '.join(notes[:3])})" if notes else "; give the policies and workloads with -f or --kubeconfig"))
@@ -134,24 +170,24 @@ def targets_from_cluster(kube: Any, namespaces: Sequence[str] = ()) -> Targets:
     from ratefit.controller.policy import GROUP, VERSION
 
     objs: list[dict[str, Any]] = []
+    scalers: list[Any] = []
     pols = list(kube.list_policies(list(namespaces) or None).items)
     objs.extend({"apiVersion": f"{GROUP}/{VERSION}", "kind": KIND,
-                 "metadata": {"namespace": p.namespace, "name": p.name, "generation": p.generation},
+                 "metadata": {"namespace": p.namespace, "name": p.name, "generation": p.generation,
+                              "creationTimestamp": getattr(p, "created", "") or None},
                  "spec": dict(p.spec or {})} for p in pols)
     for ns in sorted({p.namespace for p in pols}):
         for kind in ("Deployment", "StatefulSet"):
             for w in kube.list_workloads(kind, namespace=ns):
                 objs.append({"kind": w.kind.value, "metadata": {"namespace": w.namespace, "name": w.name},
-                             "spec": {"template": {"spec": {"containers": [
+                             "spec": {"replicas": getattr(w, "replicas", None) or 1,
+                                      "template": {"spec": {"containers": [
                                  {"name": c.name, "resources": {
                                      "requests": {} if c.cpu_request_m is None else {"cpu": f"{c.cpu_request_m}m"},
                                      "limits": {} if c.cpu_limit_m is None else {"cpu": f"{c.cpu_limit_m}m"}}}
                                  for c in w.containers]}}}})
-        for h in kube.list_hpas(ns):
-            if h.scales_on_cpu_utilization:
-                objs.append({"kind": "HorizontalPodAutoscaler", "metadata": {"namespace": h.namespace},
-                             "spec": {"scaleTargetRef": {"kind": h.target_kind, "name": h.target_name}}})
-    return targets_from_objects(objs)
+        scalers.extend(kube.list_hpas(ns))
+    return targets_from_objects(objs, scalers)
 
 
 def _api_rounding(cores: np.ndarray) -> np.ndarray:
@@ -181,17 +217,32 @@ class StoreSizer(Sizer):
             raise InputError(f"--store {root}: no such folder")
         self.store = ModelStore(root)
         self._curves: dict[str, Any] = {}
+        self._capacity: dict[str, float | None] = {}
         self.missing: set[str] = set()
 
-    def answers(self, model: str, rates: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        demand, upper, extrap = _empty(len(rates))
+    def _curve(self, model: str) -> Any:
         if model not in self._curves:
             try:
-                self._curves[model] = self.store.load(model).demand_curve()
+                art = self.store.load(model)
+                self._curves[model] = art.demand_curve()
+                self._capacity[model] = art.capacity
             except RatefitError:
                 self._curves[model] = None
                 self.missing.add(model)
-        curve = self._curves[model]
+        return self._curves[model]
+
+    def facts(self, model: str) -> Any:
+        """The model's trained range, per-pod capacity and curve points
+        (``hpa_sizing.facts_from_curve``), as the observe stage gathers them under an
+        autoscaler; None without a model."""
+        from ratefit.controller.hpa_sizing import facts_from_curve
+
+        curve = self._curve(model)
+        return None if curve is None else facts_from_curve(curve, capacity=self._capacity.get(model))
+
+    def answers(self, model: str, rates: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        demand, upper, extrap = _empty(len(rates))
+        curve = self._curve(model)
         ok = np.isfinite(rates) & (rates >= 0)
         if curve is None or not ok.any():
             return demand, upper, extrap

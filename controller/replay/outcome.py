@@ -115,6 +115,9 @@ class Outcome:
     changes: dict[str, dict[str, int]]  # workload → {"changes", "rollouts", "resizes"}
     nodes: dict[str, np.ndarray]  # strategy → nodes needed at each pass
     notes: list[str] = field(default_factory=list)
+    #: workloads under a CPU-utilisation autoscaler: simulated replicas and reserved CPU
+    #: (``controller.replay.replicas``)
+    autoscaled: list[Any] = field(default_factory=list)
 
     def workloads(self) -> list[str]:
         seen: dict[str, None] = {}
@@ -152,6 +155,8 @@ def to_json(o: Outcome) -> dict[str, Any]:
         figs = [c for c in o.containers if c.workload == w]
         wh, wu, wn = _sum(figs)
         ch = o.changes.get(w, zero)
+        scaled = next((a for a in o.autoscaled if a.workload == w), None)
+        extra = {} if scaled is None else _autoscaled_json(scaled)
         workloads.append({
             "workload": w,
             "cpu_hours": {k: _r(v) for k, v in wh.items()},
@@ -166,6 +171,7 @@ def to_json(o: Outcome) -> dict[str, Any]:
                 "fixed_m": _r(c.fixed_m, 1),
                 "pod_minutes": c.pod_minutes,
             } for c in figs],
+            **extra,
         })
     return {
         "from": _iso(o.start),
@@ -183,6 +189,35 @@ def to_json(o: Outcome) -> dict[str, Any]:
         "node_cpu": o.node_cpu,
         "notes": list(o.notes),
     }
+
+
+def _autoscaled_json(a: Any) -> dict[str, Any]:
+    """The extra fields of an autoscaled workload: replicas and reserved CPU per strategy."""
+    strategies = [s for s in (*STRATEGIES, "suggested") if s in a.replicas]
+
+    def stats(x: np.ndarray) -> dict[str, float]:
+        return {"min": int(x.min()), "mean": _r(x.mean(), 2), "max": int(x.max())} if len(x) else {}
+
+    return {
+        "autoscaler": {"hpa": a.hpa, "target_utilization": a.utilization, "min_replicas": a.min_replicas,
+                       "max_replicas": a.max_replicas, "containers": list(a.containers)},
+        "replicas": {s: stats(a.replicas[s]) for s in strategies},
+        "reserved_cpu_hours": {s: _r(a.reserved_cpu_hours(s)) for s in strategies},
+        "pod_request_m": {s: stats(a.request_m[s]) for s in strategies},
+    }
+
+
+def _autoscaled_lines(doc: Mapping[str, Any]) -> list[str]:
+    out = []
+    for w in doc["workloads"]:
+        if "reserved_cpu_hours" not in w:
+            continue
+        a, h, n, r = w["autoscaler"], w["reserved_cpu_hours"], w["replicas"], w["pod_request_m"]
+        parts = [f"{s} {h[s]:.1f} CPU-h ({r[s]['mean']:.0f}m a pod, {n[s]['mean']:.2f} replicas on average, "
+                 f"{n[s]['min']}-{n[s]['max']})" for s in h]
+        out.append(f"{w['workload']} under autoscaler {a['hpa']} (CPU {a['target_utilization']:g} %, "
+                   f"{a['min_replicas']}-{a['max_replicas']} replicas), reserved replicas x request: " + "; ".join(parts))
+    return out
 
 
 def render(o: Outcome, fmt: str) -> str:
@@ -205,10 +240,12 @@ def render(o: Outcome, fmt: str) -> str:
     foot = (f"nodes of {o.node_cpu:g} CPU at the peak: current {pk['current']}, fixed {pk['fixed']}, ratefit {pk['ratefit']}; "
             f"at the end: {en['current']}, {en['fixed']}, {en['ratefit']}; "
             f"{doc['from']} to {doc['to']}, a pass every {doc['step_seconds']}s")
+    scaled = _autoscaled_lines(doc)
     if fmt == "markdown":
         lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
         lines += ["| " + " | ".join(r) + " |" for r in rows]
-        return "\n".join(lines) + f"\n\n{foot}\n" + "".join(f"\n- {n}" for n in doc["notes"]) + "\n"
+        return ("\n".join(lines) + f"\n\n{foot}\n" + "".join(f"\n{x}\n" for x in scaled)
+                + "".join(f"\n- {n}" for n in doc["notes"]) + "\n")
     widths = [max(len(head[i]), *(len(r[i]) for r in rows)) for i in range(len(head))]
     fmt_row = lambda r: "  ".join(c.ljust(widths[0]) if i == 0 else c.rjust(widths[i]) for i, c in enumerate(r))  # noqa: E731
-    return "\n".join([fmt_row(head), *map(fmt_row, rows), foot, *(f"note: {n}" for n in doc["notes"])]) + "\n"
+    return "\n".join([fmt_row(head), *map(fmt_row, rows), foot, *scaled, *(f"note: {n}" for n in doc["notes"])]) + "\n"

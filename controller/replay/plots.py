@@ -4,6 +4,9 @@
   summed over every replayed pod;
 * ``workload-<ns>-<kind>-<name>.png`` — the same per workload;
 * ``nodes.png`` — nodes of --node-cpu needed at each pass, per strategy;
+* ``autoscaled-<ns>-<kind>-<name>.png`` — for a workload under a CPU-utilisation
+  autoscaler: reserved CPU (simulated replicas × request) and replicas over time for
+  current / fixed / ratefit / suggested (``controller.replay.replicas``);
 * ``requests-<ns>-<name>-<container>.png`` — per container its ratefit request steps over
   the usage of each of its pods (and the current and fixed levels);
 * ``summary.md`` and ``replay.json`` — the figures as printed.
@@ -70,6 +73,26 @@ def _strategy_plot(plt, path: Path, result, keys, title: str) -> None:
     plt.close(fig)
 
 
+def _autoscaled_plot(plt, path: Path, a, t) -> None:
+    """Reserved CPU (replicas × request) and replicas over time per strategy, for one
+    workload under a CPU-utilisation autoscaler."""
+    fig, (top, bottom) = plt.subplots(2, 1, figsize=(11, 5.6), sharex=True, height_ratios=(2, 1))
+    for s in a.replicas:
+        top.step(t, a.reserved(s), where="post", lw=1.3, label=f"{s}: {a.reserved_cpu_hours(s):.1f} CPU-h")
+        bottom.step(t, a.replicas[s], where="post", lw=1.1, label=s)
+    top.set_ylabel("reserved CPU cores")
+    top.set_title(f"{a.workload} under autoscaler {a.hpa} (CPU {a.utilization:g} %): replicas x request")
+    top.set_ylim(bottom=0)
+    top.legend(loc="upper left", fontsize=8)
+    bottom.set_ylabel("replicas")
+    bottom.set_ylim(0, a.max_replicas + 0.5)
+    bottom.legend(loc="upper left", fontsize=8, ncol=4)
+    fig.autofmt_xdate()
+    fig.tight_layout()
+    fig.savefig(path, dpi=90)
+    plt.close(fig)
+
+
 def write_report(result, out: Path) -> list[Path]:
     import matplotlib
 
@@ -102,6 +125,10 @@ def write_report(result, out: Path) -> list[Path]:
     fig.savefig(p, dpi=90)
     plt.close(fig)
     written.append(p)
+    for a in o.autoscaled:
+        p = out / f"autoscaled-{_safe(a.workload)}.png"
+        _autoscaled_plot(plt, p, a, t)
+        written.append(p)
     tm = _times(result.minutes)
     for (w, c) in keys:
         current, fixed_m = result.static[(w, c)]

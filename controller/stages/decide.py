@@ -60,17 +60,22 @@ class Decider:
 
     def decide_one(
         self, o: Observed, workload: Workload | None, inputs: Sequence[ContainerInput], now: datetime, mono: float, *,
-        spent: bool = False,
+        spent: bool = False, history: WorkloadHistory | None = None,
     ) -> WorkloadDecision:
         """Decide one policy and take its share of the budget. ``spent``: the budget was
-        already taken for this workload this pass (a recompute after a conflict)."""
+        already taken for this workload this pass (a recompute after a conflict).
+        ``history``: the history to decide from, given directly (the replay carries it
+        from pass to pass); None reads it from the policy's status and the workload's
+        last-change annotation (:func:`history_of`), as the live loop does."""
         p = o.policy
         assert p is not None
         if o.conflict_with is not None:
-            return held_by_conflict(p, inputs, history=history_of(o, workload), older=o.conflict_with)
+            return held_by_conflict(p, inputs, history=history if history is not None else history_of(o, workload),
+                                    older=o.conflict_with)
         apply = self.applies(o)
         view = self.budget.view(mono) if apply and not spent else BudgetView()
-        history = history_of(o, workload)
+        if history is None:
+            history = history_of(o, workload)
         extra = dict(autoscaler=o.autoscaler, replicas=workload.replicas if workload is not None else None)
         wd = decide_workload(p, inputs, history=history, now=now, budget=view,
                              hpa_on_cpu=o.hpa_on_cpu, dry_run=not apply, **extra)

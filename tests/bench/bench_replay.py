@@ -1,6 +1,6 @@
 """Benchmark: `ratefit replay` over 7 days at 5-minute passes, 1,000 workloads / 2,000 containers.
 
-``python -m tests.bench.bench_replay [--workloads 1000] [--days 7] [--scaling]``
+``python -m tests.bench.bench_replay [--workloads 1000] [--days 7] [--scaling] [--with-budget] [--profile FILE]``
 
 INVENTED synthetic cluster: each workload has 2 pods and 2 containers (linear demand
 curves, a daily cycle with a per-workload phase), one in four resizes in place, the rest
@@ -65,8 +65,8 @@ def cluster(workloads: int, days: float, seed: int = 0) -> tuple[History, list[d
                      "spec": {"template": {"spec": {"containers": conts}}}})
         objs.append({"apiVersion": "ratefit.dev/v1alpha1", "kind": "SizingPolicy",
                      "metadata": {"namespace": ns, "name": name},
-                     "spec": {"workload": {"kind": "Deployment", "name": name}, "mode": "apply",
-                              "method": "in-place" if w % 4 == 0 else "rollout",
+                     "spec": {"workload": {"kind": "Deployment", "name": name}, "mode": "Apply",
+                              "resizeBy": "InPlace" if w % 4 == 0 else "Rollout",
                               "containers": [{"name": c, "model": f"{ns}/{name}/{c}"} for c in ("app", "side")]}})
     return History.build(requests, cpu, source="bench"), objs, curves
 
@@ -81,7 +81,7 @@ def write_store(root: Path, curves: dict[str, tuple[float, float]]) -> None:
                             window=DataWindow(source="INVENTED bench"), trained_at="2026-01-01T00:00:00Z").sealed())
 
 
-def one(workloads: int, days: float) -> dict[str, float]:
+def one(workloads: int, days: float, budget: BudgetConfig = BudgetConfig(per_minute=0, max_rollouts=0)) -> dict[str, float]:
     hist, objs, curves = cluster(workloads, days)
     with tempfile.TemporaryDirectory() as tmp:
         write_store(Path(tmp), curves)
@@ -91,7 +91,7 @@ def one(workloads: int, days: float) -> dict[str, float]:
         t0 = time.perf_counter()
         res = run_replay(hist, targets, StoreSizer(tmp), start=hist.start, end=hist.end,
                          options=ReplayOptions(step_s=STEP, rate_interval_s=600.0, rate_step_s=STEP,
-                                               budget=BudgetConfig(per_minute=0, max_rollouts=0)),
+                                               budget=budget),
                          progress=lambda _m: marks.append(time.perf_counter()))
         t3 = time.perf_counter()
         c1 = os.times()
@@ -108,7 +108,27 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--workloads", type=int, default=1000)
     ap.add_argument("--days", type=float, default=7.0)
     ap.add_argument("--scaling", action="store_true", help="also ¼ and ½ of the workloads and of the days")
+    ap.add_argument("--with-budget", action="store_true",
+                    help="the cluster budget of ratefit replay's defaults (2 changes a minute, one rollout at a "
+                         "time): every workload shares it, so the passes run in one process")
+    ap.add_argument("--profile", metavar="FILE",
+                    help="run one size in one process under cProfile (no forked split), write the stats to FILE "
+                         "(pstats format) and print the 25 costliest functions by own time")
     a = ap.parse_args(argv)
+    if a.profile:
+        import cProfile
+        import pstats
+
+        import ratefit.controller.replay.engine as engine
+
+        engine.PARALLEL_FROM = 10**9  # forked workers would escape the profiler
+        prof = cProfile.Profile()
+        r = prof.runcall(one, a.workloads, a.days, BudgetConfig() if a.with_budget else BudgetConfig(0, 0))
+        prof.dump_stats(a.profile)
+        print(f"replay {a.workloads} workloads, {a.days:g} days under cProfile: total {r['total']:.1f} s wall "
+              f"(rates+sizing {r['rates']:.1f} s, passes {r['passes']:.1f} s, figures {r['figures']:.1f} s)")
+        pstats.Stats(a.profile).sort_stats("tottime").print_stats(25)
+        return 0
     import platform
 
     print(f"machine: nproc {os.cpu_count()}, {cpu_model()}, Python {platform.python_version()}")
@@ -117,7 +137,7 @@ def main(argv: list[str] | None = None) -> int:
         sizes = [(a.workloads // 4, a.days), (a.workloads // 2, a.days), (a.workloads, a.days / 4),
                  (a.workloads, a.days / 2), *sizes]
     for w, d in sizes:
-        r = one(w, d)
+        r = one(w, d, BudgetConfig() if a.with_budget else BudgetConfig(per_minute=0, max_rollouts=0))
         print(f"replay {w} workloads / {r['containers']} containers, {d:g} days = {r['passes_n']} passes: "
               f"rates+sizing {r['rates']:.1f} s, passes {r['passes']:.1f} s, usage+figures+nodes {r['figures']:.1f} s, "
               f"total {r['total']:.1f} s wall, {r['cpu']:.1f} s CPU (all processes); "
