@@ -85,7 +85,7 @@ def targets_from_objects(objs: Iterable[Mapping[str, Any]], scalers: Sequence[An
     """``scalers``: HorizontalPodAutoscalers already read (``workload.HorizontalScaler``),
     besides those among ``objs``."""
     from ratefit.controller.hpa_sizing import autoscaler_view
-    from ratefit.controller.kube import _hpa as scaler_from_object
+    from ratefit.controller.kube import hpa_from_json as scaler_from_object
 
     workloads: dict[tuple[str, str, str], dict[str, tuple[int | None, int | None]]] = {}
     replicas: dict[tuple[str, str, str], int] = {}
