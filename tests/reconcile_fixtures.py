@@ -258,3 +258,58 @@ def world(tmp: Path, *, objects: Sequence[Mapping[str, Any]], rates: Mapping[tup
             for c in w._closers:
                 with contextlib.suppress(Exception):
                     c.close()
+
+
+@dataclass
+class RunningController:
+    """A real `ratefit run` process over a :class:`World` (see :func:`running_controller`)."""
+
+    proc: Any
+    log: Path
+    #: the health server's base URL (None with --metrics-port -1)
+    url: str | None = None
+    #: the exit code after SIGTERM (set when the block ends)
+    code: int | None = None
+
+    def log_text(self) -> str:
+        return self.log.read_text()
+
+
+@contextlib.contextmanager
+def running_controller(w: World, *extra: str, health: bool = True, timeout: float = 60.0) -> Iterator[RunningController]:
+    """`ratefit run` against the world's sandbox, history and sizing API, without leader
+    election, plus ``extra`` flags. With ``health`` the health server listens on a free port
+    and the block starts once its URL is logged. The process is always stopped at the end:
+    SIGTERM, at most 30 s to exit (its code in ``code``), then by its PID
+    (``local_servers.stop_process``) whatever happened."""
+    import re
+    import signal
+    import subprocess
+    import sys
+
+    from ratefit.controller.local_servers import stop_process
+
+    ratefit = Path(sys.executable).with_name("ratefit")
+    log_path = w.tmp / "run.log"
+    cmd = [str(ratefit), "run", "--kubeconfig", str(w.kubeconfig), "--replay", str(w.history), "--rate-at", str(w.at),
+           "--sizing-api", w.api_url, "--no-leader-election", "--metrics-port", "0" if health else "-1", *extra]
+    log = open(log_path, "w")
+    proc = subprocess.Popen(cmd, stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
+    run = RunningController(proc=proc, log=log_path)
+    try:
+        deadline = time.monotonic() + timeout
+        while health and run.url is None:
+            assert time.monotonic() < deadline and proc.poll() is None, run.log_text()[-3000:]
+            m = re.search(r"/readyz on (http://\S+)", run.log_text())
+            run.url = m.group(1) if m else None
+            time.sleep(0.05)
+        yield run
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        try:
+            run.code = proc.wait(timeout=30)
+        except subprocess.TimeoutExpired:
+            pass
+        finally:
+            stop_process(proc)
+            log.close()

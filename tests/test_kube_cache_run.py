@@ -6,8 +6,6 @@ INVENTED test scenario (tests/reconcile_fixtures.py)."""
 
 from __future__ import annotations
 
-import re
-import signal
 import subprocess
 import sys
 import time
@@ -17,9 +15,9 @@ import httpx
 from prometheus_client.parser import text_string_to_metric_families
 
 # shared_sizing_api is a pytest fixture (one real `ratefit serve` per session)
-from reconcile_fixtures import deployment, hpa, policy, shared_sizing_api, statefulset, world  # noqa: F401
+from reconcile_fixtures import (  # noqa: F401
+    deployment, hpa, policy, running_controller, shared_sizing_api, statefulset, world)
 from ratefit.controller.kube_cache import CachedKube, KubeCache
-from ratefit.controller.local_servers import stop_process
 
 RATEFIT = Path(sys.executable).with_name("ratefit")
 OBJECTS = [
@@ -73,24 +71,14 @@ def test_readyz_is_503_until_the_cache_has_synced(tmp_path, shared_sizing_api) -
     with world(tmp_path, objects=OBJECTS, api_url=shared_sizing_api, rates=RATES) as w:
         # the cache's first LIST of policies takes 4 s: the controller cannot be ready before
         w.sandbox.faults.add("GET", r"/sizingpolicies$", latency=4.0, count=1)
-        log = open(tmp_path / "run.log", "w")
-        proc = subprocess.Popen([str(RATEFIT), "run", "--kubeconfig", str(w.kubeconfig), "--replay", str(w.history),
-                                 "--rate-at", str(w.at), "--sizing-api", w.api_url, "--interval", "300s",
-                                 "--no-leader-election", "--metrics-port", "0", "--dry-run"],
-                                stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
-        try:
-            url = None
-            deadline = time.monotonic() + 30
-            while url is None:
-                assert time.monotonic() < deadline and proc.poll() is None, (tmp_path / "run.log").read_text()
-                m = re.search(r"/readyz on (http://\S+)", (tmp_path / "run.log").read_text())
-                url = m.group(1) if m else None
-                time.sleep(0.05)
+        deadline = time.monotonic() + 30
+        with running_controller(w, "--interval", "300s", "--dry-run", timeout=30) as run:
+            url = run.url
             r = httpx.get(url + "/readyz", timeout=5)
             assert r.status_code == 503 and "cache has not synced" in r.text
             assert httpx.get(url + "/healthz", timeout=5).status_code == 200
             while httpx.get(url + "/readyz", timeout=5).status_code != 200:
-                assert time.monotonic() < deadline + 30, (tmp_path / "run.log").read_text()[-2000:]
+                assert time.monotonic() < deadline + 30, run.log_text()[-2000:]
                 time.sleep(0.1)
             assert w.sandbox.faults.rules[0].hits == 1  # the delayed LIST was the cache's
             assert w.sizing_policy("shop", "web").get("status", {}).get("observedGeneration") == 1
@@ -102,14 +90,7 @@ def test_readyz_is_503_until_the_cache_has_synced(tmp_path, shared_sizing_api) -
             assert metrics["ratefit_controller_cache_lists_total[('resource', 'sizingpolicies')]"] == 1.0
             # the in-place policy's namespace has a pod informer (shop/a has 2 pods)
             assert metrics["ratefit_controller_cache_objects[('resource', 'pods')]"] >= 2.0
-        finally:
-            proc.send_signal(signal.SIGTERM)
-            try:
-                code = proc.wait(timeout=30)
-            finally:
-                stop_process(proc)
-                log.close()
-        assert code == 0, (tmp_path / "run.log").read_text()[-2000:]
+        assert run.code == 0, run.log_text()[-2000:]
 
 
 def test_a_bad_resync_period_is_an_error_naming_the_flag(tmp_path) -> None:

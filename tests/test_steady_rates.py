@@ -18,7 +18,7 @@ from typing import Any
 import pytest
 from prometheus_client import CollectorRegistry
 
-from reconcile_fixtures import shared_sizing_api, write_history  # noqa: F401
+from reconcile_fixtures import running_controller, shared_sizing_api, write_history  # noqa: F401
 from ratefit.controller.metrics_source import RateRequest, ReplayRateSource
 from ratefit.controller.rates_snapshot import RateSnapshot
 from ratefit.models.errors import RatefitError
@@ -127,35 +127,17 @@ def test_bad_periods_are_refused(source) -> None:
 def test_ratefit_run_with_a_rate_refresh_period_reads_the_snapshot(tmp_path, shared_sizing_api) -> None:
     """A real `ratefit run --rate-refresh 1s` process: passes run, the refresh thread runs,
     its age and refresh time are on /metrics, SIGTERM stops it with exit 0."""
-    import re
-    import signal
-    import subprocess
-    import sys
-    from pathlib import Path
-
     import httpx
     from prometheus_client.parser import text_string_to_metric_families
 
     from reconcile_fixtures import deployment, policy, world
-    from ratefit.controller.local_servers import stop_process
 
-    ratefit = Path(sys.executable).with_name("ratefit")
     objects = [deployment("shop", "web", [("app", "1000m", None)]),
                policy("shop", "web", workload="web", mode="DryRun", containers=[{"name": "app", "model": "shop/web/app"}])]
     with world(tmp_path, objects=objects, api_url=shared_sizing_api, rates={("shop", "web"): [50.0]}) as w:
-        log = open(tmp_path / "run.log", "w")
-        proc = subprocess.Popen([str(ratefit), "run", "--kubeconfig", str(w.kubeconfig), "--replay", str(w.history),
-                                 "--rate-at", str(w.at), "--sizing-api", w.api_url, "--interval", "1s",
-                                 "--rate-refresh", "1s", "--no-leader-election", "--metrics-port", "0", "--dry-run"],
-                                stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
-        try:
+        with running_controller(w, "--interval", "1s", "--rate-refresh", "1s", "--dry-run") as run:
             deadline = time.monotonic() + 60
-            url = None
-            while url is None:
-                assert time.monotonic() < deadline and proc.poll() is None, (tmp_path / "run.log").read_text()
-                m = re.search(r"/readyz on (http://\S+)", (tmp_path / "run.log").read_text())
-                url = m.group(1) if m else None
-                time.sleep(0.05)
+            url = run.url
 
             def metrics() -> dict[str, float]:
                 text = httpx.get(url + "/metrics", timeout=5).text
@@ -163,21 +145,14 @@ def test_ratefit_run_with_a_rate_refresh_period_reads_the_snapshot(tmp_path, sha
                         if not s.labels}
 
             while metrics().get("ratefit_controller_rate_snapshot_refresh_seconds", 0.0) <= 0.0:
-                assert time.monotonic() < deadline, (tmp_path / "run.log").read_text()[-2000:]
+                assert time.monotonic() < deadline, run.log_text()[-2000:]
                 time.sleep(0.1)
             got = metrics()
             assert 0.0 <= got["ratefit_controller_rate_snapshot_age_seconds"] <= 3 * 1.0 + 5.0
             assert got.get("ratefit_controller_rate_snapshot_refresh_errors_total", 0.0) == 0.0
             (row,) = w.sizing_policy("shop", "web")["status"]["containers"]
             assert row["verdict"] == "Proposed" and float(row["rate"]) == pytest.approx(50.0, rel=1e-6)
-        finally:
-            proc.send_signal(signal.SIGTERM)
-            try:
-                code = proc.wait(timeout=30)
-            finally:
-                stop_process(proc)
-                log.close()
-        assert code == 0, (tmp_path / "run.log").read_text()[-2000:]
+        assert run.code == 0, run.log_text()[-2000:]
 
 
 def test_a_bad_rate_refresh_is_an_error_naming_the_flag(tmp_path) -> None:

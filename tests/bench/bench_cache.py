@@ -43,24 +43,8 @@ import time
 import urllib.request
 from pathlib import Path
 
-from tests.bench.bench_reconcile import METRIC, ROOT, _names, _rate, write_store
+from tests.bench.bench_reconcile import METRIC, ROOT, write_history, write_store
 from tests.bench.machine import cpu_model
-
-
-def write_history(path: Path, n: int, n_ns: int, *, end: float, minutes: int = 70, step_s: int = 60) -> None:
-    """One request counter per workload, on one pod named as a Deployment's pod is named
-    (``<name>-<pod-template-hash>-<5 random>``, controller/pod_names): the controller maps
-    pods to workloads by name, so a pod named ``wl-00000-0`` (bench_reconcile's history)
-    is not the Deployment's and every container would be held NoMetrics."""
-    start = end - minutes * 60
-    ts = [start + k * step_s for k in range(minutes * 60 // step_s + 1)]
-    with open(path, "w") as f:
-        f.write(f"# HELP {METRIC[:-6]} Requests (INVENTED benchmark scenario).\n# TYPE {METRIC[:-6]} counter\n")
-        for i, (ns, wl) in enumerate(_names(n, n_ns)):
-            r = _rate(i)
-            lab = f'namespace="{ns}",pod="{wl}-5d4c7b9f8-bcdfg",workload="{wl}"'
-            f.write("".join(f"{METRIC}{{{lab}}} {r * (t - start):.3f} {t:.0f}\n" for t in ts))
-        f.write("# EOF\n")
 
 
 def _rss_mb() -> float:
