@@ -107,3 +107,26 @@ def test_help_says_the_default() -> None:
     out = subprocess.run([str(RATEFIT), "run", "--help"], capture_output=True, text=True, timeout=60).stdout
     flat = " ".join(out.split())
     assert "else 6h with --prometheus" in flat and "--stale-every" in flat and "--stale-per-pass" in flat
+
+
+def test_the_background_judge_runs_one_job_at_a_time_and_never_raises(caplog: pytest.LogCaptureFixture) -> None:
+    import threading
+
+    from ratefit.controller.stale_memo import BackgroundJudge
+
+    judge = BackgroundJudge()
+    gate, ran = threading.Event(), []
+    assert judge.submit(lambda: (gate.wait(10), ran.append(1)))
+    assert not judge.submit(lambda: ran.append(2))  # busy: dropped, the next pass hands it over again
+    gate.set()
+    assert judge.wait(10) and ran == [1] and judge.dropped == 1
+
+    def boom() -> None:
+        raise RuntimeError("Prometheus went away")
+
+    with caplog.at_level("ERROR"):
+        assert judge.submit(boom)
+        assert judge.wait(10)
+    assert "staleness judgement failed" in caplog.text and judge.done == 2
+    judge.stop()
+    assert not judge.submit(lambda: ran.append(3)) and ran == [1]

@@ -145,6 +145,26 @@ def in_process_ratio(kc: Path, prom: str, api: str, at: float) -> float:
             assert tel.value("ratefit_controller_models_stale") == 1.0
             ratios.append(tel.value("ratefit_controller_band_exceedance_ratio", labels))
         assert ratios[0] == ratios[1] == ratios[2]
+
+        # as `ratefit run` does it: the judgement on the background judge's thread, never in
+        # the pass — the first pass hands the container over and holds nothing for staleness;
+        # once the judge is done, the next pass carries its verdict
+        from ratefit.controller.stale_memo import BackgroundJudge
+
+        with SizingClient(api, timeout=60) as own_sizing:
+            judge = BackgroundJudge(sizing=own_sizing)
+            usage = PrometheusUsageSource(client, template=template, at=at, facts=ModelFacts(sizing),
+                                          memo=JudgementMemo(every_s=600, clock=lambda: clock[0]))
+            usage.background = judge
+            rec = Reconciler(kube=kube, rates=PrometheusRateSource(client, at=at, template=template), sizing=sizing,
+                             usage=usage, config=ReconcileConfig(dry_run=True, write=False), telemetry=Telemetry())
+            first = rec.run_pass()
+            assert [r.why for r in first.rows] != [("ModelStale",)]
+            assert judge.wait(120) and judge.done == 1
+            again = rec.run_pass()
+            assert [r.why for r in again.rows] == [("ModelStale",)]
+            assert usage.queries_sent == 2  # judged once, on the judge's thread
+            judge.stop()
         return ratios[0]
 
 

@@ -153,7 +153,8 @@ class Connections:
     usage: Any = None
 
     def close(self) -> None:
-        for obj in (self.sizing, getattr(self.rates, "client", None), self.kube):
+        for obj in (self.sizing, getattr(self.rates, "client", None), getattr(self.usage, "client", None),
+                    getattr(getattr(self.usage, "background", None), "sizing", None), self.kube):
             close = getattr(obj, "close", None)
             if close is not None:
                 try:
@@ -199,7 +200,9 @@ def connect(args: argparse.Namespace, *, identity: str | None = None) -> Connect
         try:
             memo = JudgementMemo(every_s=parse_duration(args.stale_every, field="--stale-every"),
                                  per_pass=args.stale_per_pass)
-            usage = PrometheusUsageSource(rates.client, template=template, window=window,
+            # a client of its own: `ratefit run` judges on a thread beside the pass's queries
+            usage = PrometheusUsageSource(PrometheusClient(args.prometheus, timeout=args.timeout),
+                                          template=template, window=window,
                                           step=args.stale_step, at=args.rate_at, guard=guard,
                                           facts=ModelFacts(sizing), memo=memo,
                                           max_containers=max(200, args.stale_per_pass))
@@ -429,6 +432,13 @@ def _run(args: argparse.Namespace) -> int:
         cache.start()
     if snapshot is not None:
         snapshot.start()
+    judge = None
+    if conns.usage is not None and not args.once:  # judge staleness beside the passes (controller/stale_memo.py)
+        from ratefit.controller.sizing_client import SizingClient
+        from ratefit.controller.stale_memo import BackgroundJudge
+
+        judge = conns.usage.background = BackgroundJudge(
+            sizing=SizingClient(args.sizing_api, timeout=args.timeout, token=sizing_token(args)))
     if args.once and elector is not None:
         # --once as a standby would wait forever: give up after two Lease durations
         patience = 2 * float(getattr(elector, "lease_duration", 15.0)) + float(getattr(elector, "retry_period", 2.0))
@@ -467,6 +477,8 @@ def _run(args: argparse.Namespace) -> int:
             cache.stop()
         if snapshot is not None:
             snapshot.stop()
+        if judge is not None:
+            judge.stop()
         if health is not None:
             health.stop()
         conns.close()

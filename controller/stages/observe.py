@@ -510,6 +510,58 @@ class Observer:
             return None
         return str(v) if v else None
 
+    def _judge(
+        self, asked: Sequence[RateRequest], kinds: Mapping[tuple[str, str], str],
+        models: Mapping[tuple[str, str, str], str], facts: Mapping[str, tuple[float | None, str | None]],
+        judged_model: Mapping[str, tuple[str, str | None]], errors: list[str], memo: object | None, sizing: object,
+    ) -> dict[str, Staleness]:
+        """The judgement of ``asked`` (I/O: two range queries per container, one sizing batch
+        for all bands), remembered in ``memo`` when there is one; the verdicts without the
+        image check. Runs in the pass (plan) or on the background judge's thread (run)."""
+        from ratefit.controller.usage_source import UsageRequest
+
+        out: dict[str, Staleness] = {}
+        if not asked:
+            return out
+        reqs = [UsageRequest(namespace=r.namespace, policy=r.policy, workload_kind=kinds[(r.namespace, r.policy)],
+                             workload=r.workload, container=r.container, rate_query=r.query) for r in asked]
+        try:
+            got = self.usage.usage(reqs)  # type: ignore[union-attr]
+        except RatefitError as exc:
+            errors.append(f"recent usage: {exc}")
+            got = {}
+        items: list[tuple[str, float]] = []
+        spans: list[tuple[RateRequest, object, object, int, int]] = []
+        for r in asked:
+            res = got.get(r.key)
+            if res is None or not getattr(res, "count", 0):
+                if memo is not None and res is not None and getattr(res, "answered", False):
+                    memo.put(r.key, judged_model[r.key], None)  # type: ignore[attr-defined]  # nothing to judge until its next turn
+                continue
+            grid = band_rates(res.rates)
+            model = models[(r.namespace, r.policy, r.container)]
+            spans.append((r, res, grid, len(items), len(items) + len(grid)))
+            items.extend((model, float(g)) for g in grid)
+        answers = []
+        if items:
+            try:
+                answers = sizing.demand_batch(items)  # type: ignore[attr-defined]
+            except RatefitError as exc:
+                errors.append(f"sizing API (band for the staleness check): {exc}")
+        if len(answers) != len(items):
+            answers, spans = [], []
+        for r, res, grid, a, b in spans:
+            bounds = [sizing_of(x) for x in answers[a:b]]
+            if any(v is None for v in bounds):
+                continue
+            cov = facts.get(models[(r.namespace, r.policy, r.container)], (None, None))[0] or self.coverage
+            st = judge(res.rates, res.cpu, grid, [v.upper for v in bounds],  # type: ignore[union-attr]
+                       coverage=cov, alpha=self.alpha, timestamps=res.timestamps)
+            if memo is not None:
+                memo.put(r.key, judged_model[r.key], st)  # type: ignore[attr-defined]
+            out[r.key] = st
+        return out
+
     # -- the workload's horizontal autoscaler (controller/hpa_sizing) ------------------------
     def _autoscaler_views(
         self, valid: Sequence[tuple[PolicyObject, Policy]], workloads: Mapping[tuple[str, str, str], Workload],
@@ -615,8 +667,6 @@ class Observer:
         rates (``controller/staleness``). The band comes from ONE sizing batch for all
         containers, at most ``staleness.MAX_BAND_POINTS`` rates each. Trouble here never
         holds a container: it is simply not judged this pass."""
-        from ratefit.controller.usage_source import UsageRequest
-
         if not asked:
             return {}
         # what the models say about themselves (coverage, training image), when the source knows
@@ -636,53 +686,35 @@ class Observer:
         judged_model = {r.key: (models[(r.namespace, r.policy, r.container)],
                                 version_of(models[(r.namespace, r.policy, r.container)]) if version_of else None)
                         for r in asked}
-        carried = {}
+        carried: dict[str, Staleness] = {}
+        judged: dict[str, Staleness] = {}
         if memo is not None:
             due = set(memo.due([(r.key, judged_model[r.key]) for r in asked]))
-            carried = memo.known(r.key for r in asked if r.key not in due)
             asked = [r for r in asked if r.key in due]
-        reqs = [UsageRequest(namespace=r.namespace, policy=r.policy, workload_kind=kinds[(r.namespace, r.policy)],
-                             workload=r.workload, container=r.container, rate_query=r.query) for r in asked]
-        try:
-            got = self.usage.usage(reqs)  # type: ignore[union-attr]
-        except RatefitError as exc:
-            errors.append(f"recent usage: {exc}")
-            got = {}
-        items: list[tuple[str, float]] = []
-        spans: list[tuple[RateRequest, object, object, int, int]] = []
-        for r in asked:
-            res = got.get(r.key)
-            if res is None or not getattr(res, "count", 0):
-                if memo is not None and res is not None and getattr(res, "answered", False):
-                    memo.put(r.key, judged_model[r.key], None)  # nothing to judge until its next turn
-                continue
-            grid = band_rates(res.rates)
-            model = models[(r.namespace, r.policy, r.container)]
-            spans.append((r, res, grid, len(items), len(items) + len(grid)))
-            items.extend((model, float(g)) for g in grid)
+        background = getattr(self.usage, "background", None)
+        if memo is not None and background is not None:
+            # ratefit run: the judgements run on the judge's thread; the pass reads what is known
+            if asked:
+                job_asked, sizing = list(asked), getattr(background, "sizing", None) or self.sizing
+
+                def job() -> None:
+                    problems: list[str] = []
+                    self._judge(job_asked, kinds, models, facts, judged_model, problems, memo, sizing)
+                    for p in problems:
+                        log.warning("staleness check: %s", p)
+
+                background.submit(job)
+            carried = memo.known(r.key for r in everyone)
+        else:
+            if memo is not None:
+                carried = memo.known(r.key for r in everyone if r.key not in due)
+            judged = self._judge(asked, kinds, models, facts, judged_model, errors, memo, self.sizing)
         out: dict[str, Staleness] = {
             k: Staleness(samples=0, above=0, nominal=1.0 - self.coverage, p_value=1.0, alpha=self.alpha,
                          image_changed=m) for k, m in image_msgs.items()}
-        # the last verdicts of the containers not judged this pass, with today's image check
+        # verdicts with today's image check
         out.update({k: replace(v, image_changed=image_msgs.get(k)) for k, v in carried.items()})
-        answers = []
-        if items:
-            try:
-                answers = self.sizing.demand_batch(items)
-            except RatefitError as exc:
-                errors.append(f"sizing API (band for the staleness check): {exc}")
-        if len(answers) != len(items):
-            answers, spans = [], []
-        for r, res, grid, a, b in spans:
-            bounds = [sizing_of(x) for x in answers[a:b]]
-            if any(v is None for v in bounds):
-                continue
-            cov = facts.get(models[(r.namespace, r.policy, r.container)], (None, None))[0] or self.coverage
-            st = judge(res.rates, res.cpu, grid, [v.upper for v in bounds],  # type: ignore[union-attr]
-                       coverage=cov, alpha=self.alpha, timestamps=res.timestamps)
-            if memo is not None:
-                memo.put(r.key, judged_model[r.key], st)
-            out[r.key] = replace(st, image_changed=image_msgs.get(r.key))
+        out.update({k: replace(v, image_changed=image_msgs.get(k)) for k, v in judged.items()})
         # one gauge per container with a verdict (judged now or carried)
         self.telemetry.band_exceedance.clear()
         for r in everyone:
