@@ -133,7 +133,7 @@ def add_connection_flags(p: argparse.ArgumentParser, *, sizing_required: bool = 
     st.add_argument("--stale-every", default="10m", metavar="DURATION",
                     help="judge a container again when its last judgement is older than this; between judgements "
                          "it carries its last verdict (default %(default)s)")
-    st.add_argument("--stale-per-pass", type=int, default=100, metavar="N",
+    st.add_argument("--stale-per-pass", type=int, default=500, metavar="N",
                     help="judge at most N containers per pass (two range queries each): never judged first, then "
                          "the longest ago (default %(default)s)")
     if p.epilog is None:

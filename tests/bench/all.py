@@ -30,6 +30,7 @@ BENCHES: dict[str, tuple[str, list[str], list[str]]] = {
     "cache": ("tests.bench.bench_cache", [], ["--workloads", "1000", "--no-writes"]),
     "health": ("tests.bench.bench_health", [], ["--idle", "300", "--header-mib", "10"]),
     "profile": ("tests.bench.bench_profile", [], ["--duration", "3", "--rates", "100,300"]),
+    "stale": ("tests.bench.bench_stale", ["--per-pass", "500"], ["--workloads", "300", "--per-pass", "100", "--jobs", "1"]),
     "replay": ("tests.bench.bench_replay", ["--scaling"], ["--workloads", "100", "--days", "2"]),
 }
 
