@@ -167,15 +167,20 @@ def test_no_look_ahead_a_future_spike_changes_no_earlier_decision(tmp_path: Path
     assert any(c.decided_at > hist.end for c in more.sim.changes)  # and the spike does move later passes
 
 
-@pytest.fixture(scope="module")
-def week(tmp_path_factory):
-    """The INVENTED scenario's week, replayed with every policy at its defaults (apply mode)."""
-    tmp = tmp_path_factory.mktemp("week")
-    info = write_openmetrics(tmp / "h.om", end=END, hours=168, step_s=60, seed=0)
+def replay_scenario(tmp: Path, *, hours: int):
+    """(history, targets, replay) of the INVENTED scenario's last ``hours``, every policy at
+    its defaults (apply mode), sized by the scenario's true curves."""
+    info = write_openmetrics(tmp / "h.om", end=END, hours=hours, step_s=60, seed=0)
     hist = read_openmetrics(info.path, request_metric=REQUEST_METRIC)
     targets = targets_from_objects(scenario_objects(default_policies()))
     res = run_replay(hist, targets, StoreSizer(truth_store(tmp / "store")), start=hist.start, end=hist.end)
     return hist, targets, res
+
+
+@pytest.fixture(scope="module")
+def week(tmp_path_factory):
+    """The INVENTED scenario's week, replayed with every policy at its defaults (apply mode)."""
+    return replay_scenario(tmp_path_factory.mktemp("week"), hours=168)
 
 
 def test_defaults_on_the_invented_week_meet_the_acceptance_criteria(week) -> None:

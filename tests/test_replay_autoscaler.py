@@ -23,14 +23,14 @@ import numpy as np
 import pytest
 
 from ratefit.controller.hpa_sizing import AutoscalerView, CpuTarget
-from ratefit.controller.replay import StoreSizer, read_openmetrics, render, run_replay, targets_from_objects, to_json
+from ratefit.controller.replay import StoreSizer, read_openmetrics, render, targets_from_objects, to_json
 from ratefit.controller.replay.plots import write_report
 from ratefit.controller.replay.replicas import autoscaled_figures, hpa_replicas, pod_demand
 from ratefit.models.scenario import write_openmetrics
 from ratefit.models.scenario.manifests import default_policies
 from ratefit.models.scenario.services import HPA_TARGET_UTILISATION, REQUEST_METRIC
 from ratefit.models.scenario.truth import Shape, Truth
-from test_replay import END, scenario_objects, truth_store
+from test_replay import END, replay_scenario, scenario_objects, truth_store
 
 
 def test_replicas_follow_the_documented_rule_on_a_hand_worked_example() -> None:
@@ -79,12 +79,7 @@ def test_one_sync_per_pass_15_seconds_apart_reaches_the_bounds() -> None:
 @pytest.fixture(scope="module")
 def two_days(tmp_path_factory):
     """The INVENTED scenario's last two days replayed with every policy at its defaults."""
-    tmp = tmp_path_factory.mktemp("two-days")
-    info = write_openmetrics(tmp / "h.om", end=END, hours=48, step_s=60, seed=0)
-    hist = read_openmetrics(info.path, request_metric=REQUEST_METRIC)
-    targets = targets_from_objects(scenario_objects(default_policies()))
-    res = run_replay(hist, targets, StoreSizer(truth_store(tmp / "store")), start=hist.start, end=hist.end)
-    return res
+    return replay_scenario(tmp_path_factory.mktemp("two-days"), hours=48)[2]
 
 
 # the scenario's true curves of dispatch/tracking-api (models/scenario/services.py): the

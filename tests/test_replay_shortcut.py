@@ -25,8 +25,8 @@ from ratefit.controller.stages.decide import Decider
 from ratefit.models.scenario import write_openmetrics
 from ratefit.models.scenario.manifests import default_policies
 from ratefit.models.scenario.services import REQUEST_METRIC
-from ratefit.models.curve import DemandCurve
-from ratefit.models.store import Artifact, CurveData, CVRow, DataWindow, ModelStore
+from ratefit.models.store import ModelStore
+from api_fixtures import make_artifact
 from test_replay import END, scenario_objects, truth_store
 
 
@@ -34,11 +34,7 @@ def write_store(root: Path, curves: dict[str, tuple[float, float]]) -> None:
     """Linear INVENTED curves base + slope × rate with a 0.01-core band."""
     store = ModelStore(root)
     for key, (base, slope) in curves.items():
-        curve = DemandCurve.tabulate(lambda r, b=base, s=slope: b + s * r, rate_lo=0.0, rate_hi=400.0, band=0.01)
-        store.save(Artifact(key=key, chosen="linear", coverage=0.95, rate_range=(0.0, 400.0),
-                            curve=CurveData(**curve.to_dict()), samples=1, samples_total=1, dropped={},
-                            cv=[CVRow(model="linear", rmse=0.0, mae=0.0, p95=0.0)], folds=5, seed=0,
-                            window=DataWindow(source="INVENTED plateaus"), trained_at="2026-01-01T00:00:00Z").sealed())
+        store.save(make_artifact(key, base=base, slope=slope, rate_hi=400.0, band=0.01))
 
 
 def both(monkeypatch, *args, **kwargs):

@@ -27,8 +27,7 @@ import numpy as np
 from ratefit.controller.replay import History, StoreSizer, run_replay, targets_from_objects
 from ratefit.controller.replay.engine import ReplayOptions
 from ratefit.controller.replay.simulate import BudgetConfig
-from ratefit.models.curve import DemandCurve
-from ratefit.models.store import Artifact, CurveData, CVRow, DataWindow, ModelStore
+from ratefit.models.store import ModelStore
 from tests.bench.machine import cpu_model
 
 STEP = 300.0
@@ -72,13 +71,12 @@ def cluster(workloads: int, days: float, seed: int = 0) -> tuple[History, list[d
 
 
 def write_store(root: Path, curves: dict[str, tuple[float, float]]) -> None:
+    """Linear INVENTED curves base + slope × rate with a 0.01-core band."""
+    from tests.api_fixtures import make_artifact
+
     store = ModelStore(root)
     for key, (base, slope) in curves.items():
-        curve = DemandCurve.tabulate(lambda r, b=base, s=slope: b + s * r, rate_lo=0.0, rate_hi=600.0, band=0.01)
-        store.save(Artifact(key=key, chosen="linear", coverage=0.95, rate_range=(0.0, 600.0),
-                            curve=CurveData(**curve.to_dict()), samples=1, samples_total=1, dropped={},
-                            cv=[CVRow(model="linear", rmse=0.0, mae=0.0, p95=0.0)], folds=5, seed=0,
-                            window=DataWindow(source="INVENTED bench"), trained_at="2026-01-01T00:00:00Z").sealed())
+        store.save(make_artifact(key, base=base, slope=slope, rate_hi=600.0, band=0.01))
 
 
 def one(workloads: int, days: float, budget: BudgetConfig = BudgetConfig(per_minute=0, max_rollouts=0)) -> dict[str, float]:
