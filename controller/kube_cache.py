@@ -7,28 +7,15 @@ What it follows, each kind in each scope on its own thread (an :class:`Informer`
   autoscaling/v2 HorizontalPodAutoscalers — in every namespace given by ``--namespace``
   (one LIST+WATCH per namespace and kind; with a namespace list there is NEVER a
   cluster-wide request: namespace-scoped RBAC refuses those), else cluster-wide;
-* pods only where a policy asks for ``method: in-place``: one pod informer per
+* pods only where a policy asks for ``resizeBy: InPlace``: one pod informer per
   namespace that holds at least one such policy, started and stopped as policies come
   and go (watching pods per label selector would cost one watch per workload; watching
   all pods of the cluster would hold every pod in memory). Until a namespace's pod
   informer has synced, :meth:`KubeCache.list_pods` asks the API server (``live``).
 
-Each informer (``controller/kube_informer.py``) follows the reflector pattern of the
-Kubernetes client libraries (the Python client has no informer cache — DESIGN.md
-"Kubernetes facts"):
-
-1. a paged LIST (``limit``/``continue``, 500 a page) replaces the informer's store at
-   once, and gives the resourceVersion to watch from;
-2. a WATCH from that resourceVersion with ``allowWatchBookmarks=true``; each ADDED /
-   MODIFIED / DELETED updates the store, each BOOKMARK (which carries only
-   ``metadata.resourceVersion``) moves the position; the server ends each watch after
-   ``timeoutSeconds`` (5-10 min, jittered) and it is reopened from the last position;
-3. a dropped stream (connection cut, read timeout) is resumed from the last
-   resourceVersion seen — nothing was missed, so no LIST is needed; if the server
-   answers that position with 410 Gone (or any other watch ERROR, e.g. 504 "Too large
-   resource version" after a server restart), the informer LISTs again (a relist);
-4. every ``resync_s`` (default 10 min, 0: never) a full relist, so a store that ever
-   drifted converges; temporary errors back off (capped, jittered) and retry for ever.
+Each informer (``controller/kube_informer.py``, whose docstring gives the steps) is a
+paged LIST, then a WATCH with bookmarks resumed from the last resourceVersion, a relist on
+410 Gone or another watch error, and a full relist every ``resync_s`` (default 10 min).
 
 Reads are dictionary lookups under a short lock (indexed by kind, then namespace,
 then name) and return the values the adapter's reads return (``controller/workload.py``

@@ -23,6 +23,7 @@ marked).
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 
@@ -171,7 +172,7 @@ class ModelFacts:
     at most once per model per ``ttl_s``. A model the API cannot describe gets no facts
     (default coverage, no image check)."""
 
-    def __init__(self, sizing: object, *, ttl_s: float = 600.0, max_keys: int = 10_000) -> None:
+    def __init__(self, sizing: object, *, ttl_s: float = 600.0, max_keys: int = 100_000) -> None:
         import time
 
         self.sizing = sizing
@@ -179,19 +180,26 @@ class ModelFacts:
         self.max_keys = max_keys
         self._clock = time.monotonic
         self._cache: dict[str, tuple[float, float | None, str | None, str | None]] = {}
+        self._lock = threading.Lock()
 
-    def lookup(self, keys: Sequence[str]) -> dict[str, tuple[float | None, str | None]]:
-        """key → (coverage or None, image or None)."""
+    def lookup(self, keys: Sequence[str], *, fetch: bool = True,
+               via: object | None = None) -> dict[str, tuple[float | None, str | None]]:
+        """key → (coverage or None, image or None). ``fetch=False``: only what is cached
+        (also past its ttl; an unknown key gets no facts) — no request, for a pass that
+        must not wait. ``via``: the sizing client to ask instead of the one given at
+        construction (a thread of its own uses its own client)."""
         from ratefit.models.errors import RatefitError
 
+        client = via if via is not None else self.sizing
         now = self._clock()
         out: dict[str, tuple[float | None, str | None]] = {}
         for key in dict.fromkeys(keys):
-            hit = self._cache.get(key)
-            if hit is None or now - hit[0] > self.ttl_s:
+            with self._lock:
+                hit = self._cache.get(key)
+            if fetch and (hit is None or now - hit[0] > self.ttl_s):
                 try:
                     # the sizing client's one call path (bounded, token, errors translated)
-                    body = self.sizing._call("GET", f"/v1/models/{key}")  # type: ignore[attr-defined]
+                    body = client._call("GET", f"/v1/models/{key}")  # type: ignore[attr-defined]
                 except (RatefitError, AttributeError):
                     body = None
                 cov = body.get("coverage") if isinstance(body, dict) else None
@@ -199,13 +207,15 @@ class ModelFacts:
                 ver = body.get("version") if isinstance(body, dict) else None
                 hit = (now, float(cov) if isinstance(cov, (int, float)) and 0 < cov < 1 else None,
                        img if isinstance(img, str) and img else None, ver if isinstance(ver, str) and ver else None)
-                if len(self._cache) >= self.max_keys:
-                    self._cache.clear()
-                self._cache[key] = hit
-            out[key] = (hit[1], hit[2])
+                with self._lock:
+                    if len(self._cache) >= self.max_keys:
+                        self._cache.clear()
+                    self._cache[key] = hit
+            out[key] = (hit[1], hit[2]) if hit is not None else (None, None)
         return out
 
     def version(self, key: str) -> str | None:
         """The version of ``key`` as last read by :meth:`lookup` (None: unknown)."""
-        hit = self._cache.get(key)
+        with self._lock:
+            hit = self._cache.get(key)
         return hit[3] if hit is not None else None

@@ -26,8 +26,7 @@ from api_fixtures import serve_process
 from reconcile_fixtures import CRD, policy
 from ratefit.controller.permissions import CONTROLLER_PERMISSIONS, LEASE_PERMISSIONS, all_permissions
 from ratefit.models.scenario.services import REQUEST_METRIC, SCENARIO
-from ratefit.models.store import ModelStore
-from test_integration_plan import truth_artifact
+from test_integration_plan import write_truth_store
 
 pytestmark = pytest.mark.prometheus
 
@@ -47,11 +46,7 @@ def world(scenario_prometheus, tmp_path_factory):
     from ratefit.models.scenario.manifests import manifest_objects
 
     tmp = tmp_path_factory.mktemp("check")
-    store = ModelStore(tmp / "store")
-    for svc in SCENARIO:
-        for c in svc.containers:
-            store.save(truth_artifact(f"{svc.namespace}/{svc.workload}/{c.name}", c.truth,
-                                      2.0 * svc.rate_profile.peak / svc.replicas * (1 + svc.rate_profile.imbalance)))
+    write_truth_store(tmp / "store")
     sb = SandboxServer(host="127.0.0.1", port=0, load=[CRD]).start()
     try:
         for objs in manifest_objects().values():

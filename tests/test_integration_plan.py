@@ -61,16 +61,21 @@ def scenario_policies(mode: str) -> list[dict]:
     return out
 
 
-@pytest.fixture(scope="module")
-def parts(scenario_prometheus, tmp_path_factory):
-    """(prometheus history, sizing API url, store dir) shared by the module."""
-    tmp = tmp_path_factory.mktemp("integration")
-    store = ModelStore(tmp / "store")
+def write_truth_store(root: Path) -> None:
+    """The scenario's true curves, one artifact per container."""
+    store = ModelStore(root)
     for svc in SCENARIO:
         for c in svc.containers:
             # the grid spans twice the busiest pod's peak rate (fine enough for the step shape)
             hi = 2.0 * svc.rate_profile.peak / svc.replicas * (1 + svc.rate_profile.imbalance)
             store.save(truth_artifact(f"{svc.namespace}/{svc.workload}/{c.name}", c.truth, hi))
+
+
+@pytest.fixture(scope="module")
+def parts(scenario_prometheus, tmp_path_factory):
+    """(prometheus history, sizing API url, store dir) shared by the module."""
+    tmp = tmp_path_factory.mktemp("integration")
+    write_truth_store(tmp / "store")
     with serve_process(tmp / "store", workdir=tmp) as api:
         yield scenario_prometheus, api.base_url, tmp
 

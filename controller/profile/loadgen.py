@@ -187,13 +187,7 @@ class LoadGenerator:
             if self._idle:
                 return self._idle.pop()
             if self._open < self.max_connections:
-                self._open += 1
-                try:
-                    return await self._connect()
-                except BaseException:
-                    self._open -= 1
-                    await self._notify()
-                    raise
+                return await self._open_counted()
             async with self._freed:
                 await self._freed.wait()
 
@@ -206,6 +200,10 @@ class LoadGenerator:
                 break
             async with self._freed:  # type: ignore[union-attr]
                 await self._freed.wait()  # type: ignore[union-attr]
+        return await self._open_counted()
+
+    async def _open_counted(self) -> _Conn:
+        """Connect, counting the connection as open (uncounted again if connecting fails)."""
         self._open += 1
         try:
             return await self._connect()

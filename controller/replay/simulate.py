@@ -4,7 +4,7 @@ carried from pass to pass.
 Per pass at time T and per policy (in the live loop's order: namespace, name):
 
 1. inputs as the live loop gathers them: each container's current request and limit
-   (the pod template; for ``method: in-place`` what the pods run after earlier resizes),
+   (the pod template; for ``resizeBy: InPlace`` what the pods run after earlier resizes),
    the rate at T (:mod:`controller.replay.series`, from samples up to T only) and the
    sizing answer at that rate;
 2. the decision by the live loop's decide stage (``controller.stages.decide.Decider.

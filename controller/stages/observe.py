@@ -669,9 +669,12 @@ class Observer:
         holds a container: it is simply not judged this pass."""
         if not asked:
             return {}
-        # what the models say about themselves (coverage, training image), when the source knows
+        # what the models say about themselves (coverage, training image), when the source knows;
+        # with a background judge the pass reads only what is cached (the judge asks the API)
         facts_src = getattr(self.usage, "facts", None)
-        facts = facts_src.lookup([models[(r.namespace, r.policy, r.container)] for r in asked]) if facts_src else {}
+        background = getattr(self.usage, "background", None)
+        facts = facts_src.lookup([models[(r.namespace, r.policy, r.container)] for r in asked],
+                                 fetch=background is None) if facts_src else {}
         image_msgs: dict[str, str] = {}
         for r in asked:
             trained_on = facts.get(models[(r.namespace, r.policy, r.container)], (None, None))[1]
@@ -691,7 +694,6 @@ class Observer:
         if memo is not None:
             due = set(memo.due([(r.key, judged_model[r.key]) for r in asked]))
             asked = [r for r in asked if r.key in due]
-        background = getattr(self.usage, "background", None)
         if memo is not None and background is not None:
             # ratefit run: the judgements run on the judge's thread; the pass reads what is known
             if asked:
@@ -699,7 +701,12 @@ class Observer:
 
                 def job() -> None:
                     problems: list[str] = []
-                    self._judge(job_asked, kinds, models, facts, judged_model, problems, memo, sizing)
+                    job_facts = facts_src.lookup([models[(r.namespace, r.policy, r.container)] for r in job_asked],
+                                                 via=sizing) if facts_src else {}
+                    # the versions as just read, so the next pass finds the judgement its own
+                    job_model = {r.key: (judged_model[r.key][0], version_of(judged_model[r.key][0])
+                                         if version_of else None) for r in job_asked}
+                    self._judge(job_asked, kinds, models, job_facts, job_model, problems, memo, sizing)
                     for p in problems:
                         log.warning("staleness check: %s", p)
 
