@@ -43,6 +43,8 @@ from ratefit.models.errors import InputError
 
 __all__ = [
     "DEFAULT_TOLERANCE",
+    "DEFAULT_SCALE_DOWN_WINDOW_S",
+    "RecommendationWindow",
     "desired_replicas",
     "RateTargetSizing",
     "size_for_rate_target",
@@ -105,6 +107,54 @@ def desired_replicas(
     if max_replicas is not None:
         out = min(out, int(max_replicas))
     return out
+
+
+# -- the stabilization window -------------------------------------------------------
+
+#: behavior.scaleDown.stabilizationWindowSeconds when unset (autoscaling/v2 API reference,
+#: HPAScalingRules: "For scale down: 300"; scale up: 0, no stabilization); at most 3600
+DEFAULT_SCALE_DOWN_WINDOW_S = 300.0
+MAX_STABILIZATION_WINDOW_S = 3600.0
+
+
+class RecommendationWindow:
+    """The autoscaler's memory of its recent recommendations, which damps scaling down
+    (KEP-853 "Configurable scale velocity for HPA", algorithm pseudocode; the API
+    reference's HPAScalingRules.stabilizationWindowSeconds): each sync it records its
+    recommendation, and the count it sets is
+
+    * at least the lowest recommendation within the scale-up window (0 s by default:
+      the recommendation itself, so scaling up is immediate),
+    * at most the highest recommendation within the scale-down window (300 s by
+      default: the count falls only when every recommendation of the last 5 minutes
+      is lower),
+
+    starting from the current count. A recommendation counts while its time is after
+    ``now - window``. Pure: times are the caller's (simulated seconds)."""
+
+    __slots__ = ("down_s", "up_s", "_recs")
+
+    def __init__(self, *, down_s: float = DEFAULT_SCALE_DOWN_WINDOW_S, up_s: float = 0.0) -> None:
+        self.down_s = _finite("scale-down stabilization window", down_s, nonneg=True)
+        self.up_s = _finite("scale-up stabilization window", up_s, nonneg=True)
+        if max(self.down_s, self.up_s) > MAX_STABILIZATION_WINDOW_S:
+            raise InputError(f"a stabilization window is at most {MAX_STABILIZATION_WINDOW_S:.0f} s "
+                             f"(autoscaling/v2), got {max(self.down_s, self.up_s):g}")
+        self._recs: list[tuple[float, int]] = []  # (time, recommendation), oldest first
+
+    def stabilize(self, now: float, current: int, recommendation: int) -> int:
+        """Record ``recommendation`` made at ``now`` and return the count to set."""
+        keep = max(self.down_s, self.up_s)
+        self._recs = [(t, r) for t, r in self._recs if t > now - keep]
+        up = min([recommendation] + [r for t, r in self._recs if t > now - self.up_s])
+        down = max([recommendation] + [r for t, r in self._recs if t > now - self.down_s])
+        self._recs.append((now, int(recommendation)))
+        out = int(current)
+        if out < up:
+            out = up
+        if out > down:
+            out = down
+        return out
 
 
 # -- an autoscaler on a per-pod request rate ----------------------------------------

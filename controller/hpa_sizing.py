@@ -100,6 +100,8 @@ class AutoscalerView:
     cpu: CpuTarget | None = None
     #: something the review should say (several autoscalers, several Pods metrics …)
     note: str = ""
+    #: behavior.scaleDown.stabilizationWindowSeconds (the replay's replica simulation)
+    scale_down_window_s: float = 300.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -186,6 +188,7 @@ def autoscaler_view(
         hpa=f"{h.namespace}/{h.name}", replicas=max(0, int(replicas)),
         min_replicas=h.min_replicas if h.min_replicas is not None else 1,
         max_replicas=h.max_replicas, tolerance=h.tolerance, rate_target=rate, cpu=cpu, note="; ".join(notes),
+        scale_down_window_s=h.scale_down_window_s,
     )
 
 

@@ -865,6 +865,13 @@ def _scale_up_tolerance(spec: Mapping[str, Any]) -> float:
     return tol if tol is not None else 0.1  # Kubernetes docs: the default tolerance 0.1
 
 
+def _scale_down_window(spec: Mapping[str, Any]) -> float:
+    down = ((spec.get("behavior") or {}).get("scaleDown") or {}) if isinstance(spec.get("behavior"), Mapping) else {}
+    w = _whole(down.get("stabilizationWindowSeconds")) if isinstance(down, Mapping) else None
+    # autoscaling/v2 API reference: 0..3600, default 300 for scale down
+    return float(w) if w is not None and 0 <= w <= 3600 else 300.0
+
+
 def _hpa(obj: Mapping[str, Any]) -> HorizontalScaler:
     meta = obj.get("metadata") or {}
     spec = obj.get("spec") or {}
@@ -881,6 +888,7 @@ def _hpa(obj: Mapping[str, Any]) -> HorizontalScaler:
         max_replicas=_whole(spec.get("maxReplicas")),
         current_replicas=_whole(status.get("currentReplicas")) if isinstance(status, Mapping) else None,
         tolerance=_scale_up_tolerance(spec),
+        scale_down_window_s=_scale_down_window(spec),
     )
 
 

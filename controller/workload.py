@@ -171,6 +171,8 @@ class HorizontalScaler:
     current_replicas: int | None = None  # status.currentReplicas, when the HPA has run
     #: behavior.scaleUp.tolerance (Kubernetes 1.33+), else the default 0.1
     tolerance: float = 0.1
+    #: behavior.scaleDown.stabilizationWindowSeconds, else the default 300
+    scale_down_window_s: float = 300.0
 
 
 @dataclass(frozen=True, slots=True)

@@ -50,8 +50,10 @@ def test_replicas_follow_the_documented_rule_on_a_hand_worked_example() -> None:
     With 1000m a pod at 900 req/s, from 3 pods: 30 % → ratio 0.5 → ceil(1.5) = 2; at 2
     pods 45 % → ratio 0.75 → ceil(1.5) = 2 → 2 pods, 2.0 cores (500m: 3 pods, 1.5 cores).
     """
+    # no stabilization window here (each pass settles at the rule's fixed point); the window
+    # is checked by tests/test_autoscaler_window.py
     view = AutoscalerView(hpa="ns/w", replicas=2, min_replicas=1, max_replicas=6, tolerance=0.1,
-                          cpu=CpuTarget(utilization=60.0))
+                          cpu=CpuTarget(utilization=60.0), scale_down_window_s=0.0)
     total = np.array([900.0, 950.0, 3000.0, 120.0, np.nan])
     demand = pod_demand(lambda x: x * 0.001, total, 1, 6)  # U = X·S with S = 1 ms
     got = hpa_replicas(view, demand, np.full(5, 500.0), step_s=300.0)
@@ -67,8 +69,10 @@ def test_replicas_follow_the_documented_rule_on_a_hand_worked_example() -> None:
 def test_one_sync_per_pass_15_seconds_apart_reaches_the_bounds() -> None:
     """Passes 15 s apart allow one sync of the autoscaler each (its default
     --horizontal-pod-autoscaler-sync-period, Kubernetes docs); S = 1 ms, 500m, 60 %."""
+    # no stabilization window here (each pass settles at the rule's fixed point); the window
+    # is checked by tests/test_autoscaler_window.py
     view = AutoscalerView(hpa="ns/w", replicas=2, min_replicas=1, max_replicas=6, tolerance=0.1,
-                          cpu=CpuTarget(utilization=60.0))
+                          cpu=CpuTarget(utilization=60.0), scale_down_window_s=0.0)
     total = np.array([3000.0, 120.0])
     demand = pod_demand(lambda x: x * 0.001, total, 1, 6)
     # by hand, one sync per pass: 2 pods at 1500 req/s each = 1.5 cores = 300 % → ratio 5 →
@@ -135,17 +139,25 @@ def test_the_demo_autoscaled_workload_shows_the_suggested_size_against_today(two
     # every pass and strategy: the count is the documented rule's fixed point for the load
     # (U = X·S from the true curves), except where the load sits within 0.5 % of a threshold
     # (the store answers in whole millicores, rounded up)
+    # — or, just after the load fell, the count the stabilization window still holds (API
+    # reference, HPAScalingRules: scale down waits 300 s by default): then the rule asks for
+    # fewer pods and the pass before ran at least as many
     target = HPA_TARGET_UTILISATION / 100.0
-    checked = 0
+    checked = held = 0
     for s in a.replicas:
         for i in np.flatnonzero(np.isfinite(a.total_rate)):
             n, req = int(a.replicas[s][i]), a.request_m[s][i] / 1000.0
             util = pod_cpu(a.total_rate[i] / n) / req
             if min(abs(util / target - 1.1), abs(util / target - 0.9)) < 0.005:
                 continue
-            assert documented_rule(n, util, target, 2, 6) == n, (s, i, n, util)
+            want = documented_rule(n, util, target, 2, 6)
+            if want < n and i > 0 and a.replicas[s][i - 1] >= n:
+                held += 1
+                continue
+            assert want == n, (s, i, n, util)
             checked += 1
     assert checked > 0.95 * 4 * np.isfinite(a.total_rate).sum()
+    assert 0 < held < 0.03 * 4 * np.isfinite(a.total_rate).sum()
     # the suggested size (the review's coupled answer) reserves less than today's request on
     # these two INVENTED days (a property of our scenario, not a law)
     h = w["reserved_cpu_hours"]

@@ -26,9 +26,11 @@ load, within the curve's trained range and the per-pod capacity), for the policy
 and the replicas ``current`` runs, worked out again every ``suggest_every_s`` of simulated
 time (it costs milliseconds each); a container without an answer keeps ratefit's request.
 
-Simplifications: no scale-down stabilisation window (default 300 s: the count falls one
-pass later at most), new pods ready at once, usage from the models' demand curves (the
-measured usage came from the pods that really ran).
+Scaling down waits for the autoscaler's stabilization window (``behavior.scaleDown.
+stabilizationWindowSeconds``, default 300 s; ``controller.autoscaler.RecommendationWindow``).
+Simplifications: no scaling-rate policies (the defaults allow doubling, or 4 pods, per
+15 s up and everything down: at 5-minute passes they rarely bind), new pods ready at once,
+usage from the models' demand curves (the measured usage came from the pods that really ran).
 """
 
 from __future__ import annotations
@@ -39,7 +41,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ratefit.controller.autoscaler import desired_replicas
+from ratefit.controller.autoscaler import RecommendationWindow, desired_replicas
 from ratefit.controller.hpa_sizing import AutoscalerView, ModelFacts, autoscaler_hint
 
 __all__ = ["SYNC_PERIOD_S", "AutoscaledFigures", "hpa_replicas", "pod_demand", "suggested_requests", "autoscaled_figures"]
@@ -88,25 +90,39 @@ def pod_demand(demand_at: Callable[[np.ndarray], np.ndarray], total_rate: np.nda
 def hpa_replicas(view: AutoscalerView, demand: Mapping[int, np.ndarray], request_m: np.ndarray, *,
                  step_s: float, start: int | None = None) -> np.ndarray:
     """Replicas at each pass under ``view``'s CPU utilisation target with the pod request
-    ``request_m`` in force (see the module doc). ``demand``: :func:`pod_demand`. A pass
-    without a demand (no rate) keeps the count."""
+    ``request_m`` in force (see the module doc): the count in force for the larger part of
+    the pass (ties: the later count), the autoscaler syncing every 15 s from the pass's
+    start. ``demand``: :func:`pod_demand`. A pass without a demand (no rate) keeps the
+    count (the autoscaler has no metric: no recommendation). Scaling down waits for the
+    stabilization window (``view.scale_down_window_s``, default 300 s): the count set is
+    at most the highest recommendation of the window
+    (``controller.autoscaler.RecommendationWindow``)."""
     assert view.cpu is not None
     lo = max(1, view.min_replicas)
     hi = view.max_replicas if view.max_replicas is not None else NO_MAX_BOUND
     n = min(max(start if start is not None else view.replicas, lo), hi)
     syncs = max(1, int(step_s // SYNC_PERIOD_S))
+    window = RecommendationWindow(down_s=view.scale_down_window_s)
     out = np.zeros(len(request_m), dtype=np.int64)
     for i, req in enumerate(np.asarray(request_m, dtype=float).tolist()):
-        for _ in range(syncs):
+        held: dict[int, int] = {}  # count → syncs it was in force during this pass
+        for j in range(syncs):
             d = demand[n][i] if n in demand else math.nan
             if not (math.isfinite(d) and req > 0):
+                held[n] = held.pop(n, 0) + syncs - j
                 break
-            nxt = desired_replicas(n, 100.0 * d / (req / 1000.0), view.cpu.utilization, tolerance=view.tolerance,
+            rec = desired_replicas(n, 100.0 * d / (req / 1000.0), view.cpu.utilization, tolerance=view.tolerance,
                                    min_replicas=lo, max_replicas=hi)
-            if nxt == n:
+            if rec == n:
+                # demand is constant within a pass: every later sync of it recommends n again;
+                # the window needs only the last of those (it expires last)
+                window.stabilize(i * step_s + (syncs - 1) * SYNC_PERIOD_S, n, n)
+                held[n] = held.pop(n, 0) + syncs - j
                 break
-            n = nxt
-        out[i] = n
+            n = window.stabilize(i * step_s + j * SYNC_PERIOD_S, n, rec)
+            held[n] = held.pop(n, 0) + 1
+        longest = max(held.values())
+        out[i] = [k for k, v in held.items() if v == longest][-1]  # re-inserted on each update: last = latest
     return out
 
 

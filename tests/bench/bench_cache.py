@@ -75,6 +75,21 @@ def _served(sandbox_url: str, t0: float, t1: float) -> dict[str, int]:
     return out
 
 
+class _Scaled:
+    """A rate source answering what ``source`` answers times ``factor`` (moved rates)."""
+
+    def __init__(self, source, factor: float) -> None:  # type: ignore[no-untyped-def]
+        self.source, self.factor = source, factor
+
+    def per_pod_rates(self, requests):  # type: ignore[no-untyped-def]
+        import dataclasses
+
+        got = self.source.per_pod_rates(requests)
+        return {k: r if r.rate is None else dataclasses.replace(
+                    r, rate=r.rate * self.factor, pod_rates={p: v * self.factor for p, v in r.pod_rates.items()})
+                for k, r in got.items()}
+
+
 # ---------------------------------------------------------------- child: the controller
 def child_cache(args: argparse.Namespace) -> None:
     import gc
@@ -171,6 +186,15 @@ def child_cache(args: argparse.Namespace) -> None:
         refresh = {"wall_s": round(time.perf_counter() - t, 3), "cpu_s": round(time.process_time() - c, 3),
                    "period_s": snapshot.period_s, "refreshes_during_run": snapshot.refreshes - 1}
         one("steady state right after a refresh (same rates)")
+        # every rate moves: the refresh answers from Prometheus scaled, as if traffic had grown
+        # everywhere at once (the worst case for the steady-state reuse: no policy's inputs are
+        # unchanged, every one is decided again). +2 %: a drift inside the deadband (statuses
+        # change only where a demand figure they show moved); +15 %: proposals move too
+        for factor in (1.02, 1.15):
+            snapshot.source = _Scaled(rates, factor)
+            snapshot.refresh()
+            one(f"right after a refresh that moved every rate (+{round(factor * 100 - 100)} %)")
+        one("steady state after the moved rates")
     profile = ""
     if args.profile:
         prof = cProfile.Profile()
