@@ -52,7 +52,9 @@ The steps, in order (the first that stops a change names the ``why``):
    1m, never below the request); ``Keep`` leaves it; ``Drop`` removes it, together
    with the next request change (a limit alone never starts a rollout).
 8. Verdict: **Changed** (Apply mode), **Proposed** (DryRun, where Apply would say
-   Changed), **Held**. A change that reaches its full target says **NewTarget**
+   Changed), **Held**. A DryRun proposal already in the status stands while the new
+   value stays within its deadband (same side of the current request): proposals and
+   their Events do not follow every small move of the rates. A change that reaches its full target says **NewTarget**
    (or the bound it sits on: AtFloor/AtCeiling/AtLimit).
 
 **Rejected** is set by reconcile through :meth:`WorkloadDecision.rejected` when the
@@ -586,7 +588,7 @@ def decide_workload(
     if any(d.verdict is Verdict.CHANGED for d in decisions):
         if dry:
             decisions = [
-                replace(d, verdict=Verdict.PROPOSED, settle=d.settle_if_held) if d.verdict is Verdict.CHANGED else d
+                _propose(d, history.container(d.container).proposed_m, policy) if d.verdict is Verdict.CHANGED else d
                 for d in decisions
             ]
         elif (refusal := budget.refusal()) is not None:
@@ -596,11 +598,18 @@ def decide_workload(
             ]
     decisions = [_with_autoscaler(d, hints.get(d.container), autoscaler, replicas) for d in decisions]
     changed = any(d.verdict is Verdict.CHANGED for d in decisions)
+
+    def shown(h: ContainerHistory, d: Decision) -> ContainerHistory:
+        # the proposal the status will show (its row's newRequest), as history_from_status reads it back
+        p = d.proposed_m if d.verdict is Verdict.PROPOSED else None
+        return h if h.proposed_m == p else replace(h, proposed_m=p)
+
     held_history = WorkloadHistory(
-        last_change=history.last_change, containers={d.container: d.settle_if_held for d in decisions}
+        last_change=history.last_change, containers={d.container: shown(d.settle_if_held, d) for d in decisions}
     )
     new_history = WorkloadHistory(
-        last_change=now if changed else history.last_change, containers={d.container: d.settle for d in decisions}
+        last_change=now if changed else history.last_change,
+        containers={d.container: shown(d.settle, d) for d in decisions},
     )
     return WorkloadDecision(
         policy=policy.key,
@@ -609,6 +618,23 @@ def decide_workload(
         history=new_history,
         history_if_held=held_history,
     )
+
+
+def _propose(d: Decision, shown_m: int | None, policy: Policy) -> Decision:
+    """A change DryRun proposes instead of making (verdict Proposed). While the new value
+    stays within the deadband of the proposal the status already shows (``shown_m``, on
+    the same side of the current request), that proposal stands: the reviewer's figure and
+    the Events do not follow every small move of the rates (an Apply-mode change would not
+    be made for such a move either: step 3)."""
+    out = replace(d, verdict=Verdict.PROPOSED, settle=d.settle_if_held)
+    new = d.proposed_m
+    if (shown_m is None or new is None or shown_m == new or d.current_m is None
+            or (shown_m > d.current_m) != (new > d.current_m) or shown_m == d.current_m
+            or not _inside_deadband(shown_m, new, policy.deadband)):
+        return out
+    return replace(out, proposed_m=shown_m,
+                   proposed_limit_m=limit_for(d.current_m, d.limit_m, shown_m, policy.cpu_limit),
+                   message=f"{d.message}; the proposal of {_mc(shown_m)} stands: {_mc(new)} is within its deadband")
 
 
 def _with_autoscaler(

@@ -472,10 +472,13 @@ def parse_time(text: str) -> datetime:
 class ContainerHistory:
     """Settling state of one container: since when the target has stayed below the
     current request, and the highest target seen since then (a decrease goes to
-    that peak, never to a single low reading)."""
+    that peak, never to a single low reading). ``proposed_m``: the DryRun proposal the
+    status shows (its row's ``newRequest`` with verdict Proposed), which a later
+    proposal keeps while it moves less than the deadband (decide.py, step 8)."""
 
     below_since: datetime | None = None
     peak_m: int | None = None
+    proposed_m: int | None = None
 
 
 @dataclass(frozen=True)
@@ -508,12 +511,24 @@ def history_from_status(status: Mapping[str, Any] | None) -> WorkloadHistory:
         if not isinstance(entry, Mapping):
             continue
         name, since, peak = entry.get("name"), entry.get("belowSinceTime"), entry.get("peakTarget")
-        if not (isinstance(name, str) and isinstance(since, str) and isinstance(peak, str | int)):
+        if not isinstance(name, str):
             continue
-        try:
-            containers[name] = ContainerHistory(below_since=parse_time(since), peak_m=parse_cpu(peak, field="peakTarget"))
-        except (ValueError, TypeError, InputError):
+        proposed = None
+        if entry.get("verdict") == "Proposed" and isinstance(entry.get("newRequest"), str | int):
+            try:
+                proposed = parse_cpu(entry["newRequest"], field="newRequest")
+            except (ValueError, TypeError, InputError):
+                proposed = None
+        settling = None
+        if isinstance(since, str) and isinstance(peak, str | int):
+            try:
+                settling = (parse_time(since), parse_cpu(peak, field="peakTarget"))
+            except (ValueError, TypeError, InputError):
+                settling = None
+        if settling is None and proposed is None:
             continue
+        containers[name] = ContainerHistory(below_since=settling[0] if settling else None,
+                                            peak_m=settling[1] if settling else None, proposed_m=proposed)
     return WorkloadHistory(last_change=last_change, containers=containers)
 
 

@@ -184,8 +184,9 @@ def carried(h: WorkloadHistory) -> WorkloadHistory:
         return h
     return WorkloadHistory(
         last_change=None if last is None else last.replace(microsecond=0),
-        containers={n: ContainerHistory(below_since=c.below_since.replace(microsecond=0), peak_m=c.peak_m)
-                    if c.below_since is not None and c.peak_m is not None else ContainerHistory()
+        containers={n: ContainerHistory(below_since=c.below_since.replace(microsecond=0), peak_m=c.peak_m,
+                                        proposed_m=c.proposed_m)
+                    if c.below_since is not None and c.peak_m is not None else ContainerHistory(proposed_m=c.proposed_m)
                     for n, c in h.containers.items()},
     )
 
@@ -380,7 +381,11 @@ def simulate(
                                inputs=tuple(inputs), conflict_with=order[w].conflict_with,
                                autoscaler=scaled[w].at(i) if scaled[w] else None)
                 wd = decider.decide_one(obs, None, obs.inputs, now, now_s)
-                status[w] = history_to_status(wd.history, [{"name": n} for n in wd.history.containers])
+                # the rows the live record stage writes (verdict, newRequest: a DryRun proposal
+                # the next decision reads back), with the history's settling fields
+                rows = [d.to_status() for d in wd.decisions]
+                rows += [{"name": n} for n in wd.history.containers if n not in {d.container for d in wd.decisions}]
+                status[w] = history_to_status(wd.history, rows)
                 history_before = history[w]
                 history[w] = wd.history
                 record(i, now_s, w, wd, inputs, history_before, kept)
