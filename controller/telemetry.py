@@ -167,6 +167,15 @@ class Telemetry:
             ["kind"],
             registry=r,
         )
+        self.status_writes = Counter(
+            "ratefit_controller_status_writes",
+            "SizingPolicy status writes, by outcome: written, or deferred (only figures such as the rate and "
+            "demand moved, and the policy's were written less than --status-figures-every ago).",
+            ["outcome"],
+            registry=r,
+        )
+        for outcome in ("written", "deferred"):
+            self.status_writes.labels(outcome=outcome)
         self.band_exceedance = Gauge(
             "ratefit_controller_band_exceedance_ratio",
             "Share of the container's recent CPU samples above its model's upper band (controller/staleness); "

@@ -301,6 +301,12 @@ def register(sub: argparse._SubParsersAction) -> None:
                         "does not wait for Prometheus; new or changed queries and rates older than three periods "
                         "are asked in the pass; 0s or off: every pass asks Prometheus itself (default "
                         "$RATEFIT_RATE_REFRESH, else 30s; --once never uses it)")
+    p.add_argument("--status-figures-every", metavar="DURATION",
+                   default=os.environ.get("RATEFIT_STATUS_FIGURES_EVERY") or "5m",
+                   help="rewrite a policy's status at most every DURATION (stretched by up to half per policy) "
+                        "when only its figures moved — rate, demand, band, target; decisions, reasons, requests, "
+                        "conditions and settling are written at once; 0s or off: every change at once "
+                        "(default $RATEFIT_STATUS_FIGURES_EVERY, else 5m)")
     p.add_argument("--log-level", default="INFO", help="log level (default %(default)s)")
     p.add_argument("--retrain-store", metavar="DIR",
                    help="retrain stale models of policies with retrain: Auto into this model store (the one the "
@@ -335,6 +341,7 @@ def _run(args: argparse.Namespace) -> int:
     shard = parse_shard(args.shard)
     resync = duration_or_off(args.cache_resync, field="--cache-resync")
     rate_refresh = duration_or_off(args.rate_refresh, field="--rate-refresh")
+    figures_every = duration_or_off(args.status_figures_every, field="--status-figures-every")
     conns = connect(args, identity=args.identity)
     lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
     cache = None
@@ -373,7 +380,8 @@ def _run(args: argparse.Namespace) -> int:
         usage=conns.usage, retrainer=retrainer, retrain_all=args.retrain_stale,
         kube=kube, rates=rates, sizing=conns.sizing,
         config=ReconcileConfig(dry_run=args.dry_run, write=True, namespaces=tuple(args.namespace),
-                               identity=conns.kube.identity, shard=shard),
+                               identity=conns.kube.identity, shard=shard,
+                               status_figures_every_s=figures_every),
         budget=budget, backoff=ExponentialBackoff(base=5.0, cap=300.0, rng=random.Random()),
         telemetry=telemetry, crash_hook=crash_hook_from_env(os.environ.get("RATEFIT_CRASH_AT")),
     )

@@ -55,6 +55,9 @@ class ReconcileConfig:
     #: reuse a policy's last decision, rows and status verdict while nothing it depends on
     #: changed and that decision read neither the clock nor the budget (``stages/steady.py``)
     reuse_unchanged: bool = True
+    #: write a status whose only news is figures (rate, demand, band, target) at most this
+    #: often per policy, seconds (0: at once; ``stages/write.py``; ``ratefit run`` default 5 min)
+    status_figures_every_s: float = 0.0
 
 
 class PassControl(Protocol):
@@ -92,7 +95,8 @@ class Reconciler:
         self.decider = Decider(budget=self.budget, monotonic=monotonic, dry_run=config.dry_run, write=config.write)
         self.actor = Actor(kube=kube, decider=self.decider, telemetry=self.telemetry, backoff=backoff,
                            monotonic=monotonic, hook=self._hook, conflict_attempts=config.conflict_attempts)
-        self.writer = RecordWriter(kube=kube, telemetry=self.telemetry, dry_run=config.dry_run)
+        self.writer = RecordWriter(kube=kube, telemetry=self.telemetry, dry_run=config.dry_run,
+                                   figures_every_s=config.status_figures_every_s, monotonic=monotonic)
         #: the steady-state memo (``stages/steady.py``); None: every policy is decided every pass
         self.memo: SteadyMemo | None = SteadyMemo() if config.reuse_unchanged else None
 

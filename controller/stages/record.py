@@ -236,6 +236,35 @@ def status_is_current(new: Mapping[str, object], old: Mapping[str, object]) -> b
     return comparable(new) == comparable({k: old.get(k) for k in new})
 
 
+#: ``status.containers[]`` fields that only report what the pass saw — the rate, the
+#: model's demand and band at it, the target they give — as opposed to what was decided
+#: (verdict, reason, current and new request/limit) and the history the next decision
+#: reads (belowSinceTime, peakTarget, lastChangeTime), which are never deferred
+FIGURE_FIELDS = frozenset({"rate", "demand", "demandBound", "target"})
+#: what of a condition is decisional: its message may carry figures (a ratio, a count)
+_CONDITION_KEYS = ("type", "status", "reason", "observedGeneration")
+
+
+def decisional(status: Mapping[str, object]) -> dict[str, object]:
+    """:func:`comparable` without the figures: the container rows without
+    :data:`FIGURE_FIELDS`, the conditions without their messages and times."""
+    out = comparable(status)
+    rows = out.get("containers")
+    if isinstance(rows, list):
+        out["containers"] = [{k: v for k, v in r.items() if k not in FIGURE_FIELDS} if isinstance(r, Mapping) else r
+                             for r in rows]
+    conds = out.get("conditions")
+    if isinstance(conds, list):
+        out["conditions"] = [{k: c.get(k) for k in _CONDITION_KEYS} if isinstance(c, Mapping) else c for c in conds]
+    return out
+
+
+def figures_only(new: Mapping[str, object], old: Mapping[str, object]) -> bool:
+    """True when ``new`` differs from the stored status only in figures (see
+    :data:`FIGURE_FIELDS`): the writer may defer such a write (``stages/write.py``)."""
+    return decisional(new) == decisional({k: old.get(k) for k in new})
+
+
 def _same(before: Mapping[str, object] | None, now_p: Mapping[str, object]) -> bool:
     return before is not None and all(before.get(k) == now_p.get(k) for k in ("verdict", "reason", "newRequest", "current"))
 

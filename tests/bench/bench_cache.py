@@ -134,11 +134,12 @@ def child_cache(args: argparse.Namespace) -> None:
         snapshot = source = RateSnapshot(rates, period_s=args.rate_refresh)
     rec = Reconciler(kube=CachedKube(reader=cache, writer=kube), rates=source, sizing=sizing,
                      config=ReconcileConfig(dry_run=True, write=args.writes, identity="bench",
-                                            reuse_unchanged=not args.no_reuse))
+                                            reuse_unchanged=not args.no_reuse,
+                                            status_figures_every_s=args.status_figures_every))
     out = []
 
     def one(label: str) -> None:
-        q0, s0 = rates.queries_sent, calls["sizing"]
+        q0, s0, d0 = rates.queries_sent, calls["sizing"], rec.writer.deferred
         r0 = snapshot.refreshes if snapshot is not None else 0
         tw, w0, c0 = time.time(), time.perf_counter(), time.process_time()
         r = rec.run_pass()
@@ -149,7 +150,7 @@ def child_cache(args: argparse.Namespace) -> None:
             "events": r.events, "errors": list(r.errors)[:3], "wall_s": round(wall, 3), "cpu_s": round(cpu, 3),
             "phases": {k: round(v, 3) for k, v in dict(r.phases).items()}, "kube_requests": served,
             "prom_queries": rates.queries_sent - q0, "sizing_calls": calls["sizing"] - s0,
-            "sizing_items": rec.observer.sizing_asked,
+            "sizing_items": rec.observer.sizing_asked, "deferred_writes": rec.writer.deferred - d0,
             "rates_from_snapshot": snapshot.hits if snapshot is not None else 0,
             "refresh_overlapped": (snapshot.refreshes - r0) if snapshot is not None else 0,
         })
@@ -233,6 +234,9 @@ def main() -> int:
                          "(controller/rates_snapshot.py); 0: ask Prometheus in every pass (default %(default)s)")
     ap.add_argument("--no-reuse", action="store_true",
                     help="decide every policy every pass (no steady-state memo, controller/stages/steady.py)")
+    ap.add_argument("--status-figures-every", type=float, default=300.0, metavar="SECONDS",
+                    help="write a status whose only news is figures at most every SECONDS per policy, as "
+                         "`ratefit run` does (controller/stages/write.py); 0: at once (default %(default)s)")
     ap.add_argument("--child-cache", action="store_true", help=argparse.SUPPRESS)
     ap.add_argument("--kubeconfig", help=argparse.SUPPRESS)
     ap.add_argument("--prometheus", help=argparse.SUPPRESS)
@@ -278,6 +282,7 @@ def main() -> int:
         cmd += [] if args.writes else ["--no-writes"]
         cmd += ["--profile"] if args.profile else []
         cmd += ["--rate-refresh", str(args.rate_refresh)] + (["--no-reuse"] if args.no_reuse else [])
+        cmd += ["--status-figures-every", str(args.status_figures_every)]
         p = subprocess.run(cmd, capture_output=True, text=True, cwd=ROOT, timeout=3600)
         if p.returncode != 0:
             print(p.stderr[-3000:], file=sys.stderr)
@@ -293,7 +298,8 @@ def main() -> int:
     for ps in res["passes"]:
         ph = ps["phases"]
         kr = ps["kube_requests"]
-        print(f"\n{ps['pass']}: {ps['outcome']}, {ps['containers']} containers, {ps['status_writes']} status writes, "
+        print(f"\n{ps['pass']}: {ps['outcome']}, {ps['containers']} containers, {ps['status_writes']} status writes "
+              f"({ps['deferred_writes']} deferred: only figures moved), "
               f"{ps['events']} events")
         print(f"  wall {ps['wall_s']:.2f} s (steady-state goal ≤ 1.0 s), controller CPU {ps['cpu_s']:.2f} s")
         print(f"  phases: gather {ph.get('gather', 0):.2f} s [cache reads {ph.get('gather_kube', 0):.3f} s, "
