@@ -11,7 +11,8 @@
 - ``act.py`` — server-side dry run, patch, in-place resize, 409 re-read + recompute, backoff.
 - ``record.py`` — PURE: new status (validated by the CRD's status model), Events,
   decision log records and review rows, built from observation + decision.
-- ``write.py`` — writes what ``record`` built (status only when it changed, then Events, logs).
+- ``write.py`` — writes what ``record`` built (status only when it changed — when only
+  figures changed, at most every ``status_figures_every_s`` per policy — then Events, logs).
 - ``steady.py`` — the steady-state memo: a policy whose inputs (policy and workload
   resourceVersions, rates, sizing answers, …) are those of its last pass, and whose last
   decision was a fixed point that read neither the clock nor the budget, reuses that
