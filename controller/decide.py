@@ -54,8 +54,8 @@ The steps, in order (the first that stops a change names the ``why``):
 8. Verdict: **Changed** (Apply mode), **Proposed** (DryRun, where Apply would say
    Changed), **Held**. A DryRun proposal already in the status stands while the new
    value stays within its deadband (same side of the current request): proposals and
-   their Events do not follow every small move of the rates. A change that reaches its full target says **NewTarget**
-   (or the bound it sits on: AtFloor/AtCeiling/AtLimit).
+   their Events do not follow every small move of the rates. A change that reaches its
+   full target says **NewTarget** (or the bound it sits on: AtFloor/AtCeiling/AtLimit).
 
 **Rejected** is set by reconcile through :meth:`WorkloadDecision.rejected` when the
 API server refuses the change (server-side dry-run or patch, e.g. 422).
