@@ -36,3 +36,13 @@ def test_a_missing_store_directory_is_said_so_by_every_command(tmp_path) -> None
         assert r.returncode == 2, (args, r.stderr)
         assert f"--store {missing}: no such directory" in r.stderr and "train it" not in r.stderr, (args, r.stderr)
         assert len(r.stderr.strip().splitlines()) == 1, (args, r.stderr)
+
+
+def test_bad_run_durations_are_one_line_naming_the_flag() -> None:
+    """Checked before anything is contacted (the sizing API here is a closed port)."""
+    for flag, value, words in (("--lease-duration", "1s", "between 2s and 1h"),
+                               ("--status-figures-every", "soon", "not a Prometheus duration")):
+        r = _cli("run", "--sizing-api", "http://127.0.0.1:1", flag, value)
+        assert r.returncode == 2, (flag, r.stderr)
+        lines = r.stderr.strip().splitlines()
+        assert len(lines) == 1 and flag in lines[0] and words in lines[0], (flag, r.stderr)

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 # shared_sizing_api is a pytest fixture (one real `ratefit serve` per session)
@@ -150,7 +151,8 @@ def test_negative_budgets_and_malformed_kubeconfigs_are_refused_in_one_line(tmp_
 
 def test_run_once_gives_up_when_another_replica_holds_the_lease(tmp_path, shared_sizing_api) -> None:
     """--once as a standby would wait forever: it stops after two Lease durations (15 s
-    each, client-go's default) with exit 7, naming the holder, and changes nothing."""
+    each by default, client-go's; 3 s here, --lease-duration) with exit 7, naming the
+    holder, and changes nothing."""
     from datetime import datetime, timezone
 
     now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
@@ -160,9 +162,11 @@ def test_run_once_gives_up_when_another_replica_holds_the_lease(tmp_path, shared
                       "acquireTime": now, "renewTime": now}}
     ns = {"apiVersion": "v1", "kind": "Namespace", "metadata": {"name": "ratefit-system"}}
     with world(tmp_path, objects=[ns, lease, *OBJECTS], api_url=shared_sizing_api, rates=RATES) as w:
-        r = subprocess.run([str(RATEFIT), "run", "--once", "--metrics-port", "-1", *_common(w),
-                            "--sizing-api", w.api_url], capture_output=True, text=True, timeout=120)
+        t0 = time.monotonic()
+        r = subprocess.run([str(RATEFIT), "run", "--once", "--metrics-port", "-1", "--lease-duration", "3s",
+                            *_common(w), "--sizing-api", w.api_url], capture_output=True, text=True, timeout=120)
         assert r.returncode == 7, r.stderr[-2000:]
+        assert time.monotonic() - t0 >= 6.0  # it waited two Lease durations first
         (line,) = [ln for ln in r.stderr.splitlines() if ln.startswith("ratefit run: error:")]
         assert "the-other-replica" in line and "--no-leader-election" in line
         assert w.patches("shop", "web") == []

@@ -288,6 +288,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--identity", default=os.environ.get("POD_NAME"), help="this replica's name in the Lease and Events (default $POD_NAME or host name)")
     p.add_argument("--lease-namespace", default="ratefit-system", help="namespace of the leader Lease (default %(default)s)")
     p.add_argument("--lease-name", default="ratefit-controller", help="name of the leader Lease (default %(default)s)")
+    p.add_argument("--lease-duration", default="15s", metavar="DURATION",
+                   help="how long a leader's Lease holds without renewal (default %(default)s, client-go's); the "
+                        "leader renews every 2/15 of it and steps down when 2/3 of it passed without a renewal")
     p.add_argument("--no-leader-election", action="store_true", help="act without a Lease (only ever run ONE replica like this)")
     p.add_argument("--shard", metavar="I/N",
                    help="act only on policies whose namespace hashes (CRC-32 mod N) to shard I of N; the Lease "
@@ -342,6 +345,9 @@ def _run(args: argparse.Namespace) -> int:
     resync = duration_or_off(args.cache_resync, field="--cache-resync")
     rate_refresh = duration_or_off(args.rate_refresh, field="--rate-refresh")
     figures_every = duration_or_off(args.status_figures_every, field="--status-figures-every")
+    lease_s = parse_duration(args.lease_duration, field="--lease-duration")
+    if not 2.0 <= lease_s <= 3600.0:
+        raise InputError(f"--lease-duration must be between 2s and 1h, got {args.lease_duration}")
     conns = connect(args, identity=args.identity)
     lease_name = args.lease_name if shard is None else f"{args.lease_name}-{shard[0]}-of-{shard[1]}"
     cache = None
@@ -386,7 +392,8 @@ def _run(args: argparse.Namespace) -> int:
         telemetry=telemetry, crash_hook=crash_hook_from_env(os.environ.get("RATEFIT_CRASH_AT")),
     )
     elector = None if args.no_leader_election else conns.kube.leader_elector(
-        namespace=args.lease_namespace, name=lease_name)
+        namespace=args.lease_namespace, name=lease_name, lease_duration=lease_s,
+        renew_deadline=lease_s * 2.0 / 3.0, retry_period=lease_s * 2.0 / 15.0)
     gave_up: list[tuple[int, str]] = []
     if args.once and elector is not None:
         # the first Lease attempt that fails checks the Lease namespace: a missing one would
