@@ -56,6 +56,7 @@ from kubernetes.watch.watch import iter_resp_lines
 from urllib3.exceptions import HTTPError as Urllib3Error
 from urllib3.util.retry import Retry
 
+from ratefit.controller.autoscaler import DEFAULT_SCALE_DOWN_WINDOW_S, MAX_STABILIZATION_WINDOW_S
 from ratefit.controller.errors import KubeError, KubeGone, KubeNotFound
 from ratefit.controller.kube_lease import LeaderElector, micro_time
 from ratefit.controller.kube_retry import RetryPolicy, call_with_retry, retry_on_conflict, translate
@@ -859,17 +860,22 @@ def _scaler_metrics(spec: Mapping[str, Any]) -> tuple[ScalerMetric, ...]:
     return tuple(out)
 
 
+def _behavior(spec: Mapping[str, Any], direction: str) -> Mapping[str, Any]:
+    """``spec.behavior.scaleUp`` / ``scaleDown`` of an HPA, {} when absent or malformed."""
+    behavior = spec.get("behavior")
+    rules = behavior.get(direction) if isinstance(behavior, Mapping) else None
+    return rules if isinstance(rules, Mapping) else {}
+
+
 def _scale_up_tolerance(spec: Mapping[str, Any]) -> float:
-    up = ((spec.get("behavior") or {}).get("scaleUp") or {}) if isinstance(spec.get("behavior"), Mapping) else {}
-    tol = _number(up.get("tolerance")) if isinstance(up, Mapping) else None
+    tol = _number(_behavior(spec, "scaleUp").get("tolerance"))
     return tol if tol is not None else 0.1  # Kubernetes docs: the default tolerance 0.1
 
 
 def _scale_down_window(spec: Mapping[str, Any]) -> float:
-    down = ((spec.get("behavior") or {}).get("scaleDown") or {}) if isinstance(spec.get("behavior"), Mapping) else {}
-    w = _whole(down.get("stabilizationWindowSeconds")) if isinstance(down, Mapping) else None
+    w = _whole(_behavior(spec, "scaleDown").get("stabilizationWindowSeconds"))
     # autoscaling/v2 API reference: 0..3600, default 300 for scale down
-    return float(w) if w is not None and 0 <= w <= 3600 else 300.0
+    return float(w) if w is not None and 0 <= w <= MAX_STABILIZATION_WINDOW_S else DEFAULT_SCALE_DOWN_WINDOW_S
 
 
 def _hpa(obj: Mapping[str, Any]) -> HorizontalScaler:
